@@ -2,4 +2,8 @@
 
 from __future__ import annotations
 
+from regional.models import simulate
+
 __version__ = "0.1.0"
+
+__all__ = ["__version__", "simulate"]

@@ -1,0 +1,23 @@
+"""Storage models: pure numeric kernels behind one interface, and :func:`simulate`.
+
+A model declares its parameter table (:class:`Parameter` rows: name, initial, bounds, unit,
+regression transform) and simulates many parameter sets or basins in one call on arrays shaped
+(time, n). Nothing here knows of files or pandas.
+"""
+
+from __future__ import annotations
+
+from regional.models.base import Parameter, Simulation
+from regional.models.linear import LinearReservoir
+from regional.models.simulate import get_model, model_names, simulate
+from regional.models.snow import DegreeDaySnow
+
+__all__ = [
+    "DegreeDaySnow",
+    "LinearReservoir",
+    "Parameter",
+    "Simulation",
+    "get_model",
+    "model_names",
+    "simulate",
+]
