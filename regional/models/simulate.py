@@ -122,7 +122,7 @@ def _check_finite(array: np.ndarray, name: str, *, non_negative: bool) -> None:
         step, column = np.argwhere(bad)[0]
         rule = "finite and >= 0" if non_negative else "finite"
         raise ValueError(
-            f"{name} must be {rule}: found {array[step, column]!r} at step {step}, "
+            f"{name} must be {rule}: found {float(array[step, column])!r} at step {step}, "
             f"column {column} ({int(bad.sum())} bad values in all)"
         )
 
@@ -173,7 +173,7 @@ def _parameter_arrays(
         outside = ~((values >= parameter.lower) & (values <= parameter.upper))
         if outside.any():
             raise ValueError(
-                f"parameter {parameter.name} = {values[outside][0]!r} {parameter.unit} is outside "
+                f"parameter {parameter.name} = {float(values[outside][0])!r} {parameter.unit} is outside "
                 f"its bounds [{parameter.lower}, {parameter.upper}]"
             )
         arrays[parameter.name] = values

@@ -1,0 +1,186 @@
+"""Goodness-of-fit of simulated against observed flow: pure functions on arrays.
+
+Every function takes ``obs`` shaped (time,) or (time, n) and ``sim`` of the same shape or with
+one column shared by all; axis 0 is time. Days where ``obs`` is NaN are masked. A score is NaN
+(with a :class:`DegenerateSeriesWarning`) when fewer than two days are observed or the observed
+series is constant, never a crash.
+
+References
+----------
+Nash, J. E., Sutcliffe, J. V. (1970): River flow forecasting through conceptual models part I,
+J. Hydrol. 10, 282-290 (NSE).
+Gupta, H. V., Kling, H., Yilmaz, K. K., Martinez, G. F. (2009): Decomposition of the mean squared
+error and NSE performance criteria, J. Hydrol. 377, 80-91 (KGE and its parts r, alpha, beta).
+Pushpalatha, R., Perrin, C., Le Moine, N., Andreassian, V. (2012): A review of efficiency criteria
+suitable for evaluating low-flow simulations, J. Hydrol. 420-421, 171-182 (log-NSE, and the
+constant added before the logarithm: one hundredth of the mean observed flow).
+"""
+
+from __future__ import annotations
+
+import warnings
+from typing import NamedTuple
+
+import numpy as np
+
+LOG_OFFSET_SHARE = 0.01
+"""Constant added to flows before the logarithm in log-NSE, as a share of mean observed flow."""
+
+
+class DegenerateSeriesWarning(UserWarning):
+    """The observed series is constant or nearly empty: the score is undefined (NaN)."""
+
+
+class KGEParts(NamedTuple):
+    """KGE and its three parts (Gupta et al. 2009)."""
+
+    kge: np.ndarray
+    r: np.ndarray
+    alpha: np.ndarray
+    beta: np.ndarray
+
+
+def _align(obs, sim) -> tuple[np.ndarray, np.ndarray, np.ndarray, bool]:
+    obs = np.asarray(obs, dtype=float)
+    sim = np.asarray(sim, dtype=float)
+    one_d = obs.ndim == 1 and sim.ndim == 1
+    obs2 = obs[:, None] if obs.ndim == 1 else obs
+    sim2 = sim[:, None] if sim.ndim == 1 else sim
+    if obs2.shape[0] != sim2.shape[0]:
+        raise ValueError(f"obs and sim differ in length: {obs2.shape[0]} and {sim2.shape[0]} days")
+    obs2, sim2 = np.broadcast_arrays(obs2, sim2)
+    mask = np.isfinite(obs2)
+    return obs2, sim2, mask, one_d
+
+
+def _finish(score: np.ndarray, one_d: bool):
+    return float(score[0]) if one_d else score
+
+
+def _masked_moments(obs, sim, mask):
+    count = mask.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        obs0 = np.where(mask, obs, 0.0)
+        sim0 = np.where(mask, sim, 0.0)
+        mean_obs = obs0.sum(axis=0) / count
+        mean_sim = sim0.sum(axis=0) / count
+        dev_obs = np.where(mask, obs - mean_obs, 0.0)
+        dev_sim = np.where(mask, sim - mean_sim, 0.0)
+    return count, mean_obs, mean_sim, dev_obs, dev_sim
+
+
+def _degenerate(count, dev_obs) -> np.ndarray:
+    bad = (count < 2) | ~((dev_obs**2).sum(axis=0) > 0)
+    if bad.any():
+        warnings.warn(
+            f"{int(bad.sum())} series have fewer than 2 observed days or constant observed "
+            "flow; their score is NaN",
+            DegenerateSeriesWarning,
+            stacklevel=3,
+        )
+    return bad
+
+
+def nse(obs, sim):
+    """Nash-Sutcliffe efficiency, 1 - sum((sim - obs)^2) / sum((obs - mean(obs))^2).
+
+    Parameters
+    ----------
+    obs, sim : array_like, shape (time,) or (time, n)
+        Observed (NaN = missing) and simulated flow, any consistent unit.
+
+    Returns
+    -------
+    float or ndarray (n,)
+        NSE, dimensionless, in (-inf, 1]; NaN for a degenerate observed series.
+    """
+    obs, sim, mask, one_d = _align(obs, sim)
+    count, _, _, dev_obs, _ = _masked_moments(obs, sim, mask)
+    bad = _degenerate(count, dev_obs)
+    sse = np.where(mask, (sim - obs) ** 2, 0.0).sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        score = 1.0 - sse / (dev_obs**2).sum(axis=0)
+    return _finish(np.where(bad, np.nan, score), one_d)
+
+
+def kge_parts(obs, sim) -> KGEParts:
+    """Kling-Gupta efficiency with its parts (Gupta et al. 2009).
+
+    KGE = 1 - sqrt((r - 1)^2 + (alpha - 1)^2 + (beta - 1)^2), with r the Pearson correlation,
+    alpha = std(sim) / std(obs) and beta = mean(sim) / mean(obs), over the observed days.
+
+    Returns
+    -------
+    KGEParts
+        ``kge``, ``r``, ``alpha``, ``beta`` (floats for 1-D input, else (n,) arrays).
+    """
+    obs, sim, mask, one_d = _align(obs, sim)
+    count, mean_obs, mean_sim, dev_obs, dev_sim = _masked_moments(obs, sim, mask)
+    bad = _degenerate(count, dev_obs)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ss_obs = (dev_obs**2).sum(axis=0)
+        ss_sim = (dev_sim**2).sum(axis=0)
+        r = (dev_obs * dev_sim).sum(axis=0) / np.sqrt(ss_obs * ss_sim)
+        alpha = np.sqrt(ss_sim / ss_obs)
+        beta = mean_sim / mean_obs
+        score = 1.0 - np.sqrt((r - 1.0) ** 2 + (alpha - 1.0) ** 2 + (beta - 1.0) ** 2)
+    parts = [np.where(bad, np.nan, x) for x in (score, r, alpha, beta)]
+    return KGEParts(*(_finish(x, one_d) for x in parts))
+
+
+def kge(obs, sim):
+    """Kling-Gupta efficiency (Gupta et al. 2009); see :func:`kge_parts`."""
+    return kge_parts(obs, sim).kge
+
+
+def log_nse(obs, sim):
+    """NSE of log(flow + c), c = 0.01 x mean observed flow (Pushpalatha et al. 2012).
+
+    The constant keeps zero flows finite and is the same for obs and sim; it is computed per
+    series from the observed days. Negative simulated flows (round-off) are clipped to 0.
+    """
+    obs, sim, mask, one_d = _align(obs, sim)
+    count = mask.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        offset = LOG_OFFSET_SHARE * np.where(mask, obs, 0.0).sum(axis=0) / count
+        log_obs = np.log(np.where(mask, np.maximum(obs, 0.0), 0.0) + offset)
+        log_sim = np.log(np.maximum(sim, 0.0) + offset)
+    log_obs = np.where(mask, log_obs, np.nan)
+    return nse(log_obs[:, 0] if one_d else log_obs, log_sim[:, 0] if one_d else log_sim)
+
+
+def pbias(obs, sim):
+    """Percent bias, 100 x sum(sim - obs) / sum(obs) over the observed days (positive = too wet).
+
+    Returns
+    -------
+    float or ndarray (n,)
+        Percent; NaN when the observed volume is zero or fewer than 2 days are observed.
+    """
+    obs, sim, mask, one_d = _align(obs, sim)
+    count, _, _, dev_obs, _ = _masked_moments(obs, sim, mask)
+    volume = np.where(mask, obs, 0.0).sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        score = 100.0 * np.where(mask, sim - obs, 0.0).sum(axis=0) / volume
+    bad = (count < 2) | (volume == 0)
+    return _finish(np.where(bad, np.nan, score), one_d)
+
+
+OBJECTIVES = {"kge": kge, "nse": nse, "log_nse": log_nse}
+"""Calibration objectives by config name (higher is better for all)."""
+
+
+def all_scores(obs, sim) -> dict[str, np.ndarray]:
+    """Every metric at once: nse, kge, kge_r, kge_alpha, kge_beta, log_nse, pbias, n_days."""
+    parts = kge_parts(obs, sim)
+    obs_array = np.asarray(obs, dtype=float)
+    return {
+        "nse": nse(obs, sim),
+        "kge": parts.kge,
+        "kge_r": parts.r,
+        "kge_alpha": parts.alpha,
+        "kge_beta": parts.beta,
+        "log_nse": log_nse(obs, sim),
+        "pbias": pbias(obs, sim),
+        "n_days": np.isfinite(obs_array).sum(axis=0),
+    }
