@@ -233,9 +233,12 @@ def check_complete(X: pd.DataFrame, columns: Sequence[str], *, method: str, role
 
 
 def drop_constant(
-    X: pd.DataFrame, columns: Sequence[str], *, method: str
+    X: pd.DataFrame, columns: Sequence[str], *, method: str, stacklevel: int = 3
 ) -> tuple[list[str], list[str]]:
-    """Split ``columns`` into (varying, constant) over the rows of ``X``; warn about constants."""
+    """Split ``columns`` into (varying, constant) over the rows of ``X``; warn about constants.
+
+    ``stacklevel`` is passed to :func:`warnings.warn` so the warning points at the user's call.
+    """
     values = X.loc[:, list(columns)].to_numpy(dtype=float)
     spread = np.ptp(values, axis=0) if len(values) else np.zeros(len(columns))
     constant = [c for c, s in zip(columns, spread, strict=True) if not s > 0.0]
@@ -246,7 +249,7 @@ def drop_constant(
             f"{len(X)} training basins and were dropped: {', '.join(map(repr, constant))}. "
             "Drop them from the attribute list or add basins where they vary.",
             InputWarning,
-            stacklevel=3,
+            stacklevel=stacklevel,
         )
     return kept, constant
 

@@ -20,6 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from regional import models
 from regional.errors import InputError
 from regional.transfer.base import (
     Donation,
@@ -215,16 +216,7 @@ def donor_flows(
 
 
 def _simulate_function(simulate: SimulateFn | None) -> SimulateFn:
-    if simulate is not None:
-        return simulate
-    import regional
-
-    try:
-        return regional.simulate
-    except AttributeError:  # pragma: no cover - only before regional.simulate exists
-        from regional.models.simulate import simulate as fallback
-
-        return fallback
+    return models.simulate if simulate is None else simulate
 
 
 def _one_target(donation: Donation, target_id: str | None) -> str:

@@ -270,7 +270,7 @@ class SimilarityTransfer(_DonorTransfer):
         role = "the training attributes X"
         candidates = select_attributes(X, self.attributes, method=self._method, role=role)
         check_complete(X, candidates, method=self._method, role=role)
-        kept, dropped = drop_constant(X, candidates, method=self._method)
+        kept, dropped = drop_constant(X, candidates, method=self._method, stacklevel=4)
         if not kept:
             raise InputError(
                 f"{self._method} transfer: every attribute is constant over the {len(X)} "
