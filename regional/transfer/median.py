@@ -81,7 +81,7 @@ class MedianTransfer(BaseEstimator):
         median, low, high = {}, {}, {}
         for name in y.columns:
             values = forward(y[name].to_numpy(dtype=float), transforms_[name])
-            median[name] = inverse(np.median(values), transforms_[name])
+            median[name] = _median(y[name].to_numpy(dtype=float), transforms_[name])
             low_t, high_t = np.quantile(values, [0.5 - level / 2.0, 0.5 + level / 2.0])
             low[name] = inverse(low_t, transforms_[name])
             high[name] = inverse(high_t, transforms_[name])
@@ -130,3 +130,12 @@ class MedianTransfer(BaseEstimator):
             level=float(self.level),
             distance_unit="",
         )
+
+
+def _median(values: np.ndarray, transform: str) -> float:
+    """Median in transformed space, back-transformed; exactly the middle value for odd counts."""
+    ordered = np.sort(values)
+    middle = len(ordered) // 2
+    if len(ordered) % 2:
+        return float(ordered[middle])
+    return float(inverse(forward(ordered[middle - 1 : middle + 1], transform).mean(), transform))

@@ -1,0 +1,59 @@
+"""make_transfer and TRANSFER_METHODS: build estimators by method name."""
+
+from __future__ import annotations
+
+import pytest
+
+from regional.errors import InputError
+from regional.transfer import (
+    TRANSFER_METHODS,
+    MedianTransfer,
+    ProximityTransfer,
+    RegressionTransfer,
+    SimilarityTransfer,
+    make_transfer,
+)
+
+
+def test_registry_names_the_four_methods():
+    assert TRANSFER_METHODS == {
+        "regression": RegressionTransfer,
+        "similarity": SimilarityTransfer,
+        "proximity": ProximityTransfer,
+        "median": MedianTransfer,
+    }
+
+
+def test_make_transfer_passes_the_settings_that_apply():
+    similarity = make_transfer(
+        "similarity", attributes=["aridity"], n_donors=3, power=2.0, combine="parameter"
+    )
+    assert similarity.get_params() == {
+        "attributes": ["aridity"],
+        "n_donors": 3,
+        "power": 2.0,
+        "combine": "parameter",
+    }
+    proximity = make_transfer("proximity", attributes=["aridity"], n_donors=2)
+    assert proximity.get_params()["n_donors"] == 2
+    assert make_transfer("regression", attributes=["aridity"]).attributes == ["aridity"]
+    assert isinstance(make_transfer("median", n_donors=9), MedianTransfer)
+
+
+@pytest.mark.parametrize("name", sorted(TRANSFER_METHODS))
+def test_every_method_fits_donates_and_predicts(region, name):
+    X, y = region
+    est = make_transfer(name, attributes=["aridity", "slope_pct"], n_donors=3)
+    donation = est.fit(X.iloc[:20], y.iloc[:20]).donate(X.iloc[20:])
+    predicted = est.predict(X.iloc[20:])
+    assert donation.method == name
+    assert list(donation.intervals.index) == list(X.index[20:])
+    assert list(predicted.index) == list(X.index[20:])
+    low, high = donation.intervals["k_per_day_low"], donation.intervals["k_per_day_high"]
+    assert (low <= predicted["k_per_day"]).all() and (predicted["k_per_day"] <= high).all()
+    assert donation.sets.groupby("target_id")["weight"].sum().round(12).eq(1.0).all()
+
+
+def test_unknown_method_suggests_the_closest():
+    with pytest.raises(InputError, match="unknown transfer method 'proximty'.*'proximity'"):
+        make_transfer("proximty")
