@@ -582,6 +582,12 @@ def _assemble(
 ) -> Settings:
     series = _series(sections["series"], file)
     model = _model(sections["model"], file)
+    if model.snow == "true" and series.temp is None:
+        raise InputError(
+            f"key 'snow' in [model] of {file} is true, but [series] names no 'temp' column; the "
+            "snow store needs daily temperature. Fix: add temp = \"...\" to [series], or set "
+            'snow = "auto" or false.'
+        )
     prediction = _prediction(sections["prediction"], sections["transfer"], model, file)
     raster = sections["raster"]
     region = dict(sections["region"])
