@@ -138,4 +138,6 @@ def _median(values: np.ndarray, transform: str) -> float:
     middle = len(ordered) // 2
     if len(ordered) % 2:
         return float(ordered[middle])
-    return float(inverse(forward(ordered[middle - 1 : middle + 1], transform).mean(), transform))
+    pair = ordered[middle - 1 : middle + 1]
+    centre = inverse(forward(pair, transform).mean(), transform)
+    return float(np.clip(centre, pair[0], pair[1]))  # no round-off outside the middle pair

@@ -381,7 +381,8 @@ def press(design: np.ndarray, target: np.ndarray) -> float:
     or the design is rank deficient.
     """
     q, r = np.linalg.qr(design)
-    if np.linalg.matrix_rank(design) < design.shape[1]:
+    diagonal = np.abs(np.diag(r))
+    if diagonal.min() <= 1e-10 * max(diagonal.max(), 1.0):
         return float("inf")
     beta = np.linalg.solve(r, q.T @ target)
     residuals = target - design @ beta

@@ -9,6 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from pyproj import Geod
 from sklearn.base import clone
+from sklearn.exceptions import NotFittedError
 from sklearn.neighbors import KNeighborsRegressor
 
 from regional.errors import InputError, InputWarning
@@ -287,5 +288,5 @@ def test_estimator_contract(region):
         "weight",
         "k_per_day",
     ]
-    with pytest.raises(Exception, match="not fitted"):
+    with pytest.raises(NotFittedError, match="not fitted"):
         ProximityTransfer().donate(X)

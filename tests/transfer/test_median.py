@@ -7,6 +7,7 @@ import pandas as pd
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from sklearn.exceptions import NotFittedError
 
 from regional.errors import InputError
 from regional.transfer import MedianTransfer
@@ -75,5 +76,5 @@ def test_bad_inputs(region):
         MedianTransfer(level=0.0).fit(X, y)
     with pytest.raises(InputError, match="median.*must be a pandas DataFrame"):
         MedianTransfer().fit(X.to_numpy(), y)
-    with pytest.raises(Exception, match="not fitted"):
+    with pytest.raises(NotFittedError, match="not fitted"):
         MedianTransfer().predict(X)

@@ -9,6 +9,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from sklearn.base import clone
+from sklearn.exceptions import NotFittedError
 from statsmodels.stats.outliers_influence import OLSInfluence, variance_inflation_factor
 
 from regional.errors import InputError, InputWarning
@@ -206,7 +207,7 @@ def test_estimator_contract(region):
     }
     assert est.fit(X, y) is est
     assert not hasattr(clone(est), "coefficients_")
-    with pytest.raises(Exception, match="not fitted"):
+    with pytest.raises(NotFittedError, match="not fitted"):
         RegressionTransfer().predict(X)
 
 
