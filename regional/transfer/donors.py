@@ -75,8 +75,11 @@ def inverse_distance_weights(distance: np.ndarray, power: float) -> np.ndarray:
         raw = np.ones_like(distance)
     else:
         zero = distance == 0.0
-        with np.errstate(divide="ignore"):
-            raw = np.where(zero.any(axis=-1, keepdims=True), zero * 1.0, distance**-power)
+        nearest = distance.min(axis=-1, keepdims=True)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            # (d_min / d_i)^power: the same normalised weights, without overflow for tiny d
+            scaled = (nearest / distance) ** power
+        raw = np.where(zero.any(axis=-1, keepdims=True), zero * 1.0, scaled)
     return raw / raw.sum(axis=-1, keepdims=True)
 
 

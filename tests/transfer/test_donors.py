@@ -290,3 +290,9 @@ def test_estimator_contract(region):
     ]
     with pytest.raises(NotFittedError, match="not fitted"):
         ProximityTransfer().donate(X)
+
+
+def test_weights_do_not_overflow_for_tiny_distances():
+    weights = inverse_distance_weights(np.array([[1e-200, 2e-200, 1.0]]), 4.0)
+    np.testing.assert_allclose(weights, [[16 / 17, 1 / 17, 0.0]], atol=1e-300)
+    assert np.isfinite(weights).all()
