@@ -45,11 +45,13 @@ def make_transfer(
     n_donors: int = 5,
     power: float = 1.0,
     combine: str = "output",
+    level: float = 0.9,
 ):
     """Build an unfitted transfer estimator by method name from shared settings.
 
     Settings a method does not have are ignored: ``attributes`` applies to regression and
-    similarity; ``n_donors``, ``power`` and ``combine`` to similarity and proximity.
+    similarity; ``n_donors``, ``power`` and ``combine`` to similarity and proximity; ``level``
+    to regression and median.
 
     Parameters
     ----------
@@ -63,6 +65,8 @@ def make_transfer(
         Inverse-distance power.
     combine : {"output", "parameter"}, default "output"
         Donor combination.
+    level : float, default 0.9
+        Interval coverage of regression and median.
 
     Raises
     ------
@@ -70,7 +74,7 @@ def make_transfer(
         For an unknown method name (with the closest known name).
     """
     if name == "regression":
-        return RegressionTransfer(attributes=attributes)
+        return RegressionTransfer(attributes=attributes, level=level)
     if name == "similarity":
         return SimilarityTransfer(
             attributes=attributes, n_donors=n_donors, power=power, combine=combine
@@ -78,7 +82,7 @@ def make_transfer(
     if name == "proximity":
         return ProximityTransfer(n_donors=n_donors, power=power, combine=combine)
     if name == "median":
-        return MedianTransfer()
+        return MedianTransfer(level=level)
     close = difflib.get_close_matches(str(name), list(TRANSFER_METHODS), n=1)
     hint = f" Did you mean {close[0]!r}?" if close else ""
     raise InputError(

@@ -36,8 +36,10 @@ def test_make_transfer_passes_the_settings_that_apply():
     }
     proximity = make_transfer("proximity", attributes=["aridity"], n_donors=2)
     assert proximity.get_params()["n_donors"] == 2
-    assert make_transfer("regression", attributes=["aridity"]).attributes == ["aridity"]
-    assert isinstance(make_transfer("median", n_donors=9), MedianTransfer)
+    regression = make_transfer("regression", attributes=["aridity"], level=0.8)
+    assert (regression.attributes, regression.level) == (["aridity"], 0.8)
+    median = make_transfer("median", n_donors=9, level=0.5)
+    assert isinstance(median, MedianTransfer) and median.level == 0.5
 
 
 @pytest.mark.parametrize("name", sorted(TRANSFER_METHODS))
