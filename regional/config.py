@@ -365,7 +365,8 @@ def _nearest(value: Any, allowed: tuple[str, ...]) -> str:
 
 
 # --------------------------------------------------------------------------------------------
-# The key table: section -> key -> (parser, default). REQUIRED marks keys without a default.
+# The key table: section -> key -> (parser, default). REQUIRED marks keys without a default;
+# defaults are written as in TOML and go through the same parser as the user's values.
 # --------------------------------------------------------------------------------------------
 
 REQUIRED = object()
@@ -403,7 +404,7 @@ SECTIONS: dict[str, dict[str, _Key]] = {
         "flow_m3s": _Key(_text),
     },
     "model": {
-        "name": _Key(_choice_list(MODEL_NAMES), ("linear",)),
+        "name": _Key(_choice_list(MODEL_NAMES), "linear"),
         "snow": _Key(_snow, "auto"),
         "objective": _Key(_choice(OBJECTIVES), "kge"),
         "warmup_days": _Key(_integer(0), 365),
@@ -416,7 +417,7 @@ SECTIONS: dict[str, dict[str, _Key]] = {
     },
     "transfer": {
         "attributes": _Key(_text_list),
-        "methods": _Key(_choice_list(TRANSFER_METHODS), ("regression", "similarity", "proximity")),
+        "methods": _Key(_choice_list(TRANSFER_METHODS), ["regression", "similarity", "proximity"]),
         "donors": _Key(_integer(1), 5),
         "power": _Key(_number(0.0, 10.0), 1.0),
         "combine": _Key(_choice(COMBINE_MODES), "output"),
@@ -549,8 +550,10 @@ def _section(
                 f"missing required key '{key}' in [{name}] of {file}. "
                 f"Fix: add a line {key} = ... under [{name}] (see docs/config.md)."
             )
+        elif entry.default is not None:
+            values[key] = entry.parse(entry.default, _Context(file, name, key))
         else:
-            values[key] = entry.default
+            values[key] = None
     return values
 
 
@@ -585,7 +588,7 @@ def _assemble(
     if model.snow == "true" and series.temp is None:
         raise InputError(
             f"key 'snow' in [model] of {file} is true, but [series] names no 'temp' column; the "
-            "snow store needs daily temperature. Fix: add temp = \"...\" to [series], or set "
+            'snow store needs daily temperature. Fix: add temp = "..." to [series], or set '
             'snow = "auto" or false.'
         )
     prediction = _prediction(sections["prediction"], sections["transfer"], model, file)
