@@ -1,0 +1,370 @@
+"""Leave-one-out validation of parameter transfer.
+
+Every gauged basin is treated as ungauged in turn: each transfer method is refit on the other
+gauged basins (minus the donors nested in or overlapping the target beyond a set share of area),
+gives the target its parameters, the target's flow is simulated from its own forcing and scored
+against its observations over the evaluation period (the validation period when given, else the
+calibration period), warm-up excluded. Two baselines run beside the methods: ``calibrated``, the
+basin's own calibrated parameters (the upper bound of what a transfer can reach), and ``median``,
+the regional median parameters (the benchmark every method must beat).
+
+References
+----------
+Oudin, L., Andreassian, V., Perrin, C., Michel, C., Le Moine, N. (2008): Spatial proximity,
+physical similarity, regression and ungaged catchments: a comparison of regionalization
+approaches based on 913 French catchments. Water Resour. Res. 44, W03413.
+Parajka, J., Viglione, A., Rogger, M., Salinas, J. L., Sivapalan, M., Bloeschl, G. (2013):
+Comparative assessment of predictions in ungauged basins - Part 1: Runoff-hydrograph studies.
+Hydrol. Earth Syst. Sci. 17, 1783-1795.
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections import Counter
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from regional import metrics
+from regional.calibrate import Window
+from regional.compute import InProcessExecutor, chunked
+from regional.errors import InputError
+from regional.models import get_model, simulate
+from regional.transfer import make_transfer, simulate_donors
+
+CALIBRATED = "calibrated"
+MEDIAN = "median"
+SCORE_COLUMNS = ("nse", "kge", "kge_r", "kge_alpha", "kge_beta", "log_nse", "pbias", "n_days")
+CHUNK_BASINS = 8
+"""Target basins per task handed to the executor."""
+
+
+@dataclass(frozen=True)
+class TransferOptions:
+    """How the transfer methods are built in every fold.
+
+    Attributes
+    ----------
+    methods : tuple of str
+        Methods to validate (``regression``, ``similarity``, ``proximity``, ``median``).
+    attributes : tuple of str or None
+        Attribute columns for regression and similarity (None: every numeric column given).
+    n_donors : int
+        Donors per target for similarity and proximity.
+    power : float
+        Inverse-distance weighting power.
+    combine : {"output", "parameter"}
+        Donor combination into flow.
+    """
+
+    methods: tuple[str, ...] = ("regression", "similarity", "proximity")
+    attributes: tuple[str, ...] | None = None
+    n_donors: int = 5
+    power: float = 1.0
+    combine: str = "output"
+
+
+@dataclass(frozen=True)
+class FoldContext:
+    """Everything one fold needs; shipped once to every worker.
+
+    Forcing and flow hold only the simulated window (``window.start:window.stop``).
+    """
+
+    model: str
+    attributes: pd.DataFrame
+    calibrated: pd.DataFrame
+    precip_mm: pd.DataFrame
+    pet_mm: pd.DataFrame
+    temp_c: pd.DataFrame | None
+    flow_mm: pd.DataFrame
+    window: Window
+    evaluation: np.ndarray
+    options: TransferOptions
+    excluded: Mapping[str, frozenset[str]] = field(default_factory=dict)
+    fixed_params: Mapping[str, float] = field(default_factory=dict)
+    initial_storage: float | None = None
+
+
+@dataclass(frozen=True)
+class LeaveOneOut:
+    """Result of :func:`leave_one_out`.
+
+    Attributes
+    ----------
+    scores : DataFrame
+        Long: ``basin_id``, ``method``, then nse, kge, kge_r, kge_alpha, kge_beta, log_nse, pbias
+        (percent), n_days.
+    params : DataFrame
+        Long: ``basin_id``, ``method``, one column per parameter (the transferred estimate in
+        parameter units; ``calibrated`` rows hold the basin's own parameters).
+    observed : DataFrame
+        Evaluation days x basin_id, observed flow, mm/day (NaN = missing).
+    simulated : dict
+        Method -> DataFrame (evaluation days x basin_id) of the flow each method gave, mm/day.
+    excluded : dict
+        Target -> donors left out of its folds for sharing area with it.
+    warnings : tuple of str
+        Distinct warnings raised inside the folds, with how many folds raised each.
+    methods : tuple of str
+        Methods in report order: calibrated, median, then the configured ones.
+    """
+
+    scores: pd.DataFrame
+    params: pd.DataFrame
+    observed: pd.DataFrame
+    simulated: dict[str, pd.DataFrame]
+    excluded: dict[str, tuple[str, ...]]
+    warnings: tuple[str, ...]
+    methods: tuple[str, ...]
+
+
+def leave_one_out(
+    context: FoldContext,
+    *,
+    executor=None,
+    progress: Callable[[int, int], None] | None = None,
+) -> LeaveOneOut:
+    """Treat every gauged basin as ungauged in turn and score each transfer method.
+
+    Parameters
+    ----------
+    context : FoldContext
+        Attributes and calibrated parameters of the gauged basins (same index), their forcing
+        and observed flow over the simulated window, and the transfer options.
+    executor : optional
+        Runs chunks of target basins (:mod:`regional.compute`); default in this process.
+    progress : callable(done, total), optional
+        Called as target basins complete.
+
+    Returns
+    -------
+    LeaveOneOut
+    """
+    _check_context(context)
+    executor = executor or InProcessExecutor()
+    targets = [str(b) for b in context.calibrated.index]
+    chunks = chunked(targets, CHUNK_BASINS)
+    results = executor.map(run_folds, chunks, context, progress=progress)
+    folds = [fold for chunk in results for fold in chunk]
+    return _assemble(folds, context)
+
+
+def method_order(methods: Sequence[str]) -> tuple[str, ...]:
+    """Calibrated and median first, then the configured methods (each once)."""
+    ordered = [CALIBRATED, MEDIAN]
+    ordered += [m for m in methods if m not in ordered]
+    return tuple(ordered)
+
+
+def _check_context(context: FoldContext) -> None:
+    gauged = context.calibrated.index
+    if not context.attributes.index.equals(gauged):
+        raise ValueError("attributes and calibrated parameters must share one index")
+    needed = 3
+    if len(gauged) < needed:
+        raise InputError(
+            f"leave-one-out needs at least {needed} gauged basins; found {len(gauged)}: "
+            "add gauged basins or widen the calibration period"
+        )
+    if not context.evaluation.any():
+        raise InputError("the evaluation period has no day after the warm-up; widen it")
+
+
+def run_folds(targets: Sequence[str], context: FoldContext) -> list[dict]:
+    """Run the folds of some target basins (one task of the executor)."""
+    return [_one_fold(target, context) for target in targets]
+
+
+def _one_fold(target: str, context: FoldContext) -> dict:
+    chosen = get_model(context.model)
+    transforms = {p.name: p.transform for p in chosen.parameters}
+    names = [p.name for p in chosen.parameters]
+    forcing = _target_forcing(target, context)
+    obs = context.flow_mm[target].to_numpy(dtype=float)[context.evaluation]
+    train = _training_ids(target, context)
+    fold = {"basin_id": target, "methods": {}, "warnings": []}
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        own = {name: float(context.calibrated.loc[target, name]) for name in names}
+        flow = _simulate_set(context, forcing, own)
+        fold["methods"][CALIBRATED] = _outcome(obs, flow[context.evaluation], own)
+        for method in method_order(context.options.methods)[1:]:
+            estimate, flow = _transfer_flow(method, target, train, context, forcing, transforms)
+            fold["methods"][method] = _outcome(obs, flow[context.evaluation], estimate)
+    fold["warnings"] = sorted({str(w.message) for w in caught})
+    return fold
+
+
+def _training_ids(target: str, context: FoldContext) -> list[str]:
+    drop = {target} | set(context.excluded.get(target, ()))
+    return [b for b in context.calibrated.index if b not in drop]
+
+
+def _target_forcing(target: str, context: FoldContext) -> dict[str, np.ndarray | None]:
+    return {
+        "precip": context.precip_mm[target].to_numpy(dtype=float),
+        "pet": context.pet_mm[target].to_numpy(dtype=float),
+        "temp": None if context.temp_c is None else context.temp_c[target].to_numpy(dtype=float),
+    }
+
+
+def _simulate_set(context: FoldContext, forcing, params: Mapping[str, float]) -> np.ndarray:
+    result = simulate(
+        context.model,
+        forcing["precip"],
+        forcing["pet"],
+        {**_snow_params(context, forcing), **params},
+        temp=forcing["temp"],
+        initial_storage=context.initial_storage,
+        warmup_days=context.window.warmup_days,
+    )
+    return result.flow[:, 0]
+
+
+def _snow_params(context: FoldContext, forcing) -> dict[str, float]:
+    return dict(context.fixed_params) if forcing["temp"] is not None else {}
+
+
+def _transfer_flow(method, target, train, context, forcing, transforms):
+    options = context.options
+    attributes = list(options.attributes) if options.attributes else None
+    estimator = make_transfer(
+        method,
+        attributes=attributes if method != "proximity" else None,
+        n_donors=min(options.n_donors, len(train)),
+        power=options.power,
+        combine=options.combine,
+    )
+    names = list(transforms)
+    estimator.fit(
+        context.attributes.loc[train], context.calibrated.loc[train, names], transforms=transforms
+    )
+    targets = context.attributes.loc[[target]]
+    estimate = estimator.predict(targets).iloc[0].to_dict()
+    donation = estimator.donate(targets)
+    fixed = _snow_params(context, forcing)
+
+    def simulate_with_fixed(model, precip, pet, params, **kw):
+        n = len(next(iter(params.values())))
+        extra = {name: np.full(n, value) for name, value in fixed.items()}
+        return simulate(model, precip, pet, {**extra, **params}, **kw)
+
+    flows = simulate_donors(
+        donation,
+        target,
+        precip=forcing["precip"],
+        pet=forcing["pet"],
+        temp=forcing["temp"],
+        model=context.model,
+        warmup_days=context.window.warmup_days,
+        initial_storage=context.initial_storage,
+        simulate=simulate_with_fixed,
+    )
+    return estimate, flows.flow
+
+
+def _outcome(obs: np.ndarray, flow: np.ndarray, params: Mapping[str, float]) -> dict:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", metrics.DegenerateSeriesWarning)
+        scores = metrics.all_scores(obs, flow)
+    return {
+        "scores": {k: float(v) for k, v in scores.items()},
+        "params": dict(params),
+        "flow": flow,
+    }
+
+
+def _assemble(folds: list[dict], context: FoldContext) -> LeaveOneOut:
+    methods = method_order(context.options.methods)
+    rows, params = [], []
+    for fold in folds:
+        for method in methods:
+            outcome = fold["methods"][method]
+            rows.append({"basin_id": fold["basin_id"], "method": method, **outcome["scores"]})
+            params.append({"basin_id": fold["basin_id"], "method": method, **outcome["params"]})
+    scores = pd.DataFrame(rows, columns=["basin_id", "method", *SCORE_COLUMNS])
+    scores["n_days"] = scores["n_days"].astype(int)
+    dates = context.flow_mm.index[context.evaluation]
+    ids = [fold["basin_id"] for fold in folds]
+    observed = context.flow_mm.loc[dates, ids]
+    simulated = {
+        method: pd.DataFrame(
+            np.column_stack([fold["methods"][method]["flow"] for fold in folds]),
+            index=dates,
+            columns=pd.Index(ids, name="basin_id"),
+        )
+        for method in methods
+    }
+    counts = Counter(message for fold in folds for message in fold["warnings"])
+    notes = tuple(
+        f"{message} (in {count} of {len(folds)} folds)"
+        for message, count in sorted(counts.items())
+    )
+    excluded = {
+        t: tuple(sorted(context.excluded.get(t, ()))) for t in ids if context.excluded.get(t)
+    }
+    return LeaveOneOut(
+        scores=scores,
+        params=pd.DataFrame(params),
+        observed=observed,
+        simulated=simulated,
+        excluded=excluded,
+        warnings=notes,
+        methods=methods,
+    )
+
+
+def summarise(scores: pd.DataFrame) -> pd.DataFrame:
+    """One row per method: distribution of leave-one-out skill, loss and gain in median NSE.
+
+    Parameters
+    ----------
+    scores : DataFrame
+        Long leave-one-out scores (``method``, ``nse``, ``kge``, ...), optionally with a ``model``
+        column; rows are then summarised per (model, method).
+
+    Returns
+    -------
+    DataFrame
+        ``method``, ``n_basins``, ``median_nse``, ``q25_nse``, ``q75_nse``, ``share_nse_gt_0_5``,
+        ``share_nse_gt_0``, ``median_kge``, ``loss_vs_calibrated`` (median NSE of calibrated
+        minus this method's), ``gain_vs_median`` (this method's median NSE minus median's).
+    """
+    keys = ["model", "method"] if "model" in scores.columns else ["method"]
+    grouped = scores.groupby(keys, sort=False)
+    table = pd.DataFrame(
+        {
+            "n_basins": grouped["nse"].count(),
+            "median_nse": grouped["nse"].median(),
+            "q25_nse": grouped["nse"].quantile(0.25),
+            "q75_nse": grouped["nse"].quantile(0.75),
+            "share_nse_gt_0_5": grouped["nse"].apply(lambda s: float((s > 0.5).mean())),
+            "share_nse_gt_0": grouped["nse"].apply(lambda s: float((s > 0).mean())),
+            "median_kge": grouped["kge"].median(),
+        }
+    ).reset_index()
+    calibrated = _baseline(table, keys[:-1], CALIBRATED)
+    median = _baseline(table, keys[:-1], MEDIAN)
+    table["loss_vs_calibrated"] = calibrated - table["median_nse"]
+    table["gain_vs_median"] = table["median_nse"] - median
+    return table
+
+
+def _baseline(table: pd.DataFrame, by: list[str], method: str) -> pd.Series:
+    """Median NSE of a baseline method, broadcast to every row (per model when ``by``)."""
+    values = table["median_nse"].where(table["method"] == method)
+    if not by:
+        return pd.Series(values.max(), index=table.index)
+    return values.groupby([table[c] for c in by]).transform("max")
+
+
+def best_method(summary: pd.DataFrame) -> pd.Series:
+    """The transfer row (not a baseline) with the highest median leave-one-out NSE."""
+    transfers = summary[summary["method"] != CALIBRATED]
+    if transfers.empty:
+        raise ValueError("no transfer method in the summary")
+    return transfers.sort_values(["median_nse", "method"], ascending=[False, True]).iloc[0]

@@ -1,0 +1,162 @@
+"""Leave-one-out validation on a small synthetic region with a known relation of k."""
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import regional
+from regional.calibrate import calibrate, scoring_window
+from regional.crossval import (
+    CALIBRATED,
+    MEDIAN,
+    FoldContext,
+    TransferOptions,
+    best_method,
+    leave_one_out,
+    run_folds,
+    summarise,
+)
+from regional.errors import InputError
+
+N_BASINS = 14
+DATES = pd.date_range("2000-01-01", periods=5 * 365)
+
+
+def _region(seed: int = 7):
+    """Basins whose log k is linear in one attribute; shared weather with local noise."""
+    rng = np.random.default_rng(seed)
+    ids = [f"T{i:02d}" for i in range(N_BASINS)]
+    slope = rng.uniform(2.0, 20.0, N_BASINS)
+    attributes = pd.DataFrame(
+        {
+            "slope_mean": slope,
+            "noise_attr": rng.normal(0, 1, N_BASINS),
+            "centroid_lon": rng.uniform(10.0, 11.0, N_BASINS),
+            "centroid_lat": rng.uniform(45.0, 46.0, N_BASINS),
+        },
+        index=pd.Index(ids, name="basin_id"),
+    )
+    k = np.exp(-4.0 + 0.15 * slope + rng.normal(0, 0.4, N_BASINS))
+    days = len(DATES)
+    storm = rng.gamma(0.5, 6.0, days)
+    precip = pd.DataFrame(storm[:, None] * rng.lognormal(0, 0.2, (days, N_BASINS)), DATES, ids)
+    season = 1.8 + 1.2 * np.sin(2 * np.pi * np.arange(days) / 365.25)
+    pet = pd.DataFrame(np.tile(season[:, None], N_BASINS), DATES, ids)
+    flow = regional.simulate("linear", precip.values, pet.values, {"k_per_day": k}).flow
+    flow = pd.DataFrame(flow * rng.lognormal(0, 0.05, flow.shape), DATES, ids)
+    return attributes, precip, pet, flow, pd.Series(k, index=ids)
+
+
+def _context(methods=("regression", "similarity", "proximity"), excluded=None):
+    attributes, precip, pet, flow, _ = _region()
+    window = scoring_window(
+        DATES, ("2001-01-01", "2002-12-31"), ("2003-01-01", "2004-12-30"), warmup_days=365
+    )
+    calibrated = calibrate(
+        precip, pet, flow, calibration=("2001-01-01", "2002-12-31"), warmup_days=365
+    )
+    part = slice(window.start, window.stop)
+    return FoldContext(
+        model="linear",
+        attributes=attributes.loc[calibrated.index],
+        calibrated=calibrated[["k_per_day"]],
+        precip_mm=precip.iloc[part],
+        pet_mm=pet.iloc[part],
+        temp_c=None,
+        flow_mm=flow.iloc[part],
+        window=window,
+        evaluation=window.validation,
+        options=TransferOptions(methods=methods, attributes=("slope_mean", "noise_attr")),
+        excluded=excluded or {},
+    )
+
+
+def test_scores_every_basin_and_method_and_orders_baselines_first():
+    result = leave_one_out(_context())
+    assert result.methods == (CALIBRATED, MEDIAN, "regression", "similarity", "proximity")
+    assert len(result.scores) == N_BASINS * 5
+    assert set(result.scores.columns) >= {
+        "basin_id",
+        "method",
+        "nse",
+        "kge",
+        "kge_r",
+        "kge_alpha",
+        "kge_beta",
+        "log_nse",
+        "pbias",
+        "n_days",
+    }
+    assert (result.scores["n_days"] == result.observed.notna().sum().iloc[0]).all()
+    assert result.simulated["regression"].shape == result.observed.shape
+
+
+def test_regression_beats_median_and_stays_below_calibrated():
+    summary = summarise(leave_one_out(_context()).scores).set_index("method")
+    assert summary.loc["regression", "median_nse"] > summary.loc[MEDIAN, "median_nse"]
+    assert summary.loc[CALIBRATED, "median_nse"] >= summary.loc["regression", "median_nse"]
+    assert summary.loc["regression", "gain_vs_median"] > 0
+    assert summary.loc[CALIBRATED, "loss_vs_calibrated"] == 0
+
+
+def test_target_never_sees_its_own_parameters():
+    # A fold must give the same answer whatever the target's own calibrated k is.
+    context = _context(methods=("regression", "similarity"))
+    target = context.calibrated.index[3]
+    changed = context.calibrated.copy()
+    changed.loc[target, "k_per_day"] = 1.4
+    first = run_folds([target], context)[0]
+    second = run_folds([target], FoldContext(**{**context.__dict__, "calibrated": changed}))[0]
+    for method in ("median", "regression", "similarity"):
+        np.testing.assert_allclose(
+            first["methods"][method]["flow"], second["methods"][method]["flow"]
+        )
+
+
+def test_excluded_donors_are_left_out_of_the_fold():
+    context = _context(methods=("proximity",))
+    target = context.calibrated.index[0]
+    others = [b for b in context.calibrated.index if b != target]
+    near = context.attributes.loc[others, ["centroid_lon", "centroid_lat"]]
+    distance = np.hypot(*(near - context.attributes.loc[target, near.columns]).to_numpy().T)
+    nearest = near.index[np.argmin(distance)]
+    excluded = {target: frozenset({nearest})}
+    kept = run_folds([target], context)[0]
+    dropped = run_folds([target], FoldContext(**{**context.__dict__, "excluded": excluded}))[0]
+    assert not np.allclose(
+        kept["methods"]["proximity"]["flow"], dropped["methods"]["proximity"]["flow"]
+    )
+
+
+def test_best_method_skips_the_calibrated_baseline():
+    summary = pd.DataFrame(
+        {"method": [CALIBRATED, MEDIAN, "regression"], "median_nse": [0.9, 0.3, 0.6]}
+    )
+    assert best_method(summary)["method"] == "regression"
+
+
+def test_summary_is_per_model_when_models_are_compared():
+    scores = pd.DataFrame(
+        {
+            "model": ["a", "a", "b", "b"],
+            "method": [CALIBRATED, MEDIAN, CALIBRATED, MEDIAN],
+            "nse": [0.8, 0.4, 0.6, 0.5],
+            "kge": [0.8, 0.4, 0.6, 0.5],
+        }
+    )
+    summary = summarise(scores).set_index(["model", "method"])
+    assert summary.loc[("a", MEDIAN), "loss_vs_calibrated"] == pytest.approx(0.4)
+    assert summary.loc[("b", MEDIAN), "loss_vs_calibrated"] == pytest.approx(0.1)
+
+
+def test_too_few_gauged_basins_is_an_input_error():
+    context = _context()
+    small = FoldContext(
+        **{
+            **context.__dict__,
+            "calibrated": context.calibrated.iloc[:2],
+            "attributes": context.attributes.iloc[:2],
+        }
+    )
+    with pytest.raises(InputError, match="at least 3 gauged basins; found 2"):
+        leave_one_out(small)
