@@ -50,7 +50,7 @@ class DonorFlows:
     weights : ndarray (n_donors,)
         Donor weights (sum to 1), in the order of ``donor_ids``.
     donor_ids : tuple of str
-        Donors in rank order.
+        Donors with positive weight, in rank order (zero-weight donors are not simulated).
     parameters : dict
         Parameter -> (n_donors,) array simulated (output averaging) or a 1-element array with
         the averaged set (parameter averaging), parameter units.
@@ -153,6 +153,7 @@ def simulate_donors(
     )
     target_id = _one_target(donation, target_id)
     sets = donation.for_target(target_id)
+    sets = sets[sets["weight"] > 0]  # e.g. a donor at distance 0 takes all the weight
     weights = sets["weight"].to_numpy(dtype=float)
     weights = weights / weights.sum()
     if combine == "output":

@@ -140,3 +140,16 @@ def test_single_set_methods_give_the_same_flow_both_ways(region, forcing, make):
     parameter = donor_flows(donation, precip=precip, pet=pet, combine="parameter")
     np.testing.assert_allclose(output, parameter, rtol=1e-12)
     assert output.shape == precip.shape
+
+
+def test_zero_weight_donors_are_not_simulated(region, forcing):
+    X, y = region
+    precip, pet = forcing
+    est = SimilarityTransfer(attributes=["aridity", "slope_pct"], n_donors=3)
+    twin = X.iloc[[2]].rename(index={"basin_002": "twin"})
+    donation = est.fit(X.iloc[:20], y.iloc[:20]).donate(twin)
+    fake = _FakeSimulate()
+    result = simulate_donors(donation, precip=precip, pet=pet, simulate=fake)
+    assert result.donor_ids == ("basin_002",)
+    k = y.loc["basin_002", "k_per_day"]
+    np.testing.assert_allclose(result.flow, precip * k + (pet * k) ** 2, rtol=1e-12)
