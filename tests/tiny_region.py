@@ -101,7 +101,7 @@ def make_parts(seed: int = 7) -> RegionParts:
 def _series(rng: np.random.Generator) -> pd.DataFrame:
     """Daily forcing (wet/dry gamma rain, seasonal PET and temperature) and reservoir flow."""
     dates = pd.date_range(START, END, freq="D")
-    day = dates.dayofyear.to_numpy()
+    day = dates.day_of_year.to_numpy()
     frames = []
     for number, basin in enumerate(BASIN_IDS):  # one frame per basin, vectorised over days
         wet = rng.random(len(dates)) < 0.35
