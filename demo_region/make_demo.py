@@ -25,7 +25,7 @@ import numpy as np
 import pandas as pd
 import rasterio
 import shapely
-from rasterio.transform import from_origin
+from affine import Affine
 from scipy import ndimage, signal, stats
 
 import regional
@@ -163,7 +163,7 @@ def _streams(seed: int) -> dict[str, np.random.Generator]:
 
 
 def _terrain(rng: np.random.Generator) -> dict:
-    """Fells in the west (to ~1000 m) falling to low levels in the east, with smooth hills."""
+    """Fells in the west (to ~1400 m) falling to low levels in the east, with smooth hills."""
     x_km = (np.arange(N_COLS) + 0.5) * CELL_M / 1000.0
     y_km = (N_ROWS - np.arange(N_ROWS) - 0.5) * CELL_M / 1000.0
     xx, yy = np.meshgrid(x_km, y_km)
@@ -173,7 +173,7 @@ def _terrain(rng: np.random.Generator) -> dict:
     broad = _smooth_noise(rng, sigma_cells=30.0)
     elevation = base + (25.0 + 230.0 * upland**1.2) * hills + 90.0 * broad
     elevation = np.maximum(elevation, 5.0)
-    transform = from_origin(X0_M, Y0_M + N_ROWS * CELL_M, CELL_M, CELL_M)
+    transform = Affine(CELL_M, 0.0, X0_M, 0.0, -CELL_M, Y0_M + N_ROWS * CELL_M)
     return {"values": elevation.astype(np.float32), "transform": transform}
 
 
