@@ -1,0 +1,374 @@
+"""``run(settings)``: the chain from a region folder to results, and nothing else.
+
+inputs -> region (checked, attributes) -> calibration per model -> leave-one-out of every
+transfer method -> prediction at ungauged basins -> screening of candidate gauge sites. Writing
+the outputs is :func:`regional.outputs.write_outputs`; the CLI only calls these two.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+import warnings
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from regional.calibrate import Window, calibrate, scoring_window
+from regional.compute import chunked, make_executor
+from regional.config import Settings, load_settings
+from regional.crossval import (
+    CALIBRATED,
+    FoldContext,
+    LeaveOneOut,
+    TransferOptions,
+    best_method,
+    leave_one_out,
+    summarise,
+)
+from regional.errors import InputError, InputWarning
+from regional.models import get_model
+from regional.overlap import excluded_donors, overlap_shares
+from regional.region import Region, load_region
+from regional.transfer import RegressionTransfer
+
+logger = logging.getLogger(__name__)
+
+NOT_TRANSFERABLE = ("runoff_ratio", "centroid_lon", "centroid_lat")
+"""Attributes never used by default: runoff_ratio needs observed flow; coordinates are for
+proximity, not similarity."""
+CALIBRATION_CHUNK = 16
+"""Basins per calibration task handed to the executor."""
+
+Progress = Callable[[str, int, int], None] | None
+
+
+@dataclass(frozen=True)
+class ModelRun:
+    """Calibration and leave-one-out of one storage model.
+
+    Attributes
+    ----------
+    model : str
+        Model name.
+    calibration : DataFrame
+        Per gauged basin: parameters and scores (see :func:`regional.calibrate`).
+    loo : LeaveOneOut
+        Leave-one-out scores, transferred parameters and flows.
+    regression : RegressionTransfer
+        The regression fit on every gauged basin (coefficient table for the report).
+    context : FoldContext
+        What the folds saw (forcing window, attributes, options), reused by prediction.
+    """
+
+    model: str
+    calibration: pd.DataFrame
+    loo: LeaveOneOut
+    regression: RegressionTransfer
+    context: FoldContext
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """Everything one run produced; :mod:`regional.outputs` turns it into files.
+
+    Attributes
+    ----------
+    settings : Settings
+        The parsed config.
+    region : Region
+        The checked region with its attributes.
+    attributes : tuple of str
+        Attribute columns used by regression and similarity.
+    runs : dict
+        Model name -> :class:`ModelRun`.
+    scores : DataFrame
+        Leave-one-out scores of every model and method (long, with a ``model`` column).
+    summary : DataFrame
+        One row per (model, method) (see :func:`regional.crossval.summarise`).
+    chosen_model, chosen_method : str
+        What prediction uses: the config's choice or the best median leave-one-out NSE.
+    prediction : object or None
+        :class:`regional.predict.Prediction` when the region has ungauged basins.
+    screening : object or None
+        :class:`regional.screen.Screening` when candidates were screened.
+    warnings : tuple of str
+        Everything the user should read, for the report.
+    timings : dict
+        Stage -> seconds.
+    """
+
+    settings: Settings
+    region: Region
+    attributes: tuple[str, ...]
+    runs: dict[str, ModelRun]
+    scores: pd.DataFrame
+    summary: pd.DataFrame
+    chosen_model: str
+    chosen_method: str
+    prediction: object | None = None
+    screening: object | None = None
+    warnings: tuple[str, ...] = ()
+    timings: dict[str, float] = field(default_factory=dict)
+
+
+def run(
+    source: str | Path | Settings,
+    *,
+    scheduler: str | None = None,
+    workers: int | None = None,
+    progress: Progress = None,
+) -> RunResult:
+    """Run the whole chain on a region.
+
+    Parameters
+    ----------
+    source : str, Path or Settings
+        Region folder, its ``region.toml``, or loaded settings.
+    scheduler : str, optional
+        Dask scheduler address; overrides ``[compute] scheduler``.
+    workers : int, optional
+        Start a local Dask cluster of this many worker processes; overrides
+        ``[compute] workers``.
+    progress : callable(stage, done, total), optional
+        Called as basins complete in the ``calibration`` and ``leave-one-out`` stages.
+
+    Returns
+    -------
+    RunResult
+    """
+    settings = source if isinstance(source, Settings) else load_settings(source)
+    timings: dict[str, float] = {}
+    clock = time.perf_counter()
+    region = load_region(settings)
+    timings["region"] = time.perf_counter() - clock
+    executor = make_executor(
+        scheduler or settings.compute.scheduler, workers=workers or settings.compute.workers
+    )
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", InputWarning)
+            result = _chain(settings, region, executor, progress, timings)
+    finally:
+        executor.close()
+    messages = list(region.warnings) + [
+        str(w.message) for w in caught if issubclass(w.category, InputWarning)
+    ]
+    for run_ in result.runs.values():
+        messages += list(run_.loo.warnings)
+    return _with(result, warnings=tuple(dict.fromkeys(messages)), timings=timings)
+
+
+def _with(result: RunResult, **changes) -> RunResult:
+    from dataclasses import replace
+
+    return replace(result, **changes)
+
+
+def _chain(settings, region, executor, progress, timings) -> RunResult:
+    attributes = transfer_attributes(region, settings)
+    window = scoring_window(
+        region.dates,
+        region.calibration,
+        settings.model.validation,
+        warmup_days=settings.model.warmup_days,
+    )
+    excluded = _excluded(region, settings)
+    runs = {}
+    for model in settings.model.names:
+        clock = time.perf_counter()
+        calibration = _calibrate(model, region, settings, window, executor, progress)
+        timings[f"calibration_{model}"] = time.perf_counter() - clock
+        clock = time.perf_counter()
+        context = _fold_context(model, region, settings, window, calibration, attributes, excluded)
+        loo = leave_one_out(context, executor=executor, progress=_stage(progress, "leave-one-out"))
+        regression = _regression_on_all(context, attributes)
+        timings[f"leave_one_out_{model}"] = time.perf_counter() - clock
+        runs[model] = ModelRun(model, calibration, loo, regression, context)
+    scores = pd.concat([r.loo.scores.assign(model=m) for m, r in runs.items()], ignore_index=True)[
+        ["basin_id", "model", *runs[settings.model.names[0]].loo.scores.columns[1:]]
+    ]
+    summary = summarise(scores)
+    model, method = _choose(summary, settings)
+    return RunResult(
+        settings=settings,
+        region=region,
+        attributes=attributes,
+        runs=runs,
+        scores=scores,
+        summary=summary,
+        chosen_model=model,
+        chosen_method=method,
+    )
+
+
+def _stage(progress: Progress, name: str):
+    if progress is None:
+        return None
+    return lambda done, total: progress(name, done, total)
+
+
+def transfer_attributes(region: Region, settings: Settings) -> tuple[str, ...]:
+    """Attribute columns for regression and similarity, checked complete at every basin.
+
+    The config's ``[transfer] attributes`` when given; else every numeric attribute except
+    those that need observed flow (``runoff_ratio``) and the coordinates. Attributes with a
+    missing value at any basin stop the run with the basin named.
+    """
+    table = region.attributes
+    chosen = settings.transfer.attributes
+    if chosen is None:
+        numeric = [
+            c
+            for c in table.columns
+            if pd.api.types.is_numeric_dtype(table[c]) and not pd.api.types.is_bool_dtype(table[c])
+        ]
+        chosen = tuple(c for c in numeric if c not in NOT_TRANSFERABLE)
+    missing = table.loc[:, list(chosen)].isna()
+    if missing.to_numpy().any():
+        column = missing.any().idxmax()
+        basins = list(missing.index[missing[column]])
+        raise InputError(
+            f"attribute '{column}' is missing at basin(s) {basins[:5]} "
+            f"({len(basins)} in all); every basin needs every transfer attribute: fill it in "
+            "the basins layer or drop it from [transfer] attributes"
+        )
+    return tuple(chosen)
+
+
+def _excluded(region: Region, settings: Settings) -> dict[str, frozenset[str]]:
+    if region.is_point:
+        return {}
+    return excluded_donors(overlap_shares(region.basins), settings.transfer.exclude_overlap)
+
+
+def use_temperature(region: Region, settings: Settings) -> pd.DataFrame | None:
+    """The temperature table when the snow store is on, else None."""
+    has_temp = region.temp_c is not None
+    return region.temp_c if settings.model.use_snow(has_temperature=has_temp) else None
+
+
+def fixed_parameters(settings: Settings) -> dict[str, float]:
+    """Snow parameters set in the config (the others keep their defaults)."""
+    names = ("snow_threshold_c", "melt_threshold_c", "melt_factor_mm_per_degc_day")
+    values = {name: getattr(settings.model, name) for name in names}
+    return {name: float(value) for name, value in values.items() if value is not None}
+
+
+@dataclass(frozen=True)
+class _CalibrationJob:
+    model: str
+    precip_mm: pd.DataFrame
+    pet_mm: pd.DataFrame
+    temp_c: pd.DataFrame | None
+    flow_mm: pd.DataFrame
+    settings: Settings
+    fixed: dict
+
+
+def _calibrate_chunk(basins, job: _CalibrationJob) -> pd.DataFrame:
+    model_settings = job.settings.model
+    fixed = job.fixed if job.temp_c is not None else {}
+    return calibrate(
+        job.precip_mm[basins],
+        job.pet_mm[basins],
+        job.flow_mm[basins],
+        model=job.model,
+        temp_c=None if job.temp_c is None else job.temp_c[basins],
+        objective=model_settings.objective,
+        calibration=_period(job.settings, "calibration", job.flow_mm.index),
+        validation=model_settings.validation,
+        warmup_days=model_settings.warmup_days,
+        initial_storage=model_settings.initial_storage_mm,
+        fixed_params=fixed,
+        basins=list(basins),
+    )
+
+
+def _period(settings: Settings, name: str, dates: pd.DatetimeIndex):
+    period = getattr(settings.model, name)
+    return period if period is not None else (dates[0], dates[-1])
+
+
+def _calibrate(model, region, settings, window: Window, executor, progress) -> pd.DataFrame:
+    get_model(model)
+    job = _CalibrationJob(
+        model=model,
+        precip_mm=region.precip_mm,
+        pet_mm=region.pet_mm,
+        temp_c=use_temperature(region, settings),
+        flow_mm=region.flow_mm,
+        settings=settings,
+        fixed=fixed_parameters(settings),
+    )
+    chunks = chunked(list(region.gauged), CALIBRATION_CHUNK)
+    parts = executor.map(_calibrate_chunk, chunks, job, progress=_stage(progress, "calibration"))
+    return pd.concat(parts)
+
+
+def _fold_context(model, region, settings, window, calibration, attributes, excluded):
+    names = [p.name for p in get_model(model).parameters]
+    part = slice(window.start, window.stop)
+    temp = use_temperature(region, settings)
+    gauged = list(calibration.index)
+    evaluation = window.validation if window.validation.any() else window.calibration
+    return FoldContext(
+        model=model,
+        attributes=region.attributes.loc[gauged],
+        calibrated=calibration[names],
+        precip_mm=region.precip_mm.iloc[part],
+        pet_mm=region.pet_mm.iloc[part],
+        temp_c=None if temp is None else temp.iloc[part],
+        flow_mm=region.flow_mm.iloc[part],
+        window=window,
+        evaluation=evaluation,
+        options=TransferOptions(
+            methods=settings.transfer.methods,
+            attributes=attributes,
+            n_donors=settings.transfer.donors,
+            power=settings.transfer.power,
+            combine=settings.transfer.combine,
+        ),
+        excluded={b: d for b, d in excluded.items() if b in set(gauged)},
+        fixed_params=fixed_parameters(settings) if temp is not None else {},
+        initial_storage=settings.model.initial_storage_mm,
+    )
+
+
+def _regression_on_all(context: FoldContext, attributes) -> RegressionTransfer:
+    transforms = {p.name: p.transform for p in get_model(context.model).parameters}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", InputWarning)
+        return RegressionTransfer(attributes=list(attributes)).fit(
+            context.attributes, context.calibrated, transforms=transforms
+        )
+
+
+def _choose(summary: pd.DataFrame, settings: Settings) -> tuple[str, str]:
+    wanted_model, wanted_method = settings.prediction.model, settings.prediction.method
+    rows = summary
+    if wanted_model is not None:
+        rows = rows[rows["model"] == wanted_model]
+    if wanted_method is not None:
+        picked = rows[rows["method"] == wanted_method]
+        picked = picked.sort_values("median_nse", ascending=False)
+        if picked.empty:
+            raise InputError(
+                f"[prediction] method '{wanted_method}' was not validated; add it to "
+                "[transfer] methods"
+            )
+        return str(picked.iloc[0]["model"]), wanted_method
+    best = best_method(rows[rows["method"] != CALIBRATED])
+    return str(best["model"]), str(best["method"])
+
+
+def median_nse(result: RunResult, method: str, model: str | None = None) -> float:
+    """Median leave-one-out NSE of one method (of the chosen model by default)."""
+    rows = result.summary[
+        (result.summary["model"] == (model or result.chosen_model))
+        & (result.summary["method"] == method)
+    ]
+    return float(rows["median_nse"].iloc[0]) if len(rows) else float(np.nan)
