@@ -23,6 +23,7 @@ from pathlib import Path
 import geopandas as gpd
 import numpy as np
 import pandas as pd
+import pyogrio
 import rasterio
 import shapely
 from affine import Affine
@@ -286,6 +287,7 @@ def _soils(rng: np.random.Generator) -> gpd.GeoDataFrame:
 def _write_spatial(out: Path, basins: gpd.GeoDataFrame, soils: gpd.GeoDataFrame, dem: dict):
     gpkg = out / "region.gpkg"
     gpkg.unlink(missing_ok=True)
+    pyogrio.set_gdal_config_options({"OGR_CURRENT_DATE": "2024-01-01T00:00:00.000Z"})
     basins.reset_index().to_file(gpkg, layer="basins", driver="GPKG")
     soils.to_file(gpkg, layer="soils", driver="GPKG")
     profile = {
