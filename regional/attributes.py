@@ -459,7 +459,7 @@ def _overlay_means(
     n = len(basin_geoms)
     covered = np.bincount(b_idx, weights=weight, minlength=n) / basin_area
     _note_overlap(overlay, basins.index, covered)
-    columns = {}
+    columns, shares = {}, {}
     for field in overlay.fields:
         values = _overlay_field(overlay, field)[o_idx]
         ok = np.isfinite(values)
@@ -467,7 +467,8 @@ def _overlay_means(
         num = np.bincount(b_idx, weights=np.where(ok, weight * values, 0.0), minlength=n)
         with np.errstate(divide="ignore", invalid="ignore"):
             columns[field] = np.where(den > 0, num / den, np.nan)
-        _note_coverage(overlay, field, basins.index, den / basin_area, notes)
+        shares[field] = np.minimum(den / basin_area, 1.0)
+    _note_coverage(overlay, basins.index, shares, notes)
     return pd.DataFrame(columns, index=basins.index)
 
 
@@ -527,18 +528,23 @@ def _note_overlap(overlay: io.Overlay, ids: pd.Index, covered: np.ndarray) -> No
 
 
 def _note_coverage(
-    overlay: io.Overlay, field: str, ids: pd.Index, share: np.ndarray, notes: list[str]
+    overlay: io.Overlay, ids: pd.Index, shares: dict[str, np.ndarray], notes: list[str]
 ) -> None:
-    partial = share < _FULL_COVER
-    if not partial.any():
-        return
-    listed = ", ".join(
-        f"{basin} ({value:.1%})" for basin, value in zip(ids[partial], share[partial], strict=True)
-    )
-    notes.append(
-        f"overlay {overlay.source} field {field}: {int(partial.sum())} basin(s) not fully "
-        f"covered, mean taken over the covered part (covered share): {listed}"
-    )
+    """One note per group of fields with the same partly covered basins and shares."""
+    groups: dict[tuple[int, str], list[str]] = {}
+    for field, share in shares.items():
+        partial = share < _FULL_COVER
+        if partial.any():
+            listed = ", ".join(
+                f"{basin} ({value:.1%})"
+                for basin, value in zip(ids[partial], share[partial], strict=True)
+            )
+            groups.setdefault((int(partial.sum()), listed), []).append(field)
+    for (count, listed), fields in groups.items():
+        notes.append(
+            f"overlay {overlay.source} field(s) {', '.join(fields)}: {count} basin(s) not fully "
+            f"covered, mean taken over the covered part (covered share): {listed}"
+        )
 
 
 # ----------------------------------------------------------------------------- terrain
