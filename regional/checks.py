@@ -169,8 +169,8 @@ CHECKS: dict[str, Check] = {
         ),
         Check(
             "short_calibration",
-            f"gauged basins should have at least {MIN_CALIBRATION_DAYS} observed days in the "
-            "calibration period",
+            f"gauged basins should have at least {MIN_CALIBRATION_DAYS} observed days (or half "
+            "the days, in a shorter period) in the calibration period",
             "expect uncertain calibrated parameters there, or widen [model] calibration",
             severity="warning",
         ),
@@ -216,9 +216,9 @@ def check_basins(basins: gpd.GeoDataFrame, *, source: str, flow_in_m3s: bool = F
     _fail_if("empty_geometry", source, _basin_rows(ids[empty], rows[empty], "empty geometry"))
     kinds = basins.geometry.geom_type.to_numpy(dtype=object)
     is_point = _geometry_kind(kinds, ids, rows, source)
+    _check_area(basins, rows, source, is_point=is_point, flow_in_m3s=flow_in_m3s)
     if not is_point:
         _check_valid(geoms, ids, rows, source)
-    _check_area(basins, rows, source, is_point=is_point, flow_in_m3s=flow_in_m3s)
     return is_point
 
 
@@ -403,7 +403,8 @@ def check_gauged(
     if len(gauged) < MIN_GAUGED:
         found = f"{len(gauged)} gauged of {len(n_observed)} basins in {span}"
         _fail_if("too_few_gauged", source, found)
-    short = gauged[gauged < MIN_CALIBRATION_DAYS]
+    period_days = (period[1] - period[0]).days + 1
+    short = gauged[gauged < min(MIN_CALIBRATION_DAYS, period_days / 2)]
     if len(short):
         listing = _listing([f"'{basin}' ({days} days)" for basin, days in short.items()])
         _warn("short_calibration", source, f"{len(short)} basins in {span}: {listing}")
@@ -536,11 +537,11 @@ def _check_ids(
         firsts = pd.Series(rows[unknown], index=ids[unknown].to_numpy()).groupby(level=0).min()
         found = _listing([f"'{b}' (first at {rows.name} {r})" for b, r in firsts.items()])
         found += _leading_zero_hint(firsts.index, known)
-        _fail_if("series_unknown_id", where, f"{len(firsts)} ids: {found}")
+        _fail_if("series_unknown_id", where, f"{_count(len(firsts), 'unknown id')}: {found}")
     absent = known.difference(pd.Index(ids.unique()), sort=False)
     if len(absent):
         quoted = [f"'{basin}'" for basin in absent]
-        found = f"{len(absent)} basins without records: {_listing(quoted)}"
+        found = f"{_count(len(absent), 'basin')} without records: {_listing(quoted)}"
         _fail_if("basin_without_series", where, found + _leading_zero_hint(absent, ids.unique()))
 
 
@@ -596,19 +597,25 @@ def _check_forcing_gaps(frame: pd.DataFrame, *, source: str) -> None:
         return
     subset = frame.loc[frame["basin_id"].isin(gappy), ["basin_id", "date"]]
     subset = subset.sort_values(["basin_id", "date"])
-    step = subset.groupby("basin_id", sort=False)["date"].diff()
-    jumps = subset.loc[(step > pd.Timedelta(days=1)).to_numpy()]
+    subset = subset.assign(step=subset.groupby("basin_id", sort=False)["date"].diff())
+    jumps = subset.loc[(subset["step"] > pd.Timedelta(days=1)).to_numpy()]
     first_jump = jumps.groupby("basin_id", sort=False).head(1)
     found = []
-    for basin, row, date in zip(
-        first_jump["basin_id"], first_jump.index, first_jump["date"], strict=True
+    for basin, row, date, step in zip(  # one entry per basin with a gap, not per record
+        first_jump["basin_id"],
+        first_jump.index,
+        first_jump["date"],
+        first_jump["step"],
+        strict=True,
     ):
         missing = int(expected[basin] - count[basin])
+        gap_start = date - step + pd.Timedelta(days=1)
         found.append(
-            f"basin '{basin}': {missing} missing days, the first gap ends at {frame.index.name} "
-            f"{row} ({date:%Y-%m-%d})"
+            f"basin '{basin}': {_count(missing, 'missing day')}, the first from "
+            f"{gap_start:%Y-%m-%d} to {date - pd.Timedelta(days=1):%Y-%m-%d} (before "
+            f"{frame.index.name} {row})"
         )
-    _fail_if("forcing_gap", source, f"{len(found)} basins: {_listing(found)}")
+    _fail_if("forcing_gap", source, f"{_count(len(found), 'basin')}: {_listing(found)}")
 
 
 # --------------------------------------------------------------------------------------------
@@ -621,6 +628,10 @@ def _listing(items: Sequence[str], most: int = SHOWN) -> str:
     shown = ", ".join(str(item) for item in items[:most])
     more = len(items) - most
     return shown + (f" and {more} more" if more > 0 else "")
+
+
+def _count(number: int, word: str) -> str:
+    return f"{number} {word}" + ("" if number == 1 else "s")
 
 
 def _rows_listing(rows: Sequence[int], *, word: str = "row") -> str:
