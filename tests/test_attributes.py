@@ -428,3 +428,28 @@ def test_no_warning_on_clean_inputs():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         _compute(_basins([basin]), overlays=[soils], dem=_tilted_plane_dem(0.01, 0.02))
+
+
+def test_coverage_notes_grouped_by_field_shares():
+    basin = shapely.box(500_000, 6_050_000, 502_000, 6_052_000)
+    soils = _soils(
+        [
+            shapely.box(500_000, 6_050_000, 501_000, 6_052_000),
+            shapely.box(501_000, 6_050_000, 501_500, 6_052_000),
+        ],
+        sand_frac=[0.2, 0.4],  # covers 75 %
+        awc_mm=[120.0, 80.0],  # same 75 %
+        clay_frac=[0.1, np.nan],  # only the first polygon: 50 %
+    )
+    notes = _compute(_basins([basin]), overlays=[soils]).notes
+    assert any("field(s) sand_frac, awc_mm: 1 basin(s)" in n and "B0 (75.0%)" in n for n in notes)
+    assert any("field(s) clay_frac: 1 basin(s)" in n and "B0 (50.0%)" in n for n in notes)
+
+
+def test_same_field_in_two_overlays_is_an_error():
+    basin = _basins([shapely.box(500_000, 6_050_000, 502_000, 6_052_000)])
+    cover = [shapely.box(499_000, 6_049_000, 503_000, 6_053_000)]
+    first = _soils(cover, sand_frac=[0.2])
+    second = io.Overlay(first.frame, ("sand_frac",), "geology.gpkg:units")
+    with pytest.raises(InputError, match=r"field 'sand_frac' is listed by both soils.gpkg:soils"):
+        _compute(basin, overlays=[first, second])
