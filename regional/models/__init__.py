@@ -8,12 +8,14 @@ regression transform) and simulates many parameter sets or basins in one call on
 from __future__ import annotations
 
 from regional.models.base import Parameter, Simulation
+from regional.models.gr4j import GR4J
 from regional.models.linear import LinearReservoir
 from regional.models.simulate import get_model, model_names, simulate
 from regional.models.snow import DegreeDaySnow
 
 __all__ = [
     "DegreeDaySnow",
+    "GR4J",
     "LinearReservoir",
     "Parameter",
     "Simulation",

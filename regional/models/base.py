@@ -79,6 +79,10 @@ class Simulation:
         Storage at the start of the first step, mm.
     warmup_days : int
         Leading steps that only spin up the stores; exclude them from scoring.
+    exchange : ndarray or None
+        Water exchanged with outside the basin over each step, mm/day, positive = gained (GR4J's
+        groundwater exchange); None for models without exchange. With it the balance reads
+        sum(P) + sum(exchange) = sum(aet) + sum(flow) + change in storage (+ change in pack).
     """
 
     flow: np.ndarray
@@ -88,6 +92,7 @@ class Simulation:
     melt: np.ndarray | None
     initial_storage: np.ndarray
     warmup_days: int
+    exchange: np.ndarray | None = None
 
     @property
     def scored_flow(self) -> np.ndarray:

@@ -7,10 +7,11 @@ from collections.abc import Mapping
 import numpy as np
 
 from regional.models.base import Parameter, Simulation
+from regional.models.gr4j import GR4J
 from regional.models.linear import LinearReservoir
 from regional.models.snow import DegreeDaySnow
 
-_MODELS = {"linear": LinearReservoir()}
+_MODELS = {"linear": LinearReservoir(), "gr4j": GR4J()}
 _SNOW = DegreeDaySnow()
 EQUILIBRIUM_WINDOW_DAYS = 365
 
@@ -21,8 +22,8 @@ def register_model(model: object) -> None:
 
 
 def model_names() -> tuple[str, ...]:
-    """Names of the available storage models."""
-    return tuple(sorted(_MODELS))
+    """Names of the available storage models, the default (``"linear"``) first."""
+    return tuple(_MODELS)
 
 
 def get_model(name: str):
@@ -56,28 +57,32 @@ def simulate(
     Parameters
     ----------
     model : str
-        Model name, e.g. ``"linear"``.
+        Model name: ``"linear"`` or ``"gr4j"``.
     precip, pet : array_like, shape (time,) or (time, n)
         Precipitation and potential evapotranspiration, mm/day, finite and >= 0. A 1-D series
         (or one column) is shared by all n parameter sets.
     params : mapping
         Parameter name -> a float or an (n,) array, in the units of the model's parameter
-        table, e.g. ``{"k_per_day": 0.05}``. With ``temp``, the snow parameters
+        table, e.g. ``{"k_per_day": 0.05}`` or ``{"x1_mm": 350.0, "x2_mm_per_day": 0.0,
+        "x3_mm": 90.0, "x4_days": 1.7}``. With ``temp``, the snow parameters
         (``snow_threshold_c``, ``melt_threshold_c``, ``melt_factor_mm_per_degc_day``) may be
         given too; missing ones take their default.
     temp : array_like, shape (time,) or (time, n), optional
         Daily mean air temperature, degC. When given, a degree-day snow store sits in front.
     initial_storage : float or array_like (n,), optional
         Storage at the start, mm. Default: the store's equilibrium for the mean forcing of the
-        first ``max(warmup_days, 365)`` days (mean net input / k for the linear store).
+        first ``max(warmup_days, 365)`` days (mean net input / k for the linear store). For
+        GR4J the total of the production and routing stores, both filled to the same share of
+        their capacities (at most X1 + X3; the unit hydrographs start empty); default half full.
+        ``Simulation.initial_storage`` reports the storage actually used.
     warmup_days : int, default 0
         Leading days that only spin the stores up; recorded so scoring can skip them.
 
     Returns
     -------
     Simulation
-        ``flow``, ``aet``, ``storage`` (and ``snowpack``, ``melt`` with temperature), each
-        shaped (time, n).
+        ``flow``, ``aet``, ``storage`` (and ``snowpack``, ``melt`` with temperature; and
+        ``exchange`` for GR4J), each shaped (time, n).
 
     Raises
     ------
@@ -101,8 +106,10 @@ def simulate(
         snow_params = _parameter_arrays(_SNOW.parameters, params, n, required=False)
         inflow, snowpack, melt = _SNOW.run(precip2, temp2, snow_params, np.zeros(n))
     start = _initial_storage(chosen, initial_storage, inflow, pet2, model_params, n, warmup_days)
-    flow, aet, storage = chosen.run(inflow, pet2, model_params, start)
-    return Simulation(flow, aet, storage, snowpack, melt, start, warmup_days)
+    # A model returns (flow, aet, storage) or, with an exchange term, (..., exchange).
+    flow, aet, storage, *exchange = chosen.run(inflow, pet2, model_params, start)
+    exchange = exchange[0] if exchange else None
+    return Simulation(flow, aet, storage, snowpack, melt, start, warmup_days, exchange)
 
 
 def _as_columns(values: np.ndarray, name: str) -> np.ndarray:
@@ -173,8 +180,8 @@ def _parameter_arrays(
         outside = ~((values >= parameter.lower) & (values <= parameter.upper))
         if outside.any():
             raise ValueError(
-                f"parameter {parameter.name} = {float(values[outside][0])!r} {parameter.unit} is outside "
-                f"its bounds [{parameter.lower}, {parameter.upper}]"
+                f"parameter {parameter.name} = {float(values[outside][0])!r} {parameter.unit} "
+                f"is outside its bounds [{parameter.lower}, {parameter.upper}]"
             )
         arrays[parameter.name] = values
     return arrays
@@ -205,4 +212,9 @@ def _initial_storage(chosen, initial_storage, inflow, pet, params, n, warmup_day
     start = np.asarray(initial_storage, dtype=np.float64).ravel()
     if not np.all(np.isfinite(start)) or np.any(start < 0):
         raise ValueError(f"initial_storage must be finite and >= 0 mm: got {initial_storage!r}")
-    return np.ascontiguousarray(np.broadcast_to(start, (n,)))
+    start = np.broadcast_to(start, (n,))
+    # Optional model hook: stores with a capacity (GR4J) cap the start at what they can hold.
+    feasible = getattr(chosen, "feasible_storage", None)
+    if feasible is not None:
+        start = feasible(start, params)
+    return np.ascontiguousarray(start, dtype=np.float64)
