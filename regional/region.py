@@ -27,7 +27,7 @@ from regional.errors import InputError, InputWarning
 MM_PER_DAY_PER_M3S_KM2 = 86.4
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Region:
     """Everything a run needs about a region, validated.
 
@@ -86,7 +86,7 @@ class Region:
         return describe_region(self)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class RegionSummary:
     """What ``regional check`` prints.
 
