@@ -34,6 +34,7 @@ from regional.compute import InProcessExecutor, chunked
 from regional.errors import InputError
 from regional.models import get_model, simulate
 from regional.transfer import make_transfer, simulate_donors
+from regional.transfer.base import weighted_estimate
 
 CALIBRATED = "calibrated"
 MEDIAN = "median"
@@ -243,16 +244,9 @@ def _transfer_flow(method, target, train, context, forcing, transforms):
     estimator.fit(
         context.attributes.loc[train], context.calibrated.loc[train, names], transforms=transforms
     )
-    targets = context.attributes.loc[[target]]
-    estimate = estimator.predict(targets).iloc[0].to_dict()
-    donation = estimator.donate(targets)
-    fixed = _snow_params(context, forcing)
-
-    def simulate_with_fixed(model, precip, pet, params, **kw):
-        n = len(next(iter(params.values())))
-        extra = {name: np.full(n, value) for name, value in fixed.items()}
-        return simulate(model, precip, pet, {**extra, **params}, **kw)
-
+    donation = estimator.donate(context.attributes.loc[[target]])
+    estimate = weighted_estimate(donation.sets, names, transforms).iloc[0].to_dict()
+    simulator = donor_simulator(context.model, _snow_params(context, forcing))
     flows = simulate_donors(
         donation,
         target,
@@ -262,9 +256,29 @@ def _transfer_flow(method, target, train, context, forcing, transforms):
         model=context.model,
         warmup_days=context.window.warmup_days,
         initial_storage=context.initial_storage,
-        simulate=simulate_with_fixed,
+        simulate=simulator,
     )
     return estimate, flows.flow
+
+
+def donor_simulator(model: str, fixed: Mapping[str, float]):
+    """A ``simulate`` for donor sets: fixed (snow) parameters added, values clipped to bounds.
+
+    A transfer may give a parameter outside the model's bounds (a regression extrapolating in
+    log space, say); the set is then simulated at the nearest bound, as calibration would have
+    found it.
+    """
+    table = get_model(model).parameters
+
+    def simulate_sets(model_name, precip, pet, params, **options):
+        n = len(next(iter(params.values())))
+        sets = {name: np.full(n, value) for name, value in fixed.items()}
+        for parameter in table:
+            values = np.asarray(params[parameter.name], dtype=float)
+            sets[parameter.name] = np.clip(values, parameter.lower, parameter.upper)
+        return simulate(model_name, precip, pet, sets, **options)
+
+    return simulate_sets
 
 
 def _outcome(obs: np.ndarray, flow: np.ndarray, params: Mapping[str, float]) -> dict:

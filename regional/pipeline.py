@@ -317,7 +317,7 @@ def _fold_context(model, region, settings, window, calibration, attributes, excl
     evaluation = window.validation if window.validation.any() else window.calibration
     return FoldContext(
         model=model,
-        attributes=region.attributes.loc[gauged],
+        attributes=region.attributes.loc[gauged, _fold_columns(region, attributes)],
         calibrated=calibration[names],
         precip_mm=region.precip_mm.iloc[part],
         pet_mm=region.pet_mm.iloc[part],
@@ -336,6 +336,16 @@ def _fold_context(model, region, settings, window, calibration, attributes, excl
         fixed_params=fixed_parameters(settings) if temp is not None else {},
         initial_storage=settings.model.initial_storage_mm,
     )
+
+
+def _fold_columns(region: Region, attributes) -> list[str]:
+    """Transfer attributes plus the coordinates proximity needs (nothing else travels)."""
+    coordinates = [
+        c
+        for c in ("centroid_lon", "centroid_lat", "outlet_lon", "outlet_lat")
+        if c in region.attributes.columns and c not in attributes
+    ]
+    return [*attributes, *coordinates]
 
 
 def _regression_on_all(context: FoldContext, attributes) -> RegressionTransfer:

@@ -144,7 +144,8 @@ def resolve_transforms(
 def _string_index(table: pd.DataFrame, *, method: str, role: str) -> pd.DataFrame:
     """Return a copy of ``table`` with its index as str, rejecting duplicate ids."""
     table = table.copy()
-    table.index = table.index.map(str)
+    if table.index.inferred_type != "string":
+        table.index = table.index.map(str)
     duplicated = table.index[table.index.duplicated()]
     if len(duplicated):
         raise InputError(
@@ -173,9 +174,8 @@ def numeric_columns(table: pd.DataFrame) -> list[str]:
     """Names of the numeric (non-boolean) columns of ``table``, in order."""
     return [
         str(name)
-        for name in table.columns
-        if pd.api.types.is_numeric_dtype(table[name])
-        and not pd.api.types.is_bool_dtype(table[name])
+        for name, dtype in table.dtypes.items()
+        if pd.api.types.is_numeric_dtype(dtype) and not pd.api.types.is_bool_dtype(dtype)
     ]
 
 
@@ -210,7 +210,8 @@ def select_attributes(
             f"; available columns: {', '.join(map(str, X.columns))}. Fix the attribute list "
             "or compute the attribute."
         )
-    not_numeric = [a for a in chosen if a not in numeric_columns(X)]
+    numeric = set(numeric_columns(X))
+    not_numeric = [a for a in chosen if a not in numeric]
     if not_numeric:
         raise InputError(
             f"{method} transfer: attribute column {not_numeric[0]!r} in {role} is not numeric "

@@ -400,11 +400,17 @@ def _forward_selection(
     limit = n - MIN_RESIDUAL_DOF - 1  # attributes allowed with the intercept
     if max_terms is not None:
         limit = min(limit, max_terms)
+    names = [str(c) for c in Z.columns]
+    values = np.column_stack([np.ones(n), Z.to_numpy(dtype=float)])
+    position = {name: i + 1 for i, name in enumerate(names)}
     chosen: list[str] = []
-    best = press(_design(Z, chosen), target)
+    best = press(values[:, [0]], target)
     path = [{"step": 0, "term": INTERCEPT, "press": best}]
     while len(chosen) < limit:
-        scores = {a: press(_design(Z, [*chosen, a]), target) for a in Z.columns if a not in chosen}
+        used = [0, *(position[a] for a in chosen)]
+        scores = {
+            a: press(values[:, [*used, position[a]]], target) for a in names if a not in chosen
+        }
         if not scores:
             break
         attribute = min(scores, key=scores.get)
