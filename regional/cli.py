@@ -144,17 +144,130 @@ def _attributes(args: argparse.Namespace) -> int:
 
 
 # --------------------------------------------------------------------------------------------
+# regional run REGION [--out DIR]
+# --------------------------------------------------------------------------------------------
+
+
+def _run_parser(subparsers: argparse._SubParsersAction) -> None:
+    parser = subparsers.add_parser(
+        "run",
+        help="the whole job: calibrate, validate every transfer, predict, write results",
+        description=(
+            "Check the region, compute attributes, calibrate the storage model at every gauged "
+            "basin, validate every transfer method by leave-one-out against the calibrated "
+            "(upper bound) and median (benchmark) baselines, estimate flows at the ungauged "
+            "basins, screen candidate gauge sites, and write results.gpkg, CSV tables, "
+            "figures, report.html and run.json to the output folder."
+        ),
+        epilog=CAUTION,
+    )
+    parser.add_argument("region", help="region folder holding region.toml, or the TOML file")
+    _add_run_options(parser)
+
+
+def _add_run_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--out",
+        type=Path,
+        metavar="DIR",
+        help="results folder (default: [output] folder of the region); replaced only when "
+        "the new results are complete",
+    )
+    parser.add_argument(
+        "--scheduler", metavar="ADDRESS", help="run on a Dask cluster (tcp://host:8786)"
+    )
+    parser.add_argument(
+        "--workers", type=int, metavar="N", help="start a local Dask cluster of N processes"
+    )
+    parser.add_argument("--quiet", action="store_true", help="no progress bars")
+
+
+def _run_all(args: argparse.Namespace) -> int:
+    from regional.outputs import write_outputs
+    from regional.pipeline import run
+
+    result = _with_progress(run, args)
+    folder = write_outputs(result, _out_folder(args, result))
+    print(format_run_summary(result))
+    print(f"\nresults written to {folder}")
+    print(CAUTION)
+    return 0
+
+
+def _out_folder(args: argparse.Namespace, result) -> Path:
+    return args.out if args.out is not None else result.settings.output.folder
+
+
+def _with_progress(run, args: argparse.Namespace):
+    bars: dict[str, object] = {}
+
+    def progress(stage: str, done: int, total: int) -> None:
+        if args.quiet:
+            return
+        from tqdm import tqdm
+
+        bar = bars.get(stage)
+        if bar is None or bar.total != total or bar.n > done:
+            if bar is not None:
+                bar.close()
+            bar = bars[stage] = tqdm(total=total, desc=stage, unit="basin", file=sys.stderr)
+        bar.update(done - bar.n)
+        if done >= total:
+            bar.close()
+
+    try:
+        return run(args.region, scheduler=args.scheduler, workers=args.workers, progress=progress)
+    finally:
+        for bar in bars.values():
+            bar.close()
+
+
+def format_run_summary(result) -> str:
+    """The table ``regional run`` prints: leave-one-out skill per model and method."""
+    from regional.outputs import loo_summary
+
+    table = loo_summary(result)
+    columns = [
+        "model",
+        "method",
+        "n_basins",
+        "median_nse",
+        "q25_nse",
+        "q75_nse",
+        "share_nse_gt_0_5",
+        "median_kge",
+        "gain_vs_median",
+        "loss_vs_calibrated",
+    ]
+    columns += [c for c in ("coverage",) if c in table.columns]
+    lines = [
+        f"region: {result.settings.region.name}",
+        f"basins: {len(result.region.gauged)} gauged, {len(result.region.ungauged)} ungauged",
+        "",
+        "leave-one-out skill (each gauged basin predicted from the others; evaluation period):",
+        table[columns].to_string(index=False, float_format=lambda v: f"{v:.3f}"),
+        "",
+        f"chosen for prediction: model {result.chosen_model}, method {result.chosen_method}",
+    ]
+    if result.warnings:
+        lines.append(f"warnings: {len(result.warnings)} (see report.html)")
+    return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------------------------
 # Registries: one entry per sub-command (its parser builder, and the function it runs)
 # --------------------------------------------------------------------------------------------
 
 PARSERS: dict[str, Callable[[argparse._SubParsersAction], None]] = {
     "check": _check_parser,
     "attributes": _attributes_parser,
+    "run": _run_parser,
 }
 
 COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
     "check": _check,
     "attributes": _attributes,
+    "run": _run_all,
 }
 
 

@@ -7,10 +7,13 @@ raise :class:`regional.errors.InputError` naming the file, layer or column at fa
 from __future__ import annotations
 
 import difflib
+import json
 import os
+import shutil
 import tempfile
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from io import BytesIO
 from pathlib import Path
 
 import geopandas as gpd
@@ -435,3 +438,98 @@ def _listing(names: Sequence[str], most: int = 30) -> str:
 def _suggestion(name: str, known: Sequence[str]) -> str:
     match = difflib.get_close_matches(name, list(known), n=1, cutoff=0.6)
     return f"did you mean '{match[0]}'? " if match else ""
+
+
+# --------------------------------------------------------------------------------------------
+# Results folder
+# --------------------------------------------------------------------------------------------
+
+RESULTS_GPKG = "results.gpkg"
+
+
+def figure_png(figure, *, dpi: int = 110) -> bytes:
+    """Render a matplotlib Figure to PNG bytes (nothing is written to disk)."""
+    buffer = BytesIO()
+    figure.savefig(buffer, format="png", dpi=dpi, bbox_inches="tight")
+    return buffer.getvalue()
+
+
+def write_run_folder(
+    folder: str | Path,
+    *,
+    tables: Mapping[str, pd.DataFrame],
+    layers: Mapping[str, gpd.GeoDataFrame],
+    crs: object,
+    figures: Mapping[str, bytes],
+    report: str | None,
+    manifest: Mapping[str, object],
+) -> Path:
+    """Write a complete results folder, then move it into place.
+
+    Everything goes to a temporary folder beside ``folder``; only when every file is written is
+    the previous ``folder`` (if any) set aside, the new one renamed into place and the old one
+    removed. A run that fails or is killed while writing leaves the previous results intact.
+
+    Parameters
+    ----------
+    folder : str or Path
+        The results folder.
+    tables : mapping
+        File name (``*.csv``) -> table; written without the RangeIndex.
+    layers : mapping
+        Layer name -> GeoDataFrame for ``results.gpkg``.
+    crs : pyproj.CRS or str
+        CRS given to layers that carry none.
+    figures : mapping
+        Name -> PNG bytes, written to ``figures/<name>.png``.
+    report : str or None
+        HTML text for ``report.html``.
+    manifest : mapping
+        Written as ``run.json``.
+
+    Returns
+    -------
+    Path
+        The results folder.
+    """
+    target = Path(folder).expanduser().resolve()
+    if not target.parent.is_dir():
+        raise InputError(
+            f"cannot write results to {target}: the folder {target.parent} does not exist. "
+            "Fix: create it or choose another --out folder."
+        )
+    staging = Path(tempfile.mkdtemp(dir=target.parent, prefix=f".{target.name}.", suffix=".tmp"))
+    staging.chmod(0o755)
+    try:
+        _fill_run_folder(staging, tables, layers, crs, figures, report, manifest)
+        _swap_into_place(staging, target)
+    except BaseException:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
+    return target
+
+
+def _fill_run_folder(staging, tables, layers, crs, figures, report, manifest) -> None:
+    for name, table in tables.items():
+        keep_index = not isinstance(table.index, pd.RangeIndex)
+        table.to_csv(staging / name, index=keep_index)
+    for name, layer in layers.items():
+        frame = layer if layer.crs is not None else layer.set_crs(crs)
+        frame.to_file(staging / RESULTS_GPKG, layer=name, driver="GPKG", engine="pyogrio")
+    if figures:
+        (staging / "figures").mkdir()
+        for name, png in figures.items():
+            (staging / "figures" / f"{name}.png").write_bytes(png)
+    if report is not None:
+        (staging / "report.html").write_text(report, encoding="utf-8")
+    (staging / "run.json").write_text(json.dumps(manifest, indent=2, default=str) + "\n")
+
+
+def _swap_into_place(staging: Path, target: Path) -> None:
+    previous = None
+    if target.exists():
+        previous = target.with_name(f".{target.name}.previous-{os.getpid()}")
+        os.replace(target, previous)
+    os.replace(staging, target)
+    if previous is not None:
+        shutil.rmtree(previous, ignore_errors=True)

@@ -1,0 +1,236 @@
+"""Turn a :class:`~regional.pipeline.RunResult` into the tables, layers, figures, report and
+manifest of a results folder, and hand them to :mod:`regional.io` to write atomically.
+
+Building the content (pure) is kept apart from writing it (``io.write_run_folder``): a failed or
+interrupted run never touches the previous results.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib.metadata
+import json
+import platform
+from dataclasses import fields, is_dataclass
+from pathlib import Path
+from typing import Any
+
+import geopandas as gpd
+import pandas as pd
+
+from regional import __version__, io
+from regional.crossval import CALIBRATED
+from regional.pipeline import RunResult
+
+PACKAGES = (
+    "numpy",
+    "pandas",
+    "scipy",
+    "numba",
+    "scikit-learn",
+    "geopandas",
+    "shapely",
+    "pyproj",
+    "pyogrio",
+    "rasterio",
+    "matplotlib",
+)
+SCORE_NAMES = ("nse", "kge", "kge_r", "kge_alpha", "kge_beta", "log_nse", "pbias", "n_days")
+
+
+def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True) -> Path:
+    """Write every output of a run into ``folder`` (replaced only once complete).
+
+    Parameters
+    ----------
+    result : RunResult
+        From :func:`regional.pipeline.run`.
+    folder : str or Path
+        Results folder; an existing one is replaced only after the new one is complete.
+    figures : bool, default True
+        Draw the figures and the report (False: tables and layers only).
+
+    Returns
+    -------
+    Path
+        The results folder.
+    """
+    tables = result_tables(result)
+    layers = result_layers(result)
+    images: dict[str, bytes] = {}
+    report = None
+    if figures:
+        from regional.report import make_figures, render_report
+
+        images = {name: io.figure_png(figure) for name, figure in make_figures(result).items()}
+        report = render_report(result, images)
+    manifest = run_manifest(result)
+    return io.write_run_folder(
+        Path(folder),
+        tables=tables,
+        layers=layers,
+        crs=result.region.basins.crs,
+        figures=images,
+        report=report,
+        manifest=manifest,
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# Tables
+
+
+def result_tables(result: RunResult) -> dict[str, pd.DataFrame]:
+    """CSV tables by file name (index not written unless it is ``basin_id``)."""
+    tables = {
+        "loo_scores.csv": _loo_scores(result),
+        "loo_summary.csv": loo_summary(result),
+        "regression_coefficients.csv": _coefficients(result),
+        "calibration.csv": _calibration(result),
+    }
+    prediction = result.prediction
+    if prediction is not None:
+        tables["flows_ungauged.csv"] = prediction.flows
+        tables["parameters_ungauged.csv"] = prediction.table.reset_index()
+    if result.screening is not None:
+        tables["screening.csv"] = result.screening.table.reset_index()
+    return tables
+
+
+def _loo_scores(result: RunResult) -> pd.DataFrame:
+    columns = ["basin_id", "method", *SCORE_NAMES, "model"]
+    return result.scores[columns]
+
+
+def loo_summary(result: RunResult) -> pd.DataFrame:
+    """The per-method summary with the leave-one-out coverage of the bounds when known."""
+    summary = result.summary.copy()
+    coverage = getattr(result.prediction, "coverage", None)
+    if coverage is not None and len(coverage):
+        summary = summary.merge(
+            coverage[["model", "method", "coverage", "level"]], on=["model", "method"], how="left"
+        )
+    first = ["method", "model"]
+    return summary[first + [c for c in summary.columns if c not in first]]
+
+
+def _coefficients(result: RunResult) -> pd.DataFrame:
+    parts = [
+        run.regression.coefficients_.assign(
+            model=model,
+            r2=run.regression.coefficients_["parameter"].map(run.regression.r2_),
+            adj_r2=run.regression.coefficients_["parameter"].map(run.regression.adj_r2_),
+            rse=run.regression.coefficients_["parameter"].map(run.regression.rse_),
+        )
+        for model, run in result.runs.items()
+    ]
+    return pd.concat(parts, ignore_index=True)
+
+
+def _calibration(result: RunResult) -> pd.DataFrame:
+    parts = [run.calibration.assign(model=model) for model, run in result.runs.items()]
+    return pd.concat(parts).reset_index()
+
+
+# --------------------------------------------------------------------------------------------
+# Layers
+
+
+def result_layers(result: RunResult) -> dict[str, gpd.GeoDataFrame]:
+    """GeoPackage layers: ``gauged``, and ``ungauged`` / ``screening`` when they exist."""
+    basins = result.region.basins
+    layers = {"gauged": _gauged_layer(result)}
+    if result.prediction is not None:
+        layers["ungauged"] = _with_geometry(result.prediction.table, basins)
+    if result.screening is not None:
+        layers["screening"] = _with_geometry(result.screening.table, basins)
+    return layers
+
+
+def _with_geometry(table: pd.DataFrame, basins: gpd.GeoDataFrame) -> gpd.GeoDataFrame:
+    table = table.copy()
+    table.index = table.index.astype(str)
+    frame = gpd.GeoDataFrame(
+        table, geometry=basins.geometry.reindex(table.index).to_numpy(), crs=basins.crs
+    )
+    frame.index.name = "basin_id"
+    return frame.reset_index()
+
+
+def _gauged_layer(result: RunResult) -> gpd.GeoDataFrame:
+    region = result.region
+    gauged = list(region.gauged)
+    several = len(result.runs) > 1
+    table = region.attributes.loc[gauged, list(result.attributes)].copy()
+    for model, run in result.runs.items():
+        suffix = f"_{model}" if several else ""
+        calibration = run.calibration.drop(columns=["objective"]).add_suffix(suffix)
+        table = table.join(calibration)
+        scores = run.loo.scores.pivot(index="basin_id", columns="method", values=["nse", "kge"])
+        for method in run.loo.methods:
+            if method == CALIBRATED:
+                continue
+            table[f"loo_nse_{method}{suffix}"] = scores[("nse", method)]
+            table[f"loo_kge_{method}{suffix}"] = scores[("kge", method)]
+    return _with_geometry(table, region.basins)
+
+
+# --------------------------------------------------------------------------------------------
+# Manifest
+
+
+def run_manifest(result: RunResult) -> dict[str, Any]:
+    """``run.json``: input checksums, settings, software versions and timings."""
+    settings = result.settings
+    return {
+        "regional": __version__,
+        "region": settings.region.name,
+        "inputs": {str(path): _sha256(path) for path in _input_files(settings)},
+        "settings": _plain(settings),
+        "chosen": {"model": result.chosen_model, "method": result.chosen_method},
+        "counts": {"gauged": len(result.region.gauged), "ungauged": len(result.region.ungauged)},
+        "software": {"python": platform.python_version(), **_versions()},
+        "timings_s": {stage: round(seconds, 3) for stage, seconds in result.timings.items()},
+        "warnings": list(result.warnings),
+    }
+
+
+def _input_files(settings) -> list[Path]:
+    paths = [settings.path, settings.basins.path, settings.series.path]
+    paths += [overlay.path for overlay in settings.overlays]
+    if settings.raster is not None:
+        paths.append(settings.raster.path)
+    return sorted(set(Path(p) for p in paths))
+
+
+def _sha256(path: Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as stream:
+        for block in iter(lambda: stream.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def _versions() -> dict[str, str]:
+    versions = {}
+    for name in PACKAGES:
+        try:
+            versions[name] = importlib.metadata.version(name)
+        except importlib.metadata.PackageNotFoundError:
+            versions[name] = "not installed"
+    return versions
+
+
+def _plain(value: Any) -> Any:
+    """Settings dataclasses -> JSON-ready dicts (paths and dates as text)."""
+    if is_dataclass(value):
+        return {f.name: _plain(getattr(value, f.name)) for f in fields(value)}
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_plain(v) for v in value]
+    if isinstance(value, Path | pd.Timestamp):
+        return str(value.date()) if isinstance(value, pd.Timestamp) else str(value)
+    if value is None or isinstance(value, bool | int | float | str):
+        return value
+    return json.loads(json.dumps(value, default=str))
