@@ -1,5 +1,7 @@
 """Calibration recovers known storage constants from synthetic flow."""
 
+import importlib
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -103,3 +105,118 @@ def test_bad_settings_raise_input_error(kwargs, match):
     precip, pet, flow = _synthetic()
     with pytest.raises(InputError, match=match):
         calibrate(precip, pet, flow, **kwargs)
+
+
+GR4J_TRUE = {
+    "x1_mm": np.array([320.0, 900.0]),
+    "x2_mm_per_day": np.array([-0.8, 1.2]),
+    "x3_mm": np.array([70.0, 200.0]),
+    "x4_days": np.array([1.8, 4.3]),
+}
+GR4J_DATES = pd.date_range("2000-01-01", periods=6 * 365)
+GR4J_CALIBRATION = ("2001-01-01", str(GR4J_DATES[-1].date()))
+
+
+def _synthetic_gr4j():
+    rng = np.random.default_rng(1)
+    days, ids = len(GR4J_DATES), ["g1", "g2"]
+    season = 2.0 + 1.5 * np.sin(2 * np.pi * np.arange(days) / 365.25)
+    precip = pd.DataFrame(rng.gamma(0.5, 8.0, (days, 2)), GR4J_DATES, ids)
+    pet = pd.DataFrame(np.tile(season[:, None], 2), GR4J_DATES, ids)
+    flow = regional.simulate("gr4j", precip.values, pet.values, GR4J_TRUE).flow
+    return precip, pet, pd.DataFrame(flow, GR4J_DATES, ids)
+
+
+@pytest.mark.parametrize("objective", ["nse", "kge"])
+def test_differential_evolution_recovers_gr4j_parameters_from_noise_free_flow(objective):
+    # Tolerances of the check asked for GR4J: X1, X3 within 5 %, X4 within 0.1 day, X2 within
+    # 0.1 mm/day; five scored years and the default search budget.
+    precip, pet, flow = _synthetic_gr4j()
+    table = calibrate(
+        precip, pet, flow, model="gr4j", objective=objective, calibration=GR4J_CALIBRATION
+    )
+    np.testing.assert_allclose(table["x1_mm"], GR4J_TRUE["x1_mm"], rtol=0.05)
+    np.testing.assert_allclose(table["x3_mm"], GR4J_TRUE["x3_mm"], rtol=0.05)
+    np.testing.assert_allclose(table["x4_days"], GR4J_TRUE["x4_days"], atol=0.1)
+    np.testing.assert_allclose(table["x2_mm_per_day"], GR4J_TRUE["x2_mm_per_day"], atol=0.1)
+    assert (table["score_calibration"] > 0.999).all()
+    assert list(table.columns[:5]) == [
+        "x1_mm",
+        "x2_mm_per_day",
+        "x3_mm",
+        "x4_days",
+        "objective",
+    ]
+
+
+def test_population_is_simulated_in_one_call_per_generation(monkeypatch):
+    precip, pet, flow = _synthetic_gr4j()
+    columns = []
+
+    def counting_simulate(model, precip, pet, params, **kwargs):
+        result = regional.simulate(model, precip, pet, params, **kwargs)
+        columns.append(result.flow.shape[1])
+        return result
+
+    monkeypatch.setattr(
+        importlib.import_module("regional.calibrate"), "simulate", counting_simulate
+    )
+    budget, popsize = 5, 6
+    calibrate(
+        precip[["g1"]],
+        pet[["g1"]],
+        flow[["g1"]],
+        model="gr4j",
+        calibration=GR4J_CALIBRATION,
+        budget=budget,
+        popsize=popsize,
+    )
+    population = popsize * 4
+    # scipy: the initial population, then one call per generation, all members as columns.
+    assert columns[: budget + 1] == [population] * (budget + 1)
+    # Then the compass polish (16 trials per round) and the final single run.
+    assert set(columns[budget + 1 : -1]) == {16}
+    assert columns[-1] == 1
+
+
+def test_multi_parameter_search_is_seeded_and_honours_fixed_parameters():
+    precip, pet, flow = _synthetic_gr4j()
+    settings = {"model": "gr4j", "calibration": GR4J_CALIBRATION, "budget": 8, "popsize": 5}
+    precip, pet, flow = precip[["g2"]], pet[["g2"]], flow[["g2"]]
+    first = calibrate(precip, pet, flow, seed=3, **settings)
+    again = calibrate(precip, pet, flow, seed=3, **settings)
+    pd.testing.assert_frame_equal(first, again)
+    fixed = calibrate(precip, pet, flow, fixed_params={"x2_mm_per_day": 0.0}, **settings)
+    assert (fixed["x2_mm_per_day"] == 0.0).all()
+    assert list(fixed.columns[:5]) == ["x1_mm", "x2_mm_per_day", "x3_mm", "x4_days", "objective"]
+
+
+def test_progress_is_reported_per_basin_for_multi_parameter_models():
+    precip, pet, flow = _synthetic_gr4j()
+    calls = []
+    calibrate(
+        precip,
+        pet,
+        flow,
+        model="gr4j",
+        calibration=GR4J_CALIBRATION,
+        budget=2,
+        popsize=3,
+        progress=lambda done, total: calls.append((done, total)),
+    )
+    assert calls == [(1, 2), (2, 2)]
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "match"),
+    [
+        ({"budget": 0}, r"budget must be a whole number >= 1: got 0"),
+        ({"popsize": 1}, r"popsize must be a whole number >= 2: got 1"),
+        ({"seed": -1}, r"seed must be a whole number >= 0: got -1"),
+        ({"budget": 2.5}, r"budget must be a whole number >= 1: got 2.5"),
+    ],
+)
+def test_bad_search_settings_raise_input_error(kwargs, match):
+    precip, pet, flow = _synthetic_gr4j()
+    with pytest.raises(InputError, match=match):
+        calibrate(precip, pet, flow, model="gr4j", **kwargs)
