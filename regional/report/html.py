@@ -1,0 +1,824 @@
+"""The run's report: one self-contained HTML page (figures embedded, no external resource).
+
+:func:`render_report` builds the page as a string from a run result and the PNG bytes of its
+figures; :mod:`regional.io` writes it. Every text that comes from the inputs or the run (names,
+messages, table cells) is escaped. The page carries its own modest style sheet and loads nothing
+from anywhere, so it opens offline and can be mailed as one file.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import importlib.metadata
+import math
+import numbers
+import platform
+from collections.abc import Iterable, Mapping, Sequence
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from regional.crossval import CALIBRATED, MEDIAN
+from regional.models import get_model
+
+RunResult = Any
+"""A :class:`regional.pipeline.RunResult` (duck-typed: the pipeline imports the report)."""
+
+SECTIONS = (
+    ("summary", "Summary"),
+    ("cautions", "Cautions"),
+    ("inputs", "Inputs"),
+    ("calibration", "Calibration at gauged basins"),
+    ("transfer", "Transfer methods compared in leave-one-out"),
+    ("regression", "Regression of parameters on attributes"),
+    ("figures", "Maps and figures"),
+    ("ungauged", "Estimates at ungauged basins"),
+    ("screening", "Candidate gauge sites"),
+    ("warnings", "Warnings"),
+    ("methods", "Methods and references"),
+    ("run", "Run information"),
+)
+"""(id, heading) of every section, in page order."""
+
+FIGURE_CAPTIONS = {
+    "loo_nse_map": "Leave-one-out NSE of each gauged basin for the chosen method; ungauged "
+    "basins outlined in grey.",
+    "parameters": "Calibrated parameter of each gauged basin against the value each method "
+    "transferred to it when it was left out; the dashed line is 1:1.",
+    "nse_cdf": "Cumulative distribution of leave-one-out NSE per method; calibrated (upper "
+    "bound) dashed, median (benchmark) dotted.",
+    "hydrographs": "Observed, calibrated and transferred daily flow at the basins with the best, "
+    "median and worst leave-one-out NSE of the chosen method.",
+    "model_comparison": "Median leave-one-out NSE per method and model; whiskers span the "
+    "quartiles.",
+    "ungauged_mean_flow_map": "Estimated mean flow at ungauged basins; hatched basins failed the "
+    "applicability check.",
+    "ungauged_hydrographs": "Estimated daily flow at ungauged basins with its lower and upper "
+    "bounds.",
+    "screening": "Candidate gauge sites ranked by screening score, beside the score's parts.",
+}
+FIGURE_SECTIONS = {
+    "ungauged_mean_flow_map": "ungauged",
+    "ungauged_hydrographs": "ungauged",
+    "screening": "screening",
+}
+"""Figures shown beside their tables; every other figure goes to the ``figures`` section."""
+
+PACKAGES = (
+    "regional",
+    "numpy",
+    "pandas",
+    "scipy",
+    "numba",
+    "scikit-learn",
+    "geopandas",
+    "shapely",
+    "pyproj",
+    "pyogrio",
+    "matplotlib",
+)
+DISTRIBUTION_COLUMNS = (
+    "score_calibration",
+    "score_validation",
+    "nse_calibration",
+    "nse_validation",
+    "kge_calibration",
+    "kge_validation",
+)
+STATISTIC_COLUMNS = (
+    "mean_flow_mm",
+    "mean_flow_m3s",
+    "q5_mm",
+    "q50_mm",
+    "q95_mm",
+    "min7_mean_mm",
+)
+MONTH_COLUMNS = tuple(f"flow_m{month:02d}_mm" for month in range(1, 13))
+DASH = "\u2013"
+
+REFERENCES = (
+    "Chow, V. T., Maidment, D. R., Mays, L. W. (1988): Applied Hydrology. McGraw-Hill, ch. 8 "
+    "(linear reservoir).",
+    "Martinec, J. (1960): The degree-day factor for snowmelt runoff forecasting. IAHS Publ. 51, "
+    "468-477 (degree-day snow store).",
+    "Nash, J. E., Sutcliffe, J. V. (1970): River flow forecasting through conceptual models "
+    "part I - A discussion of principles. J. Hydrol. 10, 282-290 (NSE).",
+    "Gupta, H. V., Kling, H., Yilmaz, K. K., Martinez, G. F. (2009): Decomposition of the mean "
+    "squared error and NSE performance criteria: implications for improving hydrological "
+    "modelling. J. Hydrol. 377, 80-91 (KGE).",
+    "Klemes, V. (1986): Operational testing of hydrological simulation models. Hydrol. Sci. J. "
+    "31(1), 13-24 (split-sample test).",
+    "Oudin, L., Andreassian, V., Perrin, C., Michel, C., Le Moine, N. (2008): Spatial "
+    "proximity, physical similarity, regression and ungaged catchments: a comparison of "
+    "regionalization approaches based on 913 French catchments. Water Resour. Res. 44, W03413.",
+    "Allen, D. M. (1974): The relationship between variable selection and data augmentation "
+    "and a method for prediction. Technometrics 16(1), 125-127 (PRESS).",
+    "Kutner, M. H., Nachtsheim, C. J., Neter, J., Li, W. (2005): Applied Linear Statistical "
+    "Models, 5th ed. McGraw-Hill (prediction intervals, VIF).",
+    "Vovk, V., Gammerman, A., Shafer, G. (2005): Algorithmic Learning in a Random World. "
+    "Springer (conformal prediction).",
+    "Lei, J., G'Sell, M., Rinaldo, A., Tibshirani, R. J., Wasserman, L. (2018): "
+    "Distribution-free predictive inference for regression. J. Am. Stat. Assoc. 113, "
+    "1094-1111 (split-conformal prediction).",
+    "Mahalanobis, P. C. (1936): On the generalised distance in statistics. Proc. Natl. Inst. "
+    "Sci. India 2, 49-55 (applicability distance).",
+    "Sherman, J., Morrison, W. J. (1950): Adjustment of an inverse matrix corresponding to a "
+    "change in one element of a given matrix. Ann. Math. Stat. 21, 124-127 (rank-one update "
+    "in screening).",
+)
+
+STYLE = """
+:root { --ink: #1d2428; --muted: #5b6670; --rule: #d5dade; --band: #f3f5f6; --accent: #2a5d84;
+        --flag: #9b1c1c; }
+* { box-sizing: border-box; }
+body { margin: 0; color: var(--ink); background: #fff;
+       font: 15px/1.5 system-ui, "Segoe UI", "Helvetica Neue", Arial, sans-serif; }
+header { padding: 1.6em 2em 1em; border-bottom: 3px solid var(--accent); }
+header h1 { margin: 0 0 .2em; font-size: 1.6em; font-weight: 600; }
+header p { margin: 0; color: var(--muted); }
+nav { padding: .6em 2em; background: var(--band); font-size: .9em; }
+nav a { color: var(--accent); margin-right: 1.1em; text-decoration: none; white-space: nowrap; }
+main { max-width: 1180px; padding: 0 2em 3em; }
+section { border-top: 1px solid var(--rule); padding-top: .4em; margin-top: 1.6em; }
+h2 { font-size: 1.25em; color: var(--accent); margin: .4em 0 .6em; }
+h3 { font-size: 1.02em; margin: 1.2em 0 .4em; }
+p, li { max-width: 78ch; }
+.cautions { border-left: 4px solid var(--flag); background: #fbf3f3; padding: .5em 1em; }
+table { border-collapse: collapse; margin: .4em 0 1em; font-size: .85em;
+        font-variant-numeric: tabular-nums; }
+caption { text-align: left; color: var(--muted); padding-bottom: .3em; }
+th, td { padding: .25em .6em; border-bottom: 1px solid var(--rule); vertical-align: top; }
+th { background: var(--band); text-align: left; font-weight: 600; }
+td.num { text-align: right; white-space: nowrap; }
+tr.chosen td { background: #e8f0f7; font-weight: 600; }
+td.flag { color: var(--flag); font-weight: 600; }
+.scroll { overflow-x: auto; max-width: 100%; }
+figure { margin: 1em 0 1.6em; }
+figure img { max-width: 100%; height: auto; border: 1px solid var(--rule); }
+figcaption { color: var(--muted); font-size: .9em; max-width: 90ch; }
+details { margin: .4em 0 1em; }
+summary { cursor: pointer; color: var(--accent); }
+.muted { color: var(--muted); }
+"""
+
+
+# --------------------------------------------------------------------------------------------
+# Public
+# --------------------------------------------------------------------------------------------
+
+
+def render_report(result: RunResult, figures: Mapping[str, bytes]) -> str:
+    """The run's report as one self-contained HTML page.
+
+    Parameters
+    ----------
+    result : RunResult
+        From :func:`regional.pipeline.run`; ``prediction`` and ``screening`` may be None (their
+        sections then say why they are empty).
+    figures : mapping of str -> bytes
+        PNG images by figure name (see :func:`regional.report.make_figures`); each is embedded
+        once as a base64 data URI beside its section's tables (unknown names go to the figures
+        section).
+
+    Returns
+    -------
+    str
+        The HTML document (UTF-8 text).
+    """
+    placed = _place_figures(figures)
+    sections = {
+        "summary": _summary(result),
+        "cautions": _cautions(),
+        "inputs": _inputs(result),
+        "calibration": _calibration(result),
+        "transfer": _transfer(result),
+        "regression": _regression(result),
+        "figures": _figures_section(placed["figures"]),
+        "ungauged": _ungauged(result) + placed["ungauged"],
+        "screening": _screening(result) + placed["screening"],
+        "warnings": _warnings(result),
+        "methods": _methods(),
+        "run": _run_information(result),
+    }
+    body = "\n".join(_section(key, title, sections[key]) for key, title in SECTIONS)
+    return _page(result.settings.region.name, body)
+
+
+# --------------------------------------------------------------------------------------------
+# Page and building blocks
+# --------------------------------------------------------------------------------------------
+
+
+def _page(name: str, body: str) -> str:
+    title = f"regional report: {name}"
+    navigation = "".join(f'<a href="#{key}">{_esc(text)}</a>' for key, text in SECTIONS)
+    return (
+        "<!DOCTYPE html>\n"
+        '<html lang="en">\n<head>\n<meta charset="utf-8">\n'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
+        f"<title>{_esc(title)}</title>\n<style>{STYLE}</style>\n</head>\n<body>\n"
+        f"<header><h1>{_esc(name)}</h1><p>Flows at ungauged basins by parameter transfer, with "
+        "leave-one-out skill. Report of one run of regional.</p></header>\n"
+        f"<nav>{navigation}</nav>\n<main>\n{body}\n</main>\n</body>\n</html>\n"
+    )
+
+
+def _section(key: str, title: str, parts: Sequence[str]) -> str:
+    return f'<section id="{key}">\n<h2>{_esc(title)}</h2>\n' + "\n".join(parts) + "\n</section>"
+
+
+def _esc(value: object) -> str:
+    return html.escape(str(value), quote=True)
+
+
+def _p(text: str, *, css: str | None = None) -> str:
+    attribute = f' class="{css}"' if css else ""
+    return f"<p{attribute}>{_esc(text)}</p>"
+
+
+def _h3(text: str) -> str:
+    return f"<h3>{_esc(text)}</h3>"
+
+
+def _list(items: Iterable[str]) -> str:
+    return "<ul>" + "".join(f"<li>{_esc(item)}</li>" for item in items) + "</ul>"
+
+
+def _details(label: str, content: str) -> str:
+    return f"<details><summary>{_esc(label)}</summary>{content}</details>"
+
+
+def _fmt(value: object) -> str:
+    """A table cell as text: numbers to three significant digits, missing as a dash."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return DASH
+    if isinstance(value, bool | np.bool_):
+        return "yes" if value else "no"
+    if isinstance(value, numbers.Integral):
+        return str(int(value))
+    if isinstance(value, numbers.Real):
+        number = float(value)
+        if math.isnan(number):
+            return DASH
+        if math.isinf(number):
+            return "inf" if number > 0 else "-inf"
+        if number == 0:
+            return "0"
+        if abs(number) >= 1000:
+            return f"{number:,.0f}"
+        return f"{number:.3g}"
+    if isinstance(value, pd.Timestamp):
+        return DASH if pd.isna(value) else str(value.date())
+    if value is pd.NaT:
+        return DASH
+    return str(value)
+
+
+def _table(
+    frame: pd.DataFrame,
+    *,
+    caption: str | None = None,
+    index: bool = False,
+    chosen: Sequence[bool] | None = None,
+    flag_column: str | None = None,
+) -> str:
+    """An HTML table of a frame, every cell escaped; numbers right-aligned.
+
+    ``chosen`` marks rows to highlight; cells of ``flag_column`` that read "no" are marked.
+    """
+    frame = frame.reset_index() if index else frame
+    head = "".join(f"<th>{_esc(column)}</th>" for column in frame.columns)
+    rows = []
+    marks = list(chosen) if chosen is not None else [False] * len(frame)
+    for mark, values in zip(marks, frame.itertuples(index=False, name=None), strict=True):
+        cells = []
+        for column, value in zip(frame.columns, values, strict=True):
+            text = _fmt(value)
+            css = _cell_class(value, column == flag_column and text == "no")
+            cells.append(f"<td{css}>{_esc(text)}</td>")
+        opening = '<tr class="chosen">' if mark else "<tr>"
+        rows.append(opening + "".join(cells) + "</tr>")
+    title = f"<caption>{_esc(caption)}</caption>" if caption else ""
+    return (
+        f'<div class="scroll"><table>{title}<thead><tr>{head}</tr></thead>'
+        f"<tbody>{''.join(rows)}</tbody></table></div>"
+    )
+
+
+def _cell_class(value: object, flagged: bool) -> str:
+    if flagged:
+        return ' class="flag"'
+    numeric = isinstance(value, numbers.Real) and not isinstance(value, bool | np.bool_)
+    return ' class="num"' if numeric else ""
+
+
+def _key_values(pairs: Sequence[tuple[str, object]], *, caption: str | None = None) -> str:
+    frame = pd.DataFrame({"item": [k for k, _ in pairs], "value": [_fmt(v) for _, v in pairs]})
+    return _table(frame, caption=caption)
+
+
+def _period(period) -> str:
+    if period is None:
+        return "none"
+    start, end = period
+    return f"{_fmt(pd.Timestamp(start))} to {_fmt(pd.Timestamp(end))}"
+
+
+def _names(result: RunResult) -> pd.Series | None:
+    """The basins layer's ``name`` column when it has one."""
+    basins = result.region.basins
+    return basins["name"].astype(str) if "name" in basins.columns else None
+
+
+def _with_names(result: RunResult, frame: pd.DataFrame) -> pd.DataFrame:
+    """``basin_id`` (and ``name`` when known) as the first columns of a basin-indexed frame."""
+    out = frame.copy()
+    out.index = out.index.astype(str)
+    names = _names(result)
+    if names is not None and "name" not in out.columns:
+        out.insert(0, "name", names.reindex(out.index).to_numpy())
+    out.index.name = "basin_id"
+    return out.reset_index()
+
+
+def _median_nse(result: RunResult, model: str, method: str) -> float:
+    rows = result.summary[
+        (result.summary["model"] == model) & (result.summary["method"] == method)
+    ]
+    return float(rows["median_nse"].iloc[0]) if len(rows) else float("nan")
+
+
+# --------------------------------------------------------------------------------------------
+# Figures
+# --------------------------------------------------------------------------------------------
+
+
+def _place_figures(figures: Mapping[str, bytes]) -> dict[str, list[str]]:
+    placed: dict[str, list[str]] = {"figures": [], "ungauged": [], "screening": []}
+    for name, png in figures.items():
+        placed[FIGURE_SECTIONS.get(name, "figures")].append(_figure(name, png))
+    return placed
+
+
+def _figure(name: str, png: bytes) -> str:
+    caption = FIGURE_CAPTIONS.get(name, name.replace("_", " "))
+    data = base64.b64encode(bytes(png)).decode("ascii")
+    return (
+        f'<figure id="figure-{_esc(name)}"><img src="data:image/png;base64,{data}" '
+        f'alt="{_esc(caption)}"><figcaption>{_esc(caption)}</figcaption></figure>'
+    )
+
+
+def _figures_section(figures: list[str]) -> list[str]:
+    if not figures:
+        return [_p("No figures were drawn for this run.")]
+    return figures
+
+
+# --------------------------------------------------------------------------------------------
+# Sections
+# --------------------------------------------------------------------------------------------
+
+
+def _summary(result: RunResult) -> list[str]:
+    region = result.region
+    model, method = result.chosen_model, result.chosen_method
+    chosen = _median_nse(result, model, method)
+    upper = _median_nse(result, model, CALIBRATED)
+    benchmark = _median_nse(result, model, MEDIAN)
+    text = (
+        f"{result.settings.region.name}: {len(region.basins)} basins "
+        f"({'outlet points' if region.is_point else 'polygons'}), {len(region.gauged)} gauged "
+        f"and {len(region.ungauged)} ungauged. The estimates use the {model} model with "
+        f"{method} transfer: its median leave-one-out NSE is {_fmt(chosen)}, against "
+        f"{_fmt(upper)} for the basins' own calibrated parameters (the upper bound) and "
+        f"{_fmt(benchmark)} for the regional median parameters (the benchmark)."
+    )
+    text += " " + _verdict(chosen, upper, benchmark, method)
+    prediction = result.prediction
+    if prediction is not None:
+        table = prediction.table
+        flagged = int((~table["applicable"].astype(bool)).sum())
+        text += (
+            f" Flows were estimated at {len(table)} ungauged basins with {prediction.level:.0%} "
+            f"bounds; {flagged} of them lie outside what the gauged basins support and are "
+            "flagged."
+        )
+    return [_p(text)]
+
+
+def _verdict(chosen: float, upper: float, benchmark: float, method: str) -> str:
+    if not np.isfinite(chosen) or not np.isfinite(benchmark):
+        return ""
+    if method == MEDIAN or chosen <= benchmark:
+        return (
+            "No transfer method beat the median benchmark: the attributes and locations add no "
+            "skill here, so treat the estimates as regional averages."
+        )
+    return (
+        f"It gains {_fmt(chosen - benchmark)} in median NSE over the benchmark and stays "
+        f"{_fmt(upper - chosen)} below the upper bound."
+    )
+
+
+def _cautions() -> list[str]:
+    return [
+        '<div class="cautions">',
+        _list(
+            [
+                "Flows estimated at ungauged sites carry large uncertainty: no observation at the "
+                "site has checked them. Their skill is what the leave-one-out test measured at "
+                "gauged basins of this region, and it may be lower at a site unlike them.",
+                "Show the validation skill and the bounds beside every estimate you pass on; do "
+                "not quote an estimate without them, and read the applicability flag first.",
+                "Design decisions that affect safety (floods, dam safety, water supply) must "
+                "follow local codes and licensed professional practice; these estimates do not "
+                "replace them.",
+            ]
+        ),
+        "</div>",
+    ]
+
+
+def _inputs(result: RunResult) -> list[str]:
+    settings, region = result.settings, result.region
+    model_settings, transfer = settings.model, settings.transfer
+    crs = region.basins.crs
+    pairs = [
+        ("config", settings.path),
+        ("basins", f"{settings.basins.path} (layer {settings.basins.layer or 'first'})"),
+        ("daily series", settings.series.path),
+        ("geometry", "outlet points with area" if region.is_point else "polygons"),
+        ("coordinate reference system", crs.to_string() if crs is not None else "none"),
+        ("basins", len(region.basins)),
+        ("gauged basins", len(region.gauged)),
+        ("ungauged basins", len(region.ungauged)),
+        ("common daily period", _period((region.dates[0], region.dates[-1]))),
+        ("calibration period", _period(region.calibration)),
+        ("validation period", _period(model_settings.validation)),
+        ("warm-up (days, not scored)", model_settings.warmup_days),
+        ("models", ", ".join(result.runs)),
+        ("calibration objective", model_settings.objective),
+        ("snow store", "on" if _snow_on(result) else "off"),
+        ("transfer methods", ", ".join(transfer.methods)),
+        ("donors per target", transfer.donors),
+        ("donor combination", transfer.combine),
+        ("overlap share excluding a donor", transfer.exclude_overlap),
+        ("attributes used", ", ".join(result.attributes)),
+    ]
+    parts = [_key_values(pairs)]
+    parts.append(_h3("Attributes used: range over all basins"))
+    ranges = region.attributes[list(result.attributes)].agg(["min", "median", "max"]).T
+    ranges.index.name = "attribute"
+    parts.append(_table(ranges, index=True))
+    if region.notes:
+        parts += [_h3("Notes from loading the region"), _list(region.notes)]
+    return parts
+
+
+def _snow_on(result: RunResult) -> bool:
+    return any(run.context.temp_c is not None for run in result.runs.values())
+
+
+def _calibration(result: RunResult) -> list[str]:
+    model_settings = result.settings.model
+    parts = [
+        _p(
+            f"Each gauged basin was calibrated on {_period(result.region.calibration)} "
+            f"(objective {model_settings.objective}) and scored on the validation period "
+            f"{_period(model_settings.validation)} (split-sample test), warm-up excluded."
+        )
+    ]
+    for model, run in result.runs.items():
+        calibration = run.calibration
+        names = [p.name for p in get_model(model).parameters if p.name in calibration.columns]
+        columns = [c for c in (*names, *DISTRIBUTION_COLUMNS) if c in calibration.columns]
+        spread = calibration[columns].astype(float).describe(percentiles=[0.25, 0.5, 0.75]).T
+        spread = spread.rename(columns={"25%": "q25", "50%": "median", "75%": "q75"})
+        spread = spread[["count", "min", "q25", "median", "q75", "max"]]
+        spread.index.name = "quantity"
+        parts.append(_h3(f"Model {model}: distribution over {len(calibration)} gauged basins"))
+        parts.append(_table(spread, index=True))
+        per_basin = _with_names(result, calibration.drop(columns=["objective"], errors="ignore"))
+        parts.append(_details(f"Per basin ({model})", _table(per_basin)))
+    return parts
+
+
+def _transfer(result: RunResult) -> list[str]:
+    parts = [
+        _p(
+            "Every gauged basin was treated as ungauged in turn: each method was refit without "
+            "it (and without donors sharing much of its area), its flow simulated and scored "
+            "against its observations over the evaluation period. 'calibrated' uses the "
+            "basin's own parameters (the upper bound); 'median' the regional median parameters "
+            "(the benchmark every method should beat)."
+        )
+    ]
+    summary = _summary_with_coverage(result)
+    for model in result.runs:
+        rows = summary[summary["model"] == model].drop(columns=["model"])
+        chosen = (rows["method"] == result.chosen_method) & (model == result.chosen_model)
+        if len(result.runs) > 1:
+            parts.append(_h3(f"Model {model}"))
+        parts.append(
+            _table(rows, caption="Highlighted: the method used for estimates.", chosen=chosen)
+        )
+        excluded = result.runs[model].loo.excluded
+        if excluded:
+            parts.append(
+                _p(
+                    f"{len(excluded)} gauged basins had donors left out of their folds for "
+                    "sharing area with them (nested or overlapping basins).",
+                    css="muted",
+                )
+            )
+    return parts
+
+
+def _summary_with_coverage(result: RunResult) -> pd.DataFrame:
+    summary = result.summary
+    coverage = getattr(result.prediction, "coverage", None)
+    if coverage is None or not len(coverage):
+        return summary
+    extra = coverage[["model", "method", "coverage", "level"]].rename(
+        columns={"level": "nominal_level"}
+    )
+    return summary.merge(extra, on=["model", "method"], how="left")
+
+
+def _regression(result: RunResult) -> list[str]:
+    parts = [
+        _p(
+            "Ordinary least squares of each (transformed) parameter on standardised attributes, "
+            "fit on every gauged basin, attributes chosen by forward selection on the "
+            "leave-one-out prediction error (PRESS)."
+        )
+    ]
+    for model, run in result.runs.items():
+        regression = run.regression
+        parts.append(_h3(f"Model {model}"))
+        fit = pd.DataFrame(
+            {
+                "transform": pd.Series(regression.transforms_),
+                "terms": pd.Series(
+                    {p: ", ".join(t) or "intercept only" for p, t in regression.selected_.items()}
+                ),
+                "R2": regression.r2_,
+                "adjusted R2": regression.adj_r2_,
+                "RSE (transformed units)": regression.rse_,
+                "basins": regression.n_train_,
+                "residual dof": regression.dof_resid_,
+            }
+        )
+        fit.index.name = "parameter"
+        parts.append(_table(fit, index=True))
+        coefficients = regression.coefficients_.drop(columns=["vif_warning"], errors="ignore")
+        parts.append(
+            _table(
+                coefficients,
+                caption="Coefficients: estimate and std_error per standard deviation of the "
+                "attribute; *_raw per attribute unit; p two-sided.",
+            )
+        )
+        parts.append(_p(_vif_sentence(regression.coefficients_)))
+        if regression.dropped_:
+            parts.append(
+                _p("Constant attributes left out: " + ", ".join(map(str, regression.dropped_)))
+            )
+    return parts
+
+
+def _vif_sentence(coefficients: pd.DataFrame) -> str:
+    high = coefficients[coefficients["vif_warning"].astype(bool)]
+    if high.empty:
+        return "Collinearity: no variance inflation factor above 10."
+    terms = ", ".join(
+        f"{row.term} ({row.parameter}, VIF {_fmt(row.vif)})" for row in high.itertuples()
+    )
+    return (
+        f"Collinearity warning: VIF above 10 for {terms}; these coefficients are unstable, "
+        "although predictions inside the attribute range may still be sound."
+    )
+
+
+def _ungauged(result: RunResult) -> list[str]:
+    prediction = result.prediction
+    if prediction is None:
+        why = (
+            "the region has no ungauged basins"
+            if not result.region.ungauged
+            else "prediction did not run for this result"
+        )
+        return [_p(f"No estimates at ungauged basins: {why}.")]
+    table = prediction.table
+    skill = _median_nse(result, prediction.model, prediction.method)
+    parts = [
+        _p(
+            f"Estimates from the {prediction.model} model with {prediction.method} transfer "
+            f"(median leave-one-out NSE {_fmt(skill)}). Parameters carry their interval "
+            f"(low-high); daily flows carry {prediction.level:.0%} bounds built from the "
+            f"leave-one-out errors (split-conformal prediction){_coverage_clause(prediction)}. "
+            "A basin whose attributes lie outside what the gauged basins cover is flagged "
+            "'applicable: no' with the reason."
+        )
+    ]
+    parts.append(_h3("Coverage of the bounds in leave-one-out"))
+    parts.append(_coverage_table(prediction))
+    parts.append(_h3("Parameters and flow statistics (mm/day unless m3s)"))
+    parts.append(_table(_estimate_table(result), flag_column="applicable"))
+    months = [c for c in MONTH_COLUMNS if c in table.columns]
+    if months:
+        regime = table[months].rename(columns=lambda c: c[6:8])
+        parts.append(_details("Monthly mean flow (mm/day)", _table(_with_names(result, regime))))
+    per_method = _per_method_parameters(result)
+    if per_method is not None:
+        parts.append(_details("Parameters from every method", _table(per_method)))
+    error_model = getattr(prediction, "error_model", None)
+    if error_model is not None and len(error_model):
+        parts.append(_details("Error model of the bounds", _table(error_model)))
+    if prediction.notes:
+        parts += [_h3("Notes"), _list(prediction.notes)]
+    return parts
+
+
+def _coverage_clause(prediction) -> str:
+    coverage = prediction.coverage
+    if coverage is None or not len(coverage):
+        return ""
+    rows = coverage[
+        (coverage["model"] == prediction.model) & (coverage["method"] == prediction.method)
+    ]
+    if rows.empty:
+        return ""
+    return (
+        f", which held {_fmt(float(rows['coverage'].iloc[0]))} of the observed days in "
+        f"leave-one-out against the nominal {_fmt(float(prediction.level))}"
+    )
+
+
+def _coverage_table(prediction) -> str:
+    coverage = prediction.coverage
+    if coverage is None or not len(coverage):
+        return _p("No coverage was measured.")
+    frame = coverage.copy()
+    frame["coverage_minus_level"] = frame["coverage"] - frame["level"]
+    chosen = (frame["method"] == prediction.method) & (frame["model"] == prediction.model)
+    return _table(
+        frame,
+        caption="Share of observed days inside the bounds when each gauged basin was left out, "
+        "beside the nominal level.",
+        chosen=chosen,
+    )
+
+
+def _estimate_table(result: RunResult) -> pd.DataFrame:
+    prediction = result.prediction
+    table = prediction.table
+    names = [p.name for p in get_model(prediction.model).parameters if p.name in table.columns]
+    out = pd.DataFrame(index=table.index)
+    if "method" in table.columns:
+        out["method"] = table["method"]
+        out["loo_median_nse"] = [
+            _median_nse(result, prediction.model, str(m)) for m in table["method"]
+        ]
+    for name in names:
+        out[name] = [
+            _with_interval(v, lo, hi)
+            for v, lo, hi in zip(
+                table[name],
+                table.get(f"{name}_low", pd.Series(np.nan, index=table.index)),
+                table.get(f"{name}_high", pd.Series(np.nan, index=table.index)),
+                strict=True,
+            )
+        ]
+    for column in STATISTIC_COLUMNS:
+        if column in table.columns:
+            out[column] = table[column]
+    out["applicable"] = table["applicable"].astype(bool)
+    out["reason"] = table["reason"].fillna("").astype(str)
+    return _with_names(result, out)
+
+
+def _with_interval(value: float, low: float, high: float) -> str:
+    if not (np.isfinite(low) and np.isfinite(high)):
+        return _fmt(value)
+    return f"{_fmt(value)} ({_fmt(low)}{DASH}{_fmt(high)})"
+
+
+def _per_method_parameters(result: RunResult) -> pd.DataFrame | None:
+    prediction = result.prediction
+    table = prediction.table
+    names = [p.name for p in get_model(prediction.model).parameters]
+    methods = [m for m in result.runs[prediction.model].loo.methods if m != CALIBRATED]
+    out = pd.DataFrame(index=table.index)
+    for method in methods:
+        for name in names:
+            column = f"{name}_{method}"
+            if column in table.columns:
+                out[column] = [
+                    _with_interval(v, lo, hi)
+                    for v, lo, hi in zip(
+                        table[column],
+                        table.get(f"{column}_low", pd.Series(np.nan, index=table.index)),
+                        table.get(f"{column}_high", pd.Series(np.nan, index=table.index)),
+                        strict=True,
+                    )
+                ]
+    return _with_names(result, out) if len(out.columns) else None
+
+
+def _screening(result: RunResult) -> list[str]:
+    screening = result.screening
+    if screening is None:
+        why = (
+            "the region has no ungauged candidate basins"
+            if not result.region.ungauged
+            else "screening did not run for this result (add a [screening] section to the "
+            "config or run 'regional screen')"
+        )
+        return [_p(f"No candidate gauge sites were ranked: {why}.")]
+    table = screening.table.sort_values("rank")
+    parts = [
+        _p(
+            "Candidate sites ranked by how much a gauge there would reduce the average "
+            "prediction variance over the region's ungauged basins, combined with the spread "
+            "of the donors at the site. The reason column says why in plain words."
+        ),
+        _table(_with_names(result, table)),
+    ]
+    if screening.notes:
+        parts += [_h3("Notes"), _list(screening.notes)]
+    return parts
+
+
+def _warnings(result: RunResult) -> list[str]:
+    groups = [("Run", tuple(result.warnings))]
+    if result.prediction is not None:
+        groups.append(("Prediction", tuple(result.prediction.notes)))
+    if result.screening is not None:
+        groups.append(("Screening", tuple(result.screening.notes)))
+    if not any(messages for _, messages in groups):
+        return [_p("No warnings were raised.")]
+    parts = []
+    for label, messages in groups:
+        if messages:
+            parts += [_h3(f"{label} ({len(messages)})"), _list(messages)]
+    return parts
+
+
+def _methods() -> list[str]:
+    paragraphs = [
+        "Storage model: a linear reservoir, dS/dt = P - E - kS with flow Q = kS (S in mm, k the "
+        "storage constant in 1/day), integrated exactly over each day under constant input; "
+        "actual evapotranspiration is limited by the water available. When temperature is "
+        "given, a degree-day snow store sits in front: precipitation falls as snow below a "
+        "threshold temperature and melts at a factor times the excess over a melt threshold.",
+        "Calibration: per gauged basin, the objective (KGE by default) is maximised on the "
+        "calibration period after a warm-up, and the optimum scored on a separate validation "
+        "period (split-sample test, Klemes 1986). NSE after Nash and Sutcliffe (1970); KGE and "
+        "its correlation, variability and bias parts after Gupta et al. (2009).",
+        "Transfer: regression of transformed parameters on standardised attributes (forward "
+        "selection by PRESS, Allen 1974; prediction intervals and VIF, Kutner et al. 2005); "
+        "similarity (nearest gauged basins in attribute space) and proximity (nearest by "
+        "distance) with inverse-distance weights; the regional median as benchmark. The "
+        "comparison of these families follows Oudin et al. (2008).",
+        "Leave-one-out: each gauged basin is left out in turn, every method refit on the "
+        "others and scored on the left-out basin's observations.",
+        "Bounds at ungauged basins: split-conformal prediction (Vovk et al. 2005; Lei et al. "
+        "2018) on the leave-one-out errors of log flow, by flow class where the data allow; "
+        "their coverage is checked on basins they were not built from.",
+        "Applicability: a target is flagged when an attribute lies outside the donors' range, "
+        "when its Mahalanobis (1936) distance to the donors exceeds the chi-square 95% "
+        "quantile, or when its nearest donor is farther than any donor's nearest neighbour.",
+        "Screening: the reduction in average prediction variance from adding a candidate to "
+        "the regression's design, computed by a rank-one update of the inverse "
+        "(Sherman and Morrison 1950), combined with the donors' spread at the candidate.",
+    ]
+    return [*(_p(text) for text in paragraphs), _h3("References"), _list(REFERENCES)]
+
+
+def _run_information(result: RunResult) -> list[str]:
+    timings = pd.DataFrame(
+        {
+            "stage": list(result.timings) + ["total"],
+            "seconds": [*result.timings.values(), sum(result.timings.values())],
+        }
+    )
+    versions = [("python", platform.python_version())]
+    versions += [(name, _version(name)) for name in PACKAGES]
+    return [
+        _p(f"Settings: {result.settings.path}"),
+        _h3("Timings"),
+        _table(timings),
+        _h3("Software"),
+        _key_values(versions),
+    ]
+
+
+def _version(name: str) -> str:
+    try:
+        return importlib.metadata.version(name)
+    except importlib.metadata.PackageNotFoundError:
+        return "not installed"
