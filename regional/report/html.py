@@ -684,21 +684,21 @@ def _estimate_table(result: RunResult) -> pd.DataFrame:
             _median_nse(result, prediction.model, str(m)) for m in table["method"]
         ]
     for name in names:
-        out[name] = [
-            _with_interval(v, lo, hi)
-            for v, lo, hi in zip(
-                table[name],
-                table.get(f"{name}_low", pd.Series(np.nan, index=table.index)),
-                table.get(f"{name}_high", pd.Series(np.nan, index=table.index)),
-                strict=True,
-            )
-        ]
+        out[name] = _interval_column(table, name)
     for column in STATISTIC_COLUMNS:
         if column in table.columns:
             out[column] = table[column]
     out["applicable"] = table["applicable"].astype(bool)
     out["reason"] = table["reason"].fillna("").astype(str)
     return _with_names(result, out)
+
+
+def _interval_column(table: pd.DataFrame, column: str) -> list[str]:
+    """Cells "value (low-high)" from ``column`` and its ``_low`` / ``_high`` columns."""
+    missing = pd.Series(np.nan, index=table.index)
+    low = table.get(f"{column}_low", missing)
+    high = table.get(f"{column}_high", missing)
+    return [_with_interval(*values) for values in zip(table[column], low, high, strict=True)]
 
 
 def _with_interval(value: float, low: float, high: float) -> str:
@@ -717,15 +717,7 @@ def _per_method_parameters(result: RunResult) -> pd.DataFrame | None:
         for name in names:
             column = f"{name}_{method}"
             if column in table.columns:
-                out[column] = [
-                    _with_interval(v, lo, hi)
-                    for v, lo, hi in zip(
-                        table[column],
-                        table.get(f"{column}_low", pd.Series(np.nan, index=table.index)),
-                        table.get(f"{column}_high", pd.Series(np.nan, index=table.index)),
-                        strict=True,
-                    )
-                ]
+                out[column] = _interval_column(table, column)
     return _with_names(result, out) if len(out.columns) else None
 
 
