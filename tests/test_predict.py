@@ -1,0 +1,385 @@
+"""Tests of regional.predict: statistics, conformal bounds, applicability, the demo prediction."""
+
+from __future__ import annotations
+
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+from scipy.spatial import distance
+
+from regional import pipeline
+from regional.errors import InputError, InputWarning
+from regional.predict import (
+    FLOW_COLUMNS,
+    OFFSET_FRACTION,
+    STATISTIC_COLUMNS,
+    applicability,
+    conformal_bounds,
+    fit_transfers,
+    flow_statistics,
+    loo_coverage,
+    method_flows,
+    predict_ungauged,
+)
+
+DEMO = Path(__file__).resolve().parents[1] / "demo_region"
+
+
+@pytest.fixture(scope="module")
+def demo_result():
+    """One full run of the demo region (about 5 s), shared by this module's tests."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", InputWarning)
+        return pipeline.run(DEMO)
+
+
+@pytest.fixture(scope="module")
+def prediction(demo_result):
+    return predict_ungauged(demo_result)
+
+
+def _daily(values: np.ndarray, start: str = "2001-01-01", columns=("A",)) -> pd.DataFrame:
+    values = np.asarray(values, dtype=float)
+    if values.ndim == 1:
+        values = values[:, None]
+    dates = pd.date_range(start, periods=len(values), freq="D")
+    return pd.DataFrame(values, index=dates, columns=list(columns))
+
+
+# --------------------------------------------------------------------------------------------
+# Flow statistics
+
+
+def test_flow_duration_percentiles_on_a_known_series():
+    # 1..101 mm/day: the type-7 sample percentile p is 1 + p (Hyndman and Fan 1996, definition
+    # 7, numpy's default linear interpolation); Qx is the flow exceeded x% of the time.
+    flow = _daily(np.arange(1.0, 102.0))
+    table = flow_statistics(flow)
+    assert table.loc["A", "q5_mm"] == pytest.approx(96.0)
+    assert table.loc["A", "q50_mm"] == pytest.approx(51.0)
+    assert table.loc["A", "q95_mm"] == pytest.approx(6.0)
+    assert table.loc["A", "mean_flow_mm"] == pytest.approx(51.0)
+
+
+def test_flow_duration_percentiles_match_numpy():
+    rng = np.random.default_rng(4)
+    values = rng.gamma(0.8, 2.0, size=(3 * 365, 3))
+    values[10:20, 1] = np.nan
+    flow = _daily(values, columns=("A", "B", "C"))
+    table = flow_statistics(flow)
+    for j, basin in enumerate(flow.columns):
+        column = values[:, j][np.isfinite(values[:, j])]
+        # reference: numpy np.percentile (linear interpolation, Hyndman and Fan 1996 type 7)
+        assert table.loc[basin, "q5_mm"] == pytest.approx(np.percentile(column, 95))
+        assert table.loc[basin, "q50_mm"] == pytest.approx(np.quantile(column, 0.5))
+        assert table.loc[basin, "q95_mm"] == pytest.approx(np.percentile(column, 5))
+
+
+def test_seven_day_minimum_matches_pandas_rolling_on_complete_years():
+    rng = np.random.default_rng(7)
+    values = rng.gamma(1.2, 1.5, size=4 * 365 + 1)  # 2001-2004 (2004 is a leap year)
+    values[800] = np.nan  # 2003 becomes incomplete
+    flow = _daily(values)
+    result = flow_statistics(flow).loc["A", "min7_mean_mm"]
+    # reference: pandas rolling(7).mean() (trailing window, labelled on its last day),
+    # annual minima of complete calendar years only (2003 has a gap)
+    rolling = pd.Series(values, index=flow.index).rolling(7).mean()
+    minima = [rolling[str(year)].min() for year in (2001, 2002, 2004)]
+    assert result == pytest.approx(np.mean(minima))
+    assert flow_statistics(flow.iloc[:300]).loc["A", "min7_mean_mm"] != pytest.approx(
+        result
+    )  # a record shorter than a year has no complete year
+    assert np.isnan(flow_statistics(flow.iloc[:300]).loc["A", "min7_mean_mm"])
+
+
+def test_monthly_means_and_area_conversion():
+    dates = pd.date_range("2001-01-01", "2002-12-31", freq="D")
+    flow = pd.DataFrame({"A": dates.month.to_numpy(dtype=float)}, index=dates)
+    table = flow_statistics(flow, area_km2=pd.Series({"A": 172.8}))
+    for month in range(1, 13):
+        assert table.loc["A", f"flow_m{month:02d}_mm"] == pytest.approx(month)
+    # 1 m3/s over 1 km2 is 86.4 mm/day (86 400 s x 1 m3/s / 1e6 m2 x 1000 mm/m; unit arithmetic)
+    assert table.loc["A", "mean_flow_m3s"] == pytest.approx(
+        table.loc["A", "mean_flow_mm"] * 172.8 / 86.4
+    )
+
+
+def test_flow_statistics_rejects_a_table_without_dates():
+    with pytest.raises(InputError, match="indexed by date"):
+        flow_statistics(pd.DataFrame({"A": [1.0, 2.0]}))
+
+
+# --------------------------------------------------------------------------------------------
+# Conformal error model
+
+
+def _series_pair(residuals: dict[str, np.ndarray], sim_mm: float = 2.0):
+    """Observed/simulated tables whose log residuals are exactly the given values."""
+    offset = OFFSET_FRACTION * sim_mm  # constant simulated flow: c = 1% of it
+    n = max(len(r) for r in residuals.values())
+    obs = pd.DataFrame(np.nan, index=range(n), columns=list(residuals))
+    for basin, values in residuals.items():
+        obs.loc[: len(values) - 1, basin] = (sim_mm + offset) * np.exp(values) - offset
+    return obs, pd.DataFrame(sim_mm, index=obs.index, columns=obs.columns)
+
+
+def test_conformal_quantiles_of_normal_residuals():
+    rng = np.random.default_rng(11)
+    sigma = 0.4
+    obs, sim = _series_pair({f"B{i}": rng.normal(0.0, sigma, 4000) for i in range(12)})
+    model = conformal_bounds(obs, sim, level=0.9, n_classes=1)
+    # reference: scipy.stats.norm.ppf(0.95) = 1.645 sigma for a central 90% range
+    expected = stats.norm.ppf(0.95) * sigma
+    assert model.upper_q[0] == pytest.approx(expected, rel=0.03)
+    assert model.lower_q[0] == pytest.approx(-expected, rel=0.03)
+
+
+def test_finite_sample_correction_gives_unbounded_bounds_for_tiny_samples():
+    # split conformal: the ceil((n+1)(1+L)/2)-th of n residuals; beyond n the bound is
+    # infinite (Lei et al. 2018, J. Am. Stat. Assoc. 113, 1094-1111, section 2.2)
+    obs, sim = _series_pair({"A": np.array([0.1, -0.2]), "B": np.array([0.3])})
+    model = conformal_bounds(obs, sim, level=0.9, n_classes=1)
+    assert np.isinf(model.upper_q[0]) and np.isinf(model.lower_q[0])
+    low, high = model.bounds(sim)
+    assert (low.to_numpy() == 0.0).all() and np.isinf(high.to_numpy()).all()
+
+
+def test_every_basin_weighs_the_same_whatever_its_record_length():
+    # basin A: 1000 days at +1, basin B: 10 days at -1; with equal basin weights the pooled
+    # distribution puts mass 1/2 on each value, so the central 50% range spans -1 .. +1
+    # (day weights would put 99% of the mass on +1; hand computation)
+    obs, sim = _series_pair({"A": np.full(1000, 1.0), "B": np.full(10, -1.0)})
+    model = conformal_bounds(obs, sim, level=0.5, n_classes=1)
+    assert model.lower_q[0] == pytest.approx(-1.0)
+    assert model.upper_q[0] == pytest.approx(1.0)
+
+
+def test_bounds_contain_the_simulation_and_are_non_negative():
+    rng = np.random.default_rng(3)
+    sim = pd.DataFrame(rng.gamma(0.7, 1.0, size=(500, 15)))
+    obs = sim * np.exp(rng.normal(0.3, 0.2, size=sim.shape))  # biased: every residual > 0
+    model = conformal_bounds(obs, sim, level=0.9)
+    assert (model.lower_q <= 0).all() and (model.upper_q >= 0).all()
+    low, high = model.bounds(sim)
+    assert (low.to_numpy() >= 0).all()
+    assert (low.to_numpy() <= sim.to_numpy()).all() and (sim.to_numpy() <= high.to_numpy()).all()
+
+
+def test_level_outside_zero_one_is_refused():
+    obs, sim = _series_pair({"A": np.zeros(3)})
+    with pytest.raises(InputError, match="strictly between 0 and 1"):
+        conformal_bounds(obs, sim, level=90)
+
+
+# --------------------------------------------------------------------------------------------
+# Applicability
+
+
+@pytest.fixture
+def cloud() -> pd.DataFrame:
+    rng = np.random.default_rng(21)
+    values = rng.normal(size=(40, 3)) * [0.2, 5.0, 30.0] + [0.8, 10.0, 400.0]
+    index = [f"G{i:02d}" for i in range(40)]
+    return pd.DataFrame(values, index=index, columns=["aridity", "slope_mean", "elevation_mean"])
+
+
+def test_target_far_outside_is_flagged_with_the_attribute_named(cloud):
+    columns = list(cloud.columns)
+    targets = pd.DataFrame(
+        [cloud.mean().to_numpy(), cloud.mean().to_numpy()],
+        index=["inside", "far"],
+        columns=columns,
+    )
+    targets.loc["far", "aridity"] = cloud["aridity"].max() + 10 * cloud["aridity"].std()
+    table = applicability(cloud, targets, columns)
+    assert bool(table.loc["inside", "applicable"]) and table.loc["inside", "reason"] == ""
+    assert not bool(table.loc["far", "applicable"])
+    assert "aridity" in table.loc["far", "reason"]
+    assert "above the donors' range" in table.loc["far", "reason"]
+    assert table.loc["far", "outside_range"] == "aridity"
+
+
+def test_off_correlation_target_is_caught_by_mahalanobis_only(cloud):
+    columns = list(cloud.columns)
+    cloud = cloud.copy()
+    cloud["slope_mean"] = 10.0 + 20.0 * (cloud["aridity"] - 0.8) + 0.1 * cloud["slope_mean"] / 5
+    # high aridity with low slope, though the donors' slope rises with aridity
+    target = pd.DataFrame(
+        {
+            "aridity": [cloud["aridity"].quantile(0.8)],
+            "slope_mean": [cloud["slope_mean"].quantile(0.2)],
+            "elevation_mean": [cloud["elevation_mean"].median()],
+        },
+        index=["twisted"],
+    )
+    inside_ranges = (target.iloc[0] >= cloud.min()) & (target.iloc[0] <= cloud.max())
+    assert inside_ranges.all()  # the range test cannot see it
+    table = applicability(cloud, target, columns)
+    assert not bool(table.loc["twisted", "applicable"])
+    assert "Mahalanobis" in table.loc["twisted", "reason"]
+    assert table.loc["twisted", "outside_range"] == ""
+
+
+def test_distances_match_scipy(cloud):
+    columns = list(cloud.columns)
+    targets = cloud.iloc[:5] * 1.3
+    table = applicability(cloud, targets, columns)
+    z = (cloud - cloud.mean()) / cloud.std(ddof=1)
+    zt = (targets - cloud.mean()) / cloud.std(ddof=1)
+    inverse = np.linalg.inv(np.cov(z.to_numpy(), rowvar=False))
+    for i, basin in enumerate(targets.index):
+        # reference: scipy.spatial.distance.mahalanobis (Mahalanobis 1936)
+        expected = distance.mahalanobis(zt.iloc[i], z.mean(), inverse) ** 2
+        assert table.loc[basin, "mahalanobis_d2"] == pytest.approx(expected, rel=1e-9)
+    # reference: scipy.spatial.distance.cdist for the nearest-donor distances
+    nearest = distance.cdist(zt, z).min(axis=1)
+    np.testing.assert_allclose(table["nearest_donor_distance"], nearest, rtol=1e-9)
+    among = distance.cdist(z, z)
+    np.fill_diagonal(among, np.inf)
+    assert table["nearest_donor_limit"].iloc[0] == pytest.approx(among.min(axis=1).max())
+    # reference: scipy.stats.chi2.ppf, 3 degrees of freedom at 95%
+    assert table["mahalanobis_limit"].iloc[0] == pytest.approx(stats.chi2.ppf(0.95, 3))
+
+
+def test_collinear_donors_still_give_finite_distances(cloud):
+    cloud = cloud.assign(twice=2.0 * cloud["aridity"])  # singular covariance
+    columns = list(cloud.columns)
+    table = applicability(cloud, cloud.iloc[:3], columns)
+    assert np.isfinite(table["mahalanobis_d2"]).all()
+
+
+def test_missing_target_attribute_is_named(cloud):
+    targets = cloud.iloc[:2].copy()
+    targets.iloc[1, 0] = np.nan
+    with pytest.raises(InputError, match="'aridity' is missing or not finite at target basin"):
+        applicability(cloud, targets, list(cloud.columns))
+
+
+# --------------------------------------------------------------------------------------------
+# The demo region
+
+
+def test_demo_coverage_of_nominal_90_percent_bounds(demo_result):
+    # the conformal construction's promise (Vovk et al. 2005; Lei et al. 2018), checked on
+    # basins each error model was not built from; the band 0.85-0.95 is set by issue 6
+    coverage = loo_coverage(demo_result, level=0.9)
+    chosen = coverage[coverage["method"] == demo_result.chosen_method].iloc[0]
+    assert 0.85 <= chosen["coverage"] <= 0.95
+    transfers = coverage[coverage["method"] != "calibrated"]
+    assert transfers["coverage"].between(0.85, 0.95).all()
+    assert (coverage["n_basins"] == len(demo_result.region.gauged)).all()
+
+
+def test_held_out_coverage_equals_rebuilding_without_each_basin(demo_result):
+    loo = demo_result.runs[demo_result.chosen_model].loo
+    obs, sim = loo.observed, loo.simulated[demo_result.chosen_method]
+    shares = []
+    for basin in obs.columns:
+        model = conformal_bounds(obs.drop(columns=basin), sim.drop(columns=basin), level=0.9)
+        low, high = model.bounds(sim[[basin]])
+        seen = obs[basin].notna()
+        inside = (obs[basin] >= low[basin]) & (obs[basin] <= high[basin])
+        shares.append(inside[seen].mean())
+    coverage = loo_coverage(demo_result, level=0.9)
+    row = coverage[coverage["method"] == demo_result.chosen_method].iloc[0]
+    assert row["coverage"] == pytest.approx(np.mean(shares), abs=1e-12)
+
+
+def test_prediction_table_has_every_column(prediction, demo_result):
+    table = prediction.table
+    assert list(table.index) == list(demo_result.region.ungauged)
+    assert table.index.name == "basin_id"
+    methods = ["median", "regression", "similarity", "proximity"]
+    expected = list(demo_result.attributes)
+    for method in methods:
+        expected += [f"k_per_day_{method}", f"k_per_day_{method}_low", f"k_per_day_{method}_high"]
+    expected += ["method", "k_per_day", "k_per_day_low", "k_per_day_high"]
+    expected += [*STATISTIC_COLUMNS, "applicable", "reason"]
+    assert expected == [c for c in table.columns if c in expected]
+    assert set(expected) <= set(table.columns)
+    assert table["applicable"].dtype == bool
+    assert (table.loc[table["applicable"], "reason"] == "").all()
+    assert (table.loc[~table["applicable"], "reason"].str.len() > 0).all()
+    chosen = prediction.method
+    assert (table["method"] == chosen).all()
+    np.testing.assert_array_equal(table["k_per_day"], table[f"k_per_day_{chosen}"])
+    for method in methods:
+        low, mid, high = (table[f"k_per_day_{method}{s}"] for s in ("_low", "", "_high"))
+        assert ((low <= mid) & (mid <= high)).all()
+
+
+def test_prediction_flows_table(prediction, demo_result):
+    flows = prediction.flows
+    assert list(flows.columns) == list(FLOW_COLUMNS)
+    context = demo_result.runs[prediction.model].context
+    reported = context.precip_mm.index[context.window.warmup_days :]
+    assert len(flows) == len(reported) * len(demo_result.region.ungauged)
+    assert flows["date"].min() == reported[0] and flows["date"].max() == reported[-1]
+    assert (flows["flow_low_mm"] >= 0).all()
+    assert (flows["flow_low_mm"] <= flows["flow_mm"]).all()
+    assert (flows["flow_mm"] <= flows["flow_high_mm"]).all()
+    assert flows[["flow_mm", "flow_low_mm", "flow_high_mm"]].notna().all().all()
+
+
+def test_mm_and_m3s_agree_through_the_area(prediction, demo_result):
+    area = demo_result.region.attributes["area_km2"]
+    flows = prediction.flows
+    # Q_m3s = Q_mm x area_km2 / 86.4 (unit arithmetic, common practice, no source)
+    np.testing.assert_allclose(
+        flows["flow_m3s"] * 86.4 / flows["basin_id"].map(area), flows["flow_mm"], rtol=1e-12
+    )
+    table = prediction.table
+    np.testing.assert_allclose(
+        table["mean_flow_m3s"] * 86.4 / area.loc[table.index], table["mean_flow_mm"], rtol=1e-12
+    )
+
+
+def test_statistics_are_those_of_the_reported_flows(prediction):
+    wide = prediction.flows.pivot(index="date", columns="basin_id", values="flow_mm")
+    expected = flow_statistics(wide)
+    table = prediction.table
+    for column in ("mean_flow_mm", "q5_mm", "q95_mm", "min7_mean_mm", "flow_m07_mm"):
+        np.testing.assert_allclose(table[column], expected.loc[table.index, column], rtol=1e-12)
+
+
+def test_flows_follow_the_leave_one_out_path(demo_result):
+    # two routes to one number: the prediction path fit on the same training basins gives the
+    # leave-one-out flow of a gauged basin exactly
+    run = demo_result.runs[demo_result.chosen_model]
+    context, loo = run.context, run.loo
+    target = str(context.calibrated.index[3])
+    drop = {target, *context.excluded.get(target, ())}
+    train = [b for b in context.calibrated.index if b not in drop]
+    estimators, _ = fit_transfers(context, level=0.9, train=train)
+    for method, estimator in estimators.items():
+        donation = estimator.donate(context.attributes.loc[[target]])
+        flow = method_flows(context, donation, [target])[context.evaluation, 0]
+        np.testing.assert_allclose(flow, loo.simulated[method][target].to_numpy(), rtol=1e-12)
+
+
+def test_prediction_error_model_and_notes(prediction):
+    model = prediction.error_model
+    assert list(model.columns[:6]) == [
+        "class",
+        "percentile_low",
+        "percentile_high",
+        "lower_q",
+        "upper_q",
+        "n",
+    ]
+    assert (model["lower_q"] <= 0).all() and (model["upper_q"] >= 0).all()
+    assert prediction.level == 0.9
+    assert any("coverage" in note for note in prediction.notes)
+    assert set(prediction.coverage.columns) >= {"model", "method", "level", "coverage", "n_days"}
+
+
+def test_wider_level_gives_wider_bounds(demo_result, prediction):
+    wider = predict_ungauged(demo_result, level=0.95)
+    assert (wider.error_model["upper_q"] >= prediction.error_model["upper_q"]).all()
+    assert (wider.error_model["lower_q"] <= prediction.error_model["lower_q"]).all()
+    with pytest.raises(InputError, match="strictly between 0 and 1"):
+        predict_ungauged(demo_result, level=1.5)
