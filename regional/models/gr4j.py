@@ -119,6 +119,13 @@ def _s_curve_2(t, x4):  # pragma: no cover - compiled
 
 
 @numba.njit(cache=True, nogil=True)
+def _tanh(x):  # pragma: no cover - compiled
+    """tanh(x) for x >= 0 from one expm1: (1 - e^(-2x)) / (1 + e^(-2x)), accurate near 0."""
+    m = np.expm1(-2.0 * x)
+    return -m / (2.0 + m)
+
+
+@numba.njit(cache=True, nogil=True)
 def _ordinates(x4, uh1, uh2):  # pragma: no cover - compiled
     """Fill uh1 (length ceil(X4)) and uh2 (length ceil(2 X4)) from the S-curves."""
     for i in range(uh1.shape[0]):
@@ -171,6 +178,8 @@ def _gr4j_kernel(
     uh2 = np.zeros((n, n2.max()))
     for j in range(n):
         _ordinates(x4[j], uh1[j, : n1[j]], uh2[j, : n2[j]])
+    inv_x1 = 1.0 / x1
+    inv_x3 = 1.0 / x3
     held1 = np.zeros_like(uh1)  # held1[j, i]: routed water leaving UH1 i steps from now
     held2 = np.zeros_like(uh2)
     s = s0.copy()
@@ -180,6 +189,7 @@ def _gr4j_kernel(
             p = inflow[t, 0] if shared_in else inflow[t, j]
             e = pet[t, 0] if shared_pet else pet[t, j]
             cap = x1[j]
+            inv_cap = inv_x1[j]
             # 1. neutralisation of rain and PET
             if p >= e:
                 pn = p - e
@@ -193,20 +203,20 @@ def _gr4j_kernel(
             ps = 0.0
             es = 0.0
             if pn > 0.0:
-                fill = s[j] / cap
-                th = np.tanh(pn / cap)
+                fill = s[j] * inv_cap
+                th = _tanh(pn * inv_cap)
                 ps = cap * (1.0 - fill * fill) * th / (1.0 + fill * th)
                 ps = min(ps, pn, cap - s[j])
                 ps = max(ps, 0.0)
                 s[j] += ps
             elif en > 0.0:
-                fill = s[j] / cap
-                th = np.tanh(en / cap)
+                fill = s[j] * inv_cap
+                th = _tanh(en * inv_cap)
                 es = s[j] * (2.0 - fill) * th / (1.0 + (1.0 - fill) * th)
                 es = max(min(es, en, s[j]), 0.0)
                 s[j] -= es
             # 3. percolation
-            ratio = PERCOLATION_CONSTANT * s[j] / cap
+            ratio = PERCOLATION_CONSTANT * s[j] * inv_cap
             ratio *= ratio
             perc = s[j] * (1.0 - 1.0 / np.sqrt(np.sqrt(1.0 + ratio * ratio)))
             s[j] -= perc
@@ -224,7 +234,7 @@ def _gr4j_kernel(
                 held2[j, i] = held2[j, i + 1] + uh2[j, i + 1] * pr1
                 transit += held2[j, i]
             # 5. groundwater exchange from the routing level at the start of the step
-            level = r[j] / x3[j]
+            level = r[j] * inv_x3[j]
             f = x2[j] * level * level * level * np.sqrt(level)
             # 6. routing store
             r_new = r[j] + q9 + f
@@ -232,7 +242,7 @@ def _gr4j_kernel(
             if r_new < 0.0:
                 gained = -(r[j] + q9)
                 r_new = 0.0
-            level = r_new / x3[j]
+            level = r_new * inv_x3[j]
             level *= level
             qr = r_new * (1.0 - 1.0 / np.sqrt(np.sqrt(1.0 + level * level)))
             r[j] = r_new - qr

@@ -10,7 +10,7 @@ from hypothesis.extra.numpy import arrays
 
 import regional
 from regional.models import get_model
-from regional.models.gr4j import WARM_START_FRACTION, unit_hydrograph_ordinates
+from regional.models.gr4j import WARM_START_FRACTION, _tanh, unit_hydrograph_ordinates
 
 PARAMS = {"x1_mm": 320.0, "x2_mm_per_day": -0.8, "x3_mm": 70.0, "x4_days": 2.3}
 
@@ -264,3 +264,9 @@ def test_bad_input_raises_value_error_naming_the_parameter(params, match):
 def test_bad_unit_hydrograph_time_base_raises():
     with pytest.raises(ValueError, match=r"x4_days must be finite and > 0 days: got -1.0"):
         unit_hydrograph_ordinates(-1.0)
+
+
+def test_kernel_tanh_matches_numpy():
+    # Reference: numpy.tanh; the kernel uses tanh(x) = -expm1(-2x) / (2 + expm1(-2x)), x >= 0.
+    x = np.concatenate([[0.0, 1e-300, 1e-12], np.geomspace(1e-8, 800.0, 400)])
+    np.testing.assert_allclose([_tanh(v) for v in x], np.tanh(x), rtol=4e-16, atol=0)
