@@ -1,0 +1,181 @@
+"""Whole-chain timing on a synthetic region of N basins x 20 years, measured side by side.
+
+Each configuration runs in a fresh child process (same machine, same moment) that builds the
+region folder (gauge points with area and attributes, daily series in Parquet), runs
+``regional.pipeline.run`` and writes the outputs (figures and report included), then reports
+its own wall time and peak memory. Printed:
+
+- time per basin at each N, and the scaling ratio time(N_large) / time(N_small)
+  (4.4 for 500 -> 2000 means close to linear: 4 x the basins);
+- the speed-up of a local Dask cluster of 2 worker processes over the in-process run;
+- peak resident memory of the in-process runs (the Dask workers' memory is their own).
+
+Run:  python benchmarks/large_region.py [--sizes 500 2000] [--years 20] [--dask-size 500]
+Every value of the synthetic region is invented.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+UNGAUGED_SHARE = 0.25
+
+
+def make_region(folder: Path, n_basins: int, years: int, seed: int = 11) -> Path:
+    """Write an invented region of gauge points and daily series; return its folder."""
+    import geopandas as gpd
+    import pandas as pd
+
+    import regional
+
+    rng = np.random.default_rng(seed)
+    ids = [f"S{i:05d}" for i in range(n_basins)]
+    lon = rng.uniform(5.0, 15.0, n_basins)
+    lat = rng.uniform(45.0, 52.0, n_basins)
+    slope = rng.uniform(1.0, 25.0, n_basins)
+    sand = rng.uniform(0.1, 0.8, n_basins)
+    wetness = 0.6 + 0.4 * np.sin(lon / 2.0) + rng.normal(0, 0.1, n_basins)
+    basins = gpd.GeoDataFrame(
+        {
+            "basin_id": ids,
+            "area_km2": rng.lognormal(4.5, 0.8, n_basins),
+            "slope_deg": slope,
+            "sand_frac": sand,
+            "wetness": wetness,
+        },
+        geometry=gpd.points_from_xy(lon, lat),
+        crs="EPSG:4326",
+    )
+    basins.to_file(folder / "basins.gpkg", layer="basins", driver="GPKG")
+    dates = pd.date_range("2001-01-01", periods=int(years * 365.25), freq="D")
+    days = len(dates)
+    season = np.sin(2 * np.pi * (dates.dayofyear.to_numpy() - 100) / 365.25)
+    regional_storm = rng.gamma(0.5, 6.0, days)
+    precip = regional_storm[:, None] * rng.lognormal(0, 0.35, (days, n_basins)) * wetness
+    pet = np.clip(2.0 + 1.6 * season, 0.1, None)[:, None] * np.ones(n_basins)
+    temp = (9.0 + 10.0 * season)[:, None] - 0.004 * slope * 50 + rng.normal(0, 2, (days, n_basins))
+    k = np.exp(-3.2 + 0.08 * slope - 1.5 * sand + rng.normal(0, 0.2, n_basins))
+    flow = regional.simulate(
+        "linear", precip, pet, {"k_per_day": k}, temp=temp, warmup_days=365
+    ).flow * rng.lognormal(0, 0.1, (days, n_basins))
+    flow[:, rng.random(n_basins) < UNGAUGED_SHARE] = np.nan
+    long = pd.DataFrame(
+        {
+            "basin_id": np.tile(np.array(ids, dtype=object), days),
+            "date": np.repeat(dates.to_numpy(), n_basins),
+            "precip_mm": precip.ravel().round(2),
+            "pet_mm": pet.ravel().round(2),
+            "temp_c": temp.ravel().round(2),
+            "flow_mm": flow.ravel(),
+        }
+    )
+    long.to_parquet(folder / "series.parquet", index=False)
+    end = dates[-1].year
+    (folder / "region.toml").write_text(
+        f"""[region]
+name = "Synthetic benchmark region ({n_basins} basins, invented)"
+[basins]
+path = "basins.gpkg"
+layer = "basins"
+id = "basin_id"
+[series]
+path = "series.parquet"
+id = "basin_id"
+date = "date"
+precip = "precip_mm"
+pet = "pet_mm"
+temp = "temp_c"
+flow = "flow_mm"
+[model]
+name = "linear"
+warmup_days = 365
+calibration = ["2002-01-01", "{2002 + (end - 2002) // 2}-12-31"]
+validation = ["{2003 + (end - 2002) // 2}-01-01", "{end}-12-31"]
+[transfer]
+attributes = ["area_km2", "slope_deg", "sand_frac", "wetness"]
+methods = ["regression", "similarity", "proximity"]
+[output]
+folder = "results"
+"""
+    )
+    return folder
+
+
+def child(n_basins: int, years: int, workers: int) -> None:
+    """Build, run and write one configuration; print a JSON line with time and memory."""
+    import warnings
+
+    from regional.outputs import write_outputs
+    from regional.pipeline import run
+
+    warnings.simplefilter("ignore")
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = make_region(Path(tmp), n_basins, years)
+        start = time.perf_counter()
+        result = run(folder, workers=workers or None)
+        write_outputs(result, folder / "results")
+        seconds = time.perf_counter() - start
+    peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(
+        json.dumps(
+            {
+                "n": n_basins,
+                "workers": workers,
+                "seconds": seconds,
+                "peak_mb": peak_mb,
+                "timings": result.timings,
+            }
+        )
+    )
+
+
+def measure(n_basins: int, years: int, workers: int = 0) -> dict:
+    command = [sys.executable, __file__, "--child", str(n_basins), str(years), str(workers)]
+    output = subprocess.run(command, check=True, capture_output=True, text=True).stdout
+    return json.loads(output.strip().splitlines()[-1])
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--sizes", type=int, nargs=2, default=[500, 2000])
+    parser.add_argument("--years", type=int, default=20)
+    parser.add_argument("--dask-size", type=int, default=500)
+    parser.add_argument("--child", type=int, nargs=3, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.child:
+        child(*args.child)
+        return
+    small, large = (measure(n, args.years) for n in args.sizes)
+    clustered = measure(args.dask_size, args.years, workers=2)
+    local = small if args.dask_size == args.sizes[0] else measure(args.dask_size, args.years)
+    print(f"whole chain, {args.years} years of daily data (region built outside the timing)")
+    for row in (small, large):
+        stages = ", ".join(f"{k} {v:.1f} s" for k, v in row["timings"].items())
+        print(
+            f"  N = {row['n']:5d}: {row['seconds']:7.1f} s  "
+            f"({row['seconds'] / row['n'] * 1000:.0f} ms/basin; peak {row['peak_mb']:.0f} MB)"
+            f"  [{stages}]"
+        )
+    ratio = large["seconds"] / small["seconds"]
+    print(
+        f"scaling time({large['n']}) / time({small['n']}): {ratio:.2f}"
+        f"   (target <= 4.4 for 500 -> 2000)"
+    )
+    print(
+        f"2-worker local Dask cluster vs in-process at N = {args.dask_size}: "
+        f"{local['seconds'] / clustered['seconds']:.2f} x   (target >= 1.6 on 2 cores)"
+    )
+    print(f"peak memory at N = {large['n']}: {large['peak_mb']:.0f} MB   (target <= 4096 MB)")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,94 @@
+"""The whole chain on the invented demo region, whose hidden relation of k is known."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from regional.crossval import CALIBRATED, MEDIAN
+
+DEMO = Path(__file__).resolve().parents[1] / "demo_region"
+
+
+def test_regression_recovers_the_hidden_relation(demo_result):
+    # The demo's k comes from ln k = b0 + b1 slope + b2 aridity + b3 sand + e (truth.json); the
+    # 95% confidence interval of each fitted coefficient (OLS, Student t) must cover the truth.
+    truth = json.loads((DEMO / "truth.json").read_text())["coefficients"]
+    table = demo_result.runs["linear"].regression.coefficients_.set_index("term")
+    dof = float(demo_result.runs["linear"].regression.dof_resid_["k_per_day"])
+    half_width = stats.t.ppf(0.975, dof) * table["std_error_raw"]
+    assert set(table.index) == set(truth)
+    for term, value in truth.items():
+        low = table.loc[term, "estimate_raw"] - half_width[term]
+        high = table.loc[term, "estimate_raw"] + half_width[term]
+        assert low <= value <= high, (term, low, value, high)
+
+
+def test_best_transfer_beats_median_and_stays_below_calibrated(demo_result):
+    summary = demo_result.summary.set_index("method")["median_nse"]
+    best = demo_result.chosen_method
+    assert best not in (CALIBRATED, MEDIAN)
+    assert summary[best] > summary[MEDIAN]
+    assert summary[best] < summary[CALIBRATED]
+
+
+def test_same_inputs_give_the_same_tables(demo_result):
+    from regional.pipeline import run
+
+    again = run(DEMO)
+    pd.testing.assert_frame_equal(demo_result.scores, again.scores)
+    pd.testing.assert_frame_equal(demo_result.summary, again.summary)
+    first = demo_result.runs["linear"].calibration
+    pd.testing.assert_frame_equal(first, again.runs["linear"].calibration)
+
+
+def test_nested_donors_are_excluded_in_leave_one_out(demo_result):
+    # DR21 drains 16 other demo basins (truth.json 'contains'); none of its gauged sub-basins
+    # sharing most of their area with it may donate to it.
+    truth = json.loads((DEMO / "truth.json").read_text())["basins"]
+    excluded = demo_result.runs["linear"].loo.excluded
+    inner = {b for b in truth["DR21"]["contains"] if truth[b]["gauged"]}
+    assert inner and inner <= set(excluded.get("DR21", ()))
+
+
+def test_transfer_attributes_skip_flow_derived_columns(demo_result):
+    assert "runoff_ratio" not in demo_result.attributes
+    assert np.isfinite(demo_result.region.attributes.loc[:, list(demo_result.attributes)]).all(
+        axis=None
+    )
+
+
+def _demo_copy(tmp_path: Path, *changes: tuple[str, str]) -> Path:
+    """The demo's region.toml with text changes, pointing at the demo's files."""
+    text = (DEMO / "region.toml").read_text().replace('path = "', f'path = "{DEMO}/')
+    for old, new in changes:
+        assert old in text
+        text = text.replace(old, new)
+    toml = tmp_path / "region.toml"
+    toml.write_text(text)
+    return toml
+
+
+def test_prediction_method_from_config_is_used(tmp_path):
+    from regional.pipeline import run
+
+    toml = _demo_copy(tmp_path, ("[output]", '[prediction]\nmethod = "similarity"\n\n[output]'))
+    assert run(toml).chosen_method == "similarity"
+
+
+def test_prediction_method_that_was_not_validated_is_an_input_error(tmp_path):
+    from regional.errors import InputError
+    from regional.pipeline import run
+
+    toml = _demo_copy(
+        tmp_path,
+        ('methods = ["regression", "similarity", "proximity"]', 'methods = ["regression"]'),
+        ("[output]", '[prediction]\nmethod = "similarity"\n\n[output]'),
+    )
+    with pytest.raises(InputError, match=r"'similarity', which is not among \[transfer\] methods"):
+        run(toml)
