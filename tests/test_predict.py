@@ -2,17 +2,14 @@
 
 from __future__ import annotations
 
-import warnings
-from pathlib import Path
-
 import numpy as np
 import pandas as pd
 import pytest
+from demo_run import demo_result as run_demo
 from scipy import stats
 from scipy.spatial import distance
 
-from regional import pipeline
-from regional.errors import InputError, InputWarning
+from regional.errors import InputError
 from regional.predict import (
     FLOW_COLUMNS,
     OFFSET_FRACTION,
@@ -26,15 +23,11 @@ from regional.predict import (
     predict_ungauged,
 )
 
-DEMO = Path(__file__).resolve().parents[1] / "demo_region"
-
 
 @pytest.fixture(scope="module")
 def demo_result():
-    """One full run of the demo region (about 5 s), shared by this module's tests."""
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", InputWarning)
-        return pipeline.run(DEMO)
+    """The demo region's run, shared with the other modules of the session (tests/demo_run.py)."""
+    return run_demo()
 
 
 @pytest.fixture(scope="module")

@@ -3,12 +3,11 @@
 from __future__ import annotations
 
 import warnings
-from pathlib import Path
 
 import numpy as np
 import pytest
+from demo_run import demo_result as run_demo
 
-from regional import pipeline
 from regional.errors import InputError, InputWarning
 from regional.screen import (
     TABLE_COLUMNS,
@@ -17,15 +16,11 @@ from regional.screen import (
     variance_reduction,
 )
 
-DEMO = Path(__file__).resolve().parents[1] / "demo_region"
-
 
 @pytest.fixture(scope="module")
 def demo_result():
-    """One full run of the demo region (about 5 s), shared by this module's tests."""
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", InputWarning)
-        return pipeline.run(DEMO)
+    """The demo region's run, shared with the other modules of the session (tests/demo_run.py)."""
+    return run_demo()
 
 
 @pytest.fixture(scope="module")
