@@ -9,7 +9,7 @@ Two parts, both computed for every candidate ungauged basin c:
    s^2 (x_t' A^-1 x_c)^2 / (1 + x_c' A^-1 x_c), A = X'X. The part is the drop averaged over
    the region's ungauged basins, as a share of their average variance (s^2 cancels; it is
    assumed unchanged by the new gauge). This is the I-optimality criterion of optimal design
-   (Atkinson, Donev and Tobias 2007, Optimum Experimental Designs, with SAS, ch. 10).
+   (Atkinson, Donev and Tobias 2007, Optimum Experimental Designs, with SAS).
 2. donor spread: the standard deviation of the transformed parameters (log k) of the
    candidate's similarity donors, divided by their standard deviation over all gauged basins
    (how much its nearest basins in attributes disagree, relative to the region).
@@ -40,7 +40,7 @@ from regional.predict import applicability
 from regional.transfer import RegressionTransfer, make_transfer
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
-    from regional.pipeline import RunResult
+    from regional.result import RunResult
 
 TABLE_COLUMNS = (
     "rank",
