@@ -33,7 +33,7 @@ from matplotlib.colors import Normalize
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
-from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullLocator
 
 from regional.crossval import CALIBRATED, MEDIAN
 from regional.models import get_model
@@ -669,12 +669,16 @@ def _map_axes(ax, region) -> None:
     ax.ticklabel_format(axis="both", style="plain", useOffset=False)
 
 
-def _plain_log(ax, axis) -> None:
-    """Log scale on one axis with plain-number labels on the decades only."""
+def _plain_log(ax, axis, *, span: float | None = None) -> None:
+    """Log scale on one axis with plain-number labels (1, 2, 5 steps; even steps when the
+    axis spans less than a decade, ``span`` = high / low)."""
     (ax.set_xscale if axis is ax.xaxis else ax.set_yscale)("log")
-    axis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+    narrow = span is not None and span < 10.0
+    axis.set_major_locator(
+        MaxNLocator(nbins=4) if narrow else LogLocator(subs=(1.0, 2.0, 5.0), numticks=8)
+    )
     axis.set_major_formatter(FuncFormatter(lambda value, _: f"{value:g}"))
-    axis.set_minor_formatter(NullFormatter())
+    axis.set_minor_locator(NullLocator())
 
 
 def _flow_axis(ax, log: bool, *series: pd.Series) -> None:
@@ -689,22 +693,29 @@ def _flow_axis(ax, log: bool, *series: pd.Series) -> None:
         ax.set_ylim(0.0, top * 1.05)
 
 
+def _square_limits(values: np.ndarray, *, log: bool) -> tuple[float, float]:
+    """Common axis limits holding every value with a 5% margin (in log space when ``log``)."""
+    if not values.size:
+        return (0.1, 1.0) if log else (0.0, 1.0)
+    low, high = float(values.min()), float(values.max())
+    if log:
+        pad = max((high / low) ** 0.05, 1.05)
+        return low / pad, high * pad
+    margin = max(0.05 * (high - low), 0.05 * abs(high), 1e-9)
+    return low - margin, high + margin
+
+
 def _parameter_panel(ax, own: pd.Series, transferred: pd.Series, parameter, method: str) -> None:
     x = own.to_numpy(dtype=float)
     y = transferred.reindex(own.index).to_numpy(dtype=float)
     log = parameter.transform == "log"
     ax.scatter(x, y, s=18, color=TRANSFER_COLOUR, alpha=0.8, edgecolors="none")
     finite = np.isfinite(x) & np.isfinite(y) & ((x > 0) & (y > 0) if log else True)
-    both = np.r_[x[finite], y[finite]]
-    low, high = (float(both.min()), float(both.max())) if both.size else (0.0, 1.0)
-    pad = (high / low) ** 0.05 if log and low > 0 else None
-    limits = (
-        (low / pad, high * pad) if pad else (low - 0.05 * (high - low), high + 0.05 * (high - low))
-    )
+    limits = _square_limits(np.r_[x[finite], y[finite]], log=log)
     ax.plot(limits, limits, color="0.4", linewidth=0.8, linestyle="--", label="1:1")
     if log:
         for axis in (ax.xaxis, ax.yaxis):
-            _plain_log(ax, axis)
+            _plain_log(ax, axis, span=limits[1] / limits[0])
     ax.set_xlim(*limits)
     ax.set_ylim(*limits)
     ax.set_aspect("equal")
@@ -713,7 +724,7 @@ def _parameter_panel(ax, own: pd.Series, transferred: pd.Series, parameter, meth
     ax.set_ylabel(f"{method} {parameter.name}{unit}", fontsize=8)
     space = np.log(x[finite]) - np.log(y[finite]) if log else x[finite] - y[finite]
     rmse = float(np.sqrt(np.mean(space**2))) if space.size else float("nan")
-    what = "RMSE of log" if log else "RMSE"
+    what = "RMSE of ln" if log else "RMSE"
     ax.set_title(f"{method}: {what} {rmse:.2f}", fontsize=9)
     ax.legend(loc="upper left", fontsize=7)
     ax.tick_params(labelsize=7)

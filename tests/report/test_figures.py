@@ -1,0 +1,263 @@
+"""Figures of a run: each is a pyplot-free Figure with its data drawn, checked against the
+run's own tables (two routes to the same numbers)."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import matplotlib
+import numpy as np
+import pytest
+from conftest import fake_prediction, fake_screening
+from matplotlib.collections import PathCollection, PolyCollection
+from matplotlib.figure import Figure
+
+from regional.models import get_model
+from regional.report import figures, make_figures
+
+matplotlib.use("Agg")
+
+BASE_NAMES = ["loo_nse_map", "parameters", "nse_cdf", "hydrographs"]
+
+
+def _has_data(fig: Figure) -> bool:
+    return any(ax.lines or ax.collections or ax.patches for ax in fig.axes)
+
+
+def _scores(result, method, model=None):
+    scores = result.runs[model or result.chosen_model].loo.scores
+    return scores[scores["method"] == method].set_index("basin_id")["nse"]
+
+
+# ---------------------------------------------------------------------------------------------
+# make_figures
+
+
+def test_make_figures_without_prediction_or_screening_draws_the_base_set(bare_run):
+    drawn = make_figures(bare_run)
+    assert list(drawn) == [*BASE_NAMES, "model_comparison"]
+    for name, fig in drawn.items():
+        assert isinstance(fig, Figure), name
+        assert fig.axes, name
+        assert _has_data(fig), name
+
+
+def test_make_figures_with_prediction_and_screening_adds_their_figures(full_run):
+    drawn = make_figures(full_run)
+    assert list(drawn) == [
+        *BASE_NAMES,
+        "model_comparison",
+        "ungauged_mean_flow_map",
+        "ungauged_hydrographs",
+        "screening",
+    ]
+    assert all(_has_data(fig) for fig in drawn.values())
+
+
+def test_make_figures_one_model_leaves_out_the_comparison(bare_run):
+    model = bare_run.chosen_model
+    one = replace(
+        bare_run,
+        runs={model: bare_run.runs[model]},
+        summary=bare_run.summary[bare_run.summary["model"] == model],
+    )
+    assert "model_comparison" not in make_figures(one)
+
+
+def test_figures_leave_no_pyplot_state(full_run):
+    import matplotlib.pyplot as plt
+
+    before = plt.get_fignums()
+    make_figures(full_run)
+    assert plt.get_fignums() == before
+
+
+def test_every_figure_renders_to_png(full_run):
+    import io
+
+    for name, fig in make_figures(full_run).items():
+        buffer = io.BytesIO()
+        fig.savefig(buffer, format="png", dpi=30)
+        assert buffer.getvalue()[:8] == b"\x89PNG\r\n\x1a\n", name
+
+
+# ---------------------------------------------------------------------------------------------
+# Leave-one-out figures
+
+
+def test_loo_nse_map_colours_every_gauged_basin_and_outlines_ungauged(bare_run):
+    fig = figures.loo_nse_map(bare_run)
+    ax = fig.axes[0]
+    sizes = sorted(len(c.get_paths()) for c in ax.collections)
+    region = bare_run.region
+    assert len(region.gauged) in sizes
+    assert len(region.ungauged) in sizes
+    assert len(fig.axes) == 2  # map and colour bar
+    assert "NSE" in fig.axes[1].get_ylabel()
+    assert ax.get_xlabel().startswith("Easting")
+
+
+def test_loo_nse_map_colours_follow_nse_order(bare_run):
+    fig = figures.loo_nse_map(bare_run, label_basins=False)
+    gauged = list(bare_run.region.gauged)
+    coloured = next(c for c in fig.axes[0].collections if len(c.get_paths()) == len(gauged))
+    nse = _scores(bare_run, bare_run.chosen_method).reindex(gauged).to_numpy()
+    colours = coloured.get_facecolors()
+    # viridis brightens with value: the best basin is drawn brighter than the worst
+    brightness = colours[:, :3].sum(axis=1)
+    assert brightness[np.argmax(nse)] > brightness[np.argmin(nse)]
+
+
+def test_loo_nse_map_draws_points_for_outlet_basins(bare_run):
+    region = bare_run.region
+    points = region.basins.copy()
+    points["geometry"] = points.geometry.centroid
+    point_run = replace(bare_run, region=replace(region, basins=points, is_point=True))
+    fig = figures.loo_nse_map(point_run)
+    scatters = [c for c in fig.axes[0].collections if isinstance(c, PathCollection)]
+    assert sorted(len(c.get_offsets()) for c in scatters) == sorted(
+        [len(region.gauged), len(region.ungauged)]
+    )
+
+
+def test_parameter_scatter_has_one_panel_per_parameter_and_method(bare_run):
+    for model, run in bare_run.runs.items():
+        fig = figures.parameter_scatter(bare_run, model=model)
+        n_params = len(get_model(model).parameters)
+        n_methods = len([m for m in run.loo.methods if m != "calibrated"])
+        assert len(fig.axes) == n_params * n_methods
+
+
+def test_parameter_scatter_points_are_calibrated_vs_transferred(bare_run):
+    model = "linear"
+    loo = bare_run.runs[model].loo
+    fig = figures.parameter_scatter(bare_run, model=model)
+    params = loo.params.pivot(index="basin_id", columns="method")["k_per_day"]
+    methods = [m for m in loo.methods if m != "calibrated"]
+    for ax, method in zip(fig.axes, methods, strict=True):
+        offsets = np.asarray(ax.collections[0].get_offsets())
+        np.testing.assert_allclose(offsets[:, 0], params["calibrated"].to_numpy())
+        np.testing.assert_allclose(offsets[:, 1], params[method].to_numpy())
+        assert ax.get_xscale() == "log"  # k_per_day is log-transformed
+        assert ax.get_yscale() == "log"
+        assert [line.get_label() for line in ax.lines] == ["1:1"]
+
+
+def test_nse_cdf_one_curve_per_method_with_baselines_marked(bare_run):
+    fig = figures.nse_cdf(bare_run)
+    ax = fig.axes[0]
+    methods = bare_run.runs[bare_run.chosen_model].loo.methods
+    assert len(ax.lines) == len(methods) + 2  # plus the guide lines at 0 and 0.5
+    labels = [line.get_label() for line in ax.lines[: len(methods)]]
+    assert labels[0].startswith("calibrated (upper bound)")
+    assert labels[1].startswith("median (benchmark)")
+    assert ax.lines[0].get_linestyle() == "--"
+    assert ax.lines[1].get_linestyle() == ":"
+    for line in ax.lines[: len(methods)]:
+        assert line.get_ydata()[-1] == pytest.approx(1.0)
+    assert ax.get_xlim() == (-1.0, 1.0)
+
+
+def test_nse_cdf_counts_values_below_the_axis(bare_run):
+    fig = figures.nse_cdf(bare_run)
+    note = fig.axes[0].texts[0].get_text()
+    methods = bare_run.runs[bare_run.chosen_model].loo.methods
+    below = {m: int((_scores(bare_run, m) < -1).sum()) for m in methods}
+    for method, count in below.items():
+        if count:
+            assert f"{method}: {count}" in note
+    if not any(below.values()):
+        assert note == ""
+
+
+def test_hydrographs_show_best_median_and_worst_basin(bare_run):
+    method = bare_run.chosen_method
+    fig = figures.hydrographs(bare_run)
+    nse = _scores(bare_run, method).dropna().sort_values(ascending=False)
+    expected = [nse.index[0], nse.index[(len(nse) - 1) // 2], nse.index[-1]]
+    expected = list(dict.fromkeys(expected))
+    assert len(fig.axes) == len(expected)
+    for ax, basin, label in zip(fig.axes, expected, ["best", "median", "worst"], strict=False):
+        assert ax.get_title(loc="left").startswith(f"{label}: {basin}")
+        assert len(ax.lines) == 3
+        assert ax.get_ylabel() == "Flow (mm/day)"
+    observed = bare_run.runs[bare_run.chosen_model].loo.observed
+    drawn = fig.axes[0].lines[0].get_ydata()
+    np.testing.assert_allclose(drawn, observed[expected[0]].to_numpy()[-len(drawn) :])
+
+
+def test_hydrographs_window_and_linear_axis(bare_run):
+    fig = figures.hydrographs(bare_run, years=0.5, log=False)
+    dates = fig.axes[0].lines[0].get_xdata()
+    assert 180 <= len(dates) <= 184
+    assert fig.axes[0].get_yscale() == "linear"
+
+
+def test_model_comparison_one_bar_per_model_and_method(bare_run):
+    fig = figures.model_comparison(bare_run)
+    ax = fig.axes[0]
+    n_methods = bare_run.summary["method"].nunique()
+    assert len(ax.patches) == len(bare_run.runs) * n_methods
+    heights = sorted(p.get_height() for p in ax.patches)
+    np.testing.assert_allclose(heights, sorted(bare_run.summary["median_nse"]))
+
+
+# ---------------------------------------------------------------------------------------------
+# Prediction and screening figures
+
+
+def test_ungauged_mean_flow_map_hatches_non_applicable_basins(full_run):
+    fig = figures.ungauged_mean_flow_map(full_run)
+    table = full_run.prediction.table
+    flagged = int((~table["applicable"]).sum())
+    hatched = [c for c in fig.axes[0].collections if c.get_hatch()]
+    assert [len(c.get_paths()) for c in hatched] == [flagged]
+    assert "mm/day" in fig.axes[1].get_ylabel()
+
+
+def test_ungauged_hydrographs_band_per_basin(full_run):
+    fig = figures.ungauged_hydrographs(full_run)
+    shown = [ax for ax in fig.axes if ax.get_visible()]
+    assert len(shown) == len(full_run.region.ungauged)
+    for ax in shown:
+        assert any(isinstance(c, PolyCollection) for c in ax.collections)  # the band
+        assert len(ax.lines) == 1
+
+
+def test_ungauged_hydrographs_caps_the_panel_count(full_run):
+    fig = figures.ungauged_hydrographs(full_run, max_panels=1)
+    assert len([ax for ax in fig.axes if ax.get_visible()]) == 1
+    assert "1 more basins" in fig.get_suptitle()
+
+
+def test_screening_bars_ranked_top_down(full_run):
+    fig = figures.screening_bars(full_run)
+    left = fig.axes[0]
+    table = full_run.screening.table
+    bars = sorted(left.patches, key=lambda p: -p.get_y())  # top bar first
+    np.testing.assert_allclose([b.get_width() for b in bars], table["score"].to_numpy())
+    assert len(fig.axes[1].patches) == 2 * len(table)
+
+
+def test_prediction_figures_need_a_prediction(bare_run):
+    with pytest.raises(ValueError, match="needs the run's prediction"):
+        figures.ungauged_mean_flow_map(bare_run)
+    with pytest.raises(ValueError, match="needs the run's screening"):
+        figures.screening_bars(bare_run)
+
+
+def test_fake_prediction_has_the_fields_of_the_real_one(tiny_run):
+    # the fakes stand in for regional.predict / regional.screen while those are optional
+    predict = pytest.importorskip("regional.predict", reason="regional.predict not present yet")
+    from dataclasses import fields
+
+    names = {f.name for f in fields(predict.Prediction)}
+    assert names == set(vars(fake_prediction(tiny_run)))
+
+
+def test_fake_screening_has_the_fields_of_the_real_one(tiny_run):
+    screen = pytest.importorskip("regional.screen", reason="regional.screen not present yet")
+    from dataclasses import fields
+
+    names = {f.name for f in fields(screen.Screening)}
+    assert names == set(vars(fake_screening(tiny_run)))
