@@ -1,4 +1,4 @@
-"""Turn a :class:`~regional.pipeline.RunResult` into the tables, layers, figures, report and
+"""Turn a :class:`~regional.result.RunResult` into the tables, layers, figures, report and
 manifest of a results folder, and hand them to :mod:`regional.io` to write atomically.
 
 Building the content (pure) is kept apart from writing it (``io.write_run_folder``): a failed or
@@ -20,7 +20,7 @@ import pandas as pd
 
 from regional import __version__, io
 from regional.crossval import CALIBRATED
-from regional.pipeline import RunResult
+from regional.result import RunResult
 
 PACKAGES = (
     "numpy",

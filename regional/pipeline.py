@@ -11,7 +11,7 @@ import logging
 import time
 import warnings
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -23,7 +23,6 @@ from regional.config import Settings, load_settings
 from regional.crossval import (
     CALIBRATED,
     FoldContext,
-    LeaveOneOut,
     TransferOptions,
     best_method,
     leave_one_out,
@@ -32,7 +31,10 @@ from regional.crossval import (
 from regional.errors import InputError, InputWarning
 from regional.models import get_model
 from regional.overlap import excluded_donors, overlap_shares
+from regional.predict import predict_ungauged
 from regional.region import Region, load_region
+from regional.result import ModelRun, RunResult
+from regional.screen import screen_candidates
 from regional.transfer import RegressionTransfer
 
 logger = logging.getLogger(__name__)
@@ -44,75 +46,6 @@ CALIBRATION_CHUNK = 16
 """Basins per calibration task handed to the executor."""
 
 Progress = Callable[[str, int, int], None] | None
-
-
-@dataclass(frozen=True)
-class ModelRun:
-    """Calibration and leave-one-out of one storage model.
-
-    Attributes
-    ----------
-    model : str
-        Model name.
-    calibration : DataFrame
-        Per gauged basin: parameters and scores (see :func:`regional.calibrate`).
-    loo : LeaveOneOut
-        Leave-one-out scores, transferred parameters and flows.
-    regression : RegressionTransfer
-        The regression fit on every gauged basin (coefficient table for the report).
-    context : FoldContext
-        What the folds saw (forcing window, attributes, options), reused by prediction.
-    """
-
-    model: str
-    calibration: pd.DataFrame
-    loo: LeaveOneOut
-    regression: RegressionTransfer
-    context: FoldContext
-
-
-@dataclass(frozen=True)
-class RunResult:
-    """Everything one run produced; :mod:`regional.outputs` turns it into files.
-
-    Attributes
-    ----------
-    settings : Settings
-        The parsed config.
-    region : Region
-        The checked region with its attributes.
-    attributes : tuple of str
-        Attribute columns used by regression and similarity.
-    runs : dict
-        Model name -> :class:`ModelRun`.
-    scores : DataFrame
-        Leave-one-out scores of every model and method (long, with a ``model`` column).
-    summary : DataFrame
-        One row per (model, method) (see :func:`regional.crossval.summarise`).
-    chosen_model, chosen_method : str
-        What prediction uses: the config's choice or the best median leave-one-out NSE.
-    prediction : object or None
-        :class:`regional.predict.Prediction` when the region has ungauged basins.
-    screening : object or None
-        :class:`regional.screen.Screening` when candidates were screened.
-    warnings : tuple of str
-        Everything the user should read, for the report.
-    timings : dict
-        Stage -> seconds.
-    """
-
-    settings: Settings
-    region: Region
-    attributes: tuple[str, ...]
-    runs: dict[str, ModelRun]
-    scores: pd.DataFrame
-    summary: pd.DataFrame
-    chosen_model: str
-    chosen_method: str
-    prediction: object | None = None
-    screening: object | None = None
-    warnings: tuple[str, ...] = ()
-    timings: dict[str, float] = field(default_factory=dict)
 
 
 def run(
@@ -159,12 +92,12 @@ def run(
     ]
     for run_ in result.runs.values():
         messages += list(run_.loo.warnings)
+    for stage in (result.prediction, result.screening):
+        messages += list(getattr(stage, "notes", ()))
     return _with(result, warnings=tuple(dict.fromkeys(messages)), timings=timings)
 
 
 def _with(result: RunResult, **changes) -> RunResult:
-    from dataclasses import replace
-
     return replace(result, **changes)
 
 
@@ -193,7 +126,7 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
     ]
     summary = summarise(scores)
     model, method = _choose(summary, settings)
-    return RunResult(
+    result = RunResult(
         settings=settings,
         region=region,
         attributes=attributes,
@@ -203,6 +136,15 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
         chosen_model=model,
         chosen_method=method,
     )
+    if not region.ungauged:
+        return result
+    clock = time.perf_counter()
+    result = _with(result, prediction=predict_ungauged(result))
+    timings["prediction"] = time.perf_counter() - clock
+    clock = time.perf_counter()
+    result = _with(result, screening=screen_candidates(result))
+    timings["screening"] = time.perf_counter() - clock
+    return result
 
 
 def _stage(progress: Progress, name: str):

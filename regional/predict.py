@@ -47,7 +47,7 @@ from regional.region import MM_PER_DAY_PER_M3S_KM2
 from regional.transfer import Donation, make_transfer, simulate_donors
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
-    from regional.pipeline import RunResult
+    from regional.result import RunResult
 
 OFFSET_FRACTION = 0.01
 """A basin's log offset c is this share of its mean simulated flow (mm/day)."""

@@ -1,0 +1,85 @@
+"""What a run produced: one :class:`ModelRun` per storage model and the :class:`RunResult`.
+
+Plain containers passed down the chain (prediction, screening, report, outputs read them); the
+pipeline fills them.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import pandas as pd
+
+from regional.config import Settings
+from regional.crossval import FoldContext, LeaveOneOut
+from regional.region import Region
+from regional.transfer import RegressionTransfer
+
+
+@dataclass(frozen=True)
+class ModelRun:
+    """Calibration and leave-one-out of one storage model.
+
+    Attributes
+    ----------
+    model : str
+        Model name.
+    calibration : DataFrame
+        Per gauged basin: parameters and scores (see :func:`regional.calibrate`).
+    loo : LeaveOneOut
+        Leave-one-out scores, transferred parameters and flows.
+    regression : RegressionTransfer
+        The regression fit on every gauged basin (coefficient table for the report).
+    context : FoldContext
+        What the folds saw (forcing window, attributes, options), reused by prediction.
+    """
+
+    model: str
+    calibration: pd.DataFrame
+    loo: LeaveOneOut
+    regression: RegressionTransfer
+    context: FoldContext
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """Everything one run produced; :mod:`regional.outputs` turns it into files.
+
+    Attributes
+    ----------
+    settings : Settings
+        The parsed config.
+    region : Region
+        The checked region with its attributes.
+    attributes : tuple of str
+        Attribute columns used by regression and similarity.
+    runs : dict
+        Model name -> :class:`ModelRun`.
+    scores : DataFrame
+        Leave-one-out scores of every model and method (long, with a ``model`` column).
+    summary : DataFrame
+        One row per (model, method) (see :func:`regional.crossval.summarise`).
+    chosen_model, chosen_method : str
+        What prediction uses: the config's choice or the best median leave-one-out NSE.
+    prediction : object or None
+        :class:`regional.predict.Prediction` when the region has ungauged basins.
+    screening : object or None
+        :class:`regional.screen.Screening` when candidates were screened.
+    warnings : tuple of str
+        Everything the user should read, for the report.
+    timings : dict
+        Stage -> seconds.
+    """
+
+    settings: Settings
+    region: Region
+    attributes: tuple[str, ...]
+    runs: dict[str, ModelRun]
+    scores: pd.DataFrame
+    summary: pd.DataFrame
+    chosen_model: str
+    chosen_method: str
+    prediction: object | None = None
+    screening: object | None = None
+    warnings: tuple[str, ...] = ()
+    timings: dict[str, float] = field(default_factory=dict)

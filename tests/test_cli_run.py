@@ -1,0 +1,308 @@
+"""`regional run` end to end on the demo region: every file, layer and column, atomic output,
+and the outputs opened by outside tools (GDAL's ogrinfo, a headless browser) where present."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pandas as pd
+import pyogrio
+import pytest
+
+from regional import io
+from regional.cli import main
+
+DEMO = Path(__file__).resolve().parents[1] / "demo_region"
+SCORE_COLUMNS = [
+    "basin_id",
+    "method",
+    "nse",
+    "kge",
+    "kge_r",
+    "kge_alpha",
+    "kge_beta",
+    "log_nse",
+    "pbias",
+    "n_days",
+]
+SUMMARY_COLUMNS = [
+    "method",
+    "n_basins",
+    "median_nse",
+    "q25_nse",
+    "q75_nse",
+    "share_nse_gt_0_5",
+    "share_nse_gt_0",
+    "median_kge",
+    "loss_vs_calibrated",
+    "gain_vs_median",
+    "coverage",
+    "model",
+]
+FIGURES = [
+    "loo_nse_map",
+    "parameters",
+    "nse_cdf",
+    "hydrographs",
+    "ungauged_mean_flow_map",
+    "ungauged_hydrographs",
+    "screening",
+]
+
+
+@pytest.fixture(scope="module")
+def run_folder(tmp_path_factory) -> Path:
+    """The output folder of one `regional run demo_region --out ...`."""
+    out = tmp_path_factory.mktemp("cli") / "results"
+    assert main(["run", str(DEMO), "--out", str(out), "--quiet"]) == 0
+    return out
+
+
+def test_run_writes_every_table_with_its_columns(run_folder):
+    scores = pd.read_csv(run_folder / "loo_scores.csv", dtype={"basin_id": str})
+    assert list(scores.columns[: len(SCORE_COLUMNS)]) == SCORE_COLUMNS
+    assert set(scores["method"]) == {
+        "calibrated",
+        "median",
+        "regression",
+        "similarity",
+        "proximity",
+    }
+    summary = pd.read_csv(run_folder / "loo_summary.csv")
+    assert set(SUMMARY_COLUMNS) <= set(summary.columns)
+    assert len(summary) == 5
+    coefficients = pd.read_csv(run_folder / "regression_coefficients.csv")
+    assert {"term", "estimate", "std_error", "t", "p", "vif"} <= set(coefficients.columns)
+    flows = pd.read_csv(run_folder / "flows_ungauged.csv", dtype={"basin_id": str})
+    assert list(flows.columns[:6]) == [
+        "basin_id",
+        "date",
+        "flow_mm",
+        "flow_m3s",
+        "flow_low_mm",
+        "flow_high_mm",
+    ]
+
+
+def test_run_writes_every_layer_with_its_columns(run_folder):
+    gpkg = run_folder / "results.gpkg"
+    layers = dict(pyogrio.list_layers(gpkg))
+    assert {"gauged", "ungauged", "screening"} <= set(layers)
+    gauged = pyogrio.read_dataframe(gpkg, layer="gauged")
+    for column in (
+        "basin_id",
+        "k_per_day",
+        "score_calibration",
+        "score_validation",
+        "loo_nse_regression",
+        "loo_kge_regression",
+        "loo_nse_proximity",
+        "slope_mean",
+        "aridity",
+    ):
+        assert column in gauged.columns, column
+    assert len(gauged) == 34
+    ungauged = pyogrio.read_dataframe(gpkg, layer="ungauged")
+    for column in (
+        "basin_id",
+        "method",
+        "k_per_day",
+        "k_per_day_low",
+        "k_per_day_high",
+        "mean_flow_mm",
+        "q95_mm",
+        "min7_mean_mm",
+        "applicable",
+        "reason",
+    ):
+        assert column in ungauged.columns, column
+    assert len(ungauged) == 14
+    screening = pyogrio.read_dataframe(gpkg, layer="screening")
+    assert {"basin_id", "rank", "score", "reason"} <= set(screening.columns)
+
+
+def test_run_writes_figures_report_and_manifest(run_folder):
+    for name in FIGURES:
+        png = run_folder / "figures" / f"{name}.png"
+        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n", name
+    report = (run_folder / "report.html").read_text()
+    assert report.count("data:image/png;base64,") >= len(FIGURES)
+    assert "licensed" in report
+    manifest = json.loads((run_folder / "run.json").read_text())
+    series = str((DEMO / "series.csv.gz").resolve())
+    digest = hashlib.sha256((DEMO / "series.csv.gz").read_bytes()).hexdigest()
+    assert manifest["inputs"][series] == digest
+    assert {"settings", "software", "timings_s"} <= set(manifest)
+    assert manifest["software"]["numpy"]
+
+
+def test_failed_write_leaves_previous_results_untouched(run_folder, tmp_path, monkeypatch):
+    previous = tmp_path / "results"
+    shutil.copytree(run_folder, previous)
+    before = _checksums(previous)
+
+    def fail_halfway(staging, tables, *args):
+        (staging / "loo_scores.csv").write_text("partial")
+        raise OSError("disk full (simulated)")
+
+    monkeypatch.setattr(io, "_fill_run_folder", fail_halfway)
+    with pytest.raises(OSError, match="disk full"):
+        main(["run", str(DEMO), "--out", str(previous), "--quiet"])
+    assert _checksums(previous) == before
+    assert [p.name for p in tmp_path.iterdir()] == ["results"]
+
+
+def test_run_killed_halfway_leaves_previous_results_untouched(run_folder, tmp_path):
+    previous = tmp_path / "results"
+    shutil.copytree(run_folder, previous)
+    before = _checksums(previous)
+    command = [sys.executable, "-m", "regional.cli", "run", str(DEMO), "--out", str(previous)]
+    child = subprocess.Popen(command, stderr=subprocess.PIPE, text=True)
+    for line in child.stderr:  # wait until the leave-one-out stage has started
+        if "leave-one-out" in line:
+            break
+    child.send_signal(signal.SIGKILL)
+    child.wait(timeout=30)
+    assert child.returncode == -signal.SIGKILL
+    assert _checksums(previous) == before
+
+
+@pytest.mark.skipif(shutil.which("ogrinfo") is None, reason="GDAL's ogrinfo (gdal-bin) absent")
+def test_results_gpkg_opens_with_ogrinfo(run_folder):
+    # Reference tool: GDAL's own ogrinfo lists every layer, its CRS and its feature count.
+    gpkg = str(run_folder / "results.gpkg")
+    for layer, count in (("gauged", 34), ("ungauged", 14), ("screening", 14)):
+        text = subprocess.run(
+            ["ogrinfo", "-so", "-ro", gpkg, layer], check=True, capture_output=True, text=True
+        ).stdout
+        assert f"Feature Count: {count}" in text
+        assert "32633" in text
+
+
+def test_results_gpkg_crs_and_counts_with_pyogrio(run_folder):
+    # Reference library: pyogrio (GDAL bindings) reads every layer with its CRS.
+    gpkg = run_folder / "results.gpkg"
+    for layer, count in (("gauged", 34), ("ungauged", 14), ("screening", 14)):
+        info = pyogrio.read_info(gpkg, layer=layer)
+        assert info["features"] == count
+        assert info["crs"] == "EPSG:32633"
+
+
+BROWSER = shutil.which("chromium") or shutil.which("chromium-browser")
+DRIVER = shutil.which("chromedriver")
+
+
+@pytest.mark.skipif(
+    BROWSER is None or DRIVER is None,
+    reason="Debian chromium and chromium-driver are not installed",
+)
+def test_report_opens_in_headless_chromium(run_folder):
+    sections, images = _browser_view(run_folder / "report.html")
+    for section in (
+        "summary",
+        "cautions",
+        "inputs",
+        "calibration",
+        "transfer",
+        "regression",
+        "figures",
+        "ungauged",
+        "screening",
+        "warnings",
+        "methods",
+    ):
+        assert section in sections, section
+    assert len(images) >= len(FIGURES)
+    assert all(width > 0 for width in images)
+
+
+def _browser_view(report: Path) -> tuple[list[str], list[int]]:
+    """Open the report through chromedriver (W3C WebDriver over HTTP) and read the page."""
+    import socket
+    import urllib.request
+
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        port = probe.getsockname()[1]
+    driver = subprocess.Popen(
+        [DRIVER, f"--port={port}"], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL
+    )
+    base = f"http://127.0.0.1:{port}"
+
+    def call(method: str, path: str, body: dict | None = None) -> dict:
+        data = None if body is None else json.dumps(body).encode()
+        request = urllib.request.Request(
+            base + path, data=data, method=method, headers={"Content-Type": "application/json"}
+        )
+        with urllib.request.urlopen(request, timeout=60) as response:
+            return json.loads(response.read())
+
+    try:
+        for _ in range(50):
+            try:
+                call("GET", "/status")
+                break
+            except OSError:
+                time.sleep(0.2)
+        flags = [
+            "--headless",
+            "--no-sandbox",
+            "--disable-gpu",
+            "--disable-quic",
+            "--no-first-run",
+            "--disable-background-networking",
+            "--disable-component-update",
+            "--disable-sync",
+        ]
+        session = call(
+            "POST",
+            "/session",
+            {
+                "capabilities": {
+                    "alwaysMatch": {"goog:chromeOptions": {"binary": BROWSER, "args": flags}}
+                }
+            },
+        )["value"]["sessionId"]
+        try:
+            call("POST", f"/session/{session}/url", {"url": report.resolve().as_uri()})
+            script = (
+                "return [Array.from(document.querySelectorAll('section[id]'))"
+                ".map(s => s.id), Array.from(document.images).map(i => i.naturalWidth)];"
+            )
+            sections, widths = call(
+                "POST", f"/session/{session}/execute/sync", {"script": script, "args": []}
+            )["value"]
+        finally:
+            call("DELETE", f"/session/{session}")
+    finally:
+        driver.terminate()
+        driver.wait(timeout=10)
+    return sections, widths
+
+
+def _checksums(folder: Path) -> dict[str, str]:
+    return {
+        str(path.relative_to(folder)): hashlib.sha256(path.read_bytes()).hexdigest()
+        for path in sorted(folder.rglob("*"))
+        if path.is_file()
+    }
+
+
+def test_bad_region_exits_2_without_traceback(tmp_path, capsys):
+    assert main(["run", str(tmp_path / "nowhere")]) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err
+    assert "nowhere" in err
+
+
+def test_run_help_carries_the_caution(capsys):
+    with pytest.raises(SystemExit, match="0"):
+        main(["run", "--help"])
+    assert "licensed professional practice" in capsys.readouterr().out.replace("\n", " ")
