@@ -189,7 +189,8 @@ def calibrate(
     Returns
     -------
     DataFrame
-        Indexed by basin_id: one column per calibrated parameter (e.g. ``k_per_day``),
+        Indexed by basin_id: one column per model parameter (e.g. ``k_per_day``; fixed ones
+        keep their value),
         ``objective``, ``score_calibration``, ``score_validation``, ``n_days_calibration``,
         ``n_days_validation``, and ``nse_``/``kge_`` of both periods.
     """
