@@ -452,9 +452,10 @@ def ungauged_hydrographs(
 def screening_bars(result: RunResult, *, max_bars: int = MAX_BARS) -> Figure:
     """Candidate gauge sites ranked by screening score, beside the score's two parts.
 
-    Left: the score (top-ranked site at the top). Right: the share of the average prediction
-    variance over the ungauged basins that a gauge at the site would remove, and the donors'
-    spread at the site.
+    Left: the score (top-ranked site at the top). Right: the reduction of the average
+    prediction variance over the ungauged basins that a gauge at the site would bring, and the
+    donors' spread at the site, each divided by its largest value over the candidates so the
+    two read on one axis.
 
     Parameters
     ----------
@@ -473,26 +474,45 @@ def screening_bars(result: RunResult, *, max_bars: int = MAX_BARS) -> Figure:
     positions = np.arange(len(table))[::-1]
     fig = Figure(figsize=(10.0, 0.32 * len(table) + 1.8), layout="constrained")
     left, right = fig.subplots(1, 2, sharey=True)
-    left.barh(positions, table["score"].astype(float), color="#3182bd")
+    bars = left.barh(positions, table["score"].astype(float), color="#3182bd")
+    if "applicable" in table.columns:
+        outside = ~table["applicable"].astype(bool).to_numpy()
+        for bar, flagged in zip(bars, outside, strict=True):
+            if flagged:
+                bar.set_hatch("///")
+                bar.set_edgecolor("#b2182b")
+        if outside.any():
+            left.legend(
+                handles=[
+                    Patch(
+                        facecolor="#3182bd",
+                        edgecolor="#b2182b",
+                        hatch="///",
+                        label=f"not applicable ({int(outside.sum())})",
+                    )
+                ],
+                loc="lower right",
+                fontsize=8,
+            )
     left.set_yticks(positions, labels, fontsize=8)
     left.set_xlabel("Screening score (-)")
     left.set_title("Score (higher: gauge first)", fontsize=10)
     height = 0.38
     right.barh(
         positions + height / 2,
-        table["variance_reduction"].astype(float),
+        _relative(table["variance_reduction"]),
         height=height,
         color="#31a354",
         label="variance reduction",
     )
     right.barh(
         positions - height / 2,
-        table["donor_spread"].astype(float),
+        _relative(table["donor_spread"]),
         height=height,
         color="#fd8d3c",
         label="donor spread",
     )
-    right.set_xlabel("Part of the score (units as in the screening table)")
+    right.set_xlabel("Part, relative to its largest value over the candidates (-)")
     right.set_title("Its parts", fontsize=10)
     right.legend(loc="lower right", fontsize=8)
     for ax in (left, right):
@@ -504,6 +524,13 @@ def screening_bars(result: RunResult, *, max_bars: int = MAX_BARS) -> Figure:
 # --------------------------------------------------------------------------------------------
 # Private steps
 # --------------------------------------------------------------------------------------------
+
+
+def _relative(values: pd.Series) -> np.ndarray:
+    """Values divided by their largest absolute value (zeros stay zeros)."""
+    array = values.to_numpy(dtype=float)
+    top = np.nanmax(np.abs(array)) if array.size else 0.0
+    return array / top if top > 0 else array
 
 
 def _figure(width: float, height: float):

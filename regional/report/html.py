@@ -95,6 +95,15 @@ STATISTIC_COLUMNS = (
     "q95_mm",
     "min7_mean_mm",
 )
+SCREENING_COLUMNS = (
+    "rank",
+    "score",
+    "variance_reduction",
+    "donor_spread",
+    "applicable",
+    "reason",
+)
+APPLICABILITY_COLUMNS = ("mahalanobis_d2", "nearest_donor_distance")
 MONTH_COLUMNS = tuple(f"flow_m{month:02d}_mm" for month in range(1, 13))
 DASH = "\u2013"
 
@@ -632,6 +641,14 @@ def _ungauged(result: RunResult) -> list[str]:
     if months:
         regime = table[months].rename(columns=lambda c: c[6:8])
         parts.append(_details("Monthly mean flow (mm/day)", _table(_with_names(result, regime))))
+    measures = [c for c in (*result.attributes, *APPLICABILITY_COLUMNS) if c in table.columns]
+    if measures:
+        parts.append(
+            _details(
+                "Attributes and applicability measures",
+                _table(_with_names(result, table[[*measures, "applicable", "reason"]])),
+            )
+        )
     per_method = _per_method_parameters(result)
     if per_method is not None:
         parts.append(_details("Parameters from every method", _table(per_method)))
@@ -732,25 +749,28 @@ def _screening(result: RunResult) -> list[str]:
         )
         return [_p(f"No candidate gauge sites were ranked: {why}.")]
     table = screening.table.sort_values("rank")
+    main = [c for c in SCREENING_COLUMNS if c in table.columns]
     parts = [
         _p(
             "Candidate sites ranked by how much a gauge there would reduce the average "
             "prediction variance over the region's ungauged basins, combined with the spread "
             "of the donors at the site. The reason column says why in plain words."
         ),
-        _table(_with_names(result, table)),
+        _table(_with_names(result, table[main]), flag_column="applicable"),
     ]
+    others = [c for c in table.columns if c not in main]
+    if others:
+        parts.append(_details("Every screening column", _table(_with_names(result, table))))
     if screening.notes:
         parts += [_h3("Notes"), _list(screening.notes)]
     return parts
 
 
 def _warnings(result: RunResult) -> list[str]:
-    groups = [("Run", tuple(result.warnings))]
-    if result.prediction is not None:
-        groups.append(("Prediction", tuple(result.prediction.notes)))
-    if result.screening is not None:
-        groups.append(("Screening", tuple(result.screening.notes)))
+    stages = [("Prediction", result.prediction), ("Screening", result.screening)]
+    notes = [(label, tuple(stage.notes)) for label, stage in stages if stage is not None]
+    known = {message for _, messages in notes for message in messages}
+    groups = [("Run", tuple(m for m in result.warnings if m not in known)), *notes]
     if not any(messages for _, messages in groups):
         return [_p("No warnings were raised.")]
     parts = []

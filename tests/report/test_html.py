@@ -1,0 +1,299 @@
+"""The HTML report: every section, one embedded image per figure, nothing loaded from outside,
+every text escaped, the run's numbers shown as the run's tables hold them."""
+
+from __future__ import annotations
+
+import base64
+import copy
+import re
+from dataclasses import replace
+from html.parser import HTMLParser
+
+import matplotlib
+import pandas as pd
+import pytest
+
+from regional.report import render_report
+from regional.report.html import SECTIONS
+
+matplotlib.use("Agg")
+
+# the PNG signature (reference: PNG specification, ISO/IEC 15948, section 5.2)
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+VOID_TAGS = {"meta", "img", "br", "hr", "link", "input"}
+
+
+def _png(tag: bytes) -> bytes:
+    return PNG_SIGNATURE + tag
+
+
+def _without_images(page: str) -> str:
+    return re.sub(r"data:image/png;base64,[A-Za-z0-9+/=]+", "data:", page)
+
+
+class _Structure(HTMLParser):
+    """Collects tags, checks that every opened element is closed in order, keeps the text."""
+
+    def __init__(self):
+        super().__init__()
+        self.stack: list[str] = []
+        self.errors: list[str] = []
+        self.ids: list[str] = []
+        self.images: list[str] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        attributes = dict(attrs)
+        if "id" in attributes:
+            self.ids.append(attributes["id"])
+        if tag == "img":
+            self.images.append(attributes.get("src", ""))
+        if tag not in VOID_TAGS:
+            self.stack.append(tag)
+
+    def handle_endtag(self, tag):
+        if not self.stack or self.stack[-1] != tag:
+            self.errors.append(f"</{tag}> closes {self.stack[-1:] or 'nothing'}")
+        else:
+            self.stack.pop()
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def _parse(page: str) -> _Structure:
+    parser = _Structure()
+    parser.feed(page)
+    parser.close()
+    return parser
+
+
+# ---------------------------------------------------------------------------------------------
+# Structure
+
+
+def test_report_has_every_section_with_a_heading(bare_run):
+    page = render_report(bare_run, {})
+    parsed = _parse(page)
+    for key, title in SECTIONS:
+        assert key in parsed.ids
+        assert re.search(rf'<section id="{key}">\s*<h2>', page)
+        assert title in page
+    assert parsed.errors == []
+    assert parsed.stack == []
+    assert page.startswith("<!DOCTYPE html>")
+
+
+def test_one_embedded_image_per_figure_given(full_run):
+    figures = {
+        "loo_nse_map": _png(b"map"),
+        "nse_cdf": _png(b"cdf"),
+        "ungauged_hydrographs": _png(b"bands"),
+        "screening": _png(b"bars"),
+        "a_new_figure": _png(b"new"),
+    }
+    parsed = _parse(render_report(full_run, figures))
+    assert len(parsed.images) == len(figures)
+    decoded = sorted(base64.b64decode(src.split(",", 1)[1]) for src in parsed.images)
+    assert decoded == sorted(figures.values())
+    assert all(src.startswith("data:image/png;base64,") for src in parsed.images)
+
+
+def test_figures_sit_in_their_sections(full_run):
+    page = render_report(full_run, {"ungauged_mean_flow_map": _png(b"m"), "nse_cdf": _png(b"c")})
+    ungauged = page.index('<section id="ungauged">')
+    screening = page.index('<section id="screening">')
+    figures = page.index('<section id="figures">')
+    assert ungauged < page.index('id="figure-ungauged_mean_flow_map"') < screening
+    assert figures < page.index('id="figure-nse_cdf"') < ungauged
+
+
+def test_report_with_real_figures_embeds_them_all(full_run):
+    import io
+
+    from regional.report import make_figures
+
+    images = {}
+    for name, fig in make_figures(full_run).items():
+        buffer = io.BytesIO()
+        fig.savefig(buffer, format="png", dpi=20)
+        images[name] = buffer.getvalue()
+    parsed = _parse(render_report(full_run, images))
+    assert len(parsed.images) == len(images)
+
+
+def test_report_loads_nothing_from_outside(full_run):
+    page = render_report(full_run, {"nse_cdf": _png(b"x")})
+    assert "http://" not in page
+    assert "https://" not in page
+    assert "<script" not in page.lower()
+    assert "<link" not in page.lower()
+    assert "@import" not in page
+    assert "url(" not in page
+    sources = re.findall(r'src="([^"]*)"', page)
+    assert sources and all(s.startswith("data:image/png;base64,") for s in sources)
+
+
+# ---------------------------------------------------------------------------------------------
+# Escaping
+
+
+def test_basin_names_are_escaped(full_run):
+    region = full_run.region
+    basins = region.basins.copy()
+    evil = "<script>alert('x')</script> & Sons"
+    basins["name"] = [f"Brook {i}" for i in range(len(basins))]
+    basins.loc[region.ungauged[0], "name"] = evil
+    basins.loc[region.gauged[0], "name"] = evil
+    run = replace(full_run, region=replace(region, basins=basins))
+    page = render_report(run, {})
+    assert "<script>" not in page
+    assert "&lt;script&gt;alert(&#x27;x&#x27;)&lt;/script&gt; &amp; Sons" in page
+    assert evil in "".join(_parse(page).text)  # the reader sees the name as written
+
+
+def test_region_name_and_messages_are_escaped(bare_run):
+    settings = bare_run.settings
+    run = replace(
+        bare_run,
+        settings=replace(settings, region=replace(settings.region, name='Vale <b>"A"</b>')),
+        warnings=("precip < 0 at <B01> & 3 more",),
+    )
+    page = render_report(run, {})
+    assert "<b>" not in page
+    assert "Vale &lt;b&gt;&quot;A&quot;&lt;/b&gt;" in page
+    assert "precip &lt; 0 at &lt;B01&gt; &amp; 3 more" in page
+
+
+# ---------------------------------------------------------------------------------------------
+# Content
+
+
+def test_summary_names_the_choice_and_its_skill(bare_run):
+    page = render_report(bare_run, {})
+    summary = page[page.index('id="summary"') : page.index('id="cautions"')]
+    rows = bare_run.summary[bare_run.summary["model"] == bare_run.chosen_model].set_index("method")
+    assert bare_run.chosen_model in summary
+    assert bare_run.chosen_method in summary
+    for method in (bare_run.chosen_method, "calibrated", "median"):
+        assert f"{rows.loc[method, 'median_nse']:.3g}" in summary
+    assert f"{len(bare_run.region.gauged)} gauged" in summary
+
+
+def test_cautions_defer_safety_decisions(bare_run):
+    page = render_report(bare_run, {})
+    cautions = page[page.index('id="cautions"') : page.index('id="inputs"')]
+    assert "large uncertainty" in cautions
+    assert "floods, dam safety, water supply" in cautions
+    assert "licensed professional practice" in cautions
+
+
+def test_transfer_table_per_model_with_the_chosen_row_marked(bare_run):
+    page = render_report(bare_run, {})
+    transfer = page[page.index('id="transfer"') : page.index('id="regression"')]
+    for model in bare_run.runs:
+        assert f"Model {model}" in transfer
+    assert transfer.count('<tr class="chosen">') == 1
+    chosen_row = transfer.split('<tr class="chosen">', 1)[1].split("</tr>", 1)[0]
+    assert f"<td>{bare_run.chosen_method}</td>" in chosen_row
+
+
+def test_regression_section_shows_fit_and_vif_warning(bare_run):
+    model = "linear"
+    regression = copy.copy(bare_run.runs[model].regression)
+    collinear = regression.coefficients_.iloc[[0]].assign(term="aridity", vif=12.5)
+    collinear["vif_warning"] = True
+    regression.coefficients_ = pd.concat([regression.coefficients_, collinear])
+    runs = dict(bare_run.runs)
+    runs[model] = replace(runs[model], regression=regression)
+    page = render_report(replace(bare_run, runs=runs), {})
+    section = page[page.index('id="regression"') : page.index('id="figures"')]
+    assert f"{bare_run.runs[model].regression.r2_.iloc[0]:.3g}" in section
+    assert "VIF above 10 for" in section
+    assert "VIF 12.5" in section
+
+
+def test_missing_prediction_and_screening_are_explained(bare_run):
+    page = render_report(bare_run, {})
+    ungauged = page[page.index('id="ungauged"') : page.index('id="screening"')]
+    screening = page[page.index('id="screening"') : page.index('id="warnings"')]
+    assert "No estimates at ungauged basins: prediction did not run" in ungauged
+    assert "No candidate gauge sites were ranked: screening did not run" in screening
+
+
+def test_ungauged_estimates_show_intervals_skill_and_flags(full_run):
+    prediction = full_run.prediction
+    page = render_report(full_run, {})
+    section = page[page.index('id="ungauged"') : page.index('id="screening"')]
+    table = prediction.table
+    for basin in table.index:
+        assert f"<td>{basin}</td>" in section
+    first = table.index[0]
+    parameter = "x1_mm" if prediction.model == "gr4j" else "k_per_day"
+    low, value, high = (table.loc[first, f"{parameter}{s}"] for s in ("_low", "", "_high"))
+    assert f"{value:.3g} ({low:.3g}\u2013{high:.3g})" in section
+    assert section.count('<td class="flag">no</td>') >= int((~table["applicable"]).sum())
+    chosen = prediction.coverage[prediction.coverage["method"] == prediction.method]
+    assert f"{chosen['coverage'].iloc[0]:.3g}" in section
+    assert "nominal 0.9" in section
+
+
+def test_screening_table_in_rank_order(full_run):
+    page = render_report(full_run, {})
+    section = page[page.index('id="screening"') : page.index('id="warnings"')]
+    positions = [section.index(f"<td>{basin}</td>") for basin in full_run.screening.table.index]
+    assert positions == sorted(positions)
+
+
+def test_every_warning_and_note_listed_once(full_run):
+    run = replace(
+        full_run,
+        warnings=("first warning", "second warning", full_run.prediction.notes[0]),
+    )
+    page = render_report(run, {})
+    section = page[page.index('id="warnings"') : page.index('id="methods"')]
+    for message in ("first warning", "second warning", *run.prediction.notes):
+        assert section.count(message) == 1
+    for note in run.screening.notes:
+        assert note in section
+
+
+def test_references_are_cited(bare_run):
+    page = render_report(bare_run, {})
+    section = page[page.index('id="methods"') : page.index('id="run"')]
+    for author in (
+        "Nash",
+        "Gupta",
+        "Klemes",
+        "Oudin",
+        "Vovk",
+        "Lei",
+        "Mahalanobis",
+        "Sherman",
+    ):
+        assert author in section
+
+
+def test_run_information_lists_timings_and_versions(bare_run):
+    page = render_report(bare_run, {})
+    section = page[page.index('id="run"') :]
+    for stage in bare_run.timings:
+        assert f"<td>{stage}</td>" in section
+    assert matplotlib.__version__ in section
+
+
+def test_numbers_are_rounded(full_run):
+    text = _without_images(render_report(full_run, {}))
+    cells = re.findall(r'<td class="num">([^<]*)</td>', text)
+    assert cells
+    decimals = [c for c in cells if "." in c]
+    assert decimals
+    mantissas = [re.sub(r"e.*$", "", c).lstrip("-").replace(".", "").lstrip("0") for c in decimals]
+    assert max(len(m) for m in mantissas) <= 3  # three significant digits at most
+
+
+@pytest.mark.parametrize("value, text", [(0.94164, "0.942"), (1234.5, "1,234"), (3, "3")])
+def test_cell_format(value, text):
+    from regional.report.html import _fmt
+
+    assert _fmt(value) == text
