@@ -184,9 +184,8 @@ def _add_run_options(parser: argparse.ArgumentParser) -> None:
 
 def _run_all(args: argparse.Namespace) -> int:
     from regional.outputs import write_outputs
-    from regional.pipeline import run
 
-    result = _with_progress(run, args)
+    result = _with_progress(_run_function(), args)
     folder = write_outputs(result, _out_folder(args, result))
     print(format_run_summary(result))
     print(f"\nresults written to {folder}")
@@ -255,6 +254,110 @@ def format_run_summary(result) -> str:
 
 
 # --------------------------------------------------------------------------------------------
+# regional predict REGION / regional screen REGION
+# --------------------------------------------------------------------------------------------
+
+
+def _predict_parser(subparsers: argparse._SubParsersAction) -> None:
+    parser = subparsers.add_parser(
+        "predict",
+        help="flows, bounds and flow statistics at the ungauged basins",
+        description=(
+            "Run the chain and write the estimates at the ungauged basins: parameters per "
+            "method with intervals, daily flows in mm/day and m3/s with lower and upper bounds "
+            "(built from the leave-one-out errors), flow statistics and applicability flags. "
+            "Writes flows_ungauged.csv, parameters_ungauged.csv, coverage.csv, the 'ungauged' "
+            "layer of results.gpkg and its figures into the results folder, keeping the other "
+            "files of an earlier run."
+        ),
+        epilog=CAUTION,
+    )
+    parser.add_argument("region", help="region folder holding region.toml, or the TOML file")
+    _add_run_options(parser)
+
+
+def _predict(args: argparse.Namespace) -> int:
+    from regional.outputs import update_stage_outputs
+
+    result = _with_progress(_run_function(), args)
+    if result.prediction is None:
+        raise InputError("the region has no ungauged basin: there is nothing to predict")
+    folder = update_stage_outputs(result, _out_folder(args, result), stage="prediction")
+    print(format_prediction(result))
+    print(f"\nprediction written to {folder}")
+    print(CAUTION)
+    return 0
+
+
+def format_prediction(result) -> str:
+    """The table ``regional predict`` prints: one line per ungauged basin."""
+    prediction = result.prediction
+    names = [p.name for p in _parameters(result.chosen_model)]
+    columns = [*names, *(f"{n}_{side}" for n in names for side in ("low", "high"))]
+    columns += ["mean_flow_mm", "q95_mm", "applicable"]
+    coverage = prediction.coverage.set_index(["model", "method"]).loc[
+        (prediction.model, prediction.method), "coverage"
+    ]
+    lines = [
+        f"ungauged basins: {len(prediction.table)}; model {prediction.model}, method "
+        f"{prediction.method}; bounds at {prediction.level:.0%}, leave-one-out coverage "
+        f"{coverage:.1%}",
+        prediction.table[columns].to_string(float_format=lambda v: f"{v:.4g}"),
+    ]
+    flagged = prediction.table[~prediction.table["applicable"].astype(bool)]
+    for basin, reason in flagged["reason"].items():
+        lines.append(f"  not applicable: {basin}: {reason}")
+    return "\n".join(lines)
+
+
+def _screen_parser(subparsers: argparse._SubParsersAction) -> None:
+    parser = subparsers.add_parser(
+        "screen",
+        help="rank candidate gauge sites by how much they would teach the region",
+        description=(
+            "Run the chain and rank candidate basins ([screening] candidates, default every "
+            "ungauged basin) by how much a gauge there would reduce the prediction variance "
+            "over the region's ungauged basins, combined with how much its donors disagree. "
+            "Writes screening.csv, the 'screening' layer of results.gpkg and its figure."
+        ),
+        epilog=CAUTION,
+    )
+    parser.add_argument("region", help="region folder holding region.toml, or the TOML file")
+    _add_run_options(parser)
+
+
+def _screen(args: argparse.Namespace) -> int:
+    from regional.outputs import update_stage_outputs
+
+    result = _with_progress(_run_function(), args)
+    if result.screening is None:
+        raise InputError("the region has no ungauged basin: there is no candidate to screen")
+    folder = update_stage_outputs(result, _out_folder(args, result), stage="screening")
+    table = result.screening.table
+    print(
+        table[["rank", "score", "variance_reduction", "donor_spread"]].to_string(
+            float_format=lambda v: f"{v:.3g}"
+        )
+    )
+    for basin, reason in table["reason"].items():
+        print(f"  {basin}: {reason}")
+    print(f"\nscreening written to {folder}")
+    return 0
+
+
+def _run_function():
+    from regional.pipeline import run
+
+    return run
+
+
+def _parameters(model: str):
+    from regional.models import get_model
+
+    return get_model(model).parameters
+
+
+# --------------------------------------------------------------------------------------------
 # Registries: one entry per sub-command (its parser builder, and the function it runs)
 # --------------------------------------------------------------------------------------------
 
@@ -262,12 +365,16 @@ PARSERS: dict[str, Callable[[argparse._SubParsersAction], None]] = {
     "check": _check_parser,
     "attributes": _attributes_parser,
     "run": _run_parser,
+    "predict": _predict_parser,
+    "screen": _screen_parser,
 }
 
 COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
     "check": _check,
     "attributes": _attributes,
     "run": _run_all,
+    "predict": _predict,
+    "screen": _screen,
 }
 
 

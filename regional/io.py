@@ -533,3 +533,76 @@ def _swap_into_place(staging: Path, target: Path) -> None:
     os.replace(staging, target)
     if previous is not None:
         shutil.rmtree(previous, ignore_errors=True)
+
+
+def update_run_folder(
+    folder: str | Path,
+    *,
+    tables: Mapping[str, pd.DataFrame],
+    layers: Mapping[str, gpd.GeoDataFrame],
+    crs: object,
+    figures: Mapping[str, bytes],
+) -> Path:
+    """Add or replace some files of a results folder, each one atomically.
+
+    Used by the commands that redo one stage (``predict``, ``screen``): the other files of an
+    earlier full run stay as they are. Every table and figure is written to a temporary name and
+    renamed; ``results.gpkg`` is copied, its layers replaced in the copy, and the copy renamed.
+
+    Returns
+    -------
+    Path
+        The results folder (created when absent).
+    """
+    target = Path(folder).expanduser().resolve()
+    if not target.parent.is_dir():
+        raise InputError(
+            f"cannot write results to {target}: the folder {target.parent} does not exist. "
+            "Fix: create it or choose another --out folder."
+        )
+    target.mkdir(exist_ok=True)
+    for name, table in tables.items():
+        write_csv(table, target / name, index=not isinstance(table.index, pd.RangeIndex))
+    if figures:
+        (target / "figures").mkdir(exist_ok=True)
+    for name, png in figures.items():
+        _write_bytes_atomically(target / "figures" / f"{name}.png", png)
+    if layers:
+        _replace_layers(target / RESULTS_GPKG, layers, crs)
+    return target
+
+
+def _write_bytes_atomically(path: Path, content: bytes) -> None:
+    handle, temporary = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(handle, "wb") as stream:
+            stream.write(content)
+        os.replace(temporary, path)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
+
+
+def _replace_layers(gpkg: Path, layers: Mapping[str, gpd.GeoDataFrame], crs: object) -> None:
+    handle, temporary = tempfile.mkstemp(dir=gpkg.parent, prefix=f".{gpkg.name}.", suffix=".tmp")
+    os.close(handle)
+    staged = Path(temporary)
+    try:
+        if gpkg.exists():
+            shutil.copyfile(gpkg, staged)
+            existing = {name for name, _ in pyogrio.list_layers(staged)}
+        else:
+            staged.unlink()
+            existing = set()
+        for name, layer in layers.items():
+            frame = layer if layer.crs is not None else layer.set_crs(crs)
+            if name in existing:
+                pyogrio.write_dataframe(
+                    frame, staged, layer=name, driver="GPKG", layer_options={"OVERWRITE": "YES"}
+                )
+            else:
+                frame.to_file(staged, layer=name, driver="GPKG", engine="pyogrio")
+        os.replace(staged, gpkg)
+    except BaseException:
+        staged.unlink(missing_ok=True)
+        raise

@@ -20,6 +20,7 @@ import pandas as pd
 
 from regional import __version__, io
 from regional.crossval import CALIBRATED
+from regional.report import make_figures, render_report
 from regional.result import RunResult
 
 PACKAGES = (
@@ -60,8 +61,6 @@ def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True
     images: dict[str, bytes] = {}
     report = None
     if figures:
-        from regional.report import make_figures, render_report
-
         images = {name: io.figure_png(figure) for name, figure in make_figures(result).items()}
         report = render_report(result, images)
     manifest = run_manifest(result)
@@ -73,6 +72,36 @@ def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True
         figures=images,
         report=report,
         manifest=manifest,
+    )
+
+
+PREDICTION_FIGURES = ("ungauged_mean_flow_map", "ungauged_hydrographs")
+SCREENING_FIGURES = ("screening",)
+
+
+def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -> Path:
+    """Write the files of one stage (``"prediction"`` or ``"screening"``) into ``folder``.
+
+    The other files of an earlier full run in that folder are kept; each file written is
+    replaced atomically.
+    """
+    if stage == "prediction":
+        tables = _prediction_tables(result)
+        layers = {"ungauged": result_layers(result)["ungauged"]}
+        names = PREDICTION_FIGURES
+    elif stage == "screening":
+        tables = {"screening.csv": result.screening.table.reset_index()}
+        layers = {"screening": result_layers(result)["screening"]}
+        names = SCREENING_FIGURES
+    else:
+        raise ValueError(f"unknown stage {stage!r}: 'prediction' or 'screening'")
+    figures = {
+        name: io.figure_png(figure)
+        for name, figure in make_figures(result).items()
+        if name in names
+    }
+    return io.update_run_folder(
+        Path(folder), tables=tables, layers=layers, crs=result.region.basins.crs, figures=figures
     )
 
 
@@ -88,13 +117,20 @@ def result_tables(result: RunResult) -> dict[str, pd.DataFrame]:
         "regression_coefficients.csv": _coefficients(result),
         "calibration.csv": _calibration(result),
     }
-    prediction = result.prediction
-    if prediction is not None:
-        tables["flows_ungauged.csv"] = prediction.flows
-        tables["parameters_ungauged.csv"] = prediction.table.reset_index()
+    if result.prediction is not None:
+        tables |= _prediction_tables(result)
     if result.screening is not None:
         tables["screening.csv"] = result.screening.table.reset_index()
     return tables
+
+
+def _prediction_tables(result: RunResult) -> dict[str, pd.DataFrame]:
+    prediction = result.prediction
+    return {
+        "flows_ungauged.csv": prediction.flows,
+        "parameters_ungauged.csv": prediction.table.reset_index(),
+        "coverage.csv": prediction.coverage,
+    }
 
 
 def _loo_scores(result: RunResult) -> pd.DataFrame:

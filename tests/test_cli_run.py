@@ -306,3 +306,21 @@ def test_run_help_carries_the_caution(capsys):
     with pytest.raises(SystemExit, match="0"):
         main(["run", "--help"])
     assert "licensed professional practice" in capsys.readouterr().out.replace("\n", " ")
+
+
+def test_predict_and_screen_update_their_files_and_keep_the_rest(run_folder, tmp_path, capsys):
+    folder = tmp_path / "results"
+    shutil.copytree(run_folder, folder)
+    kept = _checksums(folder)["loo_scores.csv"]
+    (folder / "flows_ungauged.csv").unlink()
+    assert main(["predict", str(DEMO), "--out", str(folder), "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "leave-one-out coverage" in out and "licensed" in out
+    flows = pd.read_csv(folder / "flows_ungauged.csv", dtype={"basin_id": str})
+    assert flows["basin_id"].nunique() == 14
+    assert main(["screen", str(DEMO), "--out", str(folder), "--quiet"]) == 0
+    assert "a gauge here would cut" in capsys.readouterr().out
+    assert _checksums(folder)["loo_scores.csv"] == kept
+    assert {"gauged", "ungauged", "screening"} <= {
+        n for n, _ in pyogrio.list_layers(folder / "results.gpkg")
+    }
