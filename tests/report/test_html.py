@@ -297,3 +297,23 @@ def test_cell_format(value, text):
     from regional.report.html import _fmt
 
     assert _fmt(value) == text
+
+
+def test_report_of_the_demo_region_with_its_real_prediction_and_screening(demo_result):
+    import io
+
+    from regional.report import make_figures
+
+    images = {}
+    for name, fig in make_figures(demo_result).items():
+        buffer = io.BytesIO()
+        fig.savefig(buffer, format="png", dpi=20)
+        images[name] = buffer.getvalue()
+    assert {"ungauged_mean_flow_map", "ungauged_hydrographs", "screening"} <= set(images)
+    page = render_report(demo_result, images)
+    parsed = _parse(page)
+    assert parsed.errors == []
+    assert len(parsed.images) == len(images)
+    section = page[page.index('id="ungauged"') : page.index('id="screening"')]
+    for basin in demo_result.region.ungauged:
+        assert f"<td>{basin}</td>" in section
