@@ -1,9 +1,8 @@
 """Figures of a run, drawn as :class:`matplotlib.figure.Figure` objects (never written here).
 
-Every function takes a run result (:class:`regional.pipeline.RunResult`; not imported, the
-pipeline sits below the report) and returns one Figure built without pyplot, so no global
-figure state is created or leaked; :mod:`regional.io` turns them into PNG files. Drawing needs
-no display (the Agg canvas is attached by :class:`~matplotlib.figure.Figure` itself).
+Every function takes a run result (:class:`regional.result.RunResult`) and returns one Figure
+built without pyplot, so no global figure state is created or leaked; :mod:`regional.io` turns
+them into PNG files. Drawing needs no display (a Figure carries its own Agg canvas).
 
 :func:`make_figures` draws every figure that applies to a run under a stable name:
 
@@ -24,7 +23,7 @@ name                        content
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
@@ -38,8 +37,8 @@ from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullLocato
 from regional.crossval import CALIBRATED, MEDIAN
 from regional.models import get_model
 
-RunResult = Any
-"""A :class:`regional.pipeline.RunResult` (duck-typed: the pipeline imports the report)."""
+if TYPE_CHECKING:  # pragma: no cover - annotations only
+    from regional.result import RunResult
 
 NSE_RANGE = (-1.0, 1.0)
 """Axis range of NSE figures; values below are counted in a note, not hidden silently."""

@@ -15,7 +15,7 @@ import math
 import numbers
 import platform
 from collections.abc import Iterable, Mapping, Sequence
-from typing import Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
@@ -23,8 +23,8 @@ import pandas as pd
 from regional.crossval import CALIBRATED, MEDIAN
 from regional.models import get_model
 
-RunResult = Any
-"""A :class:`regional.pipeline.RunResult` (duck-typed: the pipeline imports the report)."""
+if TYPE_CHECKING:  # pragma: no cover - annotations only
+    from regional.result import RunResult
 
 SECTIONS = (
     ("summary", "Summary"),
