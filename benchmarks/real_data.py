@@ -1,0 +1,66 @@
+"""Leave-one-out skill on every basin of the real open dataset (CAMELS-US in Caravan).
+
+Builds the region (gauge points, 289 basins; warm-up 1989, calibration 1990-1999, validation
+2000-2009; linear store and GR4J with the degree-day snow store), runs the whole chain and
+prints the per-method summary and the time taken. The figures are recorded in
+docs/validation.md. The dataset is read from ../shared/data/real (or REGIONAL_REAL_DATA) and
+never copied into the repository.
+
+Run:  python benchmarks/real_data.py [--workers 2] [--parts 01 03] [--objective kge]
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import tempfile
+import time
+import warnings
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+
+from real_region import available, build_region  # noqa: E402
+
+from regional.pipeline import run  # noqa: E402
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--workers", type=int, default=None, help="local Dask workers")
+    parser.add_argument("--parts", nargs="*", default=None, help="USGS parts (default: all)")
+    parser.add_argument("--objective", default="kge")
+    parser.add_argument("--models", nargs="*", default=["linear", "gr4j"])
+    args = parser.parse_args()
+    if not available():
+        sys.exit(
+            "real dataset not found: set REGIONAL_REAL_DATA or place it in ../shared/data/real"
+        )
+    warnings.simplefilter("ignore")
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = build_region(
+            Path(tmp), parts=args.parts, models=args.models, objective=args.objective
+        )
+        start = time.perf_counter()
+        result = run(folder, workers=args.workers)
+        seconds = time.perf_counter() - start
+    summary = result.summary.copy()
+    print(
+        f"{len(result.region.gauged)} gauged basins, objective {args.objective}, "
+        f"{seconds:.0f} s ({args.workers or 'in-process'} workers)"
+    )
+    print(summary.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
+    if result.prediction is not None:
+        print(result.prediction.coverage.to_string(index=False))
+    print("timings:", {k: round(v, 1) for k, v in result.timings.items()})
+    calibration = result.runs[result.chosen_model].calibration
+    print(
+        "calibration-period score, median:",
+        calibration["score_calibration"].median().round(3),
+        "validation:",
+        calibration["score_validation"].median().round(3),
+    )
+
+
+if __name__ == "__main__":
+    main()
