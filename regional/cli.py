@@ -259,7 +259,8 @@ def format_run_summary(result) -> str:
 
 
 def _predict_parser(subparsers: argparse._SubParsersAction) -> None:
-    parser = subparsers.add_parser(
+    _stage_parser(
+        subparsers,
         "predict",
         help="flows, bounds and flow statistics at the ungauged basins",
         description=(
@@ -270,8 +271,13 @@ def _predict_parser(subparsers: argparse._SubParsersAction) -> None:
             "layer of results.gpkg and its figures into the results folder, keeping the other "
             "files of an earlier run."
         ),
-        epilog=CAUTION,
     )
+
+
+def _stage_parser(
+    subparsers: argparse._SubParsersAction, name: str, *, help: str, description: str
+) -> None:
+    parser = subparsers.add_parser(name, help=help, description=description, epilog=CAUTION)
     parser.add_argument("region", help="region folder holding region.toml, or the TOML file")
     _add_run_options(parser)
 
@@ -311,7 +317,8 @@ def format_prediction(result) -> str:
 
 
 def _screen_parser(subparsers: argparse._SubParsersAction) -> None:
-    parser = subparsers.add_parser(
+    _stage_parser(
+        subparsers,
         "screen",
         help="rank candidate gauge sites by how much they would teach the region",
         description=(
@@ -320,10 +327,7 @@ def _screen_parser(subparsers: argparse._SubParsersAction) -> None:
             "over the region's ungauged basins, combined with how much its donors disagree. "
             "Writes screening.csv, the 'screening' layer of results.gpkg and its figure."
         ),
-        epilog=CAUTION,
     )
-    parser.add_argument("region", help="region folder holding region.toml, or the TOML file")
-    _add_run_options(parser)
 
 
 def _screen(args: argparse.Namespace) -> int:

@@ -8,9 +8,7 @@ interrupted run never touches the previous results.
 from __future__ import annotations
 
 import hashlib
-import importlib.metadata
 import json
-import platform
 from dataclasses import fields, is_dataclass
 from pathlib import Path
 from typing import Any
@@ -21,21 +19,8 @@ import pandas as pd
 from regional import __version__, io
 from regional.crossval import CALIBRATED
 from regional.report import make_figures, render_report
-from regional.result import RunResult
+from regional.result import RunResult, software_versions
 
-PACKAGES = (
-    "numpy",
-    "pandas",
-    "scipy",
-    "numba",
-    "scikit-learn",
-    "geopandas",
-    "shapely",
-    "pyproj",
-    "pyogrio",
-    "rasterio",
-    "matplotlib",
-)
 SCORE_NAMES = ("nse", "kge", "kge_r", "kge_alpha", "kge_beta", "log_nse", "pbias", "n_days")
 
 
@@ -225,7 +210,7 @@ def run_manifest(result: RunResult) -> dict[str, Any]:
         "settings": _plain(settings),
         "chosen": {"model": result.chosen_model, "method": result.chosen_method},
         "counts": {"gauged": len(result.region.gauged), "ungauged": len(result.region.ungauged)},
-        "software": {"python": platform.python_version(), **_versions()},
+        "software": software_versions(),
         "timings_s": {stage: round(seconds, 3) for stage, seconds in result.timings.items()},
         "warnings": list(result.warnings),
     }
@@ -245,16 +230,6 @@ def _sha256(path: Path) -> str:
         for block in iter(lambda: stream.read(1 << 20), b""):
             digest.update(block)
     return digest.hexdigest()
-
-
-def _versions() -> dict[str, str]:
-    versions = {}
-    for name in PACKAGES:
-        try:
-            versions[name] = importlib.metadata.version(name)
-        except importlib.metadata.PackageNotFoundError:
-            versions[name] = "not installed"
-    return versions
 
 
 def _plain(value: Any) -> Any:

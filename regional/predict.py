@@ -64,13 +64,10 @@ APPLICABILITY_LEVEL = 0.95
 EIGEN_FLOOR = 1e-6
 """Eigenvalues of the donors' correlation matrix are floored at this share of the largest."""
 
+SUMMARY_STATISTICS = ("mean_flow_mm", "mean_flow_m3s", "q5_mm", "q50_mm", "q95_mm", "min7_mean_mm")
+"""The headline statistics (mean flow, flow-duration points, 7-day minimum)."""
 STATISTIC_COLUMNS = (
-    "mean_flow_mm",
-    "mean_flow_m3s",
-    "q5_mm",
-    "q50_mm",
-    "q95_mm",
-    "min7_mean_mm",
+    *SUMMARY_STATISTICS,
     *(f"flow_m{month:02d}_mm" for month in range(1, 13)),
 )
 """Statistic columns of :attr:`Prediction.table` (``mean_flow_m3s`` needs the area)."""

@@ -6,6 +6,8 @@ pipeline fills them.
 
 from __future__ import annotations
 
+import importlib.metadata
+import platform
 from dataclasses import dataclass, field
 
 import pandas as pd
@@ -83,3 +85,31 @@ class RunResult:
     screening: object | None = None
     warnings: tuple[str, ...] = ()
     timings: dict[str, float] = field(default_factory=dict)
+
+
+SOFTWARE = (
+    "regional",
+    "numpy",
+    "pandas",
+    "scipy",
+    "numba",
+    "scikit-learn",
+    "geopandas",
+    "shapely",
+    "pyproj",
+    "pyogrio",
+    "rasterio",
+    "matplotlib",
+)
+"""Packages whose versions are recorded with every run (report and run.json)."""
+
+
+def software_versions() -> dict[str, str]:
+    """Python and package versions of this run, ``"not installed"`` for absent ones."""
+    versions = {"python": platform.python_version()}
+    for name in SOFTWARE:
+        try:
+            versions[name] = importlib.metadata.version(name)
+        except importlib.metadata.PackageNotFoundError:
+            versions[name] = "not installed"
+    return versions

@@ -5,7 +5,6 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-from demo_run import demo_result as run_demo
 from scipy import stats
 from scipy.spatial import distance
 
@@ -22,12 +21,6 @@ from regional.predict import (
     method_flows,
     predict_ungauged,
 )
-
-
-@pytest.fixture(scope="module")
-def demo_result():
-    """The demo region's run, shared with the other modules of the session (tests/demo_run.py)."""
-    return run_demo()
 
 
 @pytest.fixture(scope="module")

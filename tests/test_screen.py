@@ -6,7 +6,6 @@ import warnings
 
 import numpy as np
 import pytest
-from demo_run import demo_result as run_demo
 
 from regional.errors import InputError, InputWarning
 from regional.screen import (
@@ -15,12 +14,6 @@ from regional.screen import (
     screen_candidates,
     variance_reduction,
 )
-
-
-@pytest.fixture(scope="module")
-def demo_result():
-    """The demo region's run, shared with the other modules of the session (tests/demo_run.py)."""
-    return run_demo()
 
 
 @pytest.fixture(scope="module")

@@ -10,10 +10,8 @@ from __future__ import annotations
 
 import base64
 import html
-import importlib.metadata
 import math
 import numbers
-import platform
 from collections.abc import Iterable, Mapping, Sequence
 from typing import TYPE_CHECKING
 
@@ -22,6 +20,8 @@ import pandas as pd
 
 from regional.crossval import CALIBRATED, MEDIAN
 from regional.models import get_model
+from regional.predict import SUMMARY_STATISTICS
+from regional.result import software_versions
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.result import RunResult
@@ -66,19 +66,6 @@ FIGURE_SECTIONS = {
 }
 """Figures shown beside their tables; every other figure goes to the ``figures`` section."""
 
-PACKAGES = (
-    "regional",
-    "numpy",
-    "pandas",
-    "scipy",
-    "numba",
-    "scikit-learn",
-    "geopandas",
-    "shapely",
-    "pyproj",
-    "pyogrio",
-    "matplotlib",
-)
 DISTRIBUTION_COLUMNS = (
     "score_calibration",
     "score_validation",
@@ -86,14 +73,6 @@ DISTRIBUTION_COLUMNS = (
     "nse_validation",
     "kge_calibration",
     "kge_validation",
-)
-STATISTIC_COLUMNS = (
-    "mean_flow_mm",
-    "mean_flow_m3s",
-    "q5_mm",
-    "q50_mm",
-    "q95_mm",
-    "min7_mean_mm",
 )
 SCREENING_COLUMNS = (
     "rank",
@@ -702,7 +681,7 @@ def _estimate_table(result: RunResult) -> pd.DataFrame:
         ]
     for name in names:
         out[name] = _interval_column(table, name)
-    for column in STATISTIC_COLUMNS:
+    for column in SUMMARY_STATISTICS:
         if column in table.columns:
             out[column] = table[column]
     out["applicable"] = table["applicable"].astype(bool)
@@ -818,8 +797,7 @@ def _run_information(result: RunResult) -> list[str]:
             "seconds": [*result.timings.values(), sum(result.timings.values())],
         }
     )
-    versions = [("python", platform.python_version())]
-    versions += [(name, _version(name)) for name in PACKAGES]
+    versions = list(software_versions().items())
     return [
         _p(f"Settings: {result.settings.path}"),
         _h3("Timings"),
@@ -827,10 +805,3 @@ def _run_information(result: RunResult) -> list[str]:
         _h3("Software"),
         _key_values(versions),
     ]
-
-
-def _version(name: str) -> str:
-    try:
-        return importlib.metadata.version(name)
-    except importlib.metadata.PackageNotFoundError:
-        return "not installed"
