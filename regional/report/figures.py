@@ -25,6 +25,7 @@ from __future__ import annotations
 import math
 from typing import TYPE_CHECKING
 
+import matplotlib
 import numpy as np
 import pandas as pd
 from matplotlib.cm import ScalarMappable
@@ -57,7 +58,6 @@ BASELINE_STYLES = {
     MEDIAN: {"color": "0.45", "linestyle": ":", "linewidth": 1.8},
 }
 METHOD_COLOURS = ("#d95f02", "#1b9e77", "#7570b3", "#e7298a", "#66a61e", "#e6ab02")
-UNGAUGED_EDGE = "0.55"
 LOG_DECADES = 3.0
 """Decades of flow shown below the peak on log flow axes (lower flows fall off the axis)."""
 
@@ -132,9 +132,14 @@ def loo_nse_map(
     norm = Normalize(vmin=lower, vmax=1.0)
     fig, ax = _figure(7.0, 6.0)
     _draw_basins(
-        ax, region, list(region.ungauged), facecolor="none", edgecolor=UNGAUGED_EDGE, zorder=1
+        ax,
+        region,
+        list(region.basins.index),
+        values=nse,
+        norm=norm,
+        cmap="viridis",
+        missing="white",
     )
-    _draw_basins(ax, region, list(nse.index), values=nse, norm=norm, cmap="viridis", zorder=2)
     extend = "min" if float(nse.min()) < lower else "neither"
     bar = fig.colorbar(ScalarMappable(norm=norm, cmap="viridis"), ax=ax, extend=extend, shrink=0.8)
     bar.set_label("Leave-one-out NSE (-)")
@@ -142,7 +147,7 @@ def loo_nse_map(
         _label_basins(ax, region, list(region.basins.index))
     ax.legend(
         handles=[
-            Patch(facecolor="none", edgecolor=UNGAUGED_EDGE, label="ungauged basin"),
+            Patch(facecolor="white", edgecolor="0.25", label="ungauged basin (no score)"),
         ],
         loc="lower left",
         fontsize=8,
@@ -361,8 +366,15 @@ def ungauged_mean_flow_map(result: RunResult, *, label_basins: bool | None = Non
     flow = table["mean_flow_mm"].astype(float)
     norm = Normalize(vmin=float(flow.min()), vmax=max(float(flow.max()), float(flow.min()) + 1e-9))
     fig, ax = _figure(7.0, 6.0)
-    _draw_basins(ax, region, list(region.gauged), facecolor="0.9", edgecolor="0.7", zorder=1)
-    _draw_basins(ax, region, list(flow.index), values=flow, norm=norm, cmap="Blues", zorder=2)
+    _draw_basins(
+        ax,
+        region,
+        list(region.basins.index),
+        values=flow,
+        norm=norm,
+        cmap="Blues",
+        missing="0.9",
+    )
     flagged = [b for b in table.index if not bool(table.loc[b, "applicable"])]
     _draw_flags(ax, region, flagged)
     bar = fig.colorbar(ScalarMappable(norm=norm, cmap="Blues"), ax=ax, shrink=0.8)
@@ -605,14 +617,24 @@ def _draw_basins(
     facecolor: str = "none",
     edgecolor: str = "0.3",
     zorder: int = 1,
+    missing: str = "none",
 ) -> None:
+    """Draw basins, larger first so nested basins stay visible on top of those they lie in.
+
+    With ``values``, basins without a value (NaN or absent) are filled with ``missing``.
+    """
     if not basins:
         return
     frame = region.basins.loc[basins]
+    if not region.is_point:
+        frame = frame.iloc[np.argsort(-frame.geometry.area.to_numpy(), kind="stable")]
+        basins = list(frame.index)
     colours = None
     if values is not None:
-        mapper = ScalarMappable(norm=norm, cmap=cmap)
-        colours = mapper.to_rgba(values.reindex(basins).to_numpy(dtype=float))
+        mapper = ScalarMappable(
+            norm=norm, cmap=matplotlib.colormaps[cmap].with_extremes(bad=missing)
+        )
+        colours = mapper.to_rgba(np.ma.masked_invalid(values.reindex(basins).to_numpy(float)))
     if region.is_point:
         ax.scatter(
             frame.geometry.x,
