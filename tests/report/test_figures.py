@@ -7,6 +7,7 @@ from dataclasses import replace
 
 import matplotlib
 import numpy as np
+import pandas as pd
 import pytest
 from conftest import fake_prediction, fake_screening
 from matplotlib.collections import PathCollection, PolyCollection
@@ -85,26 +86,37 @@ def test_every_figure_renders_to_png(full_run):
 # Leave-one-out figures
 
 
-def test_loo_nse_map_colours_every_gauged_basin_and_outlines_ungauged(bare_run):
+def _drawn_colours(fig, region) -> pd.DataFrame:
+    """Face colour of each basin on a map: basins are drawn in one pass, larger first."""
+    collection = next(
+        c for c in fig.axes[0].collections if len(c.get_facecolors()) == len(region.basins)
+    )
+    if region.is_point:
+        order = list(region.basins.index)
+    else:
+        area = region.basins.geometry.area.to_numpy()
+        order = list(region.basins.index[np.argsort(-area, kind="stable")])
+    return pd.DataFrame(collection.get_facecolors(), index=order, columns=list("rgba"))
+
+
+def test_loo_nse_map_colours_every_gauged_basin_and_leaves_ungauged_white(bare_run):
     fig = figures.loo_nse_map(bare_run)
-    ax = fig.axes[0]
-    sizes = sorted(len(c.get_paths()) for c in ax.collections)
     region = bare_run.region
-    assert len(region.gauged) in sizes
-    assert len(region.ungauged) in sizes
+    colours = _drawn_colours(fig, region)
+    white = (colours == 1.0).all(axis=1)
+    assert set(colours.index[white]) == set(region.ungauged)
     assert len(fig.axes) == 2  # map and colour bar
     assert "NSE" in fig.axes[1].get_ylabel()
-    assert ax.get_xlabel().startswith("Easting")
+    assert fig.axes[0].get_xlabel().startswith("Easting")
 
 
 def test_loo_nse_map_colours_follow_nse_order(bare_run):
     fig = figures.loo_nse_map(bare_run, label_basins=False)
     gauged = list(bare_run.region.gauged)
-    coloured = next(c for c in fig.axes[0].collections if len(c.get_paths()) == len(gauged))
+    colours = _drawn_colours(fig, bare_run.region).loc[gauged]
     nse = _scores(bare_run, bare_run.chosen_method).reindex(gauged).to_numpy()
-    colours = coloured.get_facecolors()
     # viridis brightens with value: the best basin is drawn brighter than the worst
-    brightness = colours[:, :3].sum(axis=1)
+    brightness = colours[["r", "g", "b"]].sum(axis=1).to_numpy()
     assert brightness[np.argmax(nse)] > brightness[np.argmin(nse)]
 
 
@@ -115,9 +127,9 @@ def test_loo_nse_map_draws_points_for_outlet_basins(bare_run):
     point_run = replace(bare_run, region=replace(region, basins=points, is_point=True))
     fig = figures.loo_nse_map(point_run)
     scatters = [c for c in fig.axes[0].collections if isinstance(c, PathCollection)]
-    assert sorted(len(c.get_offsets()) for c in scatters) == sorted(
-        [len(region.gauged), len(region.ungauged)]
-    )
+    assert [len(c.get_offsets()) for c in scatters] == [len(region.basins)]
+    colours = _drawn_colours(fig, point_run.region)
+    assert set(colours.index[(colours == 1.0).all(axis=1)]) == set(region.ungauged)
 
 
 def test_parameter_scatter_has_one_panel_per_parameter_and_method(bare_run):
