@@ -43,7 +43,7 @@ def make_region(folder: Path, n_basins: int, years: int, seed: int = 11) -> Path
     lat = rng.uniform(45.0, 52.0, n_basins)
     slope = rng.uniform(1.0, 25.0, n_basins)
     sand = rng.uniform(0.1, 0.8, n_basins)
-    wetness = 0.6 + 0.4 * np.sin(lon / 2.0) + rng.normal(0, 0.1, n_basins)
+    wetness = np.clip(0.7 + 0.3 * np.sin(lon / 2.0) + rng.normal(0, 0.1, n_basins), 0.2, None)
     basins = gpd.GeoDataFrame(
         {
             "basin_id": ids,
