@@ -14,7 +14,6 @@ from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 
 from regional.calibrate import Window, calibrate, scoring_window
@@ -315,12 +314,3 @@ def _choose(summary: pd.DataFrame, settings: Settings) -> tuple[str, str]:
         return str(picked.iloc[0]["model"]), wanted_method
     best = best_method(rows[rows["method"] != CALIBRATED])
     return str(best["model"]), str(best["method"])
-
-
-def median_nse(result: RunResult, method: str, model: str | None = None) -> float:
-    """Median leave-one-out NSE of one method (of the chosen model by default)."""
-    rows = result.summary[
-        (result.summary["model"] == (model or result.chosen_model))
-        & (result.summary["method"] == method)
-    ]
-    return float(rows["median_nse"].iloc[0]) if len(rows) else float(np.nan)
