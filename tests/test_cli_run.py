@@ -324,3 +324,20 @@ def test_predict_and_screen_update_their_files_and_keep_the_rest(run_folder, tmp
     assert {"gauged", "ungauged", "screening"} <= {
         n for n, _ in pyogrio.list_layers(folder / "results.gpkg")
     }
+
+
+def test_two_models_are_compared_side_by_side(tmp_path, region_parts, capsys):
+    from tiny_region import write_region
+
+    region_parts.config["model"]["name"] = ["linear", "gr4j"]
+    folder = write_region(tmp_path / "region", region_parts)
+    out = tmp_path / "results"
+    assert main(["run", str(folder), "--out", str(out), "--quiet"]) == 0
+    summary = pd.read_csv(out / "loo_summary.csv")
+    assert set(summary["model"]) == {"linear", "gr4j"}
+    assert (summary.groupby("model")["method"].count() == 5).all()
+    assert (out / "figures" / "model_comparison.png").is_file()
+    printed = capsys.readouterr().out
+    assert "gr4j" in printed and "chosen for prediction: model" in printed
+    gauged = pyogrio.read_dataframe(out / "results.gpkg", layer="gauged")
+    assert {"k_per_day_linear", "x1_mm_gr4j", "loo_nse_similarity_gr4j"} <= set(gauged.columns)
