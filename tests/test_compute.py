@@ -26,3 +26,22 @@ def test_in_process_map_reports_progress_in_basins():
 
 def test_default_executor_is_in_process():
     assert make_executor().name == "in-process"
+
+
+def test_local_dask_cluster_gives_the_same_loo_scores_as_in_process(tmp_path, region_parts):
+    # Two worker processes on this machine (distributed.LocalCluster) against the default
+    # in-process run of the same region: loo_scores.csv must be identical.
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    import pandas as pd
+    from tiny_region import write_region
+
+    from regional.cli import main
+
+    folder = write_region(tmp_path / "region", region_parts)
+    here, there = tmp_path / "in_process", tmp_path / "cluster"
+    assert main(["run", str(folder), "--out", str(here), "--quiet"]) == 0
+    assert main(["run", str(folder), "--out", str(there), "--quiet", "--workers", "2"]) == 0
+    first = pd.read_csv(here / "loo_scores.csv", dtype={"basin_id": str})
+    second = pd.read_csv(there / "loo_scores.csv", dtype={"basin_id": str})
+    pd.testing.assert_frame_equal(first, second)
+    assert (here / "calibration.csv").read_text() == (there / "calibration.csv").read_text()
