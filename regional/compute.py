@@ -86,6 +86,7 @@ class DaskExecutor:
                 threads_per_worker=1,
                 processes=True,
                 dashboard_address=None,
+                silence_logs=logging.ERROR,
             )
             self.client = Client(self._cluster)
         logger.info("dask client: %s", self.client)
