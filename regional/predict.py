@@ -370,27 +370,105 @@ def _held_out_coverage(observed: pd.DataFrame, simulated: pd.DataFrame, level: f
     """Coverage of each basin's observed days by bounds built from the OTHER basins only.
 
     Classes and offsets are within-basin functions of the simulated flow, so each residual is
-    computed once; the quantiles are rebuilt without the basin. The number of classes depends
-    on record lengths only and is set once.
+    computed once; the quantiles without each basin come from :func:`_held_out_quantiles`, all
+    basins at once. The number of classes depends on record lengths only and is set once.
     """
     obs, sim = _aligned(observed, simulated)
     k = _n_classes(obs)
     classes = _flow_classes(sim, k)
     residual, basin, cls = _residuals(obs, sim, classes, OFFSET_FRACTION)
     data = _Sorted.of(residual, basin, cls, k)
+    n_columns = obs.shape[1]
+    lower = np.empty((k, n_columns))
+    upper = np.empty((k, n_columns))
+    for c, (values, basins) in enumerate(zip(data.values, data.basins, strict=True)):
+        lower[c], upper[c] = _held_out_quantiles(values, basins, level, n_columns)
+    columns = np.broadcast_to(np.arange(n_columns), obs.shape)
     offsets = basin_offsets(sim)
+    with np.errstate(over="ignore"):
+        low = (sim + offsets) * np.exp(np.minimum(lower, 0.0)[classes, columns]) - offsets
+        high = (sim + offsets) * np.exp(np.maximum(upper, 0.0)[classes, columns]) - offsets
+    low, high = np.clip(np.minimum(low, sim), 0.0, None), np.maximum(high, sim)
     valid = np.isfinite(obs)
-    shares = []
-    for j in np.flatnonzero(valid.any(axis=0)):
-        model = _fit(data, level=level, fraction=OFFSET_FRACTION, without=j)
-        low, high = _apply(sim[:, j], classes[:, j], offsets[j], model)
-        inside = (obs[:, j] >= low) & (obs[:, j] <= high)
-        shares.append(inside[valid[:, j]].mean())
+    inside = (obs >= low) & (obs <= high) & valid
+    scored = valid.any(axis=0)
+    shares = inside[:, scored].sum(axis=0) / valid[:, scored].sum(axis=0)
     return {
-        "coverage": float(np.mean(shares)) if shares else np.nan,
+        "coverage": float(np.mean(shares)) if len(shares) else np.nan,
         "n_days": int(valid.sum()),
-        "n_basins": len(shares),
+        "n_basins": int(scored.sum()),
     }
+
+
+def _held_out_quantiles(
+    values: np.ndarray, basins: np.ndarray, level: float, n_columns: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Basin-weighted conformal quantiles of one class with each basin left out in turn.
+
+    Equal to :func:`_pooled_bounds` on the class's residuals without basin j, for every j at
+    once: with B basins in the class and n_b days of basin b, the cumulative weight without j at
+    sorted position i is B / (B - 1) x (C(i) - m_j(i) / (B n_j)), C the full cumulative weight
+    and m_j(i) the days of basin j at or before i; a vectorised bisection over i finds each
+    quantile in O(B log D) instead of refitting B times.
+
+    Returns
+    -------
+    lower, upper : ndarray (n_columns,)
+        Quantiles without each basin (column); basins absent from the class get the full ones.
+    """
+    full_low, full_high = _pooled_bounds(values, basins, level)
+    lower, upper = np.full(n_columns, full_low), np.full(n_columns, full_high)
+    days = len(values)
+    if days == 0:
+        return lower, upper
+    codes, inverse, counts = np.unique(basins, return_inverse=True, return_counts=True)
+    n_basins = len(codes)
+    if n_basins == 1:
+        lower[codes], upper[codes] = -np.inf, np.inf
+        return lower, upper
+    cumulative = np.cumsum(1.0 / (n_basins * counts[inverse]))
+    order = np.argsort(inverse, kind="stable")
+    keys = inverse[order] * (days + 1) + order
+    base = np.arange(n_basins) * (days + 1)
+    starts = np.searchsorted(keys, base)
+    scale = n_basins / (n_basins - 1)
+
+    def without(position: np.ndarray) -> np.ndarray:
+        own = np.searchsorted(keys, base + position, side="right") - starts
+        return scale * (cumulative[position] - own / (n_basins * counts))
+
+    remaining = days - counts
+    probabilities = (
+        np.floor((remaining + 1) * (1.0 - level) / 2.0) / remaining,
+        np.ceil((remaining + 1) * (1.0 + level) / 2.0) / remaining,
+    )
+    for out, probability, outside in zip(
+        (lower, upper), probabilities, (-np.inf, np.inf), strict=True
+    ):
+        out[codes] = _bisect_quantiles(values, without, probability, outside, days)
+        unreached = np.flatnonzero(np.isnan(out[codes]))
+        for j in unreached:  # rounding left the last weight short of 1: refit that basin
+            keep = basins != codes[j]
+            bounds = _pooled_bounds(values[keep], basins[keep], level)
+            out[codes[j]] = bounds[0] if outside < 0 else bounds[1]
+    return lower, upper
+
+
+def _bisect_quantiles(values, without, probability, outside, days) -> np.ndarray:
+    """Smallest sorted position whose held-out cumulative weight reaches ``probability``."""
+    tolerance = 1e-12
+    target = probability - tolerance
+    lo = np.zeros(len(probability), dtype=np.int64)
+    hi = np.full(len(probability), days, dtype=np.int64)
+    while (lo < hi).any():
+        mid = (lo + hi) // 2
+        reached = without(np.minimum(mid, days - 1)) >= target
+        active = lo < hi
+        hi = np.where(active & reached, mid, hi)
+        lo = np.where(active & ~reached, mid + 1, lo)
+    result = np.where(lo < days, values[np.minimum(lo, days - 1)], np.nan)
+    invalid = (probability <= tolerance) | (probability > 1.0 + tolerance)
+    return np.where(invalid, outside, result)
 
 
 def loo_coverage(result: RunResult, *, level: float) -> pd.DataFrame:

@@ -369,3 +369,34 @@ def test_wider_level_gives_wider_bounds(demo_result, prediction):
     assert (wider.error_model["lower_q"] <= prediction.error_model["lower_q"]).all()
     with pytest.raises(InputError, match="strictly between 0 and 1"):
         predict_ungauged(demo_result, level=1.5)
+
+
+def test_held_out_coverage_equals_refitting_without_each_basin():
+    # The all-basins-at-once quantiles must equal the direct route: rebuild the error model
+    # without basin j (predict._fit(without=j)), apply it to j, count j's days inside.
+    from regional import predict
+
+    rng = np.random.default_rng(5)
+    days, n = 400, 12
+    sim = rng.gamma(1.0, 2.0, (days, n))
+    obs = sim * rng.lognormal(0.0, 0.5, (days, n))
+    obs[rng.random((days, n)) < 0.1] = np.nan
+    obs[:150, 3] = np.nan
+    index = pd.date_range("2001-01-01", periods=days)
+    observed, simulated = pd.DataFrame(obs, index), pd.DataFrame(sim, index)
+    fast = predict._held_out_coverage(observed, simulated, 0.8)
+
+    k = predict._n_classes(obs)
+    classes = predict._flow_classes(sim, k)
+    residual, basin, cls = predict._residuals(obs, sim, classes, predict.OFFSET_FRACTION)
+    data = predict._Sorted.of(residual, basin, cls, k)
+    offsets = predict.basin_offsets(sim)
+    shares = []
+    for j in range(n):
+        model = predict._fit(data, level=0.8, fraction=predict.OFFSET_FRACTION, without=j)
+        low, high = predict._apply(sim[:, j], classes[:, j], offsets[j], model)
+        valid = np.isfinite(obs[:, j])
+        shares.append(((obs[:, j] >= low) & (obs[:, j] <= high))[valid].mean())
+    assert k > 1
+    assert fast["coverage"] == pytest.approx(np.mean(shares), abs=1e-12)
+    assert fast["n_basins"] == n
