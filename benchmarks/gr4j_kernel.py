@@ -56,6 +56,9 @@ def time_calibration(model, precip, pet, params, n_basins: int) -> float:
 
 
 def main() -> None:
+    from regional.compute import keep_freed_memory
+
+    keep_freed_memory()  # as the command line does
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--basins", type=int, default=1000)
     parser.add_argument("--years", type=int, default=20)

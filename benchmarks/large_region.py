@@ -114,10 +114,12 @@ def child(n_basins: int, years: int, workers: int) -> None:
     """Build, run and write one configuration; print a JSON line with time and memory."""
     import warnings
 
+    from regional.compute import keep_freed_memory
     from regional.outputs import write_outputs
     from regional.pipeline import run
 
     warnings.simplefilter("ignore")
+    keep_freed_memory()  # as the command line does
     with tempfile.TemporaryDirectory() as tmp:
         folder = make_region(Path(tmp), n_basins, years)
         start = time.perf_counter()

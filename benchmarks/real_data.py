@@ -26,6 +26,9 @@ from regional.pipeline import run  # noqa: E402
 
 
 def main() -> None:
+    from regional.compute import keep_freed_memory
+
+    keep_freed_memory()  # as the command line does
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--workers", type=int, default=None, help="local Dask workers")
     parser.add_argument("--parts", nargs="*", default=None, help="USGS parts (default: all)")

@@ -14,6 +14,7 @@ from pathlib import Path
 import pandas as pd
 
 from regional import __version__, io
+from regional.compute import keep_freed_memory
 from regional.errors import InputError, InputWarning
 from regional.region import RegionSummary, describe_region, load_region
 
@@ -390,6 +391,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     """
     parser = build_parser()
     args = parser.parse_args(argv)
+    keep_freed_memory()
     if args.command is None:
         parser.print_help()
         return 0

@@ -10,6 +10,7 @@ tasks; a local cluster of ``workers`` processes is started when no scheduler add
 
 from __future__ import annotations
 
+import ctypes
 import logging
 from collections.abc import Callable, Sequence
 from typing import Any
@@ -18,6 +19,43 @@ logger = logging.getLogger(__name__)
 
 ChunkFn = Callable[[Sequence[str], Any], Any]
 Progress = Callable[[int, int], None] | None
+
+
+HEAP_PAD_BYTES = 256 * 2**20
+"""Freed memory glibc keeps at the top of the heap instead of returning it to the system."""
+_M_TRIM_THRESHOLD, _M_TOP_PAD = -1, -2  # mallopt parameter numbers of glibc's malloc.h
+
+
+def keep_freed_memory() -> bool:
+    """Ask glibc's malloc to keep freed heap memory for reuse (Linux only; else a no-op).
+
+    The kernels, metrics and folds allocate and free many arrays of a few MB. By default glibc
+    returns freed memory at the top of the heap to the system at once, so the next array faults
+    its pages in again; on virtual machines, where a page fault is costly, that made the whole
+    chain about 3 x slower on the development machine (a side-by-side measure in this process
+    against a thread, whose arena is not trimmed). Setting a top pad and trim threshold of
+    256 MB keeps at most that much freed memory mapped. Called by the command line and for the
+    workers of a local Dask cluster; a library user may call it too.
+
+    Returns
+    -------
+    bool
+        Whether the allocator accepted the settings.
+    """
+    try:
+        libc = ctypes.CDLL("libc.so.6")
+    except OSError:
+        return False
+    done = libc.mallopt(_M_TOP_PAD, HEAP_PAD_BYTES) == 1
+    return libc.mallopt(_M_TRIM_THRESHOLD, 2 * HEAP_PAD_BYTES) == 1 and done
+
+
+WORKER_ENVIRONMENT = {
+    "MALLOC_TOP_PAD_": str(HEAP_PAD_BYTES),
+    "MALLOC_TRIM_THRESHOLD_": str(2 * HEAP_PAD_BYTES),
+}
+"""Environment of local Dask workers: the same allocator settings as :func:`keep_freed_memory`
+(``distributed`` otherwise starts workers with a 64 KiB trim threshold)."""
 
 
 def chunked(items: Sequence[str], size: int) -> list[list[str]]:
@@ -77,17 +115,20 @@ class DaskExecutor:
                 "running on a Dask cluster needs the 'distributed' package: "
                 'pip install "regional[cluster]"'
             ) from error
+        import dask
+
         self._cluster = None
         if scheduler:
             self.client = Client(scheduler)
         else:
-            self._cluster = LocalCluster(
-                n_workers=workers or 2,
-                threads_per_worker=1,
-                processes=True,
-                dashboard_address=None,
-                silence_logs=logging.ERROR,
-            )
+            with dask.config.set({"distributed.nanny.pre-spawn-environ": WORKER_ENVIRONMENT}):
+                self._cluster = LocalCluster(
+                    n_workers=workers or 2,
+                    threads_per_worker=1,
+                    processes=True,
+                    dashboard_address=None,
+                    silence_logs=logging.ERROR,
+                )
             self.client = Client(self._cluster)
         logger.info("dask client: %s", self.client)
 
