@@ -58,6 +58,20 @@ WORKER_ENVIRONMENT = {
 (``distributed`` otherwise starts workers with a 64 KiB trim threshold)."""
 
 
+def warm_up() -> None:
+    """Load the compiled kernels in this process (run on each new worker before any task)."""
+    import numpy as np
+
+    from regional.models import model_names, simulate
+    from regional.models.simulate import get_model
+
+    for name in model_names():
+        params = {p.name: p.initial for p in get_model(name).parameters}
+        forcing = np.ones(3)
+        simulate(name, forcing, forcing, params)
+        simulate(name, forcing, forcing, params, temp=forcing)
+
+
 def chunked(items: Sequence[str], size: int) -> list[list[str]]:
     """Cut ``items`` into consecutive chunks of at most ``size`` (order kept)."""
     if size < 1:
@@ -130,6 +144,7 @@ class DaskExecutor:
                     silence_logs=logging.ERROR,
                 )
             self.client = Client(self._cluster)
+        self.client.run(warm_up)
         logger.info("dask client: %s", self.client)
 
     def map(

@@ -200,9 +200,10 @@ def _one_fold(target: str, context: FoldContext) -> dict:
     return fold
 
 
-def _training_ids(target: str, context: FoldContext) -> list[str]:
-    drop = {target} | set(context.excluded.get(target, ()))
-    return [b for b in context.calibrated.index if b not in drop]
+def _training_ids(target: str, context: FoldContext) -> pd.Index:
+    drop = [target, *context.excluded.get(target, ())]
+    ids = context.calibrated.index
+    return ids[~ids.isin(drop)]
 
 
 def _target_forcing(target: str, context: FoldContext) -> dict[str, np.ndarray | None]:

@@ -254,7 +254,8 @@ def _fold_context(model, region, settings, window, calibration, attributes, excl
     names = [p.name for p in get_model(model).parameters]
     part = slice(window.start, window.stop)
     temp = use_temperature(region, settings)
-    gauged = list(calibration.index)
+    gauged = sorted(calibration.index)  # sorted once: every fold's training rows stay sorted
+    calibration = calibration.loc[gauged]
     evaluation = window.validation if window.validation.any() else window.calibration
     return FoldContext(
         model=model,

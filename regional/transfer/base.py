@@ -306,6 +306,8 @@ def check_parameters(
 
 def sort_training(X: pd.DataFrame, y: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Order training rows by basin id so results never depend on the input row order."""
+    if X.index.is_monotonic_increasing:
+        return X, y
     order = np.argsort(X.index.to_numpy(dtype=str), kind="stable")
     return X.iloc[order], y.iloc[order]
 
