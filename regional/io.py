@@ -584,7 +584,7 @@ def _write_bytes_atomically(path: Path, content: bytes) -> None:
 
 
 def _replace_layers(gpkg: Path, layers: Mapping[str, gpd.GeoDataFrame], crs: object) -> None:
-    handle, temporary = tempfile.mkstemp(dir=gpkg.parent, prefix=f".{gpkg.name}.", suffix=".tmp")
+    handle, temporary = tempfile.mkstemp(dir=gpkg.parent, prefix=".results.", suffix=".tmp.gpkg")
     os.close(handle)
     staged = Path(temporary)
     try:
