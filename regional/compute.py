@@ -59,8 +59,10 @@ WORKER_ENVIRONMENT = {
 
 
 def warm_up() -> None:
-    """Load the compiled kernels in this process (run on each new worker before any task)."""
+    """Set the allocator and load the compiled kernels (run on each new worker before any task)."""
     import numpy as np
+
+    keep_freed_memory()
 
     from regional.models import model_names, simulate
     from regional.models.simulate import get_model
