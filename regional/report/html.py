@@ -126,7 +126,8 @@ body { margin: 0; color: var(--ink); background: #fff;
 header { padding: 1.6em 2em 1em; border-bottom: 3px solid var(--accent); }
 header h1 { margin: 0 0 .2em; font-size: 1.6em; font-weight: 600; }
 header p { margin: 0; color: var(--muted); }
-nav { padding: .6em 2em; background: var(--band); font-size: .9em; }
+nav { padding: .6em 2em; background: var(--band); font-size: .9em; display: flex;
+      flex-wrap: wrap; row-gap: .3em; }
 nav a { color: var(--accent); margin-right: 1.1em; text-decoration: none; white-space: nowrap; }
 main { max-width: 1180px; padding: 0 2em 3em; }
 section { border-top: 1px solid var(--rule); padding-top: .4em; margin-top: 1.6em; }
