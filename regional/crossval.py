@@ -32,7 +32,7 @@ from regional import metrics
 from regional.calibrate import Window
 from regional.compute import InProcessExecutor, chunked
 from regional.errors import InputError
-from regional.models import get_model, simulate
+from regional.models import get_model, parameter_transforms, simulate
 from regional.transfer import make_transfer, simulate_donors
 from regional.transfer.base import weighted_estimate
 
@@ -182,7 +182,7 @@ def run_folds(targets: Sequence[str], context: FoldContext) -> list[dict]:
 
 def _one_fold(target: str, context: FoldContext) -> dict:
     chosen = get_model(context.model)
-    transforms = {p.name: p.transform for p in chosen.parameters}
+    transforms = parameter_transforms(context.model)
     names = [p.name for p in chosen.parameters]
     forcing = _target_forcing(target, context)
     obs = context.flow_mm[target].to_numpy(dtype=float)[context.evaluation]

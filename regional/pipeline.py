@@ -28,13 +28,14 @@ from regional.crossval import (
     summarise,
 )
 from regional.errors import InputError, InputWarning
-from regional.models import get_model
+from regional.models import get_model, parameter_transforms
 from regional.overlap import excluded_donors, overlap_shares
 from regional.predict import predict_ungauged
 from regional.region import Region, load_region
 from regional.result import ModelRun, RunResult
 from regional.screen import screen_candidates
 from regional.transfer import RegressionTransfer
+from regional.transfer.base import numeric_columns
 
 logger = logging.getLogger(__name__)
 
@@ -162,12 +163,7 @@ def transfer_attributes(region: Region, settings: Settings) -> tuple[str, ...]:
     table = region.attributes
     chosen = settings.transfer.attributes
     if chosen is None:
-        numeric = [
-            c
-            for c in table.columns
-            if pd.api.types.is_numeric_dtype(table[c]) and not pd.api.types.is_bool_dtype(table[c])
-        ]
-        chosen = tuple(c for c in numeric if c not in NOT_TRANSFERABLE)
+        chosen = tuple(c for c in numeric_columns(table) if c not in NOT_TRANSFERABLE)
     missing = table.loc[:, list(chosen)].isna()
     if missing.to_numpy().any():
         column = missing.any().idxmax()
@@ -291,7 +287,7 @@ def _fold_columns(region: Region, attributes) -> list[str]:
 
 
 def _regression_on_all(context: FoldContext, attributes) -> RegressionTransfer:
-    transforms = {p.name: p.transform for p in get_model(context.model).parameters}
+    transforms = parameter_transforms(context.model)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", InputWarning)
         return RegressionTransfer(attributes=list(attributes)).fit(

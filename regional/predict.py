@@ -42,7 +42,7 @@ from scipy import stats
 
 from regional.crossval import FoldContext, method_order
 from regional.errors import InputError, InputWarning
-from regional.models import get_model, simulate
+from regional.models import get_model, parameter_transforms, simulate
 from regional.region import MM_PER_DAY_PER_M3S_KM2
 from regional.transfer import Donation, make_transfer, simulate_donors
 
@@ -787,10 +787,6 @@ def predict_ungauged(result: RunResult, *, level: float | None = None) -> Predic
     )
 
 
-def _transforms(model: str) -> dict[str, str]:
-    return {p.name: p.transform for p in get_model(model).parameters}
-
-
 def fit_transfers(
     context: FoldContext, *, level: float, train: Sequence[str] | None = None
 ) -> tuple[dict[str, object], list[str]]:
@@ -811,7 +807,7 @@ def fit_transfers(
         Method -> fitted estimator; distinct warnings raised while fitting.
     """
     options = context.options
-    transforms = _transforms(context.model)
+    transforms = parameter_transforms(context.model)
     train = list(context.calibrated.index if train is None else train)
     attributes = list(options.attributes) if options.attributes else None
     estimators = {}

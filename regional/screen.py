@@ -35,7 +35,7 @@ import numpy as np
 import pandas as pd
 
 from regional.errors import InputError, InputWarning
-from regional.models import get_model
+from regional.models import parameter_transforms
 from regional.predict import applicability
 from regional.transfer import RegressionTransfer, make_transfer
 
@@ -224,7 +224,7 @@ def _candidates(result: RunResult, candidates: Sequence[str] | None) -> list[str
 
 def _donor_spread(context, sites: pd.DataFrame, attributes: Sequence[str]) -> pd.DataFrame:
     """Spread of the similarity donors' transformed parameters at each site, over the region's."""
-    transforms = {p.name: p.transform for p in get_model(context.model).parameters}
+    transforms = parameter_transforms(context.model)
     names = list(transforms)
     n_donors = min(context.options.n_donors, len(context.calibrated))
     with warnings.catch_warnings():

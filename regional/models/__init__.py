@@ -10,7 +10,7 @@ from __future__ import annotations
 from regional.models.base import Parameter, Simulation
 from regional.models.gr4j import GR4J
 from regional.models.linear import LinearReservoir
-from regional.models.simulate import get_model, model_names, simulate
+from regional.models.simulate import get_model, model_names, parameter_transforms, simulate
 from regional.models.snow import DegreeDaySnow
 
 __all__ = [
@@ -21,5 +21,6 @@ __all__ = [
     "Simulation",
     "get_model",
     "model_names",
+    "parameter_transforms",
     "simulate",
 ]

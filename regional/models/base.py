@@ -10,6 +10,19 @@ from dataclasses import dataclass
 import numpy as np
 
 TRANSFORMS = ("log", "identity")
+"""Spaces a parameter may be regressed and averaged in."""
+
+
+def forward(values: np.ndarray, transform: str) -> np.ndarray:
+    """Map parameter values (parameter units) into the transformed space (a new array)."""
+    values = np.asarray(values, dtype=float)
+    return np.log(values) if transform == "log" else values.copy()
+
+
+def inverse(values: np.ndarray, transform: str) -> np.ndarray:
+    """Map values from the transformed space back into parameter units (a new array)."""
+    values = np.asarray(values, dtype=float)
+    return np.exp(values) if transform == "log" else values.copy()
 
 
 @dataclass(frozen=True)
@@ -50,13 +63,11 @@ class Parameter:
 
     def forward(self, values: np.ndarray) -> np.ndarray:
         """Map values from parameter units into the transformed space."""
-        values = np.asarray(values, dtype=float)
-        return np.log(values) if self.transform == "log" else values
+        return forward(values, self.transform)
 
     def inverse(self, values: np.ndarray) -> np.ndarray:
         """Map values from the transformed space back into parameter units."""
-        values = np.asarray(values, dtype=float)
-        return np.exp(values) if self.transform == "log" else values
+        return inverse(values, self.transform)
 
 
 @dataclass(frozen=True)

@@ -42,6 +42,11 @@ def get_model(name: str):
         ) from None
 
 
+def parameter_transforms(name: str) -> dict[str, str]:
+    """Parameter name -> regression transform (``"log"`` / ``"identity"``) of a model."""
+    return {parameter.name: parameter.transform for parameter in get_model(name).parameters}
+
+
 def simulate(
     model: str,
     precip: np.ndarray,

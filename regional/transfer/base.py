@@ -18,9 +18,7 @@ import numpy as np
 import pandas as pd
 
 from regional.errors import InputError, InputWarning
-
-TRANSFORMS = ("log", "identity")
-"""Transforms a parameter may be averaged and regressed in."""
+from regional.models.base import TRANSFORMS, forward, inverse
 
 COMBINE_OPTIONS = ("output", "parameter")
 """How the flows of several donors are combined (see :mod:`regional.transfer.combine`)."""
@@ -101,18 +99,6 @@ class Donation:
 
 # --------------------------------------------------------------------------------------------
 # Transforms
-
-
-def forward(values: np.ndarray, transform: str) -> np.ndarray:
-    """Map parameter values to the space they are averaged and regressed in."""
-    values = np.asarray(values, dtype=float)
-    return np.log(values) if transform == "log" else values.copy()
-
-
-def inverse(values: np.ndarray, transform: str) -> np.ndarray:
-    """Map values from transformed space back to parameter units."""
-    values = np.asarray(values, dtype=float)
-    return np.exp(values) if transform == "log" else values.copy()
 
 
 def resolve_transforms(
