@@ -17,7 +17,6 @@ from regional.transfer.base import COMBINE_OPTIONS, Donation
 from regional.transfer.combine import (
     DonorFlows,
     average_parameters,
-    donor_flows,
     simulate_donors,
 )
 from regional.transfer.donors import (
@@ -101,7 +100,6 @@ __all__ = [
     "RegressionTransfer",
     "SimilarityTransfer",
     "average_parameters",
-    "donor_flows",
     "great_circle_km",
     "inverse_distance_weights",
     "make_transfer",

@@ -186,36 +186,6 @@ def simulate_donors(
     )
 
 
-def donor_flows(
-    donation: Donation,
-    target_id: str | None = None,
-    *,
-    precip: np.ndarray,
-    pet: np.ndarray,
-    temp: np.ndarray | None = None,
-    model: str = "linear",
-    combine: str | None = None,
-    transforms: Mapping[str, str] | None = None,
-    warmup_days: int = 0,
-    initial_storage: float | None = None,
-    simulate: SimulateFn | None = None,
-) -> np.ndarray:
-    """The combined flow (time,), mm/day, of one target: :func:`simulate_donors` ``.flow``."""
-    return simulate_donors(
-        donation,
-        target_id,
-        precip=precip,
-        pet=pet,
-        temp=temp,
-        model=model,
-        combine=combine,
-        transforms=transforms,
-        warmup_days=warmup_days,
-        initial_storage=initial_storage,
-        simulate=simulate,
-    ).flow
-
-
 def _simulate_function(simulate: SimulateFn | None) -> SimulateFn:
     return models.simulate if simulate is None else simulate
 

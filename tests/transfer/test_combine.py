@@ -15,7 +15,6 @@ from regional.transfer import (
     RegressionTransfer,
     SimilarityTransfer,
     average_parameters,
-    donor_flows,
     simulate_donors,
 )
 
@@ -73,9 +72,9 @@ def test_output_averaging_is_weighted_mean_of_member_flows(donation, forcing):
 def test_parameter_averaging_simulates_once_with_weighted_geometric_mean(donation, forcing):
     precip, pet = forcing
     fake = _FakeSimulate()
-    flow = donor_flows(
+    flow = simulate_donors(
         donation, "basin_020", precip=precip, pet=pet, combine="parameter", simulate=fake
-    )
+    ).flow
     rows = donation.for_target("basin_020")
     k = np.exp(np.sum(rows["weight"] * np.log(rows["k_per_day"])))  # log transform of k_per_day
     np.testing.assert_allclose(fake.calls[0]["params"]["k_per_day"], [k], rtol=1e-12)
@@ -105,11 +104,11 @@ def test_combine_defaults_to_the_donation_setting(region, forcing):
 def test_target_must_be_named_and_known(donation, forcing):
     precip, pet = forcing
     with pytest.raises(InputError, match="similarity donation holds 4 targets; name the one"):
-        donor_flows(donation, precip=precip, pet=pet, simulate=_FakeSimulate())
+        simulate_donors(donation, precip=precip, pet=pet, simulate=_FakeSimulate())
     with pytest.raises(InputError, match="similarity donation: no parameter sets.*'nowhere'"):
-        donor_flows(donation, "nowhere", precip=precip, pet=pet, simulate=_FakeSimulate())
+        simulate_donors(donation, "nowhere", precip=precip, pet=pet, simulate=_FakeSimulate())
     with pytest.raises(InputError, match="similarity transfer: combine must be one of"):
-        donor_flows(
+        simulate_donors(
             donation, "basin_020", precip=precip, pet=pet, combine="x", simulate=_FakeSimulate()
         )
 
@@ -123,9 +122,9 @@ def test_with_the_real_linear_model(donation, forcing):
         single = regional.simulate("linear", precip, pet, {"k_per_day": k}, warmup_days=100)
         np.testing.assert_allclose(result.members[:, j], single.flow[:, 0], rtol=1e-10)
     np.testing.assert_allclose(result.flow, result.members @ rows["weight"].to_numpy())
-    averaged = donor_flows(
+    averaged = simulate_donors(
         donation, "basin_022", precip=precip, pet=pet, combine="parameter", warmup_days=100
-    )
+    ).flow
     k_mean = np.exp(np.sum(rows["weight"] * np.log(rows["k_per_day"])))
     single = regional.simulate("linear", precip, pet, {"k_per_day": k_mean}, warmup_days=100)
     np.testing.assert_allclose(averaged, single.flow[:, 0], rtol=1e-10)
@@ -136,8 +135,8 @@ def test_single_set_methods_give_the_same_flow_both_ways(region, forcing, make):
     X, y = region
     precip, pet = forcing
     donation = make().fit(X.iloc[:20], y.iloc[:20]).donate(X.iloc[[21]])
-    output = donor_flows(donation, precip=precip, pet=pet)
-    parameter = donor_flows(donation, precip=precip, pet=pet, combine="parameter")
+    output = simulate_donors(donation, precip=precip, pet=pet).flow
+    parameter = simulate_donors(donation, precip=precip, pet=pet, combine="parameter").flow
     np.testing.assert_allclose(output, parameter, rtol=1e-12)
     assert output.shape == precip.shape
 
