@@ -16,6 +16,9 @@ import pandas as pd
 from regional import __version__, io
 from regional.compute import keep_freed_memory
 from regional.errors import InputError, InputWarning
+from regional.models import get_model
+from regional.outputs import loo_summary, update_stage_outputs, write_outputs
+from regional.pipeline import run
 from regional.region import RegionSummary, describe_region, load_region
 
 CAUTION = (
@@ -184,9 +187,7 @@ def _add_run_options(parser: argparse.ArgumentParser) -> None:
 
 
 def _run_all(args: argparse.Namespace) -> int:
-    from regional.outputs import write_outputs
-
-    result = _with_progress(_run_function(), args)
+    result = _run_with_progress(args)
     folder = write_outputs(result, _out_folder(args, result))
     print(format_run_summary(result))
     print(f"\nresults written to {folder}")
@@ -198,7 +199,7 @@ def _out_folder(args: argparse.Namespace, result) -> Path:
     return args.out if args.out is not None else result.settings.output.folder
 
 
-def _with_progress(run, args: argparse.Namespace):
+def _run_with_progress(args: argparse.Namespace):
     bars: dict[str, object] = {}
 
     def progress(stage: str, done: int, total: int) -> None:
@@ -224,8 +225,6 @@ def _with_progress(run, args: argparse.Namespace):
 
 def format_run_summary(result) -> str:
     """The table ``regional run`` prints: leave-one-out skill per model and method."""
-    from regional.outputs import loo_summary
-
     table = loo_summary(result)
     columns = [
         "model",
@@ -284,9 +283,7 @@ def _stage_parser(
 
 
 def _predict(args: argparse.Namespace) -> int:
-    from regional.outputs import update_stage_outputs
-
-    result = _with_progress(_run_function(), args)
+    result = _run_with_progress(args)
     if result.prediction is None:
         raise InputError("the region has no ungauged basin: there is nothing to predict")
     folder = update_stage_outputs(result, _out_folder(args, result), stage="prediction")
@@ -299,7 +296,7 @@ def _predict(args: argparse.Namespace) -> int:
 def format_prediction(result) -> str:
     """The table ``regional predict`` prints: one line per ungauged basin."""
     prediction = result.prediction
-    names = [p.name for p in _parameters(result.chosen_model)]
+    names = [p.name for p in get_model(result.chosen_model).parameters]
     columns = [*names, *(f"{n}_{side}" for n in names for side in ("low", "high"))]
     columns += ["mean_flow_mm", "q95_mm", "applicable"]
     coverage = prediction.coverage.set_index(["model", "method"]).loc[
@@ -332,9 +329,7 @@ def _screen_parser(subparsers: argparse._SubParsersAction) -> None:
 
 
 def _screen(args: argparse.Namespace) -> int:
-    from regional.outputs import update_stage_outputs
-
-    result = _with_progress(_run_function(), args)
+    result = _run_with_progress(args)
     if result.screening is None:
         raise InputError("the region has no ungauged basin: there is no candidate to screen")
     folder = update_stage_outputs(result, _out_folder(args, result), stage="screening")
@@ -348,18 +343,6 @@ def _screen(args: argparse.Namespace) -> int:
         print(f"  {basin}: {reason}")
     print(f"\nscreening written to {folder}")
     return 0
-
-
-def _run_function():
-    from regional.pipeline import run
-
-    return run
-
-
-def _parameters(model: str):
-    from regional.models import get_model
-
-    return get_model(model).parameters
 
 
 # --------------------------------------------------------------------------------------------

@@ -314,16 +314,15 @@ class _Sorted:
         return cls(tuple(values), tuple(basins))
 
 
-def _fit(data: _Sorted, *, level: float, fraction: float, without: int = -1):
-    """Conformal error model from sorted residuals, leaving out basin ``without`` (if >= 0)."""
+def _fit(data: _Sorted, *, level: float, fraction: float):
+    """Conformal error model from the sorted residuals of each flow class."""
     n_classes = len(data.values)
     lower, upper, n_days = np.empty(n_classes), np.empty(n_classes), np.zeros(n_classes)
     used = set()
     for k, (values, basins) in enumerate(zip(data.values, data.basins, strict=True)):
-        keep = basins != without
-        lower[k], upper[k] = _pooled_bounds(values[keep], basins[keep], level)
-        n_days[k] = keep.sum()
-        used.update(np.unique(basins[keep]).tolist())
+        lower[k], upper[k] = _pooled_bounds(values, basins, level)
+        n_days[k] = len(values)
+        used.update(np.unique(basins).tolist())
     return ConformalErrorModel(
         level=level,
         offset_fraction=fraction,

@@ -373,7 +373,7 @@ def test_wider_level_gives_wider_bounds(demo_result, prediction):
 
 def test_held_out_coverage_equals_refitting_without_each_basin():
     # The all-basins-at-once quantiles must equal the direct route: rebuild the error model
-    # without basin j (predict._fit(without=j)), apply it to j, count j's days inside.
+    # from the residuals of the other basins only, apply it to j, count j's days inside.
     from regional import predict
 
     rng = np.random.default_rng(5)
@@ -389,11 +389,12 @@ def test_held_out_coverage_equals_refitting_without_each_basin():
     k = predict._n_classes(obs)
     classes = predict._flow_classes(sim, k)
     residual, basin, cls = predict._residuals(obs, sim, classes, predict.OFFSET_FRACTION)
-    data = predict._Sorted.of(residual, basin, cls, k)
     offsets = predict.basin_offsets(sim)
     shares = []
     for j in range(n):
-        model = predict._fit(data, level=0.8, fraction=predict.OFFSET_FRACTION, without=j)
+        others = basin != j
+        data = predict._Sorted.of(residual[others], basin[others], cls[others], k)
+        model = predict._fit(data, level=0.8, fraction=predict.OFFSET_FRACTION)
         low, high = predict._apply(sim[:, j], classes[:, j], offsets[j], model)
         valid = np.isfinite(obs[:, j])
         shares.append(((obs[:, j] >= low) & (obs[:, j] <= high))[valid].mean())
