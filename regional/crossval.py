@@ -72,7 +72,8 @@ class TransferOptions:
 class FoldContext:
     """Everything one fold needs; shipped once to every worker.
 
-    Forcing and flow hold only the simulated window (``window.start:window.stop``).
+    Forcing and flow hold only the simulated window (``window.start:window.stop``);
+    ``fixed_params`` (snow parameters set in the config) is empty when no snow store runs.
     """
 
     model: str
@@ -219,16 +220,12 @@ def _simulate_set(context: FoldContext, forcing, params: Mapping[str, float]) ->
         context.model,
         forcing["precip"],
         forcing["pet"],
-        {**_snow_params(context, forcing), **params},
+        {**context.fixed_params, **params},
         temp=forcing["temp"],
         initial_storage=context.initial_storage,
         warmup_days=context.window.warmup_days,
     )
     return result.flow[:, 0]
-
-
-def _snow_params(context: FoldContext, forcing) -> dict[str, float]:
-    return dict(context.fixed_params) if forcing["temp"] is not None else {}
 
 
 def _transfer_flow(method, target, train, context, forcing, transforms):
@@ -247,7 +244,7 @@ def _transfer_flow(method, target, train, context, forcing, transforms):
     )
     donation = estimator.donate(context.attributes.loc[[target]])
     estimate = weighted_estimate(donation.sets, names, transforms).iloc[0].to_dict()
-    simulator = donor_simulator(context.model, _snow_params(context, forcing))
+    simulator = donor_simulator(context.model, context.fixed_params)
     flows = simulate_donors(
         donation,
         target,

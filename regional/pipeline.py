@@ -188,8 +188,10 @@ def use_temperature(region: Region, settings: Settings) -> pd.DataFrame | None:
     return region.temp_c if settings.model.use_snow(has_temperature=has_temp) else None
 
 
-def fixed_parameters(settings: Settings) -> dict[str, float]:
-    """Snow parameters set in the config (the others keep their defaults)."""
+def fixed_parameters(settings: Settings, *, snow: bool) -> dict[str, float]:
+    """Snow parameters set in the config (the others keep their defaults); none without snow."""
+    if not snow:
+        return {}
     names = ("snow_threshold_c", "melt_threshold_c", "melt_factor_mm_per_degc_day")
     values = {name: getattr(settings.model, name) for name in names}
     return {name: float(value) for name, value in values.items() if value is not None}
@@ -208,7 +210,6 @@ class _CalibrationJob:
 
 def _calibrate_chunk(basins, job: _CalibrationJob) -> pd.DataFrame:
     model_settings = job.settings.model
-    fixed = job.fixed if job.temp_c is not None else {}
     return calibrate(
         job.precip_mm[basins],
         job.pet_mm[basins],
@@ -220,7 +221,7 @@ def _calibrate_chunk(basins, job: _CalibrationJob) -> pd.DataFrame:
         validation=model_settings.validation,
         warmup_days=model_settings.warmup_days,
         initial_storage=model_settings.initial_storage_mm,
-        fixed_params=fixed,
+        fixed_params=job.fixed,
         basins=list(basins),
     )
 
@@ -232,14 +233,15 @@ def _period(settings: Settings, name: str, dates: pd.DatetimeIndex):
 
 def _calibrate(model, region, settings, window: Window, executor, progress) -> pd.DataFrame:
     get_model(model)
+    temp = use_temperature(region, settings)
     job = _CalibrationJob(
         model=model,
         precip_mm=region.precip_mm,
         pet_mm=region.pet_mm,
-        temp_c=use_temperature(region, settings),
+        temp_c=temp,
         flow_mm=region.flow_mm,
         settings=settings,
-        fixed=fixed_parameters(settings),
+        fixed=fixed_parameters(settings, snow=temp is not None),
     )
     chunks = chunked(list(region.gauged), CALIBRATION_CHUNK)
     parts = executor.map(_calibrate_chunk, chunks, job, progress=_stage(progress, "calibration"))
@@ -271,7 +273,7 @@ def _fold_context(model, region, settings, window, calibration, attributes, excl
             combine=settings.transfer.combine,
         ),
         excluded={b: d for b, d in excluded.items() if b in set(gauged)},
-        fixed_params=fixed_parameters(settings) if temp is not None else {},
+        fixed_params=fixed_parameters(settings, snow=temp is not None),
         initial_storage=settings.model.initial_storage_mm,
     )
 

@@ -40,9 +40,9 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from regional.crossval import FoldContext, method_order
+from regional.crossval import FoldContext, donor_simulator, method_order
 from regional.errors import InputError, InputWarning
-from regional.models import get_model, parameter_transforms, simulate
+from regional.models import get_model, parameter_transforms
 from regional.region import MM_PER_DAY_PER_M3S_KM2
 from regional.transfer import Donation, make_transfer, simulate_donors
 
@@ -854,11 +854,7 @@ def method_flows(context: FoldContext, donation: Donation, targets: Sequence[str
         mm/day, warm-up days included.
     """
     temp = context.temp_c
-    fixed = dict(context.fixed_params) if temp is not None else {}
-
-    def simulate_with_fixed(model, precip, pet, params, **options):
-        return simulate(model, precip, pet, {**fixed, **params}, **options)  # floats broadcast
-
+    simulator = donor_simulator(context.model, context.fixed_params)
     columns = []
     for target in targets:
         flows = simulate_donors(
@@ -870,7 +866,7 @@ def method_flows(context: FoldContext, donation: Donation, targets: Sequence[str
             model=context.model,
             warmup_days=context.window.warmup_days,
             initial_storage=context.initial_storage,
-            simulate=simulate_with_fixed,
+            simulate=simulator,
         )
         columns.append(flows.flow)
     return np.column_stack(columns)
