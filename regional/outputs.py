@@ -8,7 +8,6 @@ interrupted run never touches the previous results.
 from __future__ import annotations
 
 import hashlib
-import json
 from dataclasses import fields, is_dataclass
 from pathlib import Path
 from typing import Any
@@ -18,6 +17,7 @@ import pandas as pd
 
 from regional import __version__, io
 from regional.crossval import CALIBRATED
+from regional.report import figures as plots
 from regional.report import make_figures, render_report
 from regional.result import RunResult, software_versions
 
@@ -60,10 +60,6 @@ def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True
     )
 
 
-PREDICTION_FIGURES = ("ungauged_mean_flow_map", "ungauged_hydrographs")
-SCREENING_FIGURES = ("screening",)
-
-
 def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -> Path:
     """Write the files of one stage (``"prediction"`` or ``"screening"``) into ``folder``.
 
@@ -72,21 +68,20 @@ def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -
     """
     if stage == "prediction":
         tables = _prediction_tables(result)
-        layers = {"ungauged": result_layers(result)["ungauged"]}
-        names = PREDICTION_FIGURES
+        layers = {"ungauged": _with_geometry(result.prediction.table, result.region.basins)}
+        drawn = {
+            "ungauged_mean_flow_map": plots.ungauged_mean_flow_map(result),
+            "ungauged_hydrographs": plots.ungauged_hydrographs(result),
+        }
     elif stage == "screening":
         tables = {"screening.csv": result.screening.table.reset_index()}
-        layers = {"screening": result_layers(result)["screening"]}
-        names = SCREENING_FIGURES
+        layers = {"screening": _with_geometry(result.screening.table, result.region.basins)}
+        drawn = {"screening": plots.screening_bars(result)}
     else:
         raise ValueError(f"unknown stage {stage!r}: 'prediction' or 'screening'")
-    figures = {
-        name: io.figure_png(figure)
-        for name, figure in make_figures(result).items()
-        if name in names
-    }
+    images = {name: io.figure_png(figure) for name, figure in drawn.items()}
     return io.update_run_folder(
-        Path(folder), tables=tables, layers=layers, crs=result.region.basins.crs, figures=figures
+        Path(folder), tables=tables, layers=layers, crs=result.region.basins.crs, figures=images
     )
 
 
@@ -244,4 +239,4 @@ def _plain(value: Any) -> Any:
         return str(value.date()) if isinstance(value, pd.Timestamp) else str(value)
     if value is None or isinstance(value, bool | int | float | str):
         return value
-    return json.loads(json.dumps(value, default=str))
+    return str(value)
