@@ -31,7 +31,7 @@ MODEL_NAMES = ("linear", "gr4j")
 #: Calibration objectives (``[model] objective``).
 OBJECTIVES = ("kge", "nse", "log_nse")
 #: Transfer methods (``[transfer] methods``); ``median`` is the naive benchmark.
-TRANSFER_METHODS = ("regression", "similarity", "proximity", "median")
+TRANSFER_METHODS = ("regression", "similarity", "proximity", "blended", "median")
 #: How flows from several donors are combined (``[transfer] combine``).
 COMBINE_MODES = ("output", "parameter")
 #: ``[model] snow`` values.

@@ -14,6 +14,7 @@ from collections.abc import Sequence
 
 from regional.errors import InputError
 from regional.transfer.base import COMBINE_OPTIONS, Donation
+from regional.transfer.blended import BlendedTransfer
 from regional.transfer.combine import (
     DonorFlows,
     average_parameters,
@@ -32,9 +33,13 @@ TRANSFER_METHODS = {
     "regression": RegressionTransfer,
     "similarity": SimilarityTransfer,
     "proximity": ProximityTransfer,
+    "blended": BlendedTransfer,
     "median": MedianTransfer,
 }
 """Method name -> estimator class."""
+
+DONOR_METHODS = ("similarity", "proximity", "blended")
+"""Methods that donate the k nearest gauged basins' sets (their number of donors can be chosen)."""
 
 
 def make_transfer(
@@ -48,13 +53,13 @@ def make_transfer(
 ):
     """Build an unfitted transfer estimator by method name from shared settings.
 
-    Settings a method does not have are ignored: ``attributes`` applies to regression and
-    similarity; ``n_donors``, ``power`` and ``combine`` to similarity and proximity; ``level``
-    to regression and median.
+    Settings a method does not have are ignored: ``attributes`` applies to regression,
+    similarity and blended; ``n_donors``, ``power`` and ``combine`` to similarity, proximity and
+    blended; ``level`` to regression and median.
 
     Parameters
     ----------
-    name : {"regression", "similarity", "proximity", "median"}
+    name : {"regression", "similarity", "proximity", "blended", "median"}
         Method name.
     attributes : sequence of str, optional
         Attribute columns (default: every numeric column).
@@ -80,6 +85,10 @@ def make_transfer(
         )
     if name == "proximity":
         return ProximityTransfer(n_donors=n_donors, power=power, combine=combine)
+    if name == "blended":
+        return BlendedTransfer(
+            attributes=attributes, n_donors=n_donors, power=power, combine=combine
+        )
     if name == "median":
         return MedianTransfer(level=level)
     close = difflib.get_close_matches(str(name), list(TRANSFER_METHODS), n=1)
@@ -92,7 +101,9 @@ def make_transfer(
 
 __all__ = [
     "COMBINE_OPTIONS",
+    "DONOR_METHODS",
     "TRANSFER_METHODS",
+    "BlendedTransfer",
     "Donation",
     "DonorFlows",
     "MedianTransfer",

@@ -37,7 +37,8 @@ class Donation:
     Attributes
     ----------
     method : str
-        Name of the method (``"regression"``, ``"similarity"``, ``"proximity"``, ``"median"``).
+        Name of the method (``"regression"``, ``"similarity"``, ``"proximity"``, ``"blended"``,
+        ``"median"``).
     sets : pandas.DataFrame
         Long table, one row per (target, donor), sorted by target then rank, with columns
         ``target_id`` (str), ``donor_id`` (str: the donor's basin id; ``"<regression>"`` or
@@ -61,7 +62,9 @@ class Donation:
         Coverage of the intervals where they are probabilistic (regression, median), else None.
     distance_unit : str
         ``"km"`` (proximity), ``"standardised"`` (similarity: Euclidean distance between
-        attributes standardised with the training donors' mean and standard deviation) or ``""``.
+        attributes standardised with the training donors' mean and standard deviation),
+        ``"blended"`` (unitless: attribute and geographic distance each divided by its spread
+        over the donors, see :mod:`regional.transfer.blended`) or ``""``.
     """
 
     method: str

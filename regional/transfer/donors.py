@@ -270,36 +270,21 @@ class SimilarityTransfer(_DonorTransfer):
         self.combine = combine
 
     def _fit_coordinates(self, X: pd.DataFrame) -> np.ndarray:
-        role = "the training attributes X"
-        candidates = select_attributes(X, self.attributes, method=self._method, role=role)
-        check_complete(X, candidates, method=self._method, role=role)
-        kept, dropped = drop_constant(X, candidates, method=self._method, stacklevel=4)
-        if not kept:
-            raise InputError(
-                f"{self._method} transfer: every attribute is constant over the {len(X)} "
-                f"training basins ({', '.join(map(repr, dropped))}); similarity needs at least "
-                "one attribute that varies."
-            )
-        self.attributes_ = kept
-        self.dropped_ = dropped
-        self.mean_ = X[kept].astype(float).mean()
-        self.scale_ = X[kept].astype(float).std(ddof=1)
+        self.attributes_, self.dropped_, self.mean_, self.scale_ = attribute_scaling(
+            X, self.attributes, method=self._method, stacklevel=5
+        )
         return self.standardise(X)
 
     def standardise(self, X: pd.DataFrame) -> np.ndarray:
         """Attributes of ``X`` standardised with the training donors' mean and scale."""
-        values = X[self.attributes_].to_numpy(dtype=float)
-        return (values - self.mean_.to_numpy()) / self.scale_.to_numpy()
+        return standardised(X, self.attributes_, self.mean_, self.scale_)
 
     def _target_coordinates(self, X: pd.DataFrame) -> np.ndarray:
-        role = "the target attributes X"
-        select_attributes(X, self.attributes_, method=self._method, role=role)
-        check_complete(X, self.attributes_, method=self._method, role=role)
+        check_attributes_present(X, self.attributes_, method=self._method)
         return self.standardise(X)
 
     def _distance(self, targets: np.ndarray, donors: np.ndarray) -> np.ndarray:
-        difference = targets[:, None, :] - donors[None, :, :]
-        return np.sqrt(np.einsum("tdk,tdk->td", difference, difference))
+        return euclidean_distance(targets, donors)
 
 
 class ProximityTransfer(_DonorTransfer):
@@ -338,38 +323,104 @@ class ProximityTransfer(_DonorTransfer):
         self.combine = combine
         self.location = location
 
-    def _columns(self) -> list[str]:
-        if self.location not in ("centroid", "outlet"):
-            raise InputError(
-                f"{self._method} transfer: location must be 'centroid' or 'outlet', got "
-                f"{self.location!r}."
-            )
-        return [f"{self.location}_lon", f"{self.location}_lat"]
-
-    def _lon_lat(self, X: pd.DataFrame, role: str) -> np.ndarray:
-        columns = self._columns()
-        select_attributes(X, columns, method=self._method, role=role)
-        check_complete(X, columns, method=self._method, role=role)
-        values = X[columns].to_numpy(dtype=float)
-        for j, (name, bound) in enumerate(zip(columns, (360.0, 90.0), strict=True)):
-            low = -180.0 if j == 0 else -90.0
-            bad = (values[:, j] < low) | (values[:, j] > bound)
-            if bad.any():
-                row = int(np.flatnonzero(bad)[0])
-                raise InputError(
-                    f"{self._method} transfer: {name} = {values[row, j]!r} for basin "
-                    f"{X.index[row]!r} in {role} is outside [{low:g}, {bound:g}] degrees; "
-                    "give geographic coordinates (degrees, WGS84), not projected ones."
-                )
-        return values
-
     def _fit_coordinates(self, X: pd.DataFrame) -> np.ndarray:
-        return self._lon_lat(X, "the training attributes X")
+        return lon_lat(X, self.location, method=self._method, role="the training attributes X")
 
     def _target_coordinates(self, X: pd.DataFrame) -> np.ndarray:
-        return self._lon_lat(X, "the target attributes X")
+        return lon_lat(X, self.location, method=self._method, role="the target attributes X")
 
     def _distance(self, targets: np.ndarray, donors: np.ndarray) -> np.ndarray:
         return great_circle_km(
             targets[:, None, 0], targets[:, None, 1], donors[None, :, 0], donors[None, :, 1]
         )
+
+
+# --------------------------------------------------------------------------------------------
+# Coordinates shared by the donor methods
+
+
+def attribute_scaling(
+    X: pd.DataFrame, attributes: Sequence[str] | None, *, method: str, stacklevel: int
+) -> tuple[list[str], list[str], pd.Series, pd.Series]:
+    """Attributes to compare and the training donors' mean and standard deviation of each.
+
+    Parameters
+    ----------
+    X : pandas.DataFrame
+        Training attributes, indexed by basin id.
+    attributes : sequence of str, optional
+        Columns to use (default: every numeric column); constant ones are dropped with an
+        :class:`~regional.errors.InputWarning`.
+    method : str
+        Method name for messages.
+    stacklevel : int
+        Passed to the warning so it points at the user's call.
+
+    Returns
+    -------
+    (kept, dropped, mean, scale)
+        Attribute names kept and dropped; mean and standard deviation (ddof=1) of the kept ones.
+    """
+    role = "the training attributes X"
+    candidates = select_attributes(X, attributes, method=method, role=role)
+    check_complete(X, candidates, method=method, role=role)
+    kept, dropped = drop_constant(X, candidates, method=method, stacklevel=stacklevel)
+    if not kept:
+        raise InputError(
+            f"{method} transfer: every attribute is constant over the {len(X)} "
+            f"training basins ({', '.join(map(repr, dropped))}); {method} needs at least "
+            "one attribute that varies."
+        )
+    values = X[kept].astype(float)
+    return kept, dropped, values.mean(), values.std(ddof=1)
+
+
+def check_attributes_present(X: pd.DataFrame, columns: Sequence[str], *, method: str) -> None:
+    """Raise InputError when a target lacks, or has no value for, an attribute used at fit."""
+    role = "the target attributes X"
+    select_attributes(X, columns, method=method, role=role)
+    check_complete(X, columns, method=method, role=role)
+
+
+def standardised(
+    X: pd.DataFrame, columns: Sequence[str], mean: pd.Series, scale: pd.Series
+) -> np.ndarray:
+    """z = (x - mean) / scale for the given columns of ``X``, shape (n_basins, n_columns)."""
+    values = X[list(columns)].to_numpy(dtype=float)
+    return (values - mean.to_numpy()) / scale.to_numpy()
+
+
+def euclidean_distance(targets: np.ndarray, donors: np.ndarray) -> np.ndarray:
+    """Euclidean distance between every target row and every donor row, (n_targets, n_donors)."""
+    difference = targets[:, None, :] - donors[None, :, :]
+    return np.sqrt(np.einsum("tdk,tdk->td", difference, difference))
+
+
+def lon_lat(X: pd.DataFrame, location: str, *, method: str, role: str) -> np.ndarray:
+    """Longitude and latitude in degrees of ``<location>_lon`` / ``<location>_lat``, checked.
+
+    Raises
+    ------
+    InputError
+        For a location other than ``"centroid"`` or ``"outlet"``, missing columns or values, or
+        values outside [-180, 360] / [-90, 90] degrees (e.g. projected metres).
+    """
+    if location not in ("centroid", "outlet"):
+        raise InputError(
+            f"{method} transfer: location must be 'centroid' or 'outlet', got {location!r}."
+        )
+    columns = [f"{location}_lon", f"{location}_lat"]
+    select_attributes(X, columns, method=method, role=role)
+    check_complete(X, columns, method=method, role=role)
+    values = X[columns].to_numpy(dtype=float)
+    for j, (name, bound) in enumerate(zip(columns, (360.0, 90.0), strict=True)):
+        low = -180.0 if j == 0 else -90.0
+        bad = (values[:, j] < low) | (values[:, j] > bound)
+        if bad.any():
+            row = int(np.flatnonzero(bad)[0])
+            raise InputError(
+                f"{method} transfer: {name} = {values[row, j]!r} for basin "
+                f"{X.index[row]!r} in {role} is outside [{low:g}, {bound:g}] degrees; "
+                "give geographic coordinates (degrees, WGS84), not projected ones."
+            )
+    return values

@@ -4,9 +4,11 @@ from __future__ import annotations
 
 import pytest
 
+from regional import config
 from regional.errors import InputError
 from regional.transfer import (
     TRANSFER_METHODS,
+    BlendedTransfer,
     MedianTransfer,
     ProximityTransfer,
     RegressionTransfer,
@@ -15,13 +17,18 @@ from regional.transfer import (
 )
 
 
-def test_registry_names_the_four_methods():
+def test_registry_names_the_five_methods():
     assert TRANSFER_METHODS == {
         "regression": RegressionTransfer,
         "similarity": SimilarityTransfer,
         "proximity": ProximityTransfer,
+        "blended": BlendedTransfer,
         "median": MedianTransfer,
     }
+
+
+def test_config_allows_every_registered_method():
+    assert set(config.TRANSFER_METHODS) == set(TRANSFER_METHODS)
 
 
 def test_make_transfer_passes_the_settings_that_apply():
