@@ -7,6 +7,7 @@ docs/validation.md. The dataset is read from ../shared/data/real (or REGIONAL_RE
 never copied into the repository.
 
 Run:  python benchmarks/real_data.py [--workers 2] [--parts 01 03] [--objective kge]
+      [--methods regression similarity proximity blended] [--donors auto]
 """
 
 from __future__ import annotations
@@ -22,6 +23,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 from real_region import available, build_region  # noqa: E402
 
+from regional.outputs import donor_counts  # noqa: E402
 from regional.pipeline import run  # noqa: E402
 
 
@@ -34,6 +36,10 @@ def main() -> None:
     parser.add_argument("--parts", nargs="*", default=None, help="USGS parts (default: all)")
     parser.add_argument("--objective", default="kge")
     parser.add_argument("--models", nargs="*", default=["linear", "gr4j"])
+    parser.add_argument(
+        "--methods", nargs="*", default=["regression", "similarity", "proximity", "blended"]
+    )
+    parser.add_argument("--donors", default="auto", help='a number, or "auto" (1 to 10)')
     args = parser.parse_args()
     if not available():
         sys.exit(
@@ -41,8 +47,14 @@ def main() -> None:
         )
     warnings.simplefilter("ignore")
     with tempfile.TemporaryDirectory() as tmp:
+        donors = args.donors if args.donors == "auto" else int(args.donors)
         folder = build_region(
-            Path(tmp), parts=args.parts, models=args.models, objective=args.objective
+            Path(tmp),
+            parts=args.parts,
+            models=args.models,
+            objective=args.objective,
+            methods=args.methods,
+            donors=donors,
         )
         start = time.perf_counter()
         result = run(folder, workers=args.workers)
@@ -53,6 +65,10 @@ def main() -> None:
         f"{seconds:.0f} s ({args.workers or 'in-process'} workers)"
     )
     print(summary.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
+    counts = donor_counts(result)
+    if counts is not None:
+        print("median leave-one-out skill per number of donors:")
+        print(counts.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
     if result.prediction is not None:
         print(result.prediction.coverage.to_string(index=False))
     print("timings:", {k: round(v, 1) for k, v in result.timings.items()})

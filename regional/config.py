@@ -34,6 +34,8 @@ OBJECTIVES = ("kge", "nse", "log_nse")
 TRANSFER_METHODS = ("regression", "similarity", "proximity", "blended", "median")
 #: How flows from several donors are combined (``[transfer] combine``).
 COMBINE_MODES = ("output", "parameter")
+#: Donor counts tried in leave-one-out with ``[transfer] donors = "auto"``.
+AUTO_DONOR_COUNTS = tuple(range(1, 11))
 #: ``[model] snow`` values.
 SNOW_MODES = ("auto", "true", "false")
 
@@ -142,12 +144,14 @@ class ModelSettings:
 class TransferSettings:
     """``[transfer]``: transfer methods and their settings.
 
-    ``attributes`` is ``None`` for "every numeric attribute".
+    ``attributes`` is ``None`` for "every numeric attribute". ``donors`` is one number of donors
+    per target, or a sorted tuple of candidate numbers (``"auto"``: 1 to 10) from which
+    leave-one-out picks the best per donor method.
     """
 
     attributes: tuple[str, ...] | None
     methods: tuple[str, ...]
-    donors: int
+    donors: int | tuple[int, ...]
     power: float
     combine: str
     exclude_overlap: float
@@ -298,6 +302,22 @@ def _integer(minimum: int) -> Parser:
     return parse
 
 
+def _donors(value: Any, ctx: _Context) -> int | tuple[int, ...]:
+    fix = 'write donors = 5, donors = "auto" (1 to 10) or a list such as donors = [1, 3, 5, 10]'
+    if value == "auto":
+        return AUTO_DONOR_COUNTS
+    if isinstance(value, list):
+        whole = [isinstance(v, int) and not isinstance(v, bool) and v >= 1 for v in value]
+        if not value or not all(whole):
+            raise ctx.fail(value, "a list of donor counts must hold whole numbers >= 1", fix)
+        if len(set(value)) != len(value):
+            raise ctx.fail(value, "must not repeat a donor count", "list each count once")
+        return tuple(sorted(value))
+    if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+        raise ctx.fail(value, "must be a whole number >= 1", fix)
+    return value
+
+
 def _number(lower: float = -math.inf, upper: float = math.inf, *, open_: bool = False) -> Parser:
     def parse(value: Any, ctx: _Context) -> float:
         number = (
@@ -418,7 +438,7 @@ SECTIONS: dict[str, dict[str, _Key]] = {
     "transfer": {
         "attributes": _Key(_text_list),
         "methods": _Key(_choice_list(TRANSFER_METHODS), ["regression", "similarity", "proximity"]),
-        "donors": _Key(_integer(1), 5),
+        "donors": _Key(_donors, 5),
         "power": _Key(_number(0.0, 10.0), 1.0),
         "combine": _Key(_choice(COMBINE_MODES), "output"),
         "exclude_overlap": _Key(_number(0.0, 1.0), 0.5),

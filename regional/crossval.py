@@ -23,7 +23,7 @@ from __future__ import annotations
 import warnings
 from collections import Counter
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -33,7 +33,13 @@ from regional.calibrate import Window
 from regional.compute import InProcessExecutor, chunked
 from regional.errors import InputError
 from regional.models import get_model, parameter_transforms, simulate
-from regional.transfer import make_transfer, simulate_donors
+from regional.models.base import forward, inverse
+from regional.transfer import (
+    DONOR_METHODS,
+    inverse_distance_weights,
+    make_transfer,
+    simulate_donors,
+)
 from regional.transfer.base import weighted_estimate
 
 CALIBRATED = "calibrated"
@@ -54,11 +60,16 @@ class TransferOptions:
     attributes : tuple of str or None
         Attribute columns for regression and similarity (None: every numeric column given).
     n_donors : int
-        Donors per target for similarity and proximity.
+        Donors per target for the donor methods (similarity, proximity, blended) unless
+        ``chosen_donors`` names the method.
     power : float
         Inverse-distance weighting power.
     combine : {"output", "parameter"}
         Donor combination into flow.
+    donor_choices : tuple of int
+        Candidate donor counts for :func:`choose_donor_counts` (empty: ``n_donors`` is used).
+    chosen_donors : mapping
+        Method -> donor count picked in leave-one-out (see :func:`with_donor_counts`).
     """
 
     methods: tuple[str, ...] = ("regression", "similarity", "proximity")
@@ -66,6 +77,12 @@ class TransferOptions:
     n_donors: int = 5
     power: float = 1.0
     combine: str = "output"
+    donor_choices: tuple[int, ...] = ()
+    chosen_donors: Mapping[str, int] = field(default_factory=dict)
+
+    def donors_for(self, method: str) -> int:
+        """Donors per target for ``method``: the count chosen for it, else ``n_donors``."""
+        return int(self.chosen_donors.get(method, self.n_donors))
 
 
 @dataclass(frozen=True)
@@ -234,7 +251,7 @@ def _transfer_flow(method, target, train, context, forcing, transforms):
     estimator = make_transfer(
         method,
         attributes=attributes if method != "proximity" else None,
-        n_donors=min(options.n_donors, len(train)),
+        n_donors=min(options.donors_for(method), len(train)),
         power=options.power,
         combine=options.combine,
     )
@@ -380,3 +397,230 @@ def best_method(summary: pd.DataFrame) -> pd.Series:
     if transfers.empty:
         raise ValueError("no transfer method in the summary")
     return transfers.sort_values(["median_nse", "method"], ascending=[False, True]).iloc[0]
+
+
+# --------------------------------------------------------------------------------------------
+# Number of donors chosen in leave-one-out
+
+
+@dataclass(frozen=True)
+class DonorCountChoice:
+    """Result of :func:`choose_donor_counts`.
+
+    Attributes
+    ----------
+    chosen : dict
+        Donor method -> the donor count with the highest median leave-one-out NSE (ties: the
+        smaller count).
+    table : DataFrame
+        One row per (method, count): ``method``, ``n_donors``, ``median_nse``, ``median_kge``,
+        ``share_nse_gt_0``, ``chosen`` (bool), and ``median_nse_choice_held_out`` on the chosen
+        row: the median NSE when each basin's count is chosen without that basin's own score
+        (NaN on the other rows).
+    scores : DataFrame
+        Long: ``basin_id``, ``method``, ``n_donors``, ``nse``, ``kge`` per fold and count.
+    """
+
+    chosen: dict[str, int]
+    table: pd.DataFrame
+    scores: pd.DataFrame
+
+
+def choose_donor_counts(
+    context: FoldContext,
+    *,
+    executor=None,
+    progress: Callable[[int, int], None] | None = None,
+) -> DonorCountChoice | None:
+    """Pick the number of donors of each donor method by median leave-one-out NSE.
+
+    Each fold simulates the largest candidate donor set once: the k nearest donors' sets in one
+    vectorised call (output averaging), or one averaged set per candidate count (parameter
+    averaging); the flow for n donors combines the first n with inverse-distance weights
+    renormalised over them. Choosing n on the same folds that report the skill makes the
+    reported skill slightly optimistic; ``median_nse_choice_held_out`` in the table measures by
+    how much (each basin's count chosen from the other basins' scores only).
+
+    Parameters
+    ----------
+    context : FoldContext
+        As for :func:`leave_one_out`; ``options.donor_choices`` holds the candidate counts.
+    executor : optional
+        Runs chunks of target basins (:mod:`regional.compute`); default in this process.
+    progress : callable(done, total), optional
+        Called as target basins complete.
+
+    Returns
+    -------
+    DonorCountChoice or None
+        None when no candidate counts are given or no donor method is configured.
+    """
+    methods = _donor_methods(context.options)
+    if not context.options.donor_choices or not methods:
+        return None
+    _check_context(context)
+    executor = executor or InProcessExecutor()
+    targets = [str(b) for b in context.calibrated.index]
+    chunks = chunked(targets, CHUNK_BASINS)
+    results = executor.map(run_count_folds, chunks, context, progress=progress)
+    scores = pd.DataFrame(
+        [row for chunk in results for row in chunk],
+        columns=["basin_id", "method", "n_donors", "nse", "kge"],
+    )
+    return _pick_counts(scores, methods)
+
+
+def with_donor_counts(context: FoldContext, chosen: Mapping[str, int]) -> FoldContext:
+    """The same context with ``chosen`` donor counts used by every later fold and prediction."""
+    options = replace(context.options, chosen_donors=dict(chosen))
+    return replace(context, options=options)
+
+
+def _donor_methods(options: TransferOptions) -> list[str]:
+    return [m for m in options.methods if m in DONOR_METHODS]
+
+
+def run_count_folds(targets: Sequence[str], context: FoldContext) -> list[dict]:
+    """Score every candidate donor count at some target basins (one task of the executor)."""
+    return [row for target in targets for row in _count_fold(target, context)]
+
+
+def _count_fold(target: str, context: FoldContext) -> list[dict]:
+    transforms = parameter_transforms(context.model)
+    forcing = _target_forcing(target, context)
+    obs = context.flow_mm[target].to_numpy(dtype=float)[context.evaluation]
+    train = _training_ids(target, context)
+    counts = sorted({min(n, len(train)) for n in context.options.donor_choices})
+    rows = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the same warnings reach the user from leave_one_out
+        for method in _donor_methods(context.options):
+            sets = _largest_donation(method, target, train, context, transforms, max(counts))
+            flows = count_flows(
+                sets, counts, transforms=transforms, context=context, forcing=forcing
+            )
+            for n, flow in zip(counts, flows.T, strict=True):
+                scores = metrics.all_scores(obs, flow[context.evaluation])
+                rows.append(
+                    {
+                        "basin_id": target,
+                        "method": method,
+                        "n_donors": n,
+                        "nse": float(scores["nse"]),
+                        "kge": float(scores["kge"]),
+                    }
+                )
+    return rows
+
+
+def _largest_donation(method, target, train, context, transforms, n_donors) -> pd.DataFrame:
+    options = context.options
+    estimator = make_transfer(
+        method,
+        attributes=list(options.attributes) if options.attributes else None,
+        n_donors=n_donors,
+        power=options.power,
+        combine=options.combine,
+    )
+    names = list(transforms)
+    estimator.fit(
+        context.attributes.loc[train], context.calibrated.loc[train, names], transforms=transforms
+    )
+    donation = estimator.donate(context.attributes.loc[[target]])
+    return donation.for_target(target)
+
+
+def count_flows(
+    sets: pd.DataFrame,
+    counts: Sequence[int],
+    *,
+    transforms: Mapping[str, str],
+    context: FoldContext,
+    forcing: Mapping[str, np.ndarray | None],
+) -> np.ndarray:
+    """Flow of one target from its first n donors, for every n in ``counts``.
+
+    Parameters
+    ----------
+    sets : DataFrame
+        One target's donor rows sorted by rank (``distance`` and the parameters), at least
+        ``max(counts)`` of them.
+    counts : sequence of int
+        Donor counts, each <= len(sets).
+    transforms : mapping
+        Parameter -> ``"log"`` or ``"identity"`` (every model parameter): the space parameter
+        averaging works in.
+    context : FoldContext
+        Model, fixed parameters, warm-up, initial storage and combination mode.
+    forcing : mapping
+        ``precip``, ``pet`` (mm/day) and ``temp`` (degC or None) of the target.
+
+    Returns
+    -------
+    ndarray (window days, len(counts))
+        mm/day: output averaging of the first n donors' flows, or the flow of their averaged
+        set (parameter averaging), weights inverse-distance renormalised over the n donors.
+    """
+    names = list(transforms)
+    distance = sets["distance"].to_numpy(dtype=float)
+    weights = [inverse_distance_weights(distance[:n], context.options.power) for n in counts]
+    if context.options.combine == "output":
+        params = {name: sets[name].to_numpy(dtype=float) for name in names}
+    else:
+        params = {name: _averaged(sets[name], weights, transforms[name]) for name in names}
+    simulator = donor_simulator(context.model, context.fixed_params)
+    flow = simulator(
+        context.model,
+        forcing["precip"],
+        forcing["pet"],
+        params,
+        temp=forcing["temp"],
+        initial_storage=context.initial_storage,
+        warmup_days=context.window.warmup_days,
+    ).flow
+    if context.options.combine == "output":
+        return np.column_stack([flow[:, : len(w)] @ w for w in weights])
+    return np.asarray(flow)
+
+
+def _averaged(values: pd.Series, weights: Sequence[np.ndarray], transform: str) -> np.ndarray:
+    """Weighted mean of the first len(w) values in transformed space, for every w."""
+    z = forward(values.to_numpy(dtype=float), transform)
+    return np.array([inverse(w @ z[: len(w)], transform) for w in weights], dtype=float)
+
+
+def _pick_counts(scores: pd.DataFrame, methods: Sequence[str]) -> DonorCountChoice:
+    grouped = scores.groupby(["method", "n_donors"], sort=False)
+    table = pd.DataFrame(
+        {
+            "median_nse": grouped["nse"].median(),
+            "median_kge": grouped["kge"].median(),
+            "share_nse_gt_0": grouped["nse"].apply(lambda s: float((s > 0).mean())),
+        }
+    ).reset_index()
+    table["method"] = pd.Categorical(table["method"], categories=list(methods), ordered=True)
+    table = table.sort_values(["method", "n_donors"]).reset_index(drop=True)
+    table["method"] = table["method"].astype(str)
+    chosen = {}
+    for method, rows in table.groupby("method", sort=False):
+        best = rows.sort_values(["median_nse", "n_donors"], ascending=[False, True]).iloc[0]
+        chosen[str(method)] = int(best["n_donors"])
+    table["chosen"] = table["n_donors"].to_numpy() == table["method"].map(chosen).to_numpy()
+    held_out = {m: _held_out_choice(scores[scores["method"] == m]) for m in chosen}
+    table["median_nse_choice_held_out"] = [
+        held_out[m] if is_chosen else np.nan
+        for m, is_chosen in zip(table["method"], table["chosen"], strict=True)
+    ]
+    return DonorCountChoice(chosen=chosen, table=table, scores=scores)
+
+
+def _held_out_choice(scores: pd.DataFrame) -> float:
+    """Median NSE when each basin's count is the best by the other basins' median NSE."""
+    wide = scores.pivot(index="basin_id", columns="n_donors", values="nse")
+    values = wide.to_numpy(dtype=float)
+    picked = np.empty(len(values))
+    for i in range(len(values)):
+        others = np.nanmedian(np.delete(values, i, axis=0), axis=0)
+        best = np.flatnonzero(others == np.nanmax(others))[0]  # ties: the smaller count
+        picked[i] = values[i, best]
+    return float(np.nanmedian(picked))

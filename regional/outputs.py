@@ -97,11 +97,28 @@ def result_tables(result: RunResult) -> dict[str, pd.DataFrame]:
         "regression_coefficients.csv": _coefficients(result),
         "calibration.csv": _calibration(result),
     }
+    counts = donor_counts(result)
+    if counts is not None:
+        tables["donor_counts.csv"] = counts
     if result.prediction is not None:
         tables |= _prediction_tables(result)
     if result.screening is not None:
         tables["screening.csv"] = result.screening.table.reset_index()
     return tables
+
+
+def donor_counts(result: RunResult) -> pd.DataFrame | None:
+    """Median leave-one-out skill per model, donor method and donor count; None when fixed."""
+    parts = [
+        run.donor_counts.assign(model=model)
+        for model, run in result.runs.items()
+        if run.donor_counts is not None
+    ]
+    if not parts:
+        return None
+    table = pd.concat(parts, ignore_index=True)
+    first = ["model", "method", "n_donors"]
+    return table[first + [c for c in table.columns if c not in first]]
 
 
 def _prediction_tables(result: RunResult) -> dict[str, pd.DataFrame]:

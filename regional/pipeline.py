@@ -24,8 +24,10 @@ from regional.crossval import (
     FoldContext,
     TransferOptions,
     best_method,
+    choose_donor_counts,
     leave_one_out,
     summarise,
+    with_donor_counts,
 )
 from regional.errors import InputError, InputWarning
 from regional.models import get_model, parameter_transforms
@@ -117,10 +119,22 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
         timings[f"calibration_{model}"] = time.perf_counter() - clock
         clock = time.perf_counter()
         context = _fold_context(model, region, settings, window, calibration, attributes, excluded)
+        counts = choose_donor_counts(
+            context, executor=executor, progress=_stage(progress, "donor count")
+        )
+        if counts is not None:
+            context = with_donor_counts(context, counts.chosen)
         loo = leave_one_out(context, executor=executor, progress=_stage(progress, "leave-one-out"))
         regression = _regression_on_all(context, attributes)
         timings[f"leave_one_out_{model}"] = time.perf_counter() - clock
-        runs[model] = ModelRun(model, calibration, loo, regression, context)
+        runs[model] = ModelRun(
+            model,
+            calibration,
+            loo,
+            regression,
+            context,
+            donor_counts=None if counts is None else counts.table,
+        )
     scores = pd.concat([r.loo.scores.assign(model=m) for m, r in runs.items()], ignore_index=True)[
         ["basin_id", "model", *runs[settings.model.names[0]].loo.scores.columns[1:]]
     ]
@@ -265,16 +279,24 @@ def _fold_context(model, region, settings, window, calibration, attributes, excl
         flow_mm=region.flow_mm.iloc[part],
         window=window,
         evaluation=evaluation,
-        options=TransferOptions(
-            methods=settings.transfer.methods,
-            attributes=attributes,
-            n_donors=settings.transfer.donors,
-            power=settings.transfer.power,
-            combine=settings.transfer.combine,
-        ),
+        options=_transfer_options(settings, attributes),
         excluded={b: d for b, d in excluded.items() if b in set(gauged)},
         fixed_params=fixed_parameters(settings, snow=temp is not None),
         initial_storage=settings.model.initial_storage_mm,
+    )
+
+
+def _transfer_options(settings: Settings, attributes) -> TransferOptions:
+    """One donor count, or candidate counts for leave-one-out to choose from."""
+    donors = settings.transfer.donors
+    choices = tuple(donors) if isinstance(donors, tuple) else ()
+    return TransferOptions(
+        methods=settings.transfer.methods,
+        attributes=attributes,
+        n_donors=max(choices) if choices else donors,
+        power=settings.transfer.power,
+        combine=settings.transfer.combine,
+        donor_choices=choices,
     )
 
 

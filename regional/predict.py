@@ -816,7 +816,7 @@ def fit_transfers(
             estimator = make_transfer(
                 method,
                 attributes=attributes if method != "proximity" else None,
-                n_donors=min(options.n_donors, len(train)),
+                n_donors=min(options.donors_for(method), len(train)),
                 power=options.power,
                 combine=options.combine,
                 level=level,

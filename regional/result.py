@@ -33,7 +33,11 @@ class ModelRun:
     regression : RegressionTransfer
         The regression fit on every gauged basin (coefficient table for the report).
     context : FoldContext
-        What the folds saw (forcing window, attributes, options), reused by prediction.
+        What the folds saw (forcing window, attributes, options with the donor counts chosen),
+        reused by prediction.
+    donor_counts : DataFrame or None
+        Median leave-one-out skill per donor method and candidate donor count, the chosen count
+        marked (see :class:`regional.crossval.DonorCountChoice`); None with one fixed count.
     """
 
     model: str
@@ -41,6 +45,7 @@ class ModelRun:
     loo: LeaveOneOut
     regression: RegressionTransfer
     context: FoldContext
+    donor_counts: pd.DataFrame | None = None
 
 
 @dataclass(frozen=True)

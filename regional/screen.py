@@ -226,7 +226,7 @@ def _donor_spread(context, sites: pd.DataFrame, attributes: Sequence[str]) -> pd
     """Spread of the similarity donors' transformed parameters at each site, over the region's."""
     transforms = parameter_transforms(context.model)
     names = list(transforms)
-    n_donors = min(context.options.n_donors, len(context.calibrated))
+    n_donors = min(context.options.donors_for("similarity"), len(context.calibrated))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", InputWarning)  # already reported by leave-one-out
         similarity = make_transfer("similarity", attributes=list(attributes), n_donors=n_donors)

@@ -54,6 +54,8 @@ def build_region(
     parts: Sequence[str] | None = None,
     models: Sequence[str] = ("linear", "gr4j"),
     objective: str = "kge",
+    methods: Sequence[str] = ("regression", "similarity", "proximity"),
+    donors: int | str = 5,
 ) -> Path:
     """Write a region folder for the real basins of the given USGS parts (all when None).
 
@@ -67,6 +69,10 @@ def build_region(
         Storage models to compare.
     objective : str
         Calibration objective.
+    methods : sequence of str
+        Transfer methods.
+    donors : int or "auto"
+        Donors per target, or ``"auto"`` to choose 1 to 10 in leave-one-out.
     """
     basins_path, series_path = REAL_DATA / "basins.gpkg", REAL_DATA / "timeseries.csv.gz"
     if parts is not None:
@@ -80,6 +86,8 @@ def build_region(
         basins.to_file(basins_path, layer="basins", driver="GPKG")
         series[keep].to_parquet(series_path, index=False)
     names = ", ".join(f'"{m}"' for m in models)
+    transfers = ", ".join(f'"{m}"' for m in methods)
+    donor_value = f'"{donors}"' if isinstance(donors, str) else str(int(donors))
     attributes = ", ".join(f'"{a}"' for a in ATTRIBUTES)
     (folder / "region.toml").write_text(
         f"""[region]
@@ -105,8 +113,8 @@ calibration = ["{CALIBRATION[0]}", "{CALIBRATION[1]}"]
 validation = ["{VALIDATION[0]}", "{VALIDATION[1]}"]
 [transfer]
 attributes = [{attributes}]
-methods = ["regression", "similarity", "proximity"]
-donors = 5
+methods = [{transfers}]
+donors = {donor_value}
 [output]
 folder = "results"
 """

@@ -87,6 +87,15 @@ def test_defaults(tmp_path):
     assert settings.series.flow_column == "flow_mm" and settings.series.flow_unit == "mm/day"
 
 
+@pytest.mark.parametrize(
+    ("value", "expected"),
+    [(7, 7), ("auto", tuple(range(1, 11))), ([10, 1, 3], (1, 3, 10))],
+)
+def test_donors_fixed_auto_or_candidate_list(tmp_path, value, expected):
+    settings = load_settings(write(tmp_path, with_("transfer", donors=value)))
+    assert settings.transfer.donors == expected
+
+
 def test_model_name_string_or_list_and_dates(tmp_path):
     config = with_(
         "model",
@@ -152,7 +161,10 @@ def test_missing_required_section(tmp_path):
     ("section", "key", "value", "pattern"),
     [
         ("transfer", "donors", "five", r"'donors'.*whole number >= 1; found 'five'"),
-        ("transfer", "donors", 0, r"'donors'.*whole number >= 1; found 0"),
+        ("transfer", "donors", 0, r"'donors'.*whole number >= 1; found 0.*\"auto\""),
+        ("transfer", "donors", [3, 0], r"'donors'.*whole numbers >= 1; found \[3, 0\]"),
+        ("transfer", "donors", [3, 3], r"'donors'.*not repeat a donor count"),
+        ("transfer", "donors", [], r"'donors'.*whole numbers >= 1; found \[\]"),
         ("model", "objective", "kgee", r"'objective'.*one of 'kge', 'nse', 'log_nse'.*'kge'\?"),
         ("model", "name", "gr5j", r"'name'.*'linear', 'gr4j'.*found 'gr5j'"),
         ("model", "snow", "maybe", r"'snow'.*'auto', 'true', 'false'"),
