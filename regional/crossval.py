@@ -246,20 +246,9 @@ def _simulate_set(context: FoldContext, forcing, params: Mapping[str, float]) ->
 
 
 def _transfer_flow(method, target, train, context, forcing, transforms):
-    options = context.options
-    attributes = list(options.attributes) if options.attributes else None
-    estimator = make_transfer(
-        method,
-        attributes=attributes if method != "proximity" else None,
-        n_donors=min(options.donors_for(method), len(train)),
-        power=options.power,
-        combine=options.combine,
-    )
+    n_donors = min(context.options.donors_for(method), len(train))
+    donation = _fold_donation(method, target, train, context, transforms, n_donors)
     names = list(transforms)
-    estimator.fit(
-        context.attributes.loc[train], context.calibrated.loc[train, names], transforms=transforms
-    )
-    donation = estimator.donate(context.attributes.loc[[target]])
     estimate = weighted_estimate(donation.sets, names, transforms).iloc[0].to_dict()
     simulator = donor_simulator(context.model, context.fixed_params)
     flows = simulate_donors(
@@ -274,6 +263,25 @@ def _transfer_flow(method, target, train, context, forcing, transforms):
         simulate=simulator,
     )
     return estimate, flows.flow
+
+
+def _fold_donation(method, target, train, context, transforms, n_donors):
+    """Fit ``method`` on the fold's training basins and donate to the target."""
+    options = context.options
+    attributes = list(options.attributes) if options.attributes else None
+    estimator = make_transfer(
+        method,
+        attributes=attributes if method != "proximity" else None,
+        n_donors=n_donors,
+        power=options.power,
+        combine=options.combine,
+    )
+    estimator.fit(
+        context.attributes.loc[train],
+        context.calibrated.loc[train, list(transforms)],
+        transforms=transforms,
+    )
+    return estimator.donate(context.attributes.loc[[target]])
 
 
 def donor_simulator(model: str, fixed: Mapping[str, float]):
@@ -495,7 +503,8 @@ def _count_fold(target: str, context: FoldContext) -> list[dict]:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the same warnings reach the user from leave_one_out
         for method in _donor_methods(context.options):
-            sets = _largest_donation(method, target, train, context, transforms, max(counts))
+            donation = _fold_donation(method, target, train, context, transforms, max(counts))
+            sets = donation.for_target(target)
             flows = count_flows(
                 sets, counts, transforms=transforms, context=context, forcing=forcing
             )
@@ -511,23 +520,6 @@ def _count_fold(target: str, context: FoldContext) -> list[dict]:
                     }
                 )
     return rows
-
-
-def _largest_donation(method, target, train, context, transforms, n_donors) -> pd.DataFrame:
-    options = context.options
-    estimator = make_transfer(
-        method,
-        attributes=list(options.attributes) if options.attributes else None,
-        n_donors=n_donors,
-        power=options.power,
-        combine=options.combine,
-    )
-    names = list(transforms)
-    estimator.fit(
-        context.attributes.loc[train], context.calibrated.loc[train, names], transforms=transforms
-    )
-    donation = estimator.donate(context.attributes.loc[[target]])
-    return donation.for_target(target)
 
 
 def count_flows(
