@@ -92,3 +92,31 @@ def test_prediction_method_that_was_not_validated_is_an_input_error(tmp_path):
     )
     with pytest.raises(InputError, match=r"'similarity', which is not among \[transfer\] methods"):
         run(toml)
+
+
+def test_donor_count_chosen_in_leave_one_out_reaches_prediction_and_outputs(tmp_path):
+    from regional.outputs import write_outputs
+    from regional.pipeline import run
+    from regional.predict import fit_transfers
+
+    toml = _demo_copy(
+        tmp_path,
+        ("donors = 5", "donors = [1, 3, 6]"),
+        (
+            'methods = ["regression", "similarity", "proximity"]',
+            'methods = ["regression", "similarity", "blended"]',
+        ),
+    )
+    result = run(toml)
+    model_run = result.runs[result.chosen_model]
+    table = model_run.donor_counts
+    assert set(table["method"]) == {"similarity", "blended"}
+    assert set(table["n_donors"]) == {1, 3, 6}
+    chosen = table[table["chosen"]].set_index("method")["n_donors"].to_dict()
+    assert dict(model_run.context.options.chosen_donors) == chosen
+    estimators, _ = fit_transfers(model_run.context, level=0.9)
+    assert {m: estimators[m].n_donors_ for m in chosen} == chosen
+    folder = write_outputs(result, tmp_path / "out", figures=False)
+    written = pd.read_csv(folder / "donor_counts.csv")
+    assert list(written.columns[:3]) == ["model", "method", "n_donors"]
+    assert len(written) == 2 * 3 * len(result.runs)
