@@ -98,6 +98,7 @@ def test_donor_count_chosen_in_leave_one_out_reaches_prediction_and_outputs(tmp_
     from regional.outputs import write_outputs
     from regional.pipeline import run
     from regional.predict import fit_transfers
+    from regional.report.html import render_report
 
     toml = _demo_copy(
         tmp_path,
@@ -120,3 +121,5 @@ def test_donor_count_chosen_in_leave_one_out_reaches_prediction_and_outputs(tmp_
     written = pd.read_csv(folder / "donor_counts.csv")
     assert list(written.columns[:3]) == ["model", "method", "n_donors"]
     assert len(written) == 2 * 3 * len(result.runs)
+    report = render_report(result, {})
+    assert "Donors per target chosen in leave-one-out from 1, 3, 6: similarity" in report

@@ -514,6 +514,7 @@ def _transfer(result: RunResult) -> list[str]:
         parts.append(
             _table(rows, caption="Highlighted: the method used for estimates.", chosen=chosen)
         )
+        parts += _donor_counts(result.runs[model].donor_counts, model)
         excluded = result.runs[model].loo.excluded
         if excluded:
             parts.append(
@@ -524,6 +525,25 @@ def _transfer(result: RunResult) -> list[str]:
                 )
             )
     return parts
+
+
+def _donor_counts(table: pd.DataFrame | None, model: str) -> list[str]:
+    """One line naming the donor counts chosen in leave-one-out, and the table per count."""
+    if table is None:
+        return []
+    chosen = table[table["chosen"]]
+    picks = "; ".join(
+        f"{row.method} {row.n_donors} (median NSE {row.median_nse:.3f}, "
+        f"{row.median_nse_choice_held_out:.3f} with each basin's count chosen without its score)"
+        for row in chosen.itertuples()
+    )
+    candidates = ", ".join(str(n) for n in sorted(table["n_donors"].unique()))
+    line = _p(
+        f"Donors per target chosen in leave-one-out from {candidates}: {picks}. Choosing the "
+        "count on the same folds makes the medians above slightly optimistic.",
+        css="muted",
+    )
+    return [line, _details(f"Median skill per number of donors ({model})", _table(table))]
 
 
 def _summary_with_coverage(result: RunResult) -> pd.DataFrame:
