@@ -438,7 +438,7 @@ SECTIONS: dict[str, dict[str, _Key]] = {
     "transfer": {
         "attributes": _Key(_text_list),
         "methods": _Key(_choice_list(TRANSFER_METHODS), ["regression", "similarity", "proximity"]),
-        "donors": _Key(_donors, 5),
+        "donors": _Key(_donors, "auto"),
         "power": _Key(_number(0.0, 10.0), 1.0),
         "combine": _Key(_choice(COMBINE_MODES), "output"),
         "exclude_overlap": _Key(_number(0.0, 1.0), 0.5),

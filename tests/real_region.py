@@ -54,8 +54,8 @@ def build_region(
     parts: Sequence[str] | None = None,
     models: Sequence[str] = ("linear", "gr4j"),
     objective: str = "kge",
-    methods: Sequence[str] = ("regression", "similarity", "proximity"),
-    donors: int | str = 5,
+    methods: Sequence[str] = ("regression", "similarity", "proximity", "blended"),
+    donors: int | str = "auto",
 ) -> Path:
     """Write a region folder for the real basins of the given USGS parts (all when None).
 

@@ -75,7 +75,7 @@ def test_defaults(tmp_path):
     assert transfer.attributes is None
     assert transfer.methods == ("regression", "similarity", "proximity")
     assert (transfer.donors, transfer.power, transfer.combine, transfer.exclude_overlap) == (
-        5,
+        tuple(range(1, 11)),
         1.0,
         "output",
         0.5,

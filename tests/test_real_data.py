@@ -2,9 +2,10 @@
 
 A subset small enough for CI: the 59 basins of USGS parts 01 (North Atlantic slope) and 03
 (Ohio), warm-up 1989, calibration 1990-1999, validation 2000-2009, linear store and GR4J, both
-with the degree-day snow store in front. Skipped when the dataset is absent (it is kept outside
-the repository). The figures for every basin come from ``benchmarks/real_data.py`` and are
-recorded in docs/validation.md.
+with the degree-day snow store in front; regression, similarity, proximity and blended transfer
+with the number of donors chosen in leave-one-out from 1 to 10. Skipped when the dataset is
+absent (it is kept outside the repository). The figures for every basin come from
+``benchmarks/real_data.py`` and are recorded in docs/validation.md.
 """
 
 from __future__ import annotations
@@ -51,6 +52,31 @@ def test_gr4j_best_transfer_beats_median_and_nothing_beats_calibrated(real_resul
     transfers = nse.drop([CALIBRATED, MEDIAN])
     assert transfers.max() > nse[MEDIAN]
     assert (nse.drop(CALIBRATED) < nse[CALIBRATED]).all()
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="not met yet: on these 59 basins with fixed snow parameters and a KGE objective the "
+    "best transfer (similarity, 0.429) beats the regional median (0.360) by 0.069 median NSE, "
+    "and even the basins' own calibration (0.437) only by 0.077 (docs/validation.md)",
+)
+def test_gr4j_best_transfer_beats_median_by_a_tenth(real_result):
+    # the target set for this dataset (issue 13): at least 0.10 of median NSE over the median
+    nse = _median_nse(real_result, "gr4j")
+    assert nse.drop([CALIBRATED, MEDIAN]).max() >= nse[MEDIAN] + 0.10
+
+
+def test_gr4j_several_donors_beat_a_single_donor(real_result):
+    # averaging the flows of several donors beats taking one donor's set (McIntyre et al. 2005,
+    # Water Resour. Res. 41, W12434; Oudin et al. 2008, Water Resour. Res. 44, W03413: from
+    # memory of their conclusions)
+    table = real_result.runs["gr4j"].donor_counts
+    assert set(table["method"]) == {"similarity", "proximity", "blended"}
+    for method, rows in table.groupby("method"):
+        by_count = rows.set_index("n_donors")["median_nse"]
+        chosen = rows.loc[rows["chosen"], "n_donors"].item()
+        assert chosen > 1, method
+        assert by_count[chosen] > by_count[1], method
 
 
 def test_linear_best_transfer_beats_median(real_result):

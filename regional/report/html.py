@@ -452,7 +452,7 @@ def _inputs(result: RunResult) -> list[str]:
         ("calibration objective", model_settings.objective),
         ("snow store", "on" if _snow_on(result) else "off"),
         ("transfer methods", ", ".join(transfer.methods)),
-        ("donors per target", transfer.donors),
+        ("donors per target", _donor_setting(transfer.donors)),
         ("donor combination", transfer.combine),
         ("overlap share excluding a donor", transfer.exclude_overlap),
         ("attributes used", ", ".join(result.attributes)),
@@ -465,6 +465,12 @@ def _inputs(result: RunResult) -> list[str]:
     if region.notes:
         parts += [_h3("Notes from loading the region"), _list(region.notes)]
     return parts
+
+
+def _donor_setting(donors: int | tuple[int, ...]) -> str:
+    if isinstance(donors, tuple):
+        return f"chosen in leave-one-out from {', '.join(map(str, donors))}"
+    return str(donors)
 
 
 def _snow_on(result: RunResult) -> bool:
