@@ -38,6 +38,8 @@ COMBINE_MODES = ("output", "parameter")
 AUTO_DONOR_COUNTS = tuple(range(1, 11))
 #: ``[model] snow`` values.
 SNOW_MODES = ("auto", "true", "false")
+#: Units of flow in the report (``[report] flow_unit``); tables in files keep both.
+REPORT_FLOW_UNITS = ("m3/s", "mm/day")
 
 
 # --------------------------------------------------------------------------------------------
@@ -182,6 +184,25 @@ class ComputeSettings:
 
 
 @dataclass(frozen=True)
+class ReportSettings:
+    """``[report]``: how the report and its figures show flows at the sites.
+
+    Attributes
+    ----------
+    flow_unit : {"m3/s", "mm/day"}
+        Unit of flows in the report's tables and figures (CSV files keep both units).
+    window : (Timestamp, Timestamp) or None
+        Dates of the hydrograph window at ungauged basins; None: the last 365 days.
+    sites_per_figure : int
+        Most ungauged basins per hydrograph figure; more basins go to further figures.
+    """
+
+    flow_unit: str
+    window: tuple[pd.Timestamp, pd.Timestamp] | None
+    sites_per_figure: int
+
+
+@dataclass(frozen=True)
 class OutputSettings:
     """``[output]``: the results folder (absolute)."""
 
@@ -213,6 +234,7 @@ class Settings:
     screening: ScreeningSettings
     compute: ComputeSettings
     output: OutputSettings
+    report: ReportSettings
 
 
 # --------------------------------------------------------------------------------------------
@@ -451,6 +473,11 @@ SECTIONS: dict[str, dict[str, _Key]] = {
     "screening": {"candidates": _Key(_text_list)},
     "compute": {"scheduler": _Key(_scheduler), "workers": _Key(_integer(1))},
     "output": {"folder": _Key(_path, "results")},
+    "report": {
+        "flow_unit": _Key(_choice(REPORT_FLOW_UNITS), "m3/s"),
+        "window": _Key(_period),
+        "sites_per_figure": _Key(_integer(1), 6),
+    },
 }
 
 #: Sections that must appear in every ``region.toml``.
@@ -630,6 +657,7 @@ def _assemble(
         screening=ScreeningSettings(**sections["screening"]),
         compute=ComputeSettings(**sections["compute"]),
         output=OutputSettings(**sections["output"]),
+        report=ReportSettings(**sections["report"]),
     )
 
 

@@ -282,6 +282,15 @@ class GR4J:
     """
 
     name = "gr4j"
+    description = (
+        "GR4J: a daily model of four parameters, a production store of capacity X1 (mm), a "
+        "groundwater exchange coefficient X2 (mm/day), a routing store of capacity X3 (mm) and "
+        "the time base X4 (days) of two unit hydrographs that split the effective rainfall 90/10."
+    )
+    references = (
+        "Perrin, C., Michel, C., Andreassian, V. (2003): Improvement of a parsimonious model "
+        "for streamflow simulation. J. Hydrol. 279, 275-289.",
+    )
     parameters = PARAMETERS
     storage_unit = "mm"
 

@@ -76,6 +76,17 @@ class LinearReservoir:
     """The one-store linear reservoir (parameter ``k_per_day``)."""
 
     name = "linear"
+    description = (
+        "Linear reservoir: one store S (mm) with dS/dt = P - E - kS and flow Q = kS, k the "
+        "storage constant (1/day); each day integrated exactly under constant input, actual "
+        "evapotranspiration limited by the water available and the store floored at zero."
+    )
+    references = (
+        "Chow, V. T., Maidment, D. R., Mays, L. W. (1988): Applied Hydrology. McGraw-Hill, "
+        "ch. 8 (linear reservoir).",
+        "Nash, J. E. (1957): The form of the instantaneous unit hydrograph. IAHS Publ. 45, "
+        "114-121.",
+    )
     parameters = PARAMETERS
     storage_unit = "mm"
 

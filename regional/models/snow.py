@@ -79,6 +79,15 @@ class DegreeDaySnow:
     """Snow store: splits precipitation into snow and rain and releases melt."""
 
     name = "snow"
+    description = (
+        "Degree-day snow store in front of the storage model: precipitation falls as snow on "
+        "days colder than a threshold temperature (degC), and the pack melts at a factor "
+        "(mm/degC/day) times the excess of temperature over a melt threshold, limited by the pack."
+    )
+    references = (
+        "Martinec, J. (1960): The degree-day factor for snowmelt runoff forecasting. IAHS Publ. "
+        "51, 468-477.",
+    )
     parameters = PARAMETERS
 
     def run(

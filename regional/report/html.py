@@ -9,6 +9,7 @@ from anywhere, so it opens offline and can be mailed as one file.
 from __future__ import annotations
 
 import base64
+import calendar
 import html
 import math
 import numbers
@@ -20,7 +21,8 @@ import pandas as pd
 
 from regional.crossval import CALIBRATED, MEDIAN
 from regional.models import get_model
-from regional.predict import SUMMARY_STATISTICS
+from regional.report.labels import column_label, flow_in_unit, parameter_labels
+from regional.report.methods import methods_text
 from regional.result import software_versions
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
@@ -84,38 +86,9 @@ SCREENING_COLUMNS = (
 )
 APPLICABILITY_COLUMNS = ("mahalanobis_d2", "nearest_donor_distance")
 MONTH_COLUMNS = tuple(f"flow_m{month:02d}_mm" for month in range(1, 13))
+STATISTICS_MM = ("mean_flow_mm", "q5_mm", "q50_mm", "q95_mm", "min7_mean_mm")
+"""Headline statistics of the prediction table, mm/day (shown in the report's unit)."""
 DASH = "\u2013"
-
-REFERENCES = (
-    "Chow, V. T., Maidment, D. R., Mays, L. W. (1988): Applied Hydrology. McGraw-Hill, ch. 8 "
-    "(linear reservoir).",
-    "Martinec, J. (1960): The degree-day factor for snowmelt runoff forecasting. IAHS Publ. 51, "
-    "468-477 (degree-day snow store).",
-    "Nash, J. E., Sutcliffe, J. V. (1970): River flow forecasting through conceptual models "
-    "part I - A discussion of principles. J. Hydrol. 10, 282-290 (NSE).",
-    "Gupta, H. V., Kling, H., Yilmaz, K. K., Martinez, G. F. (2009): Decomposition of the mean "
-    "squared error and NSE performance criteria: implications for improving hydrological "
-    "modelling. J. Hydrol. 377, 80-91 (KGE).",
-    "Klemes, V. (1986): Operational testing of hydrological simulation models. Hydrol. Sci. J. "
-    "31(1), 13-24 (split-sample test).",
-    "Oudin, L., Andreassian, V., Perrin, C., Michel, C., Le Moine, N. (2008): Spatial "
-    "proximity, physical similarity, regression and ungaged catchments: a comparison of "
-    "regionalization approaches based on 913 French catchments. Water Resour. Res. 44, W03413.",
-    "Allen, D. M. (1974): The relationship between variable selection and data augmentation "
-    "and a method for prediction. Technometrics 16(1), 125-127 (PRESS).",
-    "Kutner, M. H., Nachtsheim, C. J., Neter, J., Li, W. (2005): Applied Linear Statistical "
-    "Models, 5th ed. McGraw-Hill (prediction intervals, VIF).",
-    "Vovk, V., Gammerman, A., Shafer, G. (2005): Algorithmic Learning in a Random World. "
-    "Springer (conformal prediction).",
-    "Lei, J., G'Sell, M., Rinaldo, A., Tibshirani, R. J., Wasserman, L. (2018): "
-    "Distribution-free predictive inference for regression. J. Am. Stat. Assoc. 113, "
-    "1094-1111 (split-conformal prediction).",
-    "Mahalanobis, P. C. (1936): On the generalised distance in statistics. Proc. Natl. Inst. "
-    "Sci. India 2, 49-55 (applicability distance).",
-    "Sherman, J., Morrison, W. J. (1950): Adjustment of an inverse matrix corresponding to a "
-    "change in one element of a given matrix. Ann. Math. Stat. 21, 124-127 (rank-one update "
-    "in screening).",
-)
 
 STYLE = """
 :root { --ink: #1d2428; --muted: #5b6670; --rule: #d5dade; --band: #f3f5f6; --accent: #2a5d84;
@@ -140,10 +113,17 @@ table { border-collapse: collapse; margin: .4em 0 1em; font-size: .85em;
 caption { text-align: left; color: var(--muted); padding-bottom: .3em; }
 th, td { padding: .25em .6em; border-bottom: 1px solid var(--rule); vertical-align: top; }
 th { background: var(--band); text-align: left; font-weight: 600; }
+th { vertical-align: bottom; min-width: 4.5em; max-width: 12em; }
+th .unit { display: block; font-weight: 400; color: var(--muted); font-size: .92em; }
 td.num { text-align: right; white-space: nowrap; }
+td.text { white-space: normal; min-width: 12em; max-width: 30em; overflow-wrap: anywhere; }
 tr.chosen td { background: #e8f0f7; font-weight: 600; }
 td.flag { color: var(--flag); font-weight: 600; }
 .scroll { overflow-x: auto; max-width: 100%; }
+table.data th:first-child, table.data td:first-child { position: sticky; left: 0; z-index: 1;
+        background: #fff; box-shadow: 1px 0 0 var(--rule); }
+table.data th:first-child { background: var(--band); }
+table.data tr.chosen td:first-child { background: #e8f0f7; }
 figure { margin: 1em 0 1.6em; }
 figure img { max-width: 100%; height: auto; border: 1px solid var(--rule); }
 figcaption { color: var(--muted); font-size: .9em; max-width: 90ch; }
@@ -188,7 +168,7 @@ def render_report(result: RunResult, figures: Mapping[str, bytes]) -> str:
         "ungauged": _ungauged(result) + placed["ungauged"],
         "screening": _screening(result) + placed["screening"],
         "warnings": _warnings(result),
-        "methods": _methods(),
+        "methods": _methods(result),
         "run": _run_information(result),
     }
     body = "\n".join(_section(key, title, sections[key]) for key, title in SECTIONS)
@@ -272,35 +252,53 @@ def _table(
     index: bool = False,
     chosen: Sequence[bool] | None = None,
     flag_column: str | None = None,
+    labels: Mapping[str, tuple[str, str]] | None = None,
 ) -> str:
-    """An HTML table of a frame, every cell escaped; numbers right-aligned.
+    """An HTML table of a frame: readable headers with units, every cell escaped.
 
-    ``chosen`` marks rows to highlight; cells of ``flag_column`` that read "no" are marked.
+    Headers come from :func:`regional.report.labels.column_label` (``labels`` first, for this
+    table's own columns), each carrying its machine name as a tooltip; numbers are
+    right-aligned, text cells wrap, and the first column stays in view when a wide table
+    scrolls sideways. ``chosen`` marks rows to highlight; cells of ``flag_column`` that read
+    "no" are marked.
     """
     frame = frame.reset_index() if index else frame
-    head = "".join(f"<th>{_esc(column)}</th>" for column in frame.columns)
-    rows = []
+    head = "".join(_header_cell(str(column), labels) for column in frame.columns)
     marks = list(chosen) if chosen is not None else [False] * len(frame)
-    for mark, values in zip(marks, frame.itertuples(index=False, name=None), strict=True):
-        cells = []
-        for column, value in zip(frame.columns, values, strict=True):
-            text = _fmt(value)
-            css = _cell_class(value, column == flag_column and text == "no")
-            cells.append(f"<td{css}>{_esc(text)}</td>")
-        opening = '<tr class="chosen">' if mark else "<tr>"
-        rows.append(opening + "".join(cells) + "</tr>")
+    rows = [
+        _row(frame.columns, values, mark=mark, flag_column=flag_column)
+        for mark, values in zip(marks, frame.itertuples(index=False, name=None), strict=True)
+    ]
     title = f"<caption>{_esc(caption)}</caption>" if caption else ""
     return (
-        f'<div class="scroll"><table>{title}<thead><tr>{head}</tr></thead>'
+        f'<div class="scroll"><table class="data">{title}<thead><tr>{head}</tr></thead>'
         f"<tbody>{''.join(rows)}</tbody></table></div>"
     )
+
+
+def _header_cell(column: str, labels: Mapping[str, tuple[str, str]] | None) -> str:
+    label, unit = column_label(column, extra=labels)
+    shown = f'<span class="unit">{_esc(unit)}</span>' if unit else ""
+    return f'<th scope="col" title="{_esc(column)}">{_esc(label)}{shown}</th>'
+
+
+def _row(columns, values, *, mark: bool, flag_column: str | None) -> str:
+    cells = []
+    for column, value in zip(columns, values, strict=True):
+        text = _fmt(value)
+        css = _cell_class(value, column == flag_column and text == "no")
+        cells.append(f"<td{css}>{_esc(text)}</td>")
+    opening = '<tr class="chosen">' if mark else "<tr>"
+    return opening + "".join(cells) + "</tr>"
 
 
 def _cell_class(value: object, flagged: bool) -> str:
     if flagged:
         return ' class="flag"'
     numeric = isinstance(value, numbers.Real) and not isinstance(value, bool | np.bool_)
-    return ' class="num"' if numeric else ""
+    if numeric:
+        return ' class="num"'
+    return ' class="text"' if isinstance(value, str) and len(value) > 24 else ""
 
 
 def _key_values(pairs: Sequence[tuple[str, object]], *, caption: str | None = None) -> str:
@@ -459,9 +457,7 @@ def _inputs(result: RunResult) -> list[str]:
     ]
     parts = [_key_values(pairs)]
     parts.append(_h3("Attributes used: range over all basins"))
-    ranges = region.attributes[list(result.attributes)].agg(["min", "median", "max"]).T
-    ranges.index.name = "attribute"
-    parts.append(_table(ranges, index=True))
+    parts.append(_table(_attribute_ranges(region.attributes, result.attributes)))
     if region.notes:
         parts += [_h3("Notes from loading the region"), _list(region.notes)]
     return parts
@@ -471,6 +467,19 @@ def _donor_setting(donors: int | tuple[int, ...]) -> str:
     if isinstance(donors, tuple):
         return f"chosen in leave-one-out from {', '.join(map(str, donors))}"
     return str(donors)
+
+
+def _attribute_ranges(attributes: pd.DataFrame, names: Sequence[str]) -> pd.DataFrame:
+    """Minimum, median and maximum of each attribute, with its readable name and unit."""
+    ranges = attributes[list(names)].astype(float).agg(["min", "median", "max"]).T
+    labels = [column_label(name) for name in ranges.index]
+    ranges.insert(0, "unit", [unit or "as given" for _, unit in labels])
+    ranges.insert(
+        0,
+        "attribute",
+        [f"{label} ({name})" for (label, _), name in zip(labels, ranges.index, strict=True)],
+    )
+    return ranges.reset_index(drop=True)
 
 
 def _snow_on(result: RunResult) -> bool:
@@ -493,12 +502,19 @@ def _calibration(result: RunResult) -> list[str]:
         spread = calibration[columns].astype(float).describe(percentiles=[0.25, 0.5, 0.75]).T
         spread = spread.rename(columns={"25%": "q25", "50%": "median", "75%": "q75"})
         spread = spread[["count", "min", "q25", "median", "q75", "max"]]
+        labels = parameter_labels(get_model(model).parameters)
+        spread.index = [_label_with_unit(name, labels) for name in spread.index]
         spread.index.name = "quantity"
         parts.append(_h3(f"Model {model}: distribution over {len(calibration)} gauged basins"))
         parts.append(_table(spread, index=True))
         per_basin = _with_names(result, calibration.drop(columns=["objective"], errors="ignore"))
-        parts.append(_details(f"Per basin ({model})", _table(per_basin)))
+        parts.append(_details(f"Per basin ({model})", _table(per_basin, labels=labels)))
     return parts
+
+
+def _label_with_unit(name: str, labels: Mapping[str, tuple[str, str]] | None = None) -> str:
+    label, unit = column_label(name, extra=labels)
+    return f"{label} ({unit})" if unit and unit != "-" else label
 
 
 def _transfer(result: RunResult) -> list[str]:
@@ -627,26 +643,43 @@ def _ungauged(result: RunResult) -> list[str]:
             else "prediction did not run for this result"
         )
         return [_p(f"No estimates at ungauged basins: {why}.")]
-    table = prediction.table
+    unit = result.settings.report.flow_unit
     skill = _median_nse(result, prediction.model, prediction.method)
     parts = [
         _p(
             f"Estimates from the {prediction.model} model with {prediction.method} transfer "
-            f"(median leave-one-out NSE {_fmt(skill)}). Parameters carry their interval "
-            f"(low-high); daily flows carry {prediction.level:.0%} bounds built from the "
-            f"leave-one-out errors (split-conformal prediction){_coverage_clause(prediction)}. "
-            "A basin whose attributes lie outside what the gauged basins cover is flagged "
+            f"(median leave-one-out NSE {_fmt(skill)}), flows in {unit}. Parameters carry their "
+            f"interval (low-high); daily flows carry {prediction.level:.0%} bounds built from "
+            f"the leave-one-out errors (split-conformal prediction){_coverage_clause(prediction)}"
+            ". A basin whose attributes lie outside what the gauged basins cover is flagged "
             "'applicable: no' with the reason."
-        )
+        ),
+        _h3("Estimates at the sites"),
+        _table(
+            _estimate_table(result, unit),
+            caption=f"Bounds: the mean over the period of the daily lower and upper "
+            f"{prediction.level:.0%} bounds (wider than an interval of the mean flow itself).",
+            flag_column="applicable",
+        ),
+        _h3("Coverage of the bounds in leave-one-out"),
+        _coverage_table(prediction),
+        _h3(f"Flow statistics ({unit})"),
+        _table(_statistics_table(result, unit), labels=_flow_labels(unit)),
+        _h3("Parameters with their intervals"),
+        _table(_parameter_table(result), labels=_model_labels(prediction.model)),
     ]
-    parts.append(_h3("Coverage of the bounds in leave-one-out"))
-    parts.append(_coverage_table(prediction))
-    parts.append(_h3("Parameters and flow statistics (mm/day unless m3s)"))
-    parts.append(_table(_estimate_table(result), flag_column="applicable"))
+    return parts + _ungauged_details(result, unit)
+
+
+def _ungauged_details(result: RunResult, unit: str) -> list[str]:
+    prediction = result.prediction
+    table = prediction.table
+    parts = []
     months = [c for c in MONTH_COLUMNS if c in table.columns]
     if months:
-        regime = table[months].rename(columns=lambda c: c[6:8])
-        parts.append(_details("Monthly mean flow (mm/day)", _table(_with_names(result, regime))))
+        regime = _in_unit(result, table[months].astype(float), unit)
+        regime.columns = [calendar.month_abbr[int(c[6:8])] for c in months]
+        parts.append(_details(f"Monthly mean flow ({unit})", _table(_with_names(result, regime))))
     measures = [c for c in (*result.attributes, *APPLICABILITY_COLUMNS) if c in table.columns]
     if measures:
         parts.append(
@@ -696,23 +729,64 @@ def _coverage_table(prediction) -> str:
     )
 
 
-def _estimate_table(result: RunResult) -> pd.DataFrame:
+def _estimate_table(result: RunResult, unit: str) -> pd.DataFrame:
+    """Per ungauged basin: mean flow, its bounds and unit, the applicability flag and reason."""
+    prediction = result.prediction
+    table = prediction.table
+    mean_mm = table["mean_flow_mm"].astype(float)
+    low_mm, high_mm = _mean_daily_bounds(prediction.flows, table.index)
+    estimate = _in_unit(result, mean_mm, unit)
+    low, high = _in_unit(result, low_mm, unit), _in_unit(result, high_mm, unit)
+    out = pd.DataFrame(index=table.index)
+    out["mean_flow"] = estimate
+    out["mean_flow_bounds"] = [f"{_fmt(a)}{DASH}{_fmt(b)}" for a, b in zip(low, high, strict=True)]
+    out["flow_unit"] = unit
+    out["applicable"] = table["applicable"].astype(bool)
+    out["reason"] = table["reason"].fillna("").astype(str)
+    return _with_names(result, out)
+
+
+def _mean_daily_bounds(flows: pd.DataFrame, basins: pd.Index) -> tuple[pd.Series, pd.Series]:
+    """Mean over the period of each basin's daily lower and upper bound, mm/day."""
+    means = flows.groupby("basin_id")[["flow_low_mm", "flow_high_mm"]].mean()
+    means = means.reindex(basins)
+    return means["flow_low_mm"], means["flow_high_mm"]
+
+
+def _in_unit(result: RunResult, flow_mm, unit: str):
+    """mm/day values indexed by basin (Series, or a DataFrame of basin rows) in ``unit``."""
+    area = result.region.attributes["area_km2"].astype(float)
+    return flow_in_unit(flow_mm, area, unit)
+
+
+def _statistics_table(result: RunResult, unit: str) -> pd.DataFrame:
+    """The headline flow statistics (mean, Q5, Q50, Q95, 7-day minimum) in ``unit``."""
+    table = result.prediction.table
+    columns = [c for c in STATISTICS_MM if c in table.columns]
+    values = _in_unit(result, table[columns].astype(float), unit)
+    values.columns = [c.removesuffix("_mm") for c in columns]
+    return _with_names(result, values)
+
+
+def _flow_labels(unit: str) -> dict[str, tuple[str, str]]:
+    names = [c.removesuffix("_mm") for c in STATISTICS_MM]
+    return {name: (column_label(name)[0], unit) for name in names}
+
+
+def _model_labels(model: str) -> dict[str, tuple[str, str]]:
+    return parameter_labels(get_model(model).parameters)
+
+
+def _parameter_table(result: RunResult) -> pd.DataFrame:
+    """The chosen parameters "value (low-high)" per ungauged basin, with the method."""
     prediction = result.prediction
     table = prediction.table
     names = [p.name for p in get_model(prediction.model).parameters if p.name in table.columns]
     out = pd.DataFrame(index=table.index)
     if "method" in table.columns:
         out["method"] = table["method"]
-        out["loo_median_nse"] = [
-            _median_nse(result, prediction.model, str(m)) for m in table["method"]
-        ]
     for name in names:
         out[name] = _interval_column(table, name)
-    for column in SUMMARY_STATISTICS:
-        if column in table.columns:
-            out[column] = table[column]
-    out["applicable"] = table["applicable"].astype(bool)
-    out["reason"] = table["reason"].fillna("").astype(str)
     return _with_names(result, out)
 
 
@@ -786,35 +860,20 @@ def _warnings(result: RunResult) -> list[str]:
     return parts
 
 
-def _methods() -> list[str]:
-    paragraphs = [
-        "Storage model: a linear reservoir, dS/dt = P - E - kS with flow Q = kS (S in mm, k the "
-        "storage constant in 1/day), integrated exactly over each day under constant input; "
-        "actual evapotranspiration is limited by the water available. When temperature is "
-        "given, a degree-day snow store sits in front: precipitation falls as snow below a "
-        "threshold temperature and melts at a factor times the excess over a melt threshold.",
-        "Calibration: per gauged basin, the objective (KGE by default) is maximised on the "
-        "calibration period after a warm-up, and the optimum scored on a separate validation "
-        "period (split-sample test, Klemes 1986). NSE after Nash and Sutcliffe (1970); KGE and "
-        "its correlation, variability and bias parts after Gupta et al. (2009).",
-        "Transfer: regression of transformed parameters on standardised attributes (forward "
-        "selection by PRESS, Allen 1974; prediction intervals and VIF, Kutner et al. 2005); "
-        "similarity (nearest gauged basins in attribute space) and proximity (nearest by "
-        "distance) with inverse-distance weights; the regional median as benchmark. The "
-        "comparison of these families follows Oudin et al. (2008).",
-        "Leave-one-out: each gauged basin is left out in turn, every method refit on the "
-        "others and scored on the left-out basin's observations.",
-        "Bounds at ungauged basins: split-conformal prediction (Vovk et al. 2005; Lei et al. "
-        "2018) on the leave-one-out errors of log flow, by flow class where the data allow; "
-        "their coverage is checked on basins they were not built from.",
-        "Applicability: a target is flagged when an attribute lies outside the donors' range, "
-        "when its Mahalanobis (1936) distance to the donors exceeds the chi-square 95% "
-        "quantile, or when its nearest donor is farther than any donor's nearest neighbour.",
-        "Screening: the reduction in average prediction variance from adding a candidate to "
-        "the regression's design, computed by a rank-one update of the inverse "
-        "(Sherman and Morrison 1950), combined with the donors' spread at the candidate.",
+def _methods(result: RunResult) -> list[str]:
+    runs = list(result.runs.values())
+    methods = dict.fromkeys(m for run in runs for m in run.loo.methods)
+    text = methods_text(
+        result.runs,
+        methods,
+        snow=_snow_on(result),
+        objective=result.settings.model.objective,
+        screening=result.screening is not None,
+    )
+    parts = [
+        f"<p><strong>{_esc(head)}.</strong> {_esc(body)}</p>" for head, body in text.paragraphs
     ]
-    return [*(_p(text) for text in paragraphs), _h3("References"), _list(REFERENCES)]
+    return [*parts, _h3("References"), _list(text.references)]
 
 
 def _run_information(result: RunResult) -> list[str]:

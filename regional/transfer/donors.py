@@ -256,6 +256,17 @@ class SimilarityTransfer(_DonorTransfer):
 
     _method = "similarity"
     _distance_unit = "standardised"
+    description = (
+        "Physical similarity: the k gauged basins nearest in attribute space (each attribute "
+        "standardised over the donors) give their parameter sets, weighted by inverse distance."
+    )
+    references = (
+        "Oudin, L., Andreassian, V., Perrin, C., Michel, C., Le Moine, N. (2008): Spatial "
+        "proximity, physical similarity, regression and ungaged catchments. Water Resour. Res. "
+        "44, W03413.",
+        "Shepard, D. (1968): A two-dimensional interpolation function for irregularly-spaced "
+        "data. Proc. 23rd ACM National Conference, 517-524 (inverse-distance weights).",
+    )
 
     def __init__(
         self,
@@ -310,6 +321,19 @@ class ProximityTransfer(_DonorTransfer):
 
     _method = "proximity"
     _distance_unit = "km"
+    description = (
+        "Spatial proximity: the k gauged basins nearest by great-circle distance between "
+        "centroids (or outlets) give their parameter sets, weighted by inverse distance."
+    )
+    references = (
+        "Merz, R., Bloeschl, G. (2004): Regionalisation of catchment model parameters. "
+        "J. Hydrol. 287, 95-123.",
+        "Oudin, L., Andreassian, V., Perrin, C., Michel, C., Le Moine, N. (2008): Spatial "
+        "proximity, physical similarity, regression and ungaged catchments. Water Resour. Res. "
+        "44, W03413.",
+        "Shepard, D. (1968): A two-dimensional interpolation function for irregularly-spaced "
+        "data. Proc. 23rd ACM National Conference, 517-524 (inverse-distance weights).",
+    )
 
     def __init__(
         self,

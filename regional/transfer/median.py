@@ -49,6 +49,18 @@ class MedianTransfer(BaseEstimator):
     parameters_, transforms_, n_train_ : as fitted.
     """
 
+    description = (
+        "Median: every target receives the regional median of each parameter over the gauged "
+        "basins, the naive benchmark every transfer method must beat."
+    )
+    references = (
+        "Hyndman, R. J., Fan, Y. (1996): Sample quantiles in statistical packages. Am. Stat. "
+        "50(4), 361-365 (interval quantiles).",
+        "Oudin, L., Andreassian, V., Perrin, C., Michel, C., Le Moine, N. (2008): Spatial "
+        "proximity, physical similarity, regression and ungaged catchments. Water Resour. Res. "
+        "44, W03413.",
+    )
+
     def __init__(self, level: float = 0.9) -> None:
         self.level = level
 

@@ -94,6 +94,22 @@ class RegressionTransfer(BaseEstimator):
         Number of training basins.
     """
 
+    description = (
+        "Regression: ordinary least squares of each transformed parameter (log for positive "
+        "ones) on standardised attributes, the attributes chosen by forward selection on the "
+        "leave-one-out prediction error (PRESS), with Student-t prediction intervals and "
+        "variance inflation factors."
+    )
+    references = (
+        "Allen, D. M. (1974): The relationship between variable selection and data augmentation "
+        "and a method for prediction. Technometrics 16(1), 125-127 (PRESS).",
+        "Kutner, M. H., Nachtsheim, C. J., Neter, J., Li, W. (2005): Applied Linear Statistical "
+        "Models, 5th ed. McGraw-Hill (prediction intervals, VIF).",
+        "Oudin, L., Andreassian, V., Perrin, C., Michel, C., Le Moine, N. (2008): Spatial "
+        "proximity, physical similarity, regression and ungaged catchments. Water Resour. Res. "
+        "44, W03413.",
+    )
+
     def __init__(
         self,
         attributes: Sequence[str] | None = None,

@@ -258,8 +258,8 @@ def test_every_warning_and_note_listed_once(full_run):
         assert note in section
 
 
-def test_references_are_cited(bare_run):
-    page = render_report(bare_run, {})
+def test_references_are_cited(full_run):
+    page = render_report(full_run, {})
     section = page[page.index('id="methods"') : page.index('id="run"')]
     for author in (
         "Nash",
@@ -270,8 +270,50 @@ def test_references_are_cited(bare_run):
         "Lei",
         "Mahalanobis",
         "Sherman",
+        "Perrin",
+        "Chow",
     ):
         assert author in section
+
+
+def _one_model(result, model):
+    return replace(
+        result,
+        runs={model: result.runs[model]},
+        summary=result.summary[result.summary["model"] == model],
+        chosen_model=model,
+    )
+
+
+def _methods_section(result) -> str:
+    page = render_report(result, {})
+    return page[page.index('id="methods"') : page.index('id="run"')]
+
+
+def test_methods_of_a_gr4j_run_name_gr4j_and_cite_perrin_2003(bare_run):
+    section = _methods_section(_one_model(bare_run, "gr4j"))
+    assert "Storage model gr4j" in section
+    assert "GR4J: a daily model of four parameters" in section
+    assert "Perrin, C., Michel, C., Andreassian, V. (2003)" in section
+    assert "Linear reservoir" not in section
+    assert "Chow" not in section
+
+
+def test_methods_of_a_linear_run_name_the_linear_store(bare_run):
+    section = _methods_section(_one_model(bare_run, "linear"))
+    assert "Storage model linear" in section
+    assert "Linear reservoir: one store S (mm) with dS/dt = P - E - kS" in section
+    assert "Chow, V. T., Maidment, D. R., Mays, L. W. (1988)" in section
+    assert "GR4J" not in section
+    assert "Andreassian, V. (2003)" not in section  # Perrin also co-wrote Oudin et al. 2008
+
+
+def test_methods_name_exactly_the_transfer_methods_run(bare_run):
+    section = _methods_section(bare_run)
+    methods = set(bare_run.runs[bare_run.chosen_model].loo.methods) - {"calibrated"}
+    for method in ("regression", "similarity", "proximity", "median"):
+        assert (f"Transfer method {method}." in section) == (method in methods), method
+    assert "Screening" not in section  # screening did not run in this result
 
 
 def test_run_information_lists_timings_and_versions(bare_run):
