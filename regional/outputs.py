@@ -69,10 +69,7 @@ def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -
     if stage == "prediction":
         tables = _prediction_tables(result)
         layers = {"ungauged": _with_geometry(result.prediction.table, result.region.basins)}
-        drawn = {
-            "ungauged_mean_flow_map": plots.ungauged_mean_flow_map(result),
-            "ungauged_hydrographs": plots.ungauged_hydrographs(result),
-        }
+        drawn = plots.prediction_figures(result)
     elif stage == "screening":
         tables = {"screening.csv": result.screening.table.reset_index()}
         layers = {"screening": _with_geometry(result.screening.table, result.region.basins)}

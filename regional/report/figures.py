@@ -14,7 +14,9 @@ name                        content
 ``nse_cdf``                 cumulative distribution of leave-one-out NSE per method
 ``hydrographs``             observed, calibrated and transferred flow at the best, median, worst
 ``ungauged_mean_flow_map``  mean flow at ungauged basins, non-applicable ones hatched
-``ungauged_hydrographs``    estimated flow with its bounds at ungauged basins (up to 12 panels)
+``ungauged_hydrographs``    estimated flow with its bounds at every ungauged basin: a window of
+                            daily flow and the whole-period flow-duration curve per basin, paged
+                            as ``ungauged_hydrographs_2``, ``_3``, ... when there are many
 ``screening``               candidate gauge sites ranked by score, with the score's parts
 ``model_comparison``        median leave-one-out NSE per method and model (several models only)
 ==========================  ======================================================================
@@ -31,12 +33,16 @@ import pandas as pd
 from matplotlib.cm import ScalarMappable
 from matplotlib.colors import Normalize
 from matplotlib.figure import Figure
+from matplotlib.font_manager import FontProperties
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
+from matplotlib.patheffects import withStroke
 from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullLocator
+from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
 
 from regional.crossval import CALIBRATED, MEDIAN
 from regional.models import get_model
+from regional.report.labels import flow_in_unit
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.result import RunResult
@@ -45,8 +51,12 @@ NSE_RANGE = (-1.0, 1.0)
 """Axis range of NSE figures; values below are counted in a note, not hidden silently."""
 MAX_LABELLED_BASINS = 60
 """Basin ids are written on maps of at most this many basins (unless asked otherwise)."""
-MAX_PANELS = 12
-"""Most small multiples in one figure (ungauged hydrographs)."""
+MAP_MARGIN = 0.1
+"""Share of the map's height added below and above the basins (scale bar, north arrow)."""
+LABEL_POINTS = 8.0
+"""Font size of basin labels on maps, points."""
+HALO = [withStroke(linewidth=2.5, foreground="white")]
+"""White outline that keeps map text readable over any fill."""
 MAX_BARS = 25
 """Most candidate sites in the screening figure."""
 
@@ -59,7 +69,11 @@ BASELINE_STYLES = {
 }
 METHOD_COLOURS = ("#d95f02", "#1b9e77", "#7570b3", "#e7298a", "#66a61e", "#e6ab02")
 LOG_DECADES = 3.0
-"""Decades of flow shown below the peak on log flow axes (lower flows fall off the axis)."""
+"""Decades of flow shown below the peak on log flow axes; lower flows are drawn on that floor."""
+DURATION_POINTS = 300
+"""Points on a drawn flow-duration curve (exceedance 0.1 % to 99.9 %)."""
+BAND_COLOUR = "#9ecae1"
+ESTIMATE_COLOUR = "#08519c"
 
 
 # --------------------------------------------------------------------------------------------
@@ -93,11 +107,28 @@ def make_figures(result: RunResult) -> dict[str, Figure]:
     if len(result.runs) > 1:
         figures["model_comparison"] = model_comparison(result)
     if result.prediction is not None:
-        figures["ungauged_mean_flow_map"] = ungauged_mean_flow_map(result)
-        figures["ungauged_hydrographs"] = ungauged_hydrographs(result)
+        figures |= prediction_figures(result)
     if result.screening is not None:
         figures["screening"] = screening_bars(result)
     return figures
+
+
+def prediction_figures(result: RunResult) -> dict[str, Figure]:
+    """The figures of the estimates at ungauged basins: the mean-flow map and every page of
+    site hydrographs (``ungauged_hydrographs``, ``ungauged_hydrographs_2``, ...).
+
+    Parameters
+    ----------
+    result : RunResult
+        With a prediction.
+
+    Returns
+    -------
+    dict of str -> Figure
+    """
+    return {"ungauged_mean_flow_map": ungauged_mean_flow_map(result)} | ungauged_hydrograph_pages(
+        result
+    )
 
 
 def loo_nse_map(
@@ -145,12 +176,8 @@ def loo_nse_map(
     bar.set_label("Leave-one-out NSE (-)")
     if _want_labels(label_basins, region):
         _label_basins(ax, region, list(region.basins.index))
-    ax.legend(
-        handles=[
-            Patch(facecolor="white", edgecolor="0.25", label="ungauged basin (no score)"),
-        ],
-        loc="lower left",
-        fontsize=8,
+    _map_legend(
+        ax, [Patch(facecolor="white", edgecolor="0.25", label="ungauged basin (no score)")]
     )
     _map_axes(ax, region)
     ax.set_title(
@@ -249,7 +276,8 @@ def hydrographs(
     """Observed, calibrated and transferred daily flow at the best, median and worst basin.
 
     Basins are ranked by the leave-one-out NSE of ``method``; the window is the last ``years``
-    of the evaluation period.
+    of the evaluation period. Flows are in the report's unit (``[report] flow_unit``); on a log
+    axis, flows below a floor ``LOG_DECADES`` under the highest are drawn on the marked floor.
 
     Parameters
     ----------
@@ -273,20 +301,28 @@ def hydrographs(
     fig = Figure(figsize=(10.0, 2.6 * len(picks) + 0.6), layout="constrained")
     axes = fig.subplots(len(picks), 1, squeeze=False, sharex=True)[:, 0]
     own_nse = _scores(result, model, CALIBRATED)["nse"]
+    unit = _report_settings(result).flow_unit
+    area = result.region.attributes["area_km2"].astype(float)
     for ax, (rank, basin) in zip(axes, picks, strict=True):
-        ax.plot(window, loo.observed.loc[window, basin], **OBSERVED_STYLE)
-        ax.plot(window, loo.simulated[CALIBRATED].loc[window, basin], **CALIBRATED_STYLE)
+        lines = {
+            "observed": loo.observed.loc[window, basin],
+            "calibrated": loo.simulated[CALIBRATED].loc[window, basin],
+            "transferred": loo.simulated[method].loc[window, basin],
+        }
+        lines = {k: flow_in_unit(v, float(area[basin]), unit) for k, v in lines.items()}
+        floor = _floor(pd.concat(lines.values()), log)
+        ax.plot(window, _on_floor(lines["observed"], floor), **OBSERVED_STYLE)
+        ax.plot(window, _on_floor(lines["calibrated"], floor), **CALIBRATED_STYLE)
         ax.plot(
             window,
-            loo.simulated[method].loc[window, basin],
+            _on_floor(lines["transferred"], floor),
             color=TRANSFER_COLOUR,
             linewidth=0.9,
             label=f"transferred ({method})",
         )
-        _flow_axis(
-            ax, log, loo.observed.loc[window, basin], loo.simulated[method].loc[window, basin]
-        )
-        ax.set_ylabel("Flow (mm/day)")
+        _flow_axis(ax, log, *lines.values(), floor=floor)
+        _mark_floor(ax, floor, int((lines["observed"] < floor).sum()) if floor else 0)
+        ax.set_ylabel(f"Flow ({unit})")
         ax.set_title(
             f"{rank}: {_basin_label(result.region, basin)}: NSE {method} {nse[basin]:.2f}, "
             f"calibrated {own_nse.get(basin, np.nan):.2f}",
@@ -294,7 +330,8 @@ def hydrographs(
             loc="left",
         )
         ax.grid(True, color="0.92")
-    axes[0].legend(loc="upper right", fontsize=8, ncols=3)
+    handles, _ = axes[0].get_legend_handles_labels()
+    fig.legend(handles=handles, loc="outside lower center", fontsize=8, ncols=len(handles))
     axes[-1].set_xlabel("Date")
     fig.suptitle(f"Daily flow in the evaluation period, leave-one-out ({model})")
     return fig
@@ -347,7 +384,8 @@ def ungauged_mean_flow_map(result: RunResult, *, label_basins: bool | None = Non
     """Map of the estimated mean flow at ungauged basins; non-applicable estimates hatched.
 
     Gauged basins are drawn in light grey for orientation. Basins whose estimate failed the
-    applicability check are hatched (polygons) or crossed (points).
+    applicability check are hatched (polygons) or crossed (points). Mean flow is in the report's
+    unit (``[report] flow_unit``).
 
     Parameters
     ----------
@@ -363,7 +401,9 @@ def ungauged_mean_flow_map(result: RunResult, *, label_basins: bool | None = Non
     prediction = _require(result.prediction, "prediction")
     region = result.region
     table = prediction.table
-    flow = table["mean_flow_mm"].astype(float)
+    unit = _report_settings(result).flow_unit
+    area = region.attributes["area_km2"].astype(float)
+    flow = flow_in_unit(table["mean_flow_mm"].astype(float), area, unit)
     norm = Normalize(vmin=float(flow.min()), vmax=max(float(flow.max()), float(flow.min()) + 1e-9))
     fig, ax = _figure(7.0, 6.0)
     _draw_basins(
@@ -378,14 +418,14 @@ def ungauged_mean_flow_map(result: RunResult, *, label_basins: bool | None = Non
     flagged = [b for b in table.index if not bool(table.loc[b, "applicable"])]
     _draw_flags(ax, region, flagged)
     bar = fig.colorbar(ScalarMappable(norm=norm, cmap="Blues"), ax=ax, shrink=0.8)
-    bar.set_label("Estimated mean flow (mm/day)")
+    bar.set_label(f"Estimated mean flow ({unit})")
     if _want_labels(label_basins, region):
         _label_basins(ax, region, list(table.index))
     handles = [
         Patch(facecolor="0.9", edgecolor="0.7", label="gauged basin"),
         _flag_handle(region, len(flagged)),
     ]
-    ax.legend(handles=handles, loc="lower left", fontsize=8)
+    _map_legend(ax, handles)
     _map_axes(ax, region)
     ax.set_title(
         f"Mean flow at ungauged basins: {prediction.method} ({prediction.model})\n"
@@ -394,68 +434,99 @@ def ungauged_mean_flow_map(result: RunResult, *, label_basins: bool | None = Non
     return fig
 
 
-def ungauged_hydrographs(
-    result: RunResult, *, years: float = 1.0, log: bool = True, max_panels: int = MAX_PANELS
-) -> Figure:
-    """Estimated daily flow with its lower and upper bounds, one small panel per ungauged basin.
+def ungauged_hydrograph_pages(
+    result: RunResult, *, per_figure: int | None = None, log: bool = True
+) -> dict[str, Figure]:
+    """Site hydrographs of every ungauged basin, paged over as many figures as needed.
 
-    Shows the last ``years`` of the estimated series; at most ``max_panels`` basins (flagged
-    ones first, then by id), the rest named in the title.
+    Flagged basins come first, then by id; pages hold at most ``per_figure`` basins and are
+    filled evenly (14 basins at 6 per figure: 5, 5 and 4).
 
     Parameters
     ----------
     result : RunResult
         With a prediction.
-    years : float, default 1.0
-        Length of the window shown, years.
+    per_figure : int, optional
+        Most basins per figure; default ``[report] sites_per_figure`` (6).
     log : bool, default True
-        Log flow axis.
-    max_panels : int, default 12
-        Most basins drawn.
+        Log flow axes (with a stated floor for zero and very low flows).
+
+    Returns
+    -------
+    dict of str -> Figure
+        ``ungauged_hydrographs``, then ``ungauged_hydrographs_2``, ``_3``, ...
+    """
+    table = _require(result.prediction, "prediction").table
+    basins = sorted(table.index, key=lambda b: (bool(table.loc[b, "applicable"]), str(b)))
+    per_figure = per_figure or _report_settings(result).sites_per_figure
+    pages = _pages(basins, per_figure)
+    series = _site_series(result, basins)
+    return {
+        _page_name("ungauged_hydrographs", number): _hydrograph_page(
+            result, series, page, window=None, log=log, page=(number, len(pages))
+        )
+        for number, page in enumerate(pages, start=1)
+    }
+
+
+def ungauged_hydrographs(
+    result: RunResult,
+    *,
+    basins: list[str] | None = None,
+    window: tuple[pd.Timestamp, pd.Timestamp] | None = None,
+    log: bool = True,
+    page: tuple[int, int] = (1, 1),
+) -> Figure:
+    """Estimated flow with its bounds at ungauged basins, one row per basin.
+
+    Left: daily flow over a window (``[report] window``, default the last 365 days) with the
+    lower and upper bounds. Right: the flow-duration curve of the whole period (Weibull plotting
+    position i / (n + 1)) of the estimate and of each bound. Flows are in the report's unit
+    (``[report] flow_unit``). On log axes, flows below a floor three decades under the panel's
+    highest bound (zero flows among them) are drawn on the floor, which is marked and stated.
+
+    Parameters
+    ----------
+    result : RunResult
+        With a prediction.
+    basins : list of str, optional
+        Basins drawn, in order; default every ungauged basin (use
+        :func:`ungauged_hydrograph_pages` for many).
+    window : (Timestamp, Timestamp), optional
+        Dates of the left panels; default ``[report] window`` or the last 365 days.
+    log : bool, default True
+        Log flow axes.
+    page : (int, int), default (1, 1)
+        This figure's page number and the page count, for the title.
 
     Returns
     -------
     Figure
     """
     prediction = _require(result.prediction, "prediction")
-    flows = prediction.flows
-    table = prediction.table
-    basins = sorted(table.index, key=lambda b: (bool(table.loc[b, "applicable"]), str(b)))
-    shown = basins[:max_panels]
-    ncols = min(3, len(shown))
-    nrows = math.ceil(len(shown) / ncols)
-    fig = Figure(figsize=(4.2 * ncols, 2.5 * nrows + 0.9), layout="constrained")
-    axes = fig.subplots(nrows, ncols, squeeze=False, sharex=True).ravel()
-    for ax, basin in zip(axes, shown, strict=False):
-        series = flows[flows["basin_id"] == basin].set_index("date").sort_index()
-        series.index = pd.to_datetime(series.index)
-        series = series.loc[_last_years(series.index, years)]
-        ax.fill_between(
-            series.index,
-            series["flow_low_mm"],
-            series["flow_high_mm"],
-            color="#9ecae1",
-            linewidth=0,
-            label=f"{prediction.level:.0%} bounds",
-        )
-        ax.plot(series.index, series["flow_mm"], color="#08519c", linewidth=0.8, label="estimate")
-        _flow_axis(ax, log, series["flow_high_mm"], series["flow_mm"])
-        flag = "" if bool(table.loc[basin, "applicable"]) else " (flagged)"
-        ax.set_title(f"{_basin_label(result.region, basin)}{flag}", fontsize=9, loc="left")
-        ax.set_ylabel("Flow (mm/day)", fontsize=8)
-        ax.tick_params(labelsize=7)
-        ax.tick_params(axis="x", labelrotation=30)
-    for ax in axes[len(shown) :]:
-        ax.set_visible(False)
-    axes[0].legend(loc="upper right", fontsize=7)
-    more = (
-        f"; {len(basins) - len(shown)} more basins in flows_ungauged.csv"
-        if len(basins) > len(shown)
-        else ""
-    )
+    basins = list(prediction.table.index) if basins is None else list(basins)
+    series = _site_series(result, basins)
+    return _hydrograph_page(result, series, basins, window=window, log=log, page=page)
+
+
+def _hydrograph_page(result, series, basins, *, window, log: bool, page) -> Figure:
+    prediction = result.prediction
+    unit = _report_settings(result).flow_unit
+    fig = Figure(figsize=(11.0, 2.2 * len(basins) + 1.3), layout="constrained")
+    axes = fig.subplots(len(basins), 2, squeeze=False, width_ratios=(2.4, 1.0))
+    chosen = window or _report_settings(result).window
+    for (left, right), basin in zip(axes, basins, strict=True):
+        _site_hydrograph(left, _window(series[basin], chosen), log=log)
+        _site_duration(right, series[basin], log=log)
+        left.set_title(_site_title(result, basin), fontsize=9, loc="left")
+        left.set_ylabel(f"Flow ({unit})", fontsize=8)
+    axes[-1, 0].set_xlabel("Date")
+    axes[-1, 1].set_xlabel("Share of days the flow is exceeded (%)")
+    fig.legend(handles=_site_handles(prediction.level, log), loc="outside lower center", ncols=4)
+    numbering = f", figure {page[0]} of {page[1]}" if page[1] > 1 else ""
     fig.suptitle(
-        f"Estimated daily flow at ungauged basins with {prediction.level:.0%} bounds: "
-        f"{prediction.method} ({prediction.model}){more}"
+        f"Estimated daily flow at ungauged basins ({unit}) with {prediction.level:.0%} bounds: "
+        f"{prediction.method} ({prediction.model}){numbering}"
     )
     return fig
 
@@ -535,6 +606,156 @@ def screening_bars(result: RunResult, *, max_bars: int = MAX_BARS) -> Figure:
 # --------------------------------------------------------------------------------------------
 # Private steps
 # --------------------------------------------------------------------------------------------
+
+
+def _report_settings(result: RunResult):
+    return result.settings.report
+
+
+def _pages(items: list[str], per_page: int) -> list[list[str]]:
+    """Split ``items`` into the fewest pages of at most ``per_page``, filled evenly."""
+    if not items:
+        return []
+    count = math.ceil(len(items) / per_page)
+    size = math.ceil(len(items) / count)
+    return [items[start : start + size] for start in range(0, len(items), size)]
+
+
+def _page_name(name: str, number: int) -> str:
+    return name if number == 1 else f"{name}_{number}"
+
+
+def _site_series(result: RunResult, basins: list[str]) -> dict[str, pd.DataFrame]:
+    """Per basin: daily ``flow``, ``low``, ``high`` (date index) in the report's unit."""
+    flows = result.prediction.flows
+    unit = _report_settings(result).flow_unit
+    area = result.region.attributes["area_km2"].astype(float)
+    rows = flows.groupby("basin_id").indices
+    out = {}
+    for basin in basins:
+        part = flows.iloc[rows[basin]]
+        frame = pd.DataFrame(
+            {
+                "flow": part["flow_mm"].to_numpy(float),
+                "low": part["flow_low_mm"].to_numpy(float),
+                "high": part["flow_high_mm"].to_numpy(float),
+            },
+            index=pd.DatetimeIndex(pd.to_datetime(part["date"].to_numpy())),
+        ).sort_index()
+        out[basin] = flow_in_unit(frame, float(area[basin]), unit)
+    return out
+
+
+def _window(series: pd.DataFrame, window) -> pd.DataFrame:
+    """The rows inside ``window``; the last 365 days when it is None or holds no day."""
+    if window is not None:
+        inside = series.loc[(series.index >= window[0]) & (series.index <= window[1])]
+        if len(inside):
+            return inside
+    return series.loc[_last_years(series.index, 1.0)]
+
+
+def _site_title(result: RunResult, basin: str) -> str:
+    flag = "" if bool(result.prediction.table.loc[basin, "applicable"]) else " (flagged)"
+    return f"{_basin_label(result.region, basin)}{flag}"
+
+
+def _site_hydrograph(ax, series: pd.DataFrame, *, log: bool) -> None:
+    floor = _floor(series["high"], log)
+    low, flow, high = (_on_floor(series[c], floor) for c in ("low", "flow", "high"))
+    ax.fill_between(series.index, low, high, color=BAND_COLOUR, linewidth=0)
+    ax.plot(series.index, flow, color=ESTIMATE_COLOUR, linewidth=0.8)
+    _flow_axis(ax, log, series["high"], floor=floor)
+    _mark_floor(ax, floor, int((series["flow"] < floor).sum()) if floor else 0)
+    ax.tick_params(labelsize=7)
+    ax.grid(True, color="0.92")
+
+
+def _site_duration(ax, series: pd.DataFrame, *, log: bool) -> None:
+    """Flow-duration curves (Weibull plotting position) of the estimate and its bounds."""
+    exceedance = np.linspace(0.1, 99.9, DURATION_POINTS)
+    curves = {c: _duration(series[c].to_numpy(float), exceedance) for c in ("flow", "low", "high")}
+    floor = _floor(pd.Series(curves["high"]), log)
+    ax.fill_between(
+        exceedance,
+        _on_floor(curves["low"], floor),
+        _on_floor(curves["high"], floor),
+        color=BAND_COLOUR,
+        linewidth=0,
+    )
+    ax.plot(exceedance, _on_floor(curves["flow"], floor), color=ESTIMATE_COLOUR, linewidth=1.0)
+    _flow_axis(ax, log, pd.Series(curves["high"]), floor=floor)
+    below = float((series["flow"].to_numpy(float) < floor).mean() * 100) if floor else 0.0
+    _mark_floor(ax, floor, None, share=below)
+    ax.set_xlim(0.0, 100.0)
+    period = f"{series.index[0]:%Y}-{series.index[-1]:%Y}"
+    ax.set_title(f"flow duration {period}", fontsize=8, loc="left")
+    ax.tick_params(labelsize=7)
+    ax.grid(True, color="0.92")
+
+
+def _duration(values: np.ndarray, exceedance_pct: np.ndarray) -> np.ndarray:
+    """Flow exceeded on ``exceedance_pct`` % of days: Weibull plotting position i / (n + 1) of
+    the values sorted from high to low, interpolated linearly."""
+    ordered = np.sort(values[np.isfinite(values)])[::-1]
+    positions = np.arange(1, len(ordered) + 1) / (len(ordered) + 1) * 100.0
+    return np.interp(exceedance_pct, positions, ordered)
+
+
+def _floor(high: pd.Series, log: bool) -> float | None:
+    """Lowest flow drawn on a log axis (``LOG_DECADES`` below the highest); None on linear."""
+    top = float(np.nanmax(high.to_numpy(dtype=float))) if len(high) else float("nan")
+    if not log or not np.isfinite(top) or top <= 0:
+        return None
+    return top * 10.0**-LOG_DECADES
+
+
+def _on_floor(values, floor: float | None) -> np.ndarray:
+    array = np.asarray(values, dtype=float)
+    return array if floor is None else np.maximum(array, floor)
+
+
+def _mark_floor(ax, floor: float | None, days: int | None, *, share: float = 0.0) -> None:
+    """A dashed line at the floor and, when flows fall below it, how many."""
+    if floor is None:
+        return
+    ax.axhline(floor, color="0.45", linewidth=0.7, linestyle=(0, (4, 3)))
+    if days:
+        text = f"{days} days below {floor:.2g} (zero flows too) drawn on the floor"
+    elif share > 0:
+        text = f"{share:.0f} % of days below {floor:.2g}, drawn on the floor"
+    else:
+        return
+    ax.text(
+        0.01,
+        0.05,
+        text,
+        transform=ax.transAxes,
+        fontsize=6.5,
+        color="0.25",
+        va="bottom",
+        bbox={"facecolor": "white", "alpha": 0.85, "edgecolor": "none", "pad": 1.0},
+    )
+
+
+def _site_handles(level: float, log: bool) -> list:
+    handles = [
+        Line2D([], [], color=ESTIMATE_COLOUR, linewidth=1.0, label="estimate"),
+        Patch(facecolor=BAND_COLOUR, label=f"{level:.0%} bounds"),
+    ]
+    if log:
+        handles.append(
+            Line2D(
+                [],
+                [],
+                color="0.45",
+                linewidth=0.7,
+                linestyle=(0, (4, 3)),
+                label=f"floor: {LOG_DECADES:g} decades below the highest bound; lower and zero "
+                "flows drawn on it",
+            )
+        )
+    return handles
 
 
 def _relative(values: pd.Series) -> np.ndarray:
@@ -679,23 +900,107 @@ def _want_labels(label_basins: bool | None, region) -> bool:
 
 
 def _label_basins(ax, region, basins: list[str]) -> None:
+    """Basin ids in a white halo: beside outlet points (offset up and right), on polygons at a
+    point inside each."""
     frame = region.basins.loc[basins]
     points = frame.geometry if region.is_point else frame.geometry.representative_point()
+    offset = (5, 4) if region.is_point else (0, 0)
+    align = ("left", "bottom") if region.is_point else ("center", "center")
     for basin, point in zip(frame.index, points, strict=True):
         ax.annotate(
             str(basin),
             (point.x, point.y),
-            fontsize=6,
-            ha="center",
-            va="center",
-            color="0.1",
-            zorder=5,
+            xytext=offset,
+            textcoords="offset points",
+            fontsize=LABEL_POINTS,
+            ha=align[0],
+            va=align[1],
+            color="0.05",
+            zorder=6,
+            path_effects=HALO,
         )
+
+
+def _map_legend(ax, handles: list) -> None:
+    """The legend below the map's axis label, outside its frame, so it never hides a basin."""
+    ax.legend(
+        handles=handles,
+        loc="upper center",
+        bbox_to_anchor=(0.5, -0.11),
+        ncols=len(handles),
+        fontsize=8,
+        frameon=False,
+    )
+
+
+def _scale_bar(ax, region) -> None:
+    """A scale bar of a round length (1, 2 or 5 x 10^n km) near a fifth of the map's width."""
+    crs = region.basins.crs
+    x0, x1 = ax.get_xlim()
+    y0, y1 = ax.get_ylim()
+    km_per_unit = _km_per_map_unit(crs, (y0 + y1) / 2.0)
+    if km_per_unit is None:
+        return
+    length_km = _round_length(abs(x1 - x0) * km_per_unit / 5.0)
+    label = f"{length_km:g} km" if length_km >= 1 else f"{length_km * 1000:g} m"
+    bar = AnchoredSizeBar(
+        ax.transData,
+        length_km / km_per_unit,
+        label,
+        loc="lower left",
+        pad=0.4,
+        borderpad=0.6,
+        sep=3,
+        frameon=True,
+        size_vertical=abs(y1 - y0) / 150.0,
+        fontproperties=FontProperties(size=8),
+    )
+    bar.patch.set_alpha(0.85)
+    bar.patch.set_edgecolor("0.7")
+    ax.add_artist(bar)
+
+
+def _km_per_map_unit(crs, latitude: float) -> float | None:
+    """Kilometres per map unit: from the CRS's axis unit, or along the parallel at ``latitude``
+    for degrees (111.32 km per degree at the equator times cos(latitude), on a sphere: common
+    practice, no source)."""
+    if crs is None:
+        return None
+    if crs.is_geographic:
+        return 111.32 * math.cos(math.radians(latitude))
+    factor = crs.axis_info[0].unit_conversion_factor if crs.axis_info else 1.0
+    return factor / 1000.0
+
+
+def _round_length(target: float) -> float:
+    """The largest 1, 2 or 5 x 10^n not above ``target`` (> 0)."""
+    power = 10.0 ** math.floor(math.log10(target))
+    return max(step * power for step in (1.0, 2.0, 5.0) if step * power <= target)
+
+
+def _north_arrow(ax) -> None:
+    """An arrow and "N" at the top right, pointing up the map (grid north of the CRS)."""
+    ax.annotate(
+        "N",
+        xy=(0.95, 0.97),
+        xytext=(0.95, 0.84),
+        xycoords="axes fraction",
+        ha="center",
+        va="center",
+        fontsize=10,
+        fontweight="bold",
+        zorder=7,
+        arrowprops={"facecolor": "black", "edgecolor": "white", "width": 3.0, "headwidth": 9.0},
+        path_effects=HALO,
+    )
 
 
 def _map_axes(ax, region) -> None:
     crs = region.basins.crs
     ax.set_aspect("equal")
+    y0, y1 = ax.get_ylim()
+    margin = MAP_MARGIN * (y1 - y0)
+    ax.set_ylim(y0 - margin, y1 + margin)  # free bands for the scale bar and the north arrow
     if crs is not None and crs.is_geographic:
         ax.set_xlabel("Longitude (degrees)")
         ax.set_ylabel("Latitude (degrees)")
@@ -711,10 +1016,13 @@ def _map_axes(ax, region) -> None:
             transform=ax.transAxes,
             ha="right",
             fontsize=7,
-            color="0.4",
+            color="0.3",
+            path_effects=HALO,
         )
     ax.tick_params(labelsize=7)
     ax.ticklabel_format(axis="both", style="plain", useOffset=False)
+    _scale_bar(ax, region)
+    _north_arrow(ax)
 
 
 def _plain_log(ax, axis, *, span: float | None = None) -> None:
@@ -729,14 +1037,16 @@ def _plain_log(ax, axis, *, span: float | None = None) -> None:
     axis.set_minor_locator(NullLocator())
 
 
-def _flow_axis(ax, log: bool, *series: pd.Series) -> None:
-    """Linear axis from zero, or log axis spanning ``LOG_DECADES`` below the highest flow."""
+def _flow_axis(ax, log: bool, *series: pd.Series, floor: float | None = None) -> None:
+    """Linear axis from zero, or log axis from ``floor`` (default ``LOG_DECADES`` below the
+    highest flow) to above the highest flow."""
     top = max(float(np.nanmax(s.to_numpy(dtype=float))) for s in series)
     if not np.isfinite(top) or top <= 0:
         return
     if log:
         _plain_log(ax, ax.yaxis)
-        ax.set_ylim(top * 10.0**-LOG_DECADES, top * 1.5)
+        bottom = floor if floor is not None else top * 10.0**-LOG_DECADES
+        ax.set_ylim(bottom / 1.15, top * 1.5)
     else:
         ax.set_ylim(0.0, top * 1.05)
 

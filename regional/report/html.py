@@ -57,8 +57,9 @@ FIGURE_CAPTIONS = {
     "quartiles.",
     "ungauged_mean_flow_map": "Estimated mean flow at ungauged basins; hatched basins failed the "
     "applicability check.",
-    "ungauged_hydrographs": "Estimated daily flow at ungauged basins with its lower and upper "
-    "bounds.",
+    "ungauged_hydrographs": "Estimated flow at every ungauged basin with its lower and upper "
+    "bounds: daily flow over the chosen window (left) and the flow-duration curve of the whole "
+    "period (right). On log axes, zero and very low flows are drawn on the marked floor.",
     "screening": "Candidate gauge sites ranked by screening score, beside the score's parts.",
 }
 FIGURE_SECTIONS = {
@@ -345,12 +346,18 @@ def _median_nse(result: RunResult, model: str, method: str) -> float:
 def _place_figures(figures: Mapping[str, bytes]) -> dict[str, list[str]]:
     placed: dict[str, list[str]] = {"figures": [], "ungauged": [], "screening": []}
     for name, png in figures.items():
-        placed[FIGURE_SECTIONS.get(name, "figures")].append(_figure(name, png))
+        placed[FIGURE_SECTIONS.get(_figure_kind(name), "figures")].append(_figure(name, png))
     return placed
 
 
+def _figure_kind(name: str) -> str:
+    """A figure name without its page number (``ungauged_hydrographs_2``: ``..._hydrographs``)."""
+    stem, _, number = name.rpartition("_")
+    return stem if number.isdigit() and stem else name
+
+
 def _figure(name: str, png: bytes) -> str:
-    caption = FIGURE_CAPTIONS.get(name, name.replace("_", " "))
+    caption = FIGURE_CAPTIONS.get(_figure_kind(name), name.replace("_", " "))
     data = base64.b64encode(bytes(png)).decode("ascii")
     return (
         f'<figure id="figure-{_esc(name)}"><img src="data:image/png;base64,{data}" '

@@ -183,13 +183,16 @@ def flow_in_unit(flow_mm, area_km2, unit: str):
     ----------
     flow_mm : ndarray, Series or DataFrame
         Flow, mm/day.
-    area_km2 : ndarray or Series
-        Basin area, km2, broadcastable against ``flow_mm`` (a Series aligns on the index).
+    area_km2 : float, ndarray or Series
+        Basin area, km2: one number, an array broadcastable against ``flow_mm``, or a Series
+        aligned on the index of ``flow_mm`` (one area per row).
     unit : {"m3/s", "mm/day"}
     """
     _check_unit(unit)
     if unit == MM_DAY:
         return flow_mm
+    if np.ndim(area_km2) == 0:
+        return flow_mm * float(to_m3s(np.ones(1), np.full(1, float(area_km2)))[0])
     if isinstance(flow_mm, pd.Series | pd.DataFrame):
         area = pd.Series(area_km2).reindex(flow_mm.index).to_numpy(dtype=float)
         if isinstance(flow_mm, pd.DataFrame):

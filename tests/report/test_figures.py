@@ -21,6 +21,11 @@ matplotlib.use("Agg")
 BASE_NAMES = ["loo_nse_map", "parameters", "nse_cdf", "hydrographs"]
 
 
+def replace_fields(namespace, **changes):
+    """A copy of a fake prediction (a SimpleNamespace) with some fields changed."""
+    return type(namespace)(**(vars(namespace) | changes))
+
+
 def _has_data(fig: Figure) -> bool:
     return any(ax.lines or ax.collections or ax.patches for ax in fig.axes)
 
@@ -191,11 +196,15 @@ def test_hydrographs_show_best_median_and_worst_basin(bare_run):
     assert len(fig.axes) == len(expected)
     for ax, basin, label in zip(fig.axes, expected, ["best", "median", "worst"], strict=False):
         assert ax.get_title(loc="left").startswith(f"{label}: {basin}")
-        assert len(ax.lines) == 3
-        assert ax.get_ylabel() == "Flow (mm/day)"
-    observed = bare_run.runs[bare_run.chosen_model].loo.observed
+        assert len(ax.lines) == 4  # observed, calibrated, transferred and the floor
+        assert ax.get_ylabel() == "Flow (m3/s)"  # the report's default unit
+    observed = bare_run.runs[bare_run.chosen_model].loo.observed[expected[0]]
+    area = bare_run.region.attributes.loc[expected[0], "area_km2"]
     drawn = fig.axes[0].lines[0].get_ydata()
-    np.testing.assert_allclose(drawn, observed[expected[0]].to_numpy()[-len(drawn) :])
+    floor = fig.axes[0].lines[3].get_ydata()[0]
+    # m3/s = mm/day x km2 / 86.4 (1 mm over 1 km2 is 1,000 m3; 86,400 s a day)
+    expected_m3s = np.maximum(observed.to_numpy()[-len(drawn) :] * area / 86.4, floor)
+    np.testing.assert_allclose(drawn, expected_m3s)
 
 
 def test_hydrographs_window_and_linear_axis(bare_run):
@@ -224,22 +233,163 @@ def test_ungauged_mean_flow_map_hatches_non_applicable_basins(full_run):
     flagged = int((~table["applicable"]).sum())
     hatched = [c for c in fig.axes[0].collections if c.get_hatch()]
     assert [len(c.get_paths()) for c in hatched] == [flagged]
-    assert "mm/day" in fig.axes[1].get_ylabel()
+    assert fig.axes[1].get_ylabel() == "Estimated mean flow (m3/s)"
 
 
-def test_ungauged_hydrographs_band_per_basin(full_run):
+def _site_titles(pages) -> list[str]:
+    return [
+        ax.get_title(loc="left")
+        for fig in pages.values()
+        for ax in fig.axes
+        if ax.get_title("left")
+    ]
+
+
+def test_every_ungauged_basin_is_in_some_hydrograph_figure(full_run):
+    ungauged = list(full_run.region.ungauged)
+    pages = figures.ungauged_hydrograph_pages(full_run, per_figure=1)
+    assert list(pages) == ["ungauged_hydrographs"] + [
+        f"ungauged_hydrographs_{n}" for n in range(2, len(ungauged) + 1)
+    ]
+    hydrograph_titles = [t for t in _site_titles(pages) if not t.startswith("flow duration")]
+    assert sorted(t.split()[0] for t in hydrograph_titles) == sorted(ungauged)
+    assert f"figure 2 of {len(ungauged)}" in pages["ungauged_hydrographs_2"].get_suptitle()
+
+
+def test_make_figures_draws_every_page(full_run):
+    settings = replace(
+        full_run.settings, report=replace(full_run.settings.report, sites_per_figure=1)
+    )
+    drawn = make_figures(replace(full_run, settings=settings))
+    pages = [name for name in drawn if name.startswith("ungauged_hydrographs")]
+    assert len(pages) == len(full_run.region.ungauged)
+
+
+@pytest.mark.parametrize(
+    ("count", "per_page", "sizes"), [(14, 6, [5, 5, 4]), (6, 6, [6]), (7, 6, [4, 3]), (1, 6, [1])]
+)
+def test_pages_are_filled_evenly(count, per_page, sizes):
+    items = [f"B{i:02d}" for i in range(count)]
+    pages = figures._pages(items, per_page)
+    assert [len(page) for page in pages] == sizes
+    assert sum(pages, []) == items
+
+
+def test_site_panels_draw_the_window_and_the_whole_period_duration_curve(full_run):
     fig = figures.ungauged_hydrographs(full_run)
-    shown = [ax for ax in fig.axes if ax.get_visible()]
-    assert len(shown) == len(full_run.region.ungauged)
-    for ax in shown:
-        assert any(isinstance(c, PolyCollection) for c in ax.collections)  # the band
-        assert len(ax.lines) == 1
+    ungauged = list(full_run.region.ungauged)
+    assert len(fig.axes) == 2 * len(ungauged)
+    left, right = fig.axes[0], fig.axes[1]
+    assert any(isinstance(c, PolyCollection) for c in left.collections)  # the band
+    assert any(isinstance(c, PolyCollection) for c in right.collections)
+    dates = left.lines[0].get_xdata()
+    assert len(dates) == 365  # default window: the last 365 days
+    assert right.get_xlim() == (0.0, 100.0)
+    assert right.get_title(loc="left").startswith("flow duration")
+    assert left.get_ylabel() == "Flow (m3/s)"
 
 
-def test_ungauged_hydrographs_caps_the_panel_count(full_run):
-    fig = figures.ungauged_hydrographs(full_run, max_panels=1)
-    assert len([ax for ax in fig.axes if ax.get_visible()]) == 1
-    assert "1 more basins" in fig.get_suptitle()
+def test_duration_curve_is_the_weibull_quantile():
+    # reference: numpy.quantile(method="weibull"), plotting position i / (n + 1)
+    # (Hyndman and Fan 1996, definition 6); exceedance p is non-exceedance 1 - p
+    values = np.random.default_rng(3).lognormal(0.0, 1.0, 500)
+    exceedance = np.array([1.0, 5.0, 50.0, 95.0, 99.0])
+    expected = np.quantile(values, 1.0 - exceedance / 100.0, method="weibull")
+    np.testing.assert_allclose(figures._duration(values, exceedance), expected)
+
+
+def test_zero_flows_are_drawn_on_a_stated_floor(full_run):
+    prediction = full_run.prediction
+    flows = prediction.flows.copy()
+    basin = full_run.region.ungauged[0]
+    last = flows.index[flows["basin_id"] == basin][-40:]
+    flows.loc[last, ["flow_mm", "flow_low_mm"]] = 0.0
+    run = replace(full_run, prediction=replace_fields(prediction, flows=flows))
+    fig = figures.ungauged_hydrographs(run, basins=[basin])
+    left = fig.axes[0]
+    floor = left.lines[1].get_ydata()[0]
+    drawn = left.lines[0].get_ydata()
+    assert drawn.min() == pytest.approx(floor)  # never a gap or a comb down to zero
+    assert left.get_ylim()[0] < floor
+    note = " ".join(t.get_text() for t in left.texts)
+    assert "40 days below" in note and "zero flows too" in note
+    legend = " ".join(t.get_text() for t in fig.legends[0].get_texts())
+    assert "zero flows drawn on it" in legend
+
+
+def test_flows_in_mm_per_day_when_asked(full_run):
+    settings = replace(
+        full_run.settings, report=replace(full_run.settings.report, flow_unit="mm/day")
+    )
+    run = replace(full_run, settings=settings)
+    basin = run.region.ungauged[0]
+    fig = figures.ungauged_hydrographs(run, basins=[basin], log=False)
+    assert fig.axes[0].get_ylabel() == "Flow (mm/day)"
+    flows = run.prediction.flows
+    expected = flows.loc[flows["basin_id"] == basin, "flow_mm"].to_numpy()[-365:]
+    np.testing.assert_allclose(fig.axes[0].lines[0].get_ydata(), expected)
+
+
+def test_window_from_the_report_settings(full_run):
+    dates = full_run.region.dates
+    window = (dates[400], dates[499])
+    settings = replace(full_run.settings, report=replace(full_run.settings.report, window=window))
+    fig = figures.ungauged_hydrographs(replace(full_run, settings=settings))
+    drawn = pd.to_datetime(fig.axes[0].lines[0].get_xdata())
+    assert (drawn[0], drawn[-1], len(drawn)) == (window[0], window[1], 100)
+
+
+# ---------------------------------------------------------------------------------------------
+# Maps: labels, legend, scale bar, north arrow
+
+
+def test_map_labels_have_a_halo_and_readable_size(full_run):
+    fig = figures.ungauged_mean_flow_map(full_run, label_basins=True)
+    labels = [t for t in fig.axes[0].texts if t.get_text() in set(full_run.region.ungauged)]
+    assert len(labels) == len(full_run.region.ungauged)
+    assert all(t.get_fontsize() >= 8 for t in labels)
+    assert all(t.get_path_effects() for t in labels)
+
+
+def test_point_labels_sit_beside_their_markers(bare_run):
+    region = bare_run.region
+    points = region.basins.copy()
+    points["geometry"] = points.geometry.centroid
+    point_run = replace(bare_run, region=replace(region, basins=points, is_point=True))
+    fig = figures.loo_nse_map(point_run, label_basins=True)
+    labels = [t for t in fig.axes[0].texts if t.get_text() in set(region.basins.index)]
+    assert labels and all(t.get_position() != (0, 0) for t in labels)  # offset in points
+    assert all(t.get_ha() == "left" and t.get_va() == "bottom" for t in labels)
+
+
+def test_map_legend_outside_the_frame(full_run):
+    for fig in (figures.loo_nse_map(full_run), figures.ungauged_mean_flow_map(full_run)):
+        fig.canvas.draw()
+        ax = fig.axes[0]
+        legend = ax.get_legend().get_window_extent()
+        frame = ax.get_window_extent()
+        assert legend.y1 < frame.y0  # below the map, hiding no basin
+
+
+def test_maps_carry_a_scale_bar_and_north_arrow(full_run):
+    from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
+
+    fig = figures.loo_nse_map(full_run)
+    ax = fig.axes[0]
+    bars = [a for a in ax.artists if isinstance(a, AnchoredSizeBar)]
+    assert len(bars) == 1
+    label = bars[0].txt_label.get_text()
+    length_m = bars[0].size_bar.get_children()[0].get_width()
+    value, unit = label.split()
+    assert length_m == pytest.approx(float(value) * (1000.0 if unit == "km" else 1.0))
+    x0, x1 = ax.get_xlim()
+    assert 0.1 <= length_m / (x1 - x0) <= 0.2 + 1e-9  # a fifth of the width, rounded down
+    assert any(t.get_text() == "N" for t in ax.texts)
+
+
+@pytest.mark.parametrize(("target", "length"), [(7.4, 5.0), (0.31, 0.2), (20.0, 20.0), (1.9, 1.0)])
+def test_scale_bar_lengths_are_round(target, length):
+    assert figures._round_length(target) == pytest.approx(length)
 
 
 def test_screening_bars_ranked_top_down(full_run):
