@@ -445,6 +445,9 @@ def _suggestion(name: str, known: Sequence[str]) -> str:
 # --------------------------------------------------------------------------------------------
 
 RESULTS_GPKG = "results.gpkg"
+GPKG_OPTIONS = {"VERSION": "1.2"}
+"""GeoPackage dataset creation options: version 1.2, which GDAL 3.6 (Debian stable) reads
+without the warning it gives on the 1.4 that newer GDAL writes by default."""
 
 
 def figure_png(figure, *, dpi: int = 110) -> bytes:
@@ -515,7 +518,13 @@ def _fill_run_folder(staging, tables, layers, crs, figures, report, manifest) ->
         table.to_csv(staging / name, index=keep_index)
     for name, layer in layers.items():
         frame = layer if layer.crs is not None else layer.set_crs(crs)
-        frame.to_file(staging / RESULTS_GPKG, layer=name, driver="GPKG", engine="pyogrio")
+        frame.to_file(
+            staging / RESULTS_GPKG,
+            layer=name,
+            driver="GPKG",
+            engine="pyogrio",
+            dataset_options=GPKG_OPTIONS,
+        )
     if figures:
         (staging / "figures").mkdir()
         for name, png in figures.items():
@@ -601,7 +610,13 @@ def _replace_layers(gpkg: Path, layers: Mapping[str, gpd.GeoDataFrame], crs: obj
                     frame, staged, layer=name, driver="GPKG", layer_options={"OVERWRITE": "YES"}
                 )
             else:
-                frame.to_file(staged, layer=name, driver="GPKG", engine="pyogrio")
+                frame.to_file(
+                    staged,
+                    layer=name,
+                    driver="GPKG",
+                    engine="pyogrio",
+                    dataset_options=GPKG_OPTIONS,
+                )
         os.replace(staged, gpkg)
     except BaseException:
         staged.unlink(missing_ok=True)

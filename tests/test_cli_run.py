@@ -176,14 +176,28 @@ def test_run_killed_halfway_leaves_previous_results_untouched(run_folder, tmp_pa
 
 @pytest.mark.skipif(shutil.which("ogrinfo") is None, reason="GDAL's ogrinfo (gdal-bin) absent")
 def test_results_gpkg_opens_with_ogrinfo(run_folder):
-    # Reference tool: GDAL's own ogrinfo lists every layer, its CRS and its feature count.
+    # Reference tool: GDAL's own ogrinfo lists every layer, its CRS and its feature count, and
+    # warns on a GeoPackage version it does not fully support (GDAL 3.6 on 1.4).
     gpkg = str(run_folder / "results.gpkg")
     for layer, count in (("gauged", 34), ("ungauged", 14), ("screening", 14)):
-        text = subprocess.run(
+        done = subprocess.run(
             ["ogrinfo", "-so", "-ro", gpkg, layer], check=True, capture_output=True, text=True
-        ).stdout
-        assert f"Feature Count: {count}" in text
-        assert "32633" in text
+        )
+        assert f"Feature Count: {count}" in done.stdout
+        assert "32633" in done.stdout
+        assert "warning" not in (done.stdout + done.stderr).lower()
+
+
+def test_results_gpkg_is_geopackage_1_2(run_folder):
+    # GeoPackage standard (OGC 12-128): SQLite application_id "GPKG" and user_version
+    # MMmmpp (10200 for 1.2; GDAL reports 10400 as "v1.4.0"), read with Python's sqlite3.
+    import sqlite3
+
+    with sqlite3.connect(run_folder / "results.gpkg") as connection:
+        application_id = connection.execute("PRAGMA application_id").fetchone()[0]
+        user_version = connection.execute("PRAGMA user_version").fetchone()[0]
+    assert application_id.to_bytes(4, "big") == b"GPKG"
+    assert user_version == 10200
 
 
 def test_results_gpkg_crs_and_counts_with_pyogrio(run_folder):
@@ -204,7 +218,7 @@ DRIVER = shutil.which("chromedriver")
     reason="Debian chromium and chromium-driver are not installed",
 )
 def test_report_opens_in_headless_chromium(run_folder):
-    sections, images = _browser_view(run_folder / "report.html")
+    (sections, images), _ = _browser_view(run_folder / "report.html", SECTIONS_AND_IMAGES)
     for section in (
         "summary",
         "cautions",
@@ -223,8 +237,55 @@ def test_report_opens_in_headless_chromium(run_folder):
     assert all(width > 0 for width in images)
 
 
-def _browser_view(report: Path) -> tuple[list[str], list[int]]:
-    """Open the report through chromedriver (W3C WebDriver over HTTP) and read the page."""
+SECTIONS_AND_IMAGES = (
+    "return [Array.from(document.querySelectorAll('section[id]')).map(s => s.id),"
+    " Array.from(document.images).map(i => i.naturalWidth)];"
+)
+SITE_CELLS = """
+const box = document.getElementById('site-estimates');
+box.previousElementSibling.scrollIntoView();
+const heads = Array.from(box.querySelectorAll('thead th')).map(th => th.title);
+const wanted = ['basin_id', 'mean_flow', 'mean_flow_bounds', 'flow_unit', 'reason'];
+const view = document.documentElement.clientWidth;
+const rows = Array.from(box.querySelectorAll('tbody tr')).map(tr => wanted.map(name => {
+  const cell = tr.children[heads.indexOf(name)];
+  const r = cell.getBoundingClientRect();
+  return [name, cell.textContent, r.left >= 0 && r.right <= view && r.width > 0];
+}));
+return [view, box.scrollWidth <= box.clientWidth, document.documentElement.scrollWidth <= view,
+        rows];
+"""
+
+
+@pytest.mark.skipif(
+    BROWSER is None or DRIVER is None,
+    reason="Debian chromium and chromium-driver are not installed",
+)
+def test_estimates_fit_a_1280_px_window_without_sideways_scrolling(run_folder, tmp_path):
+    # Reference tool: Chromium lays the page out at 1280 px; every ungauged basin's row must
+    # show its estimate, bounds, unit and reason inside the window.
+    (view, no_table_scroll, no_page_scroll, rows), screenshot = _browser_view(
+        run_folder / "report.html", SITE_CELLS, width=1280, height=1400, screenshot=True
+    )
+    assert view <= 1280
+    assert no_table_scroll and no_page_scroll
+    assert len(rows) == 14  # the demo's ungauged basins
+    for row in rows:
+        assert all(visible for _, _, visible in row), row
+        name_to_text = {name: text for name, text, _ in row}
+        assert name_to_text["flow_unit"] == "m3/s"
+        assert "\u2013" in name_to_text["mean_flow_bounds"]
+    assert any(text for row in rows for name, text, _ in row if name == "reason")
+    assert screenshot[:8] == b"\x89PNG\r\n\x1a\n"
+    (tmp_path / "estimates_1280.png").write_bytes(screenshot)
+
+
+def _browser_view(
+    report: Path, script: str, *, width: int = 1280, height: int = 900, screenshot: bool = False
+) -> tuple[list, bytes | None]:
+    """Open the report through chromedriver (W3C WebDriver over HTTP) at a window size, run a
+    script on the page and return its value (and a PNG screenshot of the window when asked)."""
+    import base64
     import socket
     import urllib.request
 
@@ -253,6 +314,8 @@ def _browser_view(report: Path) -> tuple[list[str], list[int]]:
                 time.sleep(0.2)
         flags = [
             "--headless",
+            f"--window-size={width},{height}",
+            "--hide-scrollbars",
             "--no-sandbox",
             "--disable-gpu",
             "--disable-quic",
@@ -272,19 +335,19 @@ def _browser_view(report: Path) -> tuple[list[str], list[int]]:
         )["value"]["sessionId"]
         try:
             call("POST", f"/session/{session}/url", {"url": report.resolve().as_uri()})
-            script = (
-                "return [Array.from(document.querySelectorAll('section[id]'))"
-                ".map(s => s.id), Array.from(document.images).map(i => i.naturalWidth)];"
-            )
-            sections, widths = call(
+            value = call(
                 "POST", f"/session/{session}/execute/sync", {"script": script, "args": []}
             )["value"]
+            image = None
+            if screenshot:
+                encoded = call("GET", f"/session/{session}/screenshot")["value"]
+                image = base64.b64decode(encoded)
         finally:
             call("DELETE", f"/session/{session}")
     finally:
         driver.terminate()
         driver.wait(timeout=10)
-    return sections, widths
+    return value, image
 
 
 def _checksums(folder: Path) -> dict[str, str]:

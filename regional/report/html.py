@@ -254,6 +254,7 @@ def _table(
     chosen: Sequence[bool] | None = None,
     flag_column: str | None = None,
     labels: Mapping[str, tuple[str, str]] | None = None,
+    anchor: str | None = None,
 ) -> str:
     """An HTML table of a frame: readable headers with units, every cell escaped.
 
@@ -261,7 +262,7 @@ def _table(
     table's own columns), each carrying its machine name as a tooltip; numbers are
     right-aligned, text cells wrap, and the first column stays in view when a wide table
     scrolls sideways. ``chosen`` marks rows to highlight; cells of ``flag_column`` that read
-    "no" are marked.
+    "no" are marked; ``anchor`` is an id for links to the table.
     """
     frame = frame.reset_index() if index else frame
     head = "".join(_header_cell(str(column), labels) for column in frame.columns)
@@ -271,8 +272,9 @@ def _table(
         for mark, values in zip(marks, frame.itertuples(index=False, name=None), strict=True)
     ]
     title = f"<caption>{_esc(caption)}</caption>" if caption else ""
+    identity = f' id="{_esc(anchor)}"' if anchor else ""
     return (
-        f'<div class="scroll"><table class="data">{title}<thead><tr>{head}</tr></thead>'
+        f'<div class="scroll"{identity}><table class="data">{title}<thead><tr>{head}</tr></thead>'
         f"<tbody>{''.join(rows)}</tbody></table></div>"
     )
 
@@ -667,6 +669,11 @@ def _ungauged(result: RunResult) -> list[str]:
             caption=f"Bounds: the mean over the period of the daily lower and upper "
             f"{prediction.level:.0%} bounds (wider than an interval of the mean flow itself).",
             flag_column="applicable",
+            labels={
+                "mean_flow": ("Mean flow", unit),
+                "mean_flow_bounds": (f"Bounds (mean of daily {prediction.level:.0%})", unit),
+            },
+            anchor="site-estimates",
         ),
         _h3("Coverage of the bounds in leave-one-out"),
         _coverage_table(prediction),

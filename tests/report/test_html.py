@@ -359,3 +359,91 @@ def test_report_of_the_demo_region_with_its_real_prediction_and_screening(demo_r
     section = page[page.index('id="ungauged"') : page.index('id="screening"')]
     for basin in demo_result.region.ungauged:
         assert f"<td>{basin}</td>" in section
+
+
+# ---------------------------------------------------------------------------------------------
+# Tables: readable headers with units, estimates at the sites in the report's unit
+
+
+def _headers(section: str) -> list[tuple[str, str]]:
+    """(machine name, shown text) of every header cell of a part of the page."""
+    cells = re.findall(r'<th scope="col" title="([^"]*)">(.*?)</th>', section)
+    return [(name, re.sub(r"<[^>]+>", " ", text).strip()) for name, text in cells]
+
+
+def test_headers_are_readable_with_units_and_keep_the_machine_name(bare_run):
+    page = render_report(bare_run, {})
+    transfer = page[page.index('id="transfer"') : page.index('id="regression"')]
+    headers = dict(_headers(transfer))
+    assert headers["share_nse_gt_0_5"] == "Share with NSE &gt; 0.5 -"
+    assert headers["median_nse"] == "Median NSE -"
+    assert headers["n_basins"] == "Basins count"
+    assert all(name != text for name, text in headers.items() if "_" in name)
+
+
+def test_attribute_ranges_carry_units(bare_run):
+    page = render_report(bare_run, {})
+    inputs = page[page.index('id="inputs"') : page.index('id="calibration"')]
+    assert "<td>Area (area_km2)</td><td>km2</td>" in inputs
+    for attribute in bare_run.attributes:
+        assert f"({attribute})</td>" in inputs
+
+
+def test_wide_tables_keep_their_first_column_and_wrap_text():
+    from regional.report.html import STYLE
+
+    assert "position: sticky" in STYLE
+    assert "td.text { white-space: normal" in STYLE
+
+
+def _site_rows(page: str) -> dict[str, list[str]]:
+    section = page[page.index('id="site-estimates"') :]
+    section = section[: section.index("</table>")]
+    rows = re.findall(r"<tr>(.*?)</tr>", section)[1:] or re.findall(
+        r"<tr[^>]*>(.*?)</tr>", section
+    )
+    cells = [re.findall(r"<td[^>]*>(.*?)</td>", row) for row in rows]
+    return {row[0]: row for row in cells if row}
+
+
+def test_site_estimates_show_estimate_bounds_unit_and_reason(full_run):
+    page = render_report(full_run, {})
+    rows = _site_rows(page)
+    table = full_run.prediction.table
+    assert set(rows) == set(full_run.region.ungauged)
+    for basin, row in rows.items():
+        assert "m3/s" in row
+        assert any("\u2013" in cell for cell in row)
+        assert row[-1] == html_escape(table.loc[basin, "reason"])
+
+
+def html_escape(text: str) -> str:
+    import html
+
+    return html.escape(text, quote=True)
+
+
+def test_site_estimates_in_m3s_agree_with_the_prediction_table(demo_result):
+    # two routes: the report converts mm/day through the area; predict wrote mean_flow_m3s
+    page = render_report(demo_result, {})
+    rows = _site_rows(page)
+    table = demo_result.prediction.table
+    for basin, row in rows.items():
+        shown = float(row[2])  # basin, name, mean flow
+        assert shown == pytest.approx(table.loc[basin, "mean_flow_m3s"], rel=5e-3)
+
+
+def test_site_estimates_in_mm_per_day_when_asked(full_run):
+    settings = replace(
+        full_run.settings, report=replace(full_run.settings.report, flow_unit="mm/day")
+    )
+    page = render_report(replace(full_run, settings=settings), {})
+    rows = _site_rows(page)
+    table = full_run.prediction.table
+    flows = full_run.prediction.flows.groupby("basin_id")[["flow_low_mm", "flow_high_mm"]].mean()
+    for basin, row in rows.items():
+        assert "mm/day" in row
+        assert f"{table.loc[basin, 'mean_flow_mm']:.3g}" in row
+        low, high = flows.loc[basin]
+        assert f"{low:.3g}\u2013{high:.3g}" in row
+    assert "Flow statistics (mm/day)" in page
