@@ -252,3 +252,26 @@ def test_every_section_has_a_documented_key(tmp_path):
     for section, keys in SECTIONS.items():
         for key in keys:
             assert f"`{key}`" in text, f"[{section}] {key} undocumented"
+
+
+def test_report_section_defaults_and_choices(tmp_path):
+    settings = load_settings(write(tmp_path, MINIMAL))
+    assert settings.report.flow_unit == "m3/s"
+    assert settings.report.window is None
+    assert settings.report.sites_per_figure == 6
+    chosen = load_settings(
+        write(
+            tmp_path,
+            with_(
+                "report",
+                flow_unit="mm/day",
+                window=["2014-01-01", "2014-12-31"],
+                sites_per_figure=4,
+            ),
+        )
+    ).report
+    assert chosen.flow_unit == "mm/day"
+    assert chosen.window == (pd.Timestamp("2014-01-01"), pd.Timestamp("2014-12-31"))
+    assert chosen.sites_per_figure == 4
+    with pytest.raises(InputError, match=r"'flow_unit' in \[report\].*m3/s"):
+        load_settings(write(tmp_path, with_("report", flow_unit="l/s")))

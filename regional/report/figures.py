@@ -512,8 +512,24 @@ def ungauged_hydrographs(
 def _hydrograph_page(result, series, basins, *, window, log: bool, page) -> Figure:
     prediction = result.prediction
     unit = _report_settings(result).flow_unit
-    fig = Figure(figsize=(11.0, 2.2 * len(basins) + 1.3), layout="constrained")
-    axes = fig.subplots(len(basins), 2, squeeze=False, width_ratios=(2.4, 1.0))
+    height = 2.2 * len(basins) + 1.3
+    # fixed margins (inches), not a layout engine: pages of many sites stay cheap to draw
+    fig = Figure(figsize=(11.0, height))
+    axes = fig.subplots(
+        len(basins),
+        2,
+        squeeze=False,
+        sharex="col",
+        gridspec_kw={
+            "width_ratios": (2.4, 1.0),
+            "left": 0.8 / 11.0,
+            "right": 1.0 - 0.2 / 11.0,
+            "top": 1.0 - 0.65 / height,
+            "bottom": 1.05 / height,
+            "hspace": 0.36,
+            "wspace": 0.14,
+        },
+    )
     chosen = window or _report_settings(result).window
     for (left, right), basin in zip(axes, basins, strict=True):
         _site_hydrograph(left, _window(series[basin], chosen), log=log)
@@ -522,11 +538,19 @@ def _hydrograph_page(result, series, basins, *, window, log: bool, page) -> Figu
         left.set_ylabel(f"Flow ({unit})", fontsize=8)
     axes[-1, 0].set_xlabel("Date")
     axes[-1, 1].set_xlabel("Share of days the flow is exceeded (%)")
-    fig.legend(handles=_site_handles(prediction.level, log), loc="outside lower center", ncols=4)
+    fig.legend(
+        handles=_site_handles(prediction.level, log),
+        loc="lower center",
+        bbox_to_anchor=(0.5, 0.0),
+        ncols=3,
+        frameon=False,
+    )
     numbering = f", figure {page[0]} of {page[1]}" if page[1] > 1 else ""
     fig.suptitle(
         f"Estimated daily flow at ungauged basins ({unit}) with {prediction.level:.0%} bounds: "
-        f"{prediction.method} ({prediction.model}){numbering}"
+        f"{prediction.method} ({prediction.model}){numbering}",
+        y=1.0 - 0.2 / height,
+        va="top",
     )
     return fig
 
@@ -689,7 +713,7 @@ def _site_duration(ax, series: pd.DataFrame, *, log: bool) -> None:
     _mark_floor(ax, floor, None, share=below)
     ax.set_xlim(0.0, 100.0)
     period = f"{series.index[0]:%Y}-{series.index[-1]:%Y}"
-    ax.set_title(f"flow duration {period}", fontsize=8, loc="left")
+    ax.set_title(f"flow duration, whole period {period}", fontsize=8, loc="left")
     ax.tick_params(labelsize=7)
     ax.grid(True, color="0.92")
 
@@ -721,7 +745,7 @@ def _mark_floor(ax, floor: float | None, days: int | None, *, share: float = 0.0
         return
     ax.axhline(floor, color="0.45", linewidth=0.7, linestyle=(0, (4, 3)))
     if days:
-        text = f"{days} days below {floor:.2g} (zero flows too) drawn on the floor"
+        text = f"{days} days below {floor:.2g}, zero flows included, drawn on the floor"
     elif share > 0:
         text = f"{share:.0f} % of days below {floor:.2g}, drawn on the floor"
     else:

@@ -312,7 +312,7 @@ def test_zero_flows_are_drawn_on_a_stated_floor(full_run):
     assert drawn.min() == pytest.approx(floor)  # never a gap or a comb down to zero
     assert left.get_ylim()[0] < floor
     note = " ".join(t.get_text() for t in left.texts)
-    assert "40 days below" in note and "zero flows too" in note
+    assert "40 days below" in note and "zero flows included" in note
     legend = " ".join(t.get_text() for t in fig.legends[0].get_texts())
     assert "zero flows drawn on it" in legend
 
