@@ -704,7 +704,8 @@ def _ungauged_details(result: RunResult, unit: str) -> list[str]:
         )
     per_method = _per_method_parameters(result)
     if per_method is not None:
-        parts.append(_details("Parameters from every method", _table(per_method)))
+        labels = _per_method_labels(result)
+        parts.append(_details("Parameters from every method", _table(per_method, labels=labels)))
     error_model = getattr(prediction, "error_model", None)
     if error_model is not None and len(error_model):
         parts.append(_details("Error model of the bounds", _table(error_model)))
@@ -830,6 +831,18 @@ def _per_method_parameters(result: RunResult) -> pd.DataFrame | None:
             if column in table.columns:
                 out[column] = _interval_column(table, column)
     return _with_names(result, out) if len(out.columns) else None
+
+
+def _per_method_labels(result: RunResult) -> dict[str, tuple[str, str]]:
+    """Labels of the ``{parameter}_{method}`` columns: the parameter's label and the method."""
+    model = result.prediction.model
+    labels = _model_labels(model)
+    methods = result.runs[model].loo.methods
+    return {
+        f"{name}_{method}": (f"{label} ({method})", unit)
+        for name, (label, unit) in labels.items()
+        for method in methods
+    }
 
 
 def _screening(result: RunResult) -> list[str]:

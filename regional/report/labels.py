@@ -71,6 +71,8 @@ COLUMN_LABELS: dict[str, tuple[str, str]] = {
     "nse_validation": ("NSE, validation period", "-"),
     "kge_calibration": ("KGE, calibration period", "-"),
     "kge_validation": ("KGE, validation period", "-"),
+    "n_days_calibration": ("Days scored, calibration period", "count"),
+    "n_days_validation": ("Days scored, validation period", "count"),
     # regression
     "transform": ("Transform", ""),
     "terms": ("Attributes selected", ""),
@@ -105,6 +107,8 @@ COLUMN_LABELS: dict[str, tuple[str, str]] = {
     "score": ("Screening score", "-"),
     "variance_reduction": ("Variance reduction", "-"),
     "donor_spread": ("Donor spread", "-"),
+    "estimation_reduction": ("Estimation variance reduction", "-"),
+    "leverage": ("Leverage", "-"),
     # error model
     "class": ("Flow class", ""),
     "percentile_low": ("From percentile", "%"),
