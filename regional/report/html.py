@@ -113,8 +113,8 @@ table { border-collapse: collapse; margin: .4em 0 1em; font-size: .85em;
         font-variant-numeric: tabular-nums; }
 caption { text-align: left; color: var(--muted); padding-bottom: .3em; }
 th, td { padding: .25em .6em; border-bottom: 1px solid var(--rule); vertical-align: top; }
-th { background: var(--band); text-align: left; font-weight: 600; }
-th { vertical-align: bottom; min-width: 4.5em; max-width: 12em; }
+th { background: var(--band); text-align: left; font-weight: 600; vertical-align: bottom;
+     min-width: 4.5em; max-width: 12em; }
 th .unit { display: block; font-weight: 400; color: var(--muted); font-size: .92em; }
 td.num { text-align: right; white-space: nowrap; }
 td.text { white-space: normal; min-width: 12em; max-width: 30em; overflow-wrap: anywhere; }
