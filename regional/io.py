@@ -451,9 +451,14 @@ without the warning it gives on the 1.4 that newer GDAL writes by default."""
 
 
 def figure_png(figure, *, dpi: int = 110) -> bytes:
-    """Render a matplotlib Figure to PNG bytes (nothing is written to disk)."""
+    """Render a matplotlib Figure to PNG bytes (nothing is written to disk).
+
+    A figure with a layout engine is trimmed to its content; one laid out by hand (no engine,
+    fixed margins) is saved as it is, which skips a second drawing pass.
+    """
     buffer = BytesIO()
-    figure.savefig(buffer, format="png", dpi=dpi, bbox_inches="tight")
+    trim = "tight" if figure.get_layout_engine() is not None else None
+    figure.savefig(buffer, format="png", dpi=dpi, bbox_inches=trim)
     return buffer.getvalue()
 
 

@@ -523,7 +523,7 @@ def _hydrograph_page(result, series, basins, *, window, log: bool, page) -> Figu
         gridspec_kw={
             "width_ratios": (2.4, 1.0),
             "left": 0.8 / 11.0,
-            "right": 1.0 - 0.2 / 11.0,
+            "right": 1.0 - 0.35 / 11.0,
             "top": 1.0 - 0.65 / height,
             "bottom": 1.05 / height,
             "hspace": 0.36,

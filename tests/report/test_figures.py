@@ -423,3 +423,18 @@ def test_fake_screening_has_the_fields_of_the_real_one(tiny_run):
 
     names = {f.name for f in fields(screen.Screening)}
     assert names == set(vars(fake_screening(tiny_run)))
+
+
+def test_site_pages_keep_their_fixed_size_as_png(full_run):
+    # pages are laid out by hand (no layout engine): saved as drawn, not trimmed
+    from io import BytesIO
+
+    from PIL import Image
+
+    from regional import io as regional_io
+
+    fig = figures.ungauged_hydrographs(full_run)
+    assert fig.get_layout_engine() is None
+    png = regional_io.figure_png(fig, dpi=50)
+    width, height = Image.open(BytesIO(png)).size
+    assert (width, height) == (round(fig.get_figwidth() * 50), round(fig.get_figheight() * 50))
