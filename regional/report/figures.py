@@ -331,6 +331,7 @@ def hydrographs(
         )
         ax.grid(True, color="0.92")
     handles, _ = axes[0].get_legend_handles_labels()
+    handles += [_floor_handle()] if log else []
     fig.legend(handles=handles, loc="outside lower center", fontsize=8, ncols=len(handles))
     axes[-1].set_xlabel("Date")
     fig.suptitle(f"Daily flow in the evaluation period, leave-one-out ({model})")
@@ -767,19 +768,19 @@ def _site_handles(level: float, log: bool) -> list:
         Line2D([], [], color=ESTIMATE_COLOUR, linewidth=1.0, label="estimate"),
         Patch(facecolor=BAND_COLOUR, label=f"{level:.0%} bounds"),
     ]
-    if log:
-        handles.append(
-            Line2D(
-                [],
-                [],
-                color="0.45",
-                linewidth=0.7,
-                linestyle=(0, (4, 3)),
-                label=f"floor: {LOG_DECADES:g} decades below the highest bound; lower and zero "
-                "flows drawn on it",
-            )
-        )
-    return handles
+    return handles + [_floor_handle()] if log else handles
+
+
+def _floor_handle() -> Line2D:
+    return Line2D(
+        [],
+        [],
+        color="0.45",
+        linewidth=0.7,
+        linestyle=(0, (4, 3)),
+        label=f"floor: {LOG_DECADES:g} decades below the highest flow drawn; lower and zero flows "
+        "drawn on it",
+    )
 
 
 def _relative(values: pd.Series) -> np.ndarray:
