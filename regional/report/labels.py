@@ -58,6 +58,9 @@ COLUMN_LABELS: dict[str, tuple[str, str]] = {
     "level": ("Nominal level", "-"),
     "coverage_minus_level": ("Coverage minus level", "-"),
     "n_days": ("Days", "count"),
+    "n_donors": ("Donors per target", "count"),
+    "chosen": ("Chosen", ""),
+    "median_nse_choice_held_out": ("Median NSE, count chosen without the basin", "-"),
     # calibration
     "count": ("Basins", "count"),
     "min": ("Minimum", ""),

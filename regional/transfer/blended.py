@@ -118,6 +118,18 @@ class BlendedTransfer(_DonorTransfer):
 
     _method = "blended"
     _distance_unit = "blended"
+    description = (
+        "Blended donors: the k gauged basins nearest by a weighted sum of the standardised "
+        "attribute distance and the great-circle distance, each divided by its spread over the "
+        "donors, give their parameter sets, weighted by inverse distance."
+    )
+    references = (
+        "Oudin, L., Andreassian, V., Perrin, C., Michel, C., Le Moine, N. (2008): Spatial "
+        "proximity, physical similarity, regression and ungaged catchments. Water Resour. Res. "
+        "44, W03413.",
+        "Shepard, D. (1968): A two-dimensional interpolation function for irregularly-spaced "
+        "data. Proc. 23rd ACM National Conference, 517-524 (inverse-distance weights).",
+    )
 
     def __init__(
         self,
