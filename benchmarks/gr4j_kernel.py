@@ -20,7 +20,7 @@ import pandas as pd
 
 import regional
 from regional.models.gr4j import GR4J, _gr4j_kernel
-from regional.models.linear import _linear_kernel
+from regional.models.linear import EVAPORATION_REFERENCE_MM, _linear_kernel
 
 
 def best_of(function, repeats: int = 3) -> float:
@@ -81,7 +81,7 @@ def main() -> None:
         _gr4j_kernel(p, e, *sets.values(), s0, r0, *out, skip, skip)
 
     def run_linear(p=precip, e=pet):
-        _linear_kernel(p, e, k, np.zeros(n), *out[:3])
+        _linear_kernel(p, e, k, np.zeros(n), EVAPORATION_REFERENCE_MM, *out[:3])
 
     run_gr4j(precip[:10], pet[:10])  # compile (or load the cache) before timing
     run_linear(precip[:10], pet[:10])

@@ -1,10 +1,12 @@
 """Speed of the linear-reservoir kernel, measured side by side in one run.
 
 Prints, for N basins x Y years of daily forcing:
-  (a) kernel vs a plain Python per-step loop over the same data (Python lists),
+  (a) kernel vs a plain Python per-step loop over the same data (Python lists), for the store
+      with evapotranspiration at the potential rate (``linear_potential_et``),
   (b) kernel vs one numpy pass reading two input arrays and writing one output
       (np.add(precip, pet, out=flow)): how close the kernel runs to memory bandwidth,
-  (c) calibrations per second (grid bracket + Brent, one basin at a time).
+  (c) calibrations per second (grid bracket + Brent, one basin at a time),
+  (d) the default ``linear`` store (evapotranspiration declining below S_ref) against it.
 
 Run:  python benchmarks/linear_kernel.py [--basins 1000] [--years 20]
 Ratios, not absolute times, are the result: the machine may be shared and noisy.
@@ -20,7 +22,7 @@ import numpy as np
 import pandas as pd
 
 import regional
-from regional.models.linear import _linear_kernel
+from regional.models.linear import EVAPORATION_REFERENCE_MM, _linear_kernel
 
 
 def plain_python_linear(precip, pet, k_values, s0_values):
@@ -76,15 +78,22 @@ def main() -> None:
     s0 = np.zeros(args.basins)
     flow, aet, storage = (np.empty_like(precip) for _ in range(3))
 
-    _linear_kernel(precip[:10], pet[:10], k, s0, flow[:10], aet[:10], storage[:10])  # compile
-    kernel = best_of(lambda: _linear_kernel(precip, pet, k, s0, flow, aet, storage))
+    simple, declining = 0.0, EVAPORATION_REFERENCE_MM  # S_ref: linear_potential_et, linear
+    for s_ref in (simple, declining):  # compile
+        _linear_kernel(precip[:10], pet[:10], k, s0, s_ref, flow[:10], aet[:10], storage[:10])
+    kernel = best_of(lambda: _linear_kernel(precip, pet, k, s0, simple, flow, aet, storage))
+    kernel_declining = best_of(
+        lambda: _linear_kernel(precip, pet, k, s0, declining, flow, aet, storage)
+    )
     public = best_of(
-        lambda: regional.simulate("linear", precip, pet, {"k_per_day": k}, initial_storage=0.0)
+        lambda: regional.simulate(
+            "linear_potential_et", precip, pet, {"k_per_day": k}, initial_storage=0.0
+        )
     )
     numpy_pass = best_of(lambda: np.add(precip, pet, out=flow))
     wet = precip + pet  # never below PET: the store never empties, no logarithm is needed
-    kernel_wet = best_of(lambda: _linear_kernel(wet, pet, k, s0, flow, aet, storage))
-    _linear_kernel(precip, pet, k, s0, flow, aet, storage)
+    kernel_wet = best_of(lambda: _linear_kernel(wet, pet, k, s0, simple, flow, aet, storage))
+    _linear_kernel(precip, pet, k, s0, simple, flow, aet, storage)
     emptying_share = float((storage == 0.0).mean())
 
     m = min(args.python_basins, args.basins)
@@ -97,11 +106,11 @@ def main() -> None:
     dates = pd.date_range("2000-01-01", periods=days)
     ids = [f"b{j}" for j in range(n_cal)]
     sim = regional.simulate(
-        "linear", precip[:, :n_cal], pet[:, :n_cal], {"k_per_day": k[:n_cal]}
+        "linear_potential_et", precip[:, :n_cal], pet[:, :n_cal], {"k_per_day": k[:n_cal]}
     ).flow
     frames = [pd.DataFrame(a, dates, ids) for a in (precip[:, :n_cal], pet[:, :n_cal], sim)]
     start = time.perf_counter()
-    regional.calibrate(*frames, warmup_days=365)
+    regional.calibrate(*frames, warmup_days=365, model="linear_potential_et")
     calibrations_per_s = n_cal / (time.perf_counter() - start)
 
     basin_days = days * args.basins
@@ -111,6 +120,10 @@ def main() -> None:
         f"({kernel / basin_days * 1e9:.1f} ns/basin-day)"
     )
     print(f"  regional.simulate       {public:8.3f} s  (with input checks)")
+    print(
+        f"  kernel, declining ET    {kernel_declining:8.3f} s  "
+        f"(model linear, S_ref = {declining:g} mm)"
+    )
     print(f"  numpy np.add pass       {numpy_pass:8.3f} s")
     print(f"  plain Python loop       {python_loop:8.3f} s  (timed on {m} basins, scaled)")
     print(f"(a) speed-up over plain Python loop: {python_loop / kernel:8.1f} x   (target >= 20)")
@@ -118,6 +131,11 @@ def main() -> None:
     print(
         f"(b') same ratio on wet forcing, no emptying steps: {kernel_wet / numpy_pass:5.1f} x   "
         f"(the exact emptying time costs a logarithm on {emptying_share:.0%} of basin-days)"
+    )
+    print(
+        f"(d) declining ET (linear) vs potential-rate ET (linear_potential_et): "
+        f"{kernel_declining / kernel:5.1f} x the time; to numpy pass: "
+        f"{kernel_declining / numpy_pass:5.1f} x"
     )
     print(f"(c) calibrations per second ({args.years} years, KGE): {calibrations_per_s:.1f}")
 

@@ -32,6 +32,7 @@ from scipy import ndimage, signal, stats
 import regional
 from regional import io
 from regional.attributes import compute_attributes
+from regional.models import get_model
 
 HERE = Path(__file__).resolve().parent
 SEED = 20_240_917
@@ -49,13 +50,22 @@ N_HEADWATERS = 43
 N_UNGAUGED = 14
 
 # The hidden relation: ln k = b0 + b1 slope_mean + b2 aridity + b3 sand_frac + e, e ~ N(0, sd).
-COEFFICIENTS = {"intercept": -1.5, "slope_mean": 0.12, "aridity": -1.4, "sand_frac": -2.0}
+COEFFICIENTS = {"intercept": -2.5, "slope_mean": 0.12, "aridity": -1.4, "sand_frac": -2.0}
 COEFFICIENT_UNITS = {
     "intercept": "ln(1/day)",
     "slope_mean": "ln(1/day) per degree",
     "aridity": "ln(1/day) per unit PET/P",
     "sand_frac": "ln(1/day) per unit sand fraction",
 }
+MODEL = "linear"  # evapotranspiration declines below the model's reference storage
+# The snow store is pinned here rather than left to the model's defaults, so the observed flow
+# stays what it is if those defaults change.
+SNOW = {"snow_threshold_c": 1.0, "melt_threshold_c": 0.0, "melt_factor_mm_per_degc_day": 3.0}
+MEAN_TEMP_SEA_LEVEL_C = 11.3
+# Summers with fewer, larger storms on the low eastern levels: the wet-day chance swings by a
+# further LOWLAND_SUMMER_DRYING over the year at sea level, fading out at LOWLAND_TOP_M.
+LOWLAND_SUMMER_DRYING = 0.3
+LOWLAND_TOP_M = 250.0  # annual mean air temperature at sea level, degC
 RESIDUAL_SD = 0.25  # ln units: what the attributes do not explain
 # Multiplicative observation error (mean one) in ln units: a slow AR(1) part (rating-curve drift,
 # forcing error; lag-one correlation 0.95) plus independent daily scatter.
@@ -378,7 +388,9 @@ def _precipitation(
     shocks = rng.standard_normal((n_days, n)) @ chol.T
     latent = signal.lfilter([np.sqrt(1 - rho**2)], [1.0, -rho], shocks, axis=0)
     season = np.cos(2 * np.pi * (doy - 15) / 365.25)
-    p_wet = np.clip(0.40 + 0.08 * season + 0.12 * elevation / 1000.0, 0.05, 0.95)
+    lowland = np.clip(1.0 - elevation / LOWLAND_TOP_M, 0.0, 1.0)
+    seasonality = 0.08 + LOWLAND_SUMMER_DRYING * lowland
+    p_wet = np.clip(0.40 + seasonality * season + 0.12 * elevation / 1000.0, 0.05, 0.95)
     track = np.exp(0.2 * _storm_track(rng, xy_km))
     mean_mm = (560.0 + 0.6 * elevation) * track / 365.25 * (1.0 + 0.2 * season)
     u = stats.norm.cdf(latent)
@@ -408,7 +420,7 @@ def _temperature(rng: np.random.Generator, doy: np.ndarray, elevation: np.ndarra
     )
     cycle = 8.5 * np.cos(2 * np.pi * (doy - 200) / 365.25)
     local = rng.normal(0.0, 0.4, (n_days, n))
-    return 9.3 - 0.0065 * elevation + cycle + regional_anomaly[:, None] + local
+    return MEAN_TEMP_SEA_LEVEL_C - 0.0065 * elevation + cycle + regional_anomaly[:, None] + local
 
 
 def _oudin_pet(doy: np.ndarray, temp_c: np.ndarray, lat_deg: np.ndarray) -> np.ndarray:
@@ -459,10 +471,10 @@ def _observed_flow(
     """Simulated flow times lognormal error (mean one), with gaps; NaN at ungauged basins."""
     ids = list(forcing["precip_mm"].columns)
     simulation = regional.simulate(
-        "linear",
+        MODEL,
         forcing["precip_mm"].to_numpy(),
         forcing["pet_mm"].to_numpy(),
-        {"k_per_day": k_per_day[ids].to_numpy()},
+        {"k_per_day": k_per_day[ids].to_numpy(), **SNOW},
         temp=forcing["temp_c"].to_numpy(),
         warmup_days=365,
     )
@@ -548,7 +560,12 @@ def _truth(
         "about": "Invented demo region: every name and value is made up (see README.md).",
         "seed": seed,
         "period": [str(dates[0].date()), str(dates[-1].date())],
-        "model": {"name": "linear", "snow": "default degree-day store", "warmup_days": 365},
+        "model": {
+            "name": MODEL,
+            "evaporation_reference_mm": get_model(MODEL).evaporation_reference_mm,
+            "snow": SNOW,
+            "warmup_days": 365,
+        },
         "relation": "ln(k_per_day) = intercept + slope_mean*b1 + aridity*b2 + sand_frac*b3 + e",
         "coefficients": COEFFICIENTS,
         "coefficient_units": COEFFICIENT_UNITS,

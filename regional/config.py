@@ -27,7 +27,7 @@ from regional.errors import InputError
 CONFIG_NAME = "region.toml"
 
 #: Storage models a region may name (``[model] name``).
-MODEL_NAMES = ("linear", "gr4j")
+MODEL_NAMES = ("linear", "gr4j", "linear_potential_et")
 #: Calibration objectives (``[model] objective``).
 OBJECTIVES = ("kge", "nse", "log_nse")
 #: Transfer methods (``[transfer] methods``); ``median`` is the naive benchmark.

@@ -123,3 +123,17 @@ def test_donor_count_chosen_in_leave_one_out_reaches_prediction_and_outputs(tmp_
     assert len(written) == 2 * 3 * len(result.runs)
     report = render_report(result, {})
     assert "Donors per target chosen in leave-one-out from 1, 3, 6: similarity" in report
+
+
+DRY_ARIDITY = 0.9
+"""PET / P from which the demo's climate counts as dry (its eastern levels; demo_region/README)."""
+
+
+def test_humid_ungauged_basins_keep_flowing_at_q95(demo_result):
+    # The demo's observed flow stops only in its driest basins (test_demo_region), so the chosen
+    # model must not run dry in the humid ones: Q95 (flow exceeded 95 % of days) stays above 0.
+    table = demo_result.prediction.table
+    humid = table[table["aridity"] < DRY_ARIDITY]
+    assert len(humid) >= 6
+    assert (humid["q95_mm"] > 0).all(), humid.loc[humid["q95_mm"] <= 0, "q95_mm"]
+    assert (humid["min7_mean_mm"] > 0).all()

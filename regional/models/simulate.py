@@ -11,7 +11,11 @@ from regional.models.gr4j import GR4J
 from regional.models.linear import LinearReservoir
 from regional.models.snow import DegreeDaySnow
 
-_MODELS = {"linear": LinearReservoir(), "gr4j": GR4J()}
+_MODELS = {
+    "linear": LinearReservoir(),
+    "gr4j": GR4J(),
+    "linear_potential_et": LinearReservoir("linear_potential_et", evaporation_reference_mm=0.0),
+}
 _SNOW = DegreeDaySnow()
 EQUILIBRIUM_WINDOW_DAYS = 365
 
@@ -62,7 +66,9 @@ def simulate(
     Parameters
     ----------
     model : str
-        Model name: ``"linear"`` or ``"gr4j"``.
+        Model name: ``"linear"`` (evapotranspiration declining below a reference storage),
+        ``"linear_potential_et"`` (evapotranspiration at the potential rate until the store is
+        empty) or ``"gr4j"``.
     precip, pet : array_like, shape (time,) or (time, n)
         Precipitation and potential evapotranspiration, mm/day, finite and >= 0. A 1-D series
         (or one column) is shared by all n parameter sets.
