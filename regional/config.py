@@ -166,6 +166,7 @@ class PredictionSettings:
     level: float
     method: str | None
     model: str | None
+    held_out_repeats: int = 10
 
 
 @dataclass(frozen=True)
@@ -469,6 +470,7 @@ SECTIONS: dict[str, dict[str, _Key]] = {
         "level": _Key(_number(0.0, 1.0, open_=True), 0.9),
         "method": _Key(_choice(TRANSFER_METHODS)),
         "model": _Key(_choice(MODEL_NAMES)),
+        "held_out_repeats": _Key(_integer(0), 10),
     },
     "screening": {"candidates": _Key(_text_list)},
     "compute": {"scheduler": _Key(_scheduler), "workers": _Key(_integer(1))},

@@ -33,7 +33,7 @@ from __future__ import annotations
 
 import warnings
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -63,6 +63,22 @@ APPLICABILITY_LEVEL = 0.95
 """Chi-square quantile the Mahalanobis distance squared is compared with."""
 EIGEN_FLOOR = 1e-6
 """Eigenvalues of the donors' correlation matrix are floored at this share of the largest."""
+
+HELD_OUT_FRACTION = 0.1
+"""Share of the gauged basins held out of the whole fit in each repeat of the held-out check."""
+HELD_OUT_SEED = 20_241_202
+"""Seed of the random draws of held-out basins (the check is reproducible)."""
+MIN_HELD_OUT_BASINS = 10
+"""Fewer gauged basins than this: no held-out check (a tenth would be no basin at all)."""
+WIDEN_TOLERANCE = 0.03
+"""A flow class whose held-out coverage falls short of the level by more is widened."""
+MAX_CLASS_LEVEL = 0.995
+"""Highest level a widened flow class is rebuilt at."""
+REPORTED_DECILES = (1, 10)
+"""Deciles of each basin's simulated flow whose coverage is reported (lowest and highest)."""
+REUSABLE_METHODS = ("similarity", "proximity")
+"""Donor methods whose fold may give the same donation without the held-out basins (then the
+leave-one-out flow is reused); regression and median refit on other basins always differ."""
 
 SUMMARY_STATISTICS = ("mean_flow_mm", "mean_flow_m3s", "q5_mm", "q50_mm", "q95_mm", "min7_mean_mm")
 """The headline statistics (mean flow, flow-duration points, 7-day minimum)."""
@@ -97,7 +113,13 @@ class Prediction:
     coverage : DataFrame
         Per (model, method) of leave-one-out: ``model``, ``method``, ``level``, ``coverage``
         (mean over basins of the share of observed days inside the bounds built without the
-        basin), ``n_days``, ``n_basins``.
+        basin), ``coverage_decile_1``, ``coverage_decile_10`` (the same on the lowest and
+        highest tenth of each basin's simulated flow), ``n_days``, ``n_basins``; and for the
+        chosen (model, method) only (NaN elsewhere) the held-out check: ``held_out_coverage``,
+        ``held_out_coverage_decile_1``, ``held_out_coverage_decile_10`` (bounds as first
+        built, at basins held out of the whole fit), ``held_out_coverage_widened`` (after
+        widening, same repeats), ``held_out_repeats``, ``held_out_basins`` (held out per
+        repeat), ``widened_classes`` (e.g. ``"1: 0.90 -> 0.95"``; "" when none).
     error_model : DataFrame
         The conformal quantiles of the chosen (model, method), one row per flow class:
         ``class``, ``percentile_low``, ``percentile_high`` (within-basin quantile range of the
@@ -106,6 +128,13 @@ class Prediction:
         share of its mean simulated flow, mm/day).
     notes : tuple of str
         What the user should read beside the numbers.
+    held_out : DataFrame or None
+        The held-out check of the chosen (model, method) (:func:`held_out_flows`), one row per
+        ``flow_class`` (``all``, ``class 1`` .., ``decile 1``, ``decile 10``):
+        ``held_out_coverage`` (bounds as first built), ``n_pairs`` ((repeat, basin) pairs),
+        ``level_used`` (the level the class's quantiles were finally taken at; NaN for the
+        deciles and ``all``), ``held_out_coverage_widened`` (the same repeats with the widened
+        classes; not an independent check). None when the check did not run.
     """
 
     model: str
@@ -116,6 +145,7 @@ class Prediction:
     coverage: pd.DataFrame
     error_model: pd.DataFrame
     notes: tuple[str, ...]
+    held_out: pd.DataFrame | None = None
 
 
 # --------------------------------------------------------------------------------------------
@@ -142,6 +172,9 @@ class ConformalErrorModel:
         Residual days per class.
     n_basins : int
         Basins the model was built from.
+    class_levels : ndarray (n_classes,) or None
+        Level each class's quantiles were taken at when it differs from ``level`` (classes
+        widened after the held-out check); None: ``level`` everywhere.
     """
 
     level: float
@@ -151,6 +184,7 @@ class ConformalErrorModel:
     upper_q: np.ndarray
     n_days: np.ndarray
     n_basins: int
+    class_levels: np.ndarray | None = None
 
     @property
     def n_classes(self) -> int:
@@ -170,8 +204,16 @@ class ConformalErrorModel:
                 "n": self.n_days.astype(int),
                 "n_basins": self.n_basins,
                 "offset_fraction": self.offset_fraction,
+                "level": self.levels,
             }
         )
+
+    @property
+    def levels(self) -> np.ndarray:
+        """Level of each class's quantiles (the nominal level unless the class was widened)."""
+        if self.class_levels is None:
+            return np.full(self.n_classes, self.level)
+        return np.asarray(self.class_levels, dtype=float)
 
     def bounds(self, simulated: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
         """Lower and upper daily bounds around simulated flows.
@@ -206,6 +248,7 @@ def conformal_bounds(
     level: float,
     offset_fraction: float = OFFSET_FRACTION,
     n_classes: int | None = None,
+    class_levels: Sequence[float] | None = None,
 ) -> ConformalErrorModel:
     """Calibrate the split-conformal error model of transferred daily flows.
 
@@ -235,6 +278,9 @@ def conformal_bounds(
         Flow classes. Default: up to :data:`MAX_CLASSES` while the basins keep a median of
         :data:`MIN_DAYS_PER_CLASS` observed days per class; 1 below
         :data:`MIN_BASINS_FOR_CLASSES` basins.
+    class_levels : sequence of float, optional
+        A level per flow class (each in (0, 1)), to widen the classes whose coverage on held-out
+        basins falls short (:func:`held_out_coverage`); default ``level`` in every class.
 
     Returns
     -------
@@ -243,8 +289,25 @@ def conformal_bounds(
     level = _check_level(level)
     obs, sim = _aligned(observed, simulated)
     k = _n_classes(obs) if n_classes is None else int(n_classes)
+    levels = _class_levels(class_levels, level, k)
     residual, basin, cls = _residuals(obs, sim, _flow_classes(sim, k), offset_fraction)
-    return _fit(_Sorted.of(residual, basin, cls, k), level=level, fraction=offset_fraction)
+    model = _fit(_Sorted.of(residual, basin, cls, k), levels=levels, fraction=offset_fraction)
+    if class_levels is None:
+        return model
+    return replace(model, level=level, class_levels=levels)
+
+
+def _class_levels(class_levels, level: float, n_classes: int) -> np.ndarray:
+    if class_levels is None:
+        return np.full(n_classes, level)
+    levels = np.asarray(class_levels, dtype=float).ravel()
+    if levels.shape != (n_classes,):
+        raise ValueError(
+            f"class_levels needs one level per flow class ({n_classes}): got {levels}"
+        )
+    for value in levels:
+        _check_level(float(value))
+    return levels
 
 
 def basin_offsets(simulated: np.ndarray, *, fraction: float = OFFSET_FRACTION) -> np.ndarray:
@@ -314,17 +377,17 @@ class _Sorted:
         return cls(tuple(values), tuple(basins))
 
 
-def _fit(data: _Sorted, *, level: float, fraction: float):
-    """Conformal error model from the sorted residuals of each flow class."""
+def _fit(data: _Sorted, *, levels: np.ndarray, fraction: float):
+    """Conformal error model from the sorted residuals of each flow class (a level per class)."""
     n_classes = len(data.values)
     lower, upper, n_days = np.empty(n_classes), np.empty(n_classes), np.zeros(n_classes)
     used = set()
     for k, (values, basins) in enumerate(zip(data.values, data.basins, strict=True)):
-        lower[k], upper[k] = _pooled_bounds(values, basins, level)
+        lower[k], upper[k] = _pooled_bounds(values, basins, float(levels[k]))
         n_days[k] = len(values)
         used.update(np.unique(basins).tolist())
     return ConformalErrorModel(
-        level=level,
+        level=float(levels[0]),
         offset_fraction=fraction,
         edges=np.linspace(0.0, 1.0, n_classes + 1),
         lower_q=np.minimum(lower, 0.0),
@@ -388,15 +451,43 @@ def _held_out_coverage(observed: pd.DataFrame, simulated: pd.DataFrame, level: f
         low = (sim + offsets) * np.exp(np.minimum(lower, 0.0)[classes, columns]) - offsets
         high = (sim + offsets) * np.exp(np.maximum(upper, 0.0)[classes, columns]) - offsets
     low, high = np.clip(np.minimum(low, sim), 0.0, None), np.maximum(high, sim)
+    shares = _coverage_shares(obs, sim, low, high, k)
+    valid = np.isfinite(obs)
+    return {
+        "coverage": _mean_share(shares["all"]),
+        **{f"coverage_decile_{d}": _mean_share(shares[f"decile {d}"]) for d in REPORTED_DECILES},
+        "n_days": int(valid.sum()),
+        "n_basins": int(valid.any(axis=0).sum()),
+    }
+
+
+def _coverage_shares(obs, sim, low, high, n_classes: int) -> dict[str, np.ndarray]:
+    """Share of each basin's observed days inside its bounds: all days, per class, per decile.
+
+    Classes and deciles are within-basin quantiles of the simulated flow (as in the error
+    model), so they exist at an ungauged basin. A basin without an observed day in a group gets
+    NaN there.
+    """
     valid = np.isfinite(obs)
     inside = (obs >= low) & (obs <= high) & valid
-    scored = valid.any(axis=0)
-    shares = inside[:, scored].sum(axis=0) / valid[:, scored].sum(axis=0)
-    return {
-        "coverage": float(np.mean(shares)) if len(shares) else np.nan,
-        "n_days": int(valid.sum()),
-        "n_basins": int(scored.sum()),
-    }
+    groups = {"all": np.ones_like(valid)}
+    classes = _flow_classes(sim, n_classes)
+    for c in range(n_classes):
+        groups[f"class {c + 1}"] = classes == c
+    deciles = _flow_classes(sim, 10)
+    for d in REPORTED_DECILES:
+        groups[f"decile {d}"] = deciles == d - 1
+    shares = {}
+    for name, member in groups.items():
+        days = (valid & member).sum(axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            shares[name] = np.where(days > 0, (inside & member).sum(axis=0) / days, np.nan)
+    return shares
+
+
+def _mean_share(shares: np.ndarray) -> float:
+    shares = shares[np.isfinite(shares)]
+    return float(np.mean(shares)) if len(shares) else np.nan
 
 
 def _held_out_quantiles(
@@ -487,7 +578,9 @@ def loo_coverage(result: RunResult, *, level: float) -> pd.DataFrame:
     Returns
     -------
     DataFrame
-        ``model``, ``method``, ``level``, ``coverage``, ``n_days``, ``n_basins``.
+        ``model``, ``method``, ``level``, ``coverage``, ``coverage_decile_1`` and
+        ``coverage_decile_10`` (the same on the days in the lowest and highest tenth of each
+        basin's simulated flow), ``n_days``, ``n_basins``.
     """
     level = _check_level(level)
     rows = []
@@ -496,8 +589,9 @@ def loo_coverage(result: RunResult, *, level: float) -> pd.DataFrame:
         for method in loo.methods:
             measured = _held_out_coverage(loo.observed, loo.simulated[method], level)
             rows.append({"model": model, "method": method, "level": level, **measured})
+    deciles = [f"coverage_decile_{d}" for d in REPORTED_DECILES]
     return pd.DataFrame(
-        rows, columns=["model", "method", "level", "coverage", "n_days", "n_basins"]
+        rows, columns=["model", "method", "level", "coverage", *deciles, "n_days", "n_basins"]
     )
 
 
@@ -768,11 +862,12 @@ def predict_ungauged(result: RunResult, *, level: float | None = None) -> Predic
     error_model = conformal_bounds(
         run.loo.observed, run.loo.simulated[result.chosen_method], level=level
     )
+    held_out, error_model, held_notes = _held_out_check(result, error_model, level)
     low, high = error_model.bounds(flow_mm)
     area = result.region.attributes.loc[targets, "area_km2"].astype(float)
     statistics = flow_statistics(flow_mm, area_km2=area)
     usable = applicability(context.attributes, target_attributes, result.attributes)
-    coverage = loo_coverage(result, level=level)
+    coverage = _with_held_out(loo_coverage(result, level=level), result, held_out)
     table = _table(result, target_attributes, parameters, statistics, usable)
     return Prediction(
         model=result.chosen_model,
@@ -782,12 +877,17 @@ def predict_ungauged(result: RunResult, *, level: float | None = None) -> Predic
         flows=_long_flows(flow_mm, low, high, area),
         coverage=coverage,
         error_model=error_model.table,
-        notes=tuple(notes + _notes(result, error_model, coverage, usable, level)),
+        notes=tuple(notes + _notes(result, error_model, coverage, usable, level) + held_notes),
+        held_out=held_out,
     )
 
 
 def fit_transfers(
-    context: FoldContext, *, level: float, train: Sequence[str] | None = None
+    context: FoldContext,
+    *,
+    level: float,
+    train: Sequence[str] | None = None,
+    methods: Sequence[str] | None = None,
 ) -> tuple[dict[str, object], list[str]]:
     """Every configured method and the median, fit on the gauged basins of ``context``.
 
@@ -799,6 +899,8 @@ def fit_transfers(
         Interval level of regression and median.
     train : sequence of str, optional
         Gauged basins to fit on (default: all).
+    methods : sequence of str, optional
+        Only these methods (default: every configured method and the median).
 
     Returns
     -------
@@ -810,9 +912,10 @@ def fit_transfers(
     train = list(context.calibrated.index if train is None else train)
     attributes = list(options.attributes) if options.attributes else None
     estimators = {}
+    chosen = method_order(options.methods)[1:] if methods is None else tuple(methods)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", InputWarning)
-        for method in method_order(options.methods)[1:]:
+        for method in chosen:
             estimator = make_transfer(
                 method,
                 attributes=attributes if method != "proximity" else None,
@@ -947,3 +1050,383 @@ def _notes(result, error_model: ConformalErrorModel, coverage, usable, level) ->
             "gauged basins or lower [prediction] level"
         )
     return notes
+
+
+# --------------------------------------------------------------------------------------------
+# Held-out check: bounds at basins held out of the whole fit
+
+
+@dataclass(frozen=True)
+class HeldOutRepeat:
+    """One repeat of the held-out check (:func:`held_out_flows`).
+
+    Attributes
+    ----------
+    held_out : tuple of str
+        The gauged basins treated as ungauged in this repeat.
+    training_flow : DataFrame
+        Evaluation days x the other gauged basins (the training basins): each one's flow
+        transferred from the other training basins only (leave-one-out within the training
+        basins), mm/day. The error model of the repeat is built from these.
+    held_out_flow : DataFrame
+        Evaluation days x held-out basins: flow transferred from the training basins, mm/day.
+    n_simulated, n_reused : int
+        Basins of the repeat whose flow was simulated afresh, and whose donation equalled their
+        leave-one-out donation so that the leave-one-out flow was reused.
+    """
+
+    held_out: tuple[str, ...]
+    training_flow: pd.DataFrame
+    held_out_flow: pd.DataFrame
+    n_simulated: int
+    n_reused: int
+
+
+def held_out_flows(
+    result: RunResult,
+    *,
+    model: str,
+    method: str,
+    repeats: int,
+    fraction: float = HELD_OUT_FRACTION,
+    seed: int = HELD_OUT_SEED,
+) -> list[HeldOutRepeat]:
+    """Flows of gauged basins held out of the WHOLE fit, in repeated random draws.
+
+    In each repeat a random ``fraction`` of the gauged basins (at least one) is treated as
+    ungauged: the transfer ``method`` is fit on the other (training) basins only, and gives the
+    held-out basins their flow; the training basins get their flow from the other training
+    basins (leave-one-out within them), so that the error model of the repeat never sees a
+    held-out basin, not even as a donor. Donors nested in or overlapping a target are left out
+    as in leave-one-out. Transfers are refit in every fold (cheap); a basin's flow is simulated
+    again only when its donation (donors, weights and parameter sets) differs from its
+    leave-one-out donation, else its leave-one-out flow is reused. Statistics of these flows
+    give held-out checks of statistic bounds too.
+
+    Parameters
+    ----------
+    result : RunResult
+        A finished run (leave-one-out done).
+    model, method : str
+        The storage model and transfer method checked (usually the chosen ones).
+    repeats : int
+        Number of random draws (>= 1).
+    fraction : float, default :data:`HELD_OUT_FRACTION`
+        Share of the gauged basins held out per draw, in (0, 1).
+    seed : int, default :data:`HELD_OUT_SEED`
+        Seed of the draws.
+
+    Returns
+    -------
+    list of HeldOutRepeat
+    """
+    if int(repeats) != repeats or repeats < 1:
+        raise ValueError(f"repeats must be a whole number >= 1: got {repeats!r}")
+    if not 0.0 < fraction < 1.0:
+        raise ValueError(f"fraction must lie strictly between 0 and 1: got {fraction!r}")
+    run = result.runs[model]
+    gauged = [str(b) for b in run.loo.observed.columns]
+    size = max(1, round(fraction * len(gauged)))
+    if size > len(gauged) - 3:
+        raise InputError(
+            f"the held-out check needs at least {size + 3} gauged basins to hold out {size}; "
+            f"found {len(gauged)}"
+        )
+    folds = _HeldOutFolds(run.context, run.loo, method, level=result.settings.prediction.level)
+    draws = []
+    for held in _held_out_draws(gauged, size, int(repeats), seed):
+        training = [b for b in gauged if b not in held]
+        draws.append(folds.repeat(held, training))
+    return draws
+
+
+def _held_out_draws(gauged: list[str], size: int, repeats: int, seed: int) -> list[tuple]:
+    """Random groups of ``size`` basins, every basin held out as evenly as the count allows.
+
+    The basins are shuffled and cut into consecutive groups; when too few remain for a group,
+    a new shuffle of the others tops it up (no basin twice in one group).
+    """
+    rng = np.random.default_rng(seed)
+    queue: list[str] = []
+    draws = []
+    for _ in range(repeats):
+        if len(queue) < size:
+            rest = [b for b in gauged if b not in queue]
+            queue += [rest[i] for i in rng.permutation(len(rest))]
+        draws.append(tuple(sorted(queue[:size])))
+        queue = queue[size:]
+    return draws
+
+
+class _HeldOutFolds:
+    """Folds of the held-out check for one (model, method); caches leave-one-out donations."""
+
+    def __init__(self, context: FoldContext, loo, method: str, *, level: float) -> None:
+        self.context, self.loo, self.method, self.level = context, loo, method, level
+        self._loo_donations: dict[str, Donation] = {}
+        self.simulated = self.reused = 0
+
+    def repeat(self, held: tuple[str, ...], training: list[str]) -> HeldOutRepeat:
+        start_simulated, start_reused = self.simulated, self.reused
+        training_flow = self._flows(training, pool=training)
+        held_flow = self._flows(list(held), pool=training)
+        return HeldOutRepeat(
+            held_out=held,
+            training_flow=training_flow,
+            held_out_flow=held_flow,
+            n_simulated=self.simulated - start_simulated,
+            n_reused=self.reused - start_reused,
+        )
+
+    def _flows(self, targets: list[str], *, pool: list[str]) -> pd.DataFrame:
+        columns = [self._flow(target, pool) for target in targets]
+        index = self.loo.observed.index
+        return pd.DataFrame(
+            np.column_stack(columns), index=index, columns=pd.Index(targets, name="basin_id")
+        )
+
+    def _flow(self, target: str, pool: list[str]) -> np.ndarray:
+        donation = self._donation(target, pool)
+        if self.method in REUSABLE_METHODS and _same_donation(
+            donation, self._loo_donation(target)
+        ):
+            self.reused += 1
+            return self.loo.simulated[self.method][target].to_numpy(dtype=float)
+        self.simulated += 1
+        return method_flows(self.context, donation, [target])[self.context.evaluation, 0]
+
+    def _loo_donation(self, target: str) -> Donation:
+        if target not in self._loo_donations:
+            everyone = [str(b) for b in self.context.calibrated.index]
+            self._loo_donations[target] = self._donation(target, everyone)
+        return self._loo_donations[target]
+
+    def _donation(self, target: str, pool: list[str]) -> Donation:
+        drop = {target, *self.context.excluded.get(target, ())}
+        train = [b for b in pool if b not in drop]
+        estimators, _ = fit_transfers(
+            self.context, level=self.level, train=train, methods=[self.method]
+        )
+        return estimators[self.method].donate(self.context.attributes.loc[[target]])
+
+
+def _same_donation(first: Donation, second: Donation) -> bool:
+    """Same donors with the same weights and parameter sets (so the same flow)."""
+    columns = ["donor_id", "weight", *first.parameters]
+    a, b = first.sets[columns], second.sets[columns]
+    if a.shape != b.shape or first.combine != second.combine:
+        return False
+    if not (a["donor_id"].to_numpy() == b["donor_id"].to_numpy()).all():
+        return False
+    numbers = columns[1:]
+    return bool(
+        np.allclose(
+            a[numbers].to_numpy(dtype=float), b[numbers].to_numpy(dtype=float), rtol=1e-12, atol=0
+        )
+    )
+
+
+def held_out_coverage(
+    observed: pd.DataFrame,
+    repeats: Sequence[HeldOutRepeat],
+    *,
+    level: float,
+    n_classes: int | None = None,
+    class_levels: Sequence[float] | None = None,
+) -> pd.DataFrame:
+    """Coverage of daily flow bounds at basins held out of the whole fit.
+
+    In every repeat the conformal error model (:func:`conformal_bounds`) is built from the
+    training basins' flows only and applied to the held-out basins; the share of each held-out
+    basin's observed days inside its bounds is counted, on all days, per flow class of the error
+    model and on the lowest and highest deciles of its simulated flow. Each (repeat, basin)
+    pair weighs the same in the mean.
+
+    Parameters
+    ----------
+    observed : DataFrame
+        Evaluation days x gauged basins, observed flow, mm/day (NaN = missing).
+    repeats : sequence of HeldOutRepeat
+        From :func:`held_out_flows`.
+    level : float
+        Nominal level of the bounds.
+    n_classes : int, optional
+        Flow classes of the error model (default: chosen from the training basins' records).
+    class_levels : sequence of float, optional
+        Level per flow class (a widened error model); default ``level`` everywhere.
+
+    Returns
+    -------
+    DataFrame
+        Indexed by ``flow_class`` (``all``, ``class 1`` .., ``decile 1``, ``decile 10``):
+        ``coverage``, ``n_pairs`` ((repeat, basin) pairs with observed days in the class).
+    """
+    level = _check_level(level)
+    shares: dict[str, list[float]] = {}
+    for draw in repeats:
+        training = list(draw.training_flow.columns)
+        classes = n_classes or _n_classes(observed[training].to_numpy(dtype=float))
+        model = conformal_bounds(
+            observed[training],
+            draw.training_flow,
+            level=level,
+            n_classes=classes,
+            class_levels=class_levels,
+        )
+        low, high = model.bounds(draw.held_out_flow)
+        held = list(draw.held_out_flow.columns)
+        obs = observed[held].to_numpy(dtype=float)
+        sim = draw.held_out_flow.to_numpy(dtype=float)
+        per_group = _coverage_shares(obs, sim, low.to_numpy(), high.to_numpy(), classes)
+        for name, values in per_group.items():
+            shares.setdefault(name, []).extend(values[np.isfinite(values)].tolist())
+    rows = [
+        {
+            "flow_class": name,
+            "coverage": float(np.mean(values)) if values else np.nan,
+            "n_pairs": len(values),
+        }
+        for name, values in shares.items()
+    ]
+    return pd.DataFrame(rows, columns=["flow_class", "coverage", "n_pairs"]).set_index(
+        "flow_class"
+    )
+
+
+def widened_levels(coverage: Sequence[float], *, level: float) -> np.ndarray:
+    """Level per flow class after the held-out check: nominal, or raised by the shortfall.
+
+    A class whose held-out coverage falls short of ``level`` by more than
+    :data:`WIDEN_TOLERANCE` gets its quantiles at ``level + shortfall`` (at most
+    :data:`MAX_CLASS_LEVEL`); the others, and classes without a measurement (NaN), keep
+    ``level``.
+
+    Parameters
+    ----------
+    coverage : sequence of float
+        Held-out coverage of each flow class (0 .. 1).
+    level : float
+        Nominal level.
+
+    Returns
+    -------
+    ndarray
+        One level per class.
+    """
+    level = _check_level(level)
+    shortfall = np.nan_to_num(level - np.asarray(coverage, dtype=float), nan=0.0)
+    widen = shortfall > WIDEN_TOLERANCE
+    return np.where(widen, np.minimum(level + shortfall, MAX_CLASS_LEVEL), level)
+
+
+def _held_out_check(result, error_model: ConformalErrorModel, level: float):
+    """Held-out coverage of the chosen bounds; classes short by > tolerance are widened.
+
+    Returns (table or None, the error model to use, notes).
+    """
+    run = result.runs[result.chosen_model]
+    repeats = getattr(result.settings.prediction, "held_out_repeats", 0)
+    n_gauged = run.loo.observed.shape[1]
+    if repeats == 0:
+        return (
+            None,
+            error_model,
+            ["no held-out check of the bounds ([prediction] held_out_repeats = 0)"],
+        )
+    if n_gauged < MIN_HELD_OUT_BASINS:
+        return (
+            None,
+            error_model,
+            [
+                f"no held-out check of the bounds: {n_gauged} gauged basins, fewer than "
+                f"{MIN_HELD_OUT_BASINS}"
+            ],
+        )
+    method = result.chosen_method
+    draws = held_out_flows(result, model=result.chosen_model, method=method, repeats=repeats)
+    observed, simulated = run.loo.observed, run.loo.simulated[method]
+    k = error_model.n_classes
+    table = held_out_coverage(observed, draws, level=level, n_classes=k)
+    table = table.rename(columns={"coverage": "held_out_coverage"})
+    measured = [table.loc[f"class {c + 1}", "held_out_coverage"] for c in range(k)]
+    levels = widened_levels(measured, level=level)
+    widen = levels > level
+    table["level_used"] = np.nan
+    for c in range(k):
+        table.loc[f"class {c + 1}", "level_used"] = levels[c]
+    if widen.any():
+        error_model = conformal_bounds(
+            observed, simulated, level=level, n_classes=k, class_levels=levels
+        )
+        after = held_out_coverage(observed, draws, level=level, n_classes=k, class_levels=levels)
+        table["held_out_coverage_widened"] = after["coverage"]
+    else:
+        table["held_out_coverage_widened"] = table["held_out_coverage"]
+    table = table.reset_index()
+    table.attrs.update(
+        repeats=len(draws),
+        basins=len(draws[0].held_out),
+        simulated=sum(d.n_simulated for d in draws),
+        reused=sum(d.n_reused for d in draws),
+        widened={c + 1: (level, float(levels[c])) for c in np.flatnonzero(widen)},
+    )
+    return table, error_model, _held_out_notes(table, level, n_gauged)
+
+
+def _held_out_notes(table: pd.DataFrame, level: float, n_gauged: int) -> list[str]:
+    info = table.attrs
+    rows = table.set_index("flow_class")["held_out_coverage"]
+    deciles = ", ".join(
+        f"{'lowest' if d == 1 else 'highest'} decile {rows.get(f'decile {d}', np.nan):.1%}"
+        for d in REPORTED_DECILES
+    )
+    notes = [
+        f"held-out check of the {level:.0%} bounds: {info['repeats']} repeats, each holding "
+        f"{info['basins']} of {n_gauged} gauged basins out of the whole fit (transfer and error "
+        f"model; seed {HELD_OUT_SEED}); coverage at the held-out basins {rows['all']:.1%} "
+        f"({deciles}); {info['simulated']} basin flows simulated afresh, {info['reused']} "
+        "reused from leave-one-out"
+    ]
+    if info["widened"]:
+        widened = ", ".join(f"class {c} to {new:.1%}" for c, (_, new) in info["widened"].items())
+        after = table.set_index("flow_class")["held_out_coverage_widened"]["all"]
+        notes.append(
+            f"bounds widened where the held-out coverage fell short of {level:.0%} by more than "
+            f"{WIDEN_TOLERANCE:.2f}: quantiles of {widened} (flow classes of the error model); "
+            f"on the same repeats the widened bounds cover {after:.1%} (not an independent check)"
+        )
+    return notes
+
+
+def _with_held_out(coverage: pd.DataFrame, result, held_out: pd.DataFrame | None) -> pd.DataFrame:
+    """Coverage table with the held-out columns filled on the chosen (model, method) row."""
+    coverage = coverage.copy()
+    columns = {
+        "held_out_coverage": np.nan,
+        **{f"held_out_coverage_decile_{d}": np.nan for d in REPORTED_DECILES},
+        "held_out_coverage_widened": np.nan,
+        "held_out_repeats": 0,
+        "held_out_basins": 0,
+        "widened_classes": "",
+    }
+    for name, default in columns.items():
+        coverage[name] = default
+    if held_out is None:
+        return coverage
+    chosen = (coverage["model"] == result.chosen_model) & (
+        coverage["method"] == result.chosen_method
+    )
+    rows = held_out.set_index("flow_class")
+    coverage.loc[chosen, "held_out_coverage"] = rows.loc["all", "held_out_coverage"]
+    for d in REPORTED_DECILES:
+        value = rows["held_out_coverage"].get(f"decile {d}", np.nan)
+        coverage.loc[chosen, f"held_out_coverage_decile_{d}"] = value
+    coverage.loc[chosen, "held_out_coverage_widened"] = rows.loc[
+        "all", "held_out_coverage_widened"
+    ]
+    coverage.loc[chosen, "held_out_repeats"] = held_out.attrs["repeats"]
+    coverage.loc[chosen, "held_out_basins"] = held_out.attrs["basins"]
+    coverage.loc[chosen, "widened_classes"] = "; ".join(
+        f"{c}: {old:.2f} -> {new:.3f}" for c, (old, new) in held_out.attrs["widened"].items()
+    )
+    return coverage

@@ -11,15 +11,21 @@ from scipy.spatial import distance
 from regional.errors import InputError
 from regional.predict import (
     FLOW_COLUMNS,
+    MAX_CLASS_LEVEL,
     OFFSET_FRACTION,
     STATISTIC_COLUMNS,
+    WIDEN_TOLERANCE,
+    HeldOutRepeat,
     applicability,
     conformal_bounds,
     fit_transfers,
     flow_statistics,
+    held_out_coverage,
+    held_out_flows,
     loo_coverage,
     method_flows,
     predict_ungauged,
+    widened_levels,
 )
 
 
@@ -394,10 +400,178 @@ def test_held_out_coverage_equals_refitting_without_each_basin():
     for j in range(n):
         others = basin != j
         data = predict._Sorted.of(residual[others], basin[others], cls[others], k)
-        model = predict._fit(data, level=0.8, fraction=predict.OFFSET_FRACTION)
+        model = predict._fit(data, levels=np.full(k, 0.8), fraction=predict.OFFSET_FRACTION)
         low, high = predict._apply(sim[:, j], classes[:, j], offsets[j], model)
         valid = np.isfinite(obs[:, j])
         shares.append(((obs[:, j] >= low) & (obs[:, j] <= high))[valid].mean())
     assert k > 1
     assert fast["coverage"] == pytest.approx(np.mean(shares), abs=1e-12)
     assert fast["n_basins"] == n
+
+
+# --------------------------------------------------------------------------------------------
+# Held-out check: basins held out of the whole fit
+
+
+def test_held_out_draws_hold_every_basin_out_evenly():
+    from regional.predict import _held_out_draws
+
+    basins = [f"B{i:02d}" for i in range(34)]
+    draws = _held_out_draws(basins, 3, 22, seed=1)
+    assert draws == _held_out_draws(basins, 3, 22, seed=1)  # seeded
+    assert draws != _held_out_draws(basins, 3, 22, seed=2)
+    assert all(len(set(d)) == 3 for d in draws)
+    counts = pd.Series([b for d in draws for b in d]).value_counts()
+    assert set(counts.index) == set(basins)
+    assert counts.max() - counts.min() <= 1  # 66 places over 34 basins: each once or twice
+
+
+def test_held_out_basins_never_reach_the_fit(demo_result):
+    # Independence: giving the held-out basins absurd calibrated parameters must change
+    # nothing in the repeat: not the training basins' flows (the error model's material) and
+    # not the held-out basins' own flows (they are transferred from the training basins).
+    import dataclasses
+    from types import SimpleNamespace
+
+    model, method = demo_result.chosen_model, "regression"
+    run = demo_result.runs[model]
+    (first,) = held_out_flows(demo_result, model=model, method=method, repeats=1, seed=3)
+    calibrated = run.context.calibrated.copy()
+    calibrated.loc[list(first.held_out), "k_per_day"] = 1.4  # far from every demo basin
+    poisoned = SimpleNamespace(
+        runs={
+            model: SimpleNamespace(
+                context=dataclasses.replace(run.context, calibrated=calibrated), loo=run.loo
+            )
+        },
+        settings=demo_result.settings,
+    )
+    (again,) = held_out_flows(poisoned, model=model, method=method, repeats=1, seed=3)
+    assert again.held_out == first.held_out
+    pd.testing.assert_frame_equal(again.training_flow, first.training_flow)
+    pd.testing.assert_frame_equal(again.held_out_flow, first.held_out_flow)
+    assert first.n_simulated == len(run.loo.observed.columns) and first.n_reused == 0
+
+
+def test_held_out_flows_reuse_leave_one_out_only_where_the_fold_is_the_same(demo_result):
+    # Proximity donors that include no held-out basin give the leave-one-out donation again:
+    # those flows are reused; every flow, reused or not, equals a fresh fit on the training
+    # basins simulated along the leave-one-out path.
+    model = demo_result.chosen_model
+    run = demo_result.runs[model]
+    context = run.context
+    (draw,) = held_out_flows(demo_result, model=model, method="proximity", repeats=1, seed=4)
+    assert draw.n_reused > 0 and draw.n_simulated > 0
+    training = list(draw.training_flow.columns)
+    assert set(training).isdisjoint(draw.held_out)
+    for target in [*training[:4], *draw.held_out]:
+        pool = [b for b in training if b != target and b not in context.excluded.get(target, ())]
+        estimators, _ = fit_transfers(context, level=0.9, train=pool, methods=["proximity"])
+        donation = estimators["proximity"].donate(context.attributes.loc[[target]])
+        assert set(donation.sets["donor_id"]).isdisjoint(draw.held_out)
+        expected = method_flows(context, donation, [target])[context.evaluation, 0]
+        frame = draw.held_out_flow if target in draw.held_out else draw.training_flow
+        np.testing.assert_allclose(frame[target].to_numpy(), expected, rtol=1e-12)
+
+
+def _synthetic_repeats(n_basins=30, days=730, held_noise=0.3, seed=0):
+    """Training basins with log errors N(0, 0.3); held-out basins with log errors N(0, held)."""
+    rng = np.random.default_rng(seed)
+    index = pd.date_range("2001-01-01", periods=days)
+    ids = [f"S{i:02d}" for i in range(n_basins)]
+    sim = pd.DataFrame(rng.gamma(2.0, 1.0, (days, n_basins)), index=index, columns=ids)
+    noise = np.full(n_basins, 0.3)
+    noise[:3] = held_noise
+    obs = sim * np.exp(rng.normal(0.0, 1.0, (days, n_basins)) * noise)
+    repeat = HeldOutRepeat(
+        held_out=tuple(ids[:3]),
+        training_flow=sim[ids[3:]],
+        held_out_flow=sim[ids[:3]],
+        n_simulated=n_basins,
+        n_reused=0,
+    )
+    return obs, [repeat]
+
+
+def test_held_out_coverage_near_nominal_when_basins_are_alike():
+    # Exchangeable basins (same lognormal error): bounds built on the others hold about the
+    # nominal share of a held-out basin's days (split-conformal, Lei et al. 2018).
+    obs, repeats = _synthetic_repeats(held_noise=0.3)
+    table = held_out_coverage(obs, repeats, level=0.9, n_classes=5)
+    assert list(table.index) == [
+        "all",
+        *(f"class {c}" for c in range(1, 6)),
+        "decile 1",
+        "decile 10",
+    ]
+    assert table.loc["all", "coverage"] == pytest.approx(0.9, abs=0.03)
+    assert (table["n_pairs"] == 3).all()
+
+
+def test_noisier_held_out_basins_fall_short_and_widening_restores_them():
+    obs, repeats = _synthetic_repeats(held_noise=0.6)
+    table = held_out_coverage(obs, repeats, level=0.9, n_classes=5)
+    # log errors twice as wide: the 90 % bounds hold P(|Z| < 1.645 / 2) = 0.59 of the days
+    assert table.loc["all", "coverage"] == pytest.approx(
+        2 * stats.norm.cdf(1.645 / 2) - 1, abs=0.05
+    )
+    levels = widened_levels(table.loc[[f"class {c}" for c in range(1, 6)], "coverage"], level=0.9)
+    assert (levels > 0.9).all() and (levels <= MAX_CLASS_LEVEL).all()
+    widened = held_out_coverage(obs, repeats, level=0.9, n_classes=5, class_levels=levels)
+    assert (widened["coverage"] > table["coverage"]).all()
+
+
+def test_widened_levels_rule():
+    # short by 0.06 (> WIDEN_TOLERANCE): raised by the shortfall; short by 0.02: kept; no
+    # measurement: kept; short by 0.4: capped at MAX_CLASS_LEVEL
+    levels = widened_levels([0.90, 0.88, 0.84, np.nan, 0.5], level=0.9)
+    np.testing.assert_allclose(levels, [0.9, 0.9, 0.96, 0.9, MAX_CLASS_LEVEL])
+    assert 0.02 <= WIDEN_TOLERANCE < 0.06
+
+
+def test_demo_prediction_reports_the_held_out_check(prediction, demo_result):
+    row = prediction.coverage.set_index(["model", "method"]).loc[
+        (demo_result.chosen_model, demo_result.chosen_method)
+    ]
+    assert row["held_out_repeats"] == 10 and row["held_out_basins"] == 3  # a tenth of 34
+    for column in (
+        "held_out_coverage",
+        "held_out_coverage_decile_1",
+        "held_out_coverage_decile_10",
+    ):
+        assert 0.8 <= row[column] <= 0.97, (column, row[column])
+    table = prediction.held_out.set_index("flow_class")
+    assert {"all", "decile 1", "decile 10", "class 1"} <= set(table.index)
+    classes = [c for c in table.index if c.startswith("class")]
+    np.testing.assert_allclose(
+        table.loc[classes, "level_used"], prediction.error_model["level"].to_numpy()
+    )
+    assert any("held-out check" in note and "10 repeats" in note for note in prediction.notes)
+    others = prediction.coverage[prediction.coverage["method"] != demo_result.chosen_method]
+    assert others["held_out_coverage"].isna().all()
+
+
+def test_classes_short_of_the_level_are_widened_in_the_bounds(demo_result, monkeypatch):
+    # With no tolerance every flow class whose held-out coverage is below the level is rebuilt
+    # at level + shortfall: its quantiles grow, the others stay, and a note says so.
+    from regional import predict
+
+    monkeypatch.setattr(predict, "WIDEN_TOLERANCE", 0.0)
+    run = demo_result.runs[demo_result.chosen_model]
+    plain = conformal_bounds(
+        run.loo.observed, run.loo.simulated[demo_result.chosen_method], level=0.8
+    )
+    prediction = predict_ungauged(demo_result, level=0.8)
+    used = prediction.error_model["level"].to_numpy()
+    widened = used > 0.8
+    assert widened.any()
+    shortfall = 0.8 - prediction.held_out.set_index("flow_class")["held_out_coverage"]
+    classes = [f"class {c}" for c in range(1, len(used) + 1)]
+    np.testing.assert_allclose(used[widened], 0.8 + shortfall[classes].to_numpy()[widened])
+    upper, lower = prediction.error_model["upper_q"], prediction.error_model["lower_q"]
+    assert (upper.to_numpy()[widened] >= plain.upper_q[widened]).all()
+    assert (lower.to_numpy()[widened] <= plain.lower_q[widened]).all()
+    np.testing.assert_allclose(upper.to_numpy()[~widened], plain.upper_q[~widened])
+    assert any("bounds widened" in note for note in prediction.notes)
+    chosen = prediction.coverage[prediction.coverage["method"] == prediction.method].iloc[0]
+    assert chosen["widened_classes"].startswith(tuple(str(c) for c in range(1, 6)))
