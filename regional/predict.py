@@ -80,6 +80,12 @@ REUSABLE_METHODS = ("similarity", "proximity")
 """Donor methods whose fold may give the same donation without the held-out basins (then the
 leave-one-out flow is reused); regression and median refit on other basins always differ."""
 
+FAILED_NSE = 0.0
+"""Leave-one-out NSE at or below which transfer counts as failed at a gauged basin (no better
+than the mean observed flow)."""
+CLIMATE_ATTRIBUTE = "aridity"
+"""Attribute whose range of well-scored gauged basins bounds the climate transfer works in."""
+
 SUMMARY_STATISTICS = ("mean_flow_mm", "mean_flow_m3s", "q5_mm", "q50_mm", "q95_mm", "min7_mean_mm")
 """The headline statistics (mean flow, flow-duration points, 7-day minimum)."""
 STATISTIC_COLUMNS = (
@@ -809,13 +815,106 @@ def _mahalanobis(z_donors, z_targets) -> tuple[np.ndarray, float]:
     return d2, float(stats.chi2.ppf(APPLICABILITY_LEVEL, p))
 
 
-def _nearest_donor(z_donors, z_targets) -> tuple[np.ndarray, float]:
-    def distances(a, b):
-        return np.sqrt(np.maximum(((a[:, None, :] - b[None, :, :]) ** 2).sum(axis=2), 0.0))
+def _distances(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    return np.sqrt(np.maximum(((a[:, None, :] - b[None, :, :]) ** 2).sum(axis=2), 0.0))
 
-    among = distances(z_donors, z_donors)
+
+def _nearest_donor(z_donors, z_targets) -> tuple[np.ndarray, float]:
+    among = _distances(z_donors, z_donors)
     np.fill_diagonal(among, np.inf)
-    return distances(z_targets, z_donors).min(axis=1), float(among.min(axis=1).max())
+    return _distances(z_targets, z_donors).min(axis=1), float(among.min(axis=1).max())
+
+
+def transfer_skill(
+    attributes_gauged: pd.DataFrame,
+    attributes_targets: pd.DataFrame,
+    loo_nse: pd.Series,
+    *,
+    columns: Sequence[str],
+    n_nearest: int,
+) -> pd.DataFrame:
+    """Flag targets where the region's own leave-one-out shows transfer failing.
+
+    Two tests, either flags the target (``skill_applicable`` False, with the reason):
+
+    1. climate: where some gauged basins' leave-one-out NSE is at or below :data:`FAILED_NSE`,
+       the target's :data:`CLIMATE_ATTRIBUTE` (aridity, mean PET / mean P) lies outside the
+       range of the gauged basins where transfer scored above it (the climate in which the
+       region's donors transfer well);
+    2. nearest gauged basins: the median leave-one-out NSE of the ``n_nearest`` gauged basins
+       nearest to the target (Euclidean distance in attributes standardised with the gauged
+       basins' mean and standard deviation) is at or below :data:`FAILED_NSE`.
+
+    Parameters
+    ----------
+    attributes_gauged, attributes_targets : DataFrame
+        Gauged and target basins x attributes, indexed by basin id.
+    loo_nse : Series
+        Leave-one-out NSE of the chosen (model, method) per gauged basin (NaN = not scored).
+    columns : sequence of str
+        Attributes of the distance (numeric, complete).
+    n_nearest : int
+        Gauged basins taken as the target's nearest (>= 1; at most all gauged).
+
+    Returns
+    -------
+    DataFrame
+        Indexed by target ``basin_id``: ``skill_applicable`` (bool), ``skill_reason`` (str),
+        ``nearest_gauged`` (ids, comma separated, nearest first), ``nearest_loo_nse`` (their
+        median leave-one-out NSE), ``well_scored_low``, ``well_scored_high`` (the climate
+        attribute's range among well-scored gauged basins; NaN when no basin failed or the
+        attribute is absent).
+    """
+    columns = list(columns)
+    donors, targets = _attribute_arrays(attributes_gauged, attributes_targets, columns)
+    nse = loo_nse.reindex(attributes_gauged.index.astype(str)).to_numpy(dtype=float)
+    z_donors, z_targets = _standardised(donors, targets)
+    k = int(np.clip(n_nearest, 1, len(donors)))
+    order = np.argsort(_distances(z_targets, z_donors), axis=1, kind="stable")[:, :k]
+    ids = attributes_gauged.index.astype(str).to_numpy()
+    nearest_nse = np.array(
+        [np.nanmedian(nse[row]) if np.isfinite(nse[row]).any() else np.nan for row in order]
+    )
+    low, high = _well_scored_range(attributes_gauged, nse)
+    reasons: list[list[str]] = [[] for _ in range(len(targets))]
+    if np.isfinite(low):
+        climate = attributes_targets[CLIMATE_ATTRIBUTE].to_numpy(dtype=float)
+        for i in np.flatnonzero((climate < low) | (climate > high)):
+            side = "below" if climate[i] < low else "above"
+            reasons[i].append(
+                f"{CLIMATE_ATTRIBUTE} {climate[i]:.3g} {side} the range {low:.3g} to {high:.3g} "
+                f"of the gauged basins where transfer scored leave-one-out NSE > {FAILED_NSE:g} "
+                "(outside the climate in which this region's transfer works)"
+            )
+    for i in np.flatnonzero(nearest_nse <= FAILED_NSE):
+        reasons[i].append(
+            f"transfer failed at the {k} nearest gauged basins ({', '.join(ids[order[i]])}): "
+            f"median leave-one-out NSE {nearest_nse[i]:.2f}"
+        )
+    return pd.DataFrame(
+        {
+            "skill_applicable": [not r for r in reasons],
+            "skill_reason": ["; ".join(r) for r in reasons],
+            "nearest_gauged": [", ".join(ids[row]) for row in order],
+            "nearest_loo_nse": nearest_nse,
+            "well_scored_low": low,
+            "well_scored_high": high,
+        },
+        index=pd.Index(attributes_targets.index.astype(str), name="basin_id"),
+    )
+
+
+def _well_scored_range(attributes_gauged: pd.DataFrame, nse: np.ndarray) -> tuple[float, float]:
+    """Climate attribute's range over well-scored gauged basins; NaN when none failed."""
+    scored = np.isfinite(nse)
+    failed = scored & (nse <= FAILED_NSE)
+    if CLIMATE_ATTRIBUTE not in attributes_gauged.columns or not failed.any():
+        return np.nan, np.nan
+    climate = attributes_gauged[CLIMATE_ATTRIBUTE].to_numpy(dtype=float)
+    good = scored & ~failed & np.isfinite(climate)
+    if not good.any():  # failed everywhere: the nearest-basins test flags every target
+        return np.nan, np.nan
+    return float(climate[good].min()), float(climate[good].max())
 
 
 # --------------------------------------------------------------------------------------------
@@ -867,6 +966,17 @@ def predict_ungauged(result: RunResult, *, level: float | None = None) -> Predic
     area = result.region.attributes.loc[targets, "area_km2"].astype(float)
     statistics = flow_statistics(flow_mm, area_km2=area)
     usable = applicability(context.attributes, target_attributes, result.attributes)
+    skill = transfer_skill(
+        context.attributes,
+        target_attributes,
+        _loo_nse(run.loo, result.chosen_method),
+        columns=result.attributes,
+        n_nearest=context.options.n_donors,
+    )
+    usable = _with_skill(usable, skill)
+    low, high = _local_bounds(
+        flow_mm, low, high, skill, run.loo, result.chosen_method, error_model
+    )
     coverage = _with_held_out(loo_coverage(result, level=level), result, held_out)
     table = _table(result, target_attributes, parameters, statistics, usable)
     return Prediction(
@@ -1002,7 +1112,16 @@ def _table(result, target_attributes, parameters: Mapping[str, pd.DataFrame], st
     parts += [
         picked,
         statistics[list(STATISTIC_COLUMNS)],
-        usable[["applicable", "reason", "mahalanobis_d2", "nearest_donor_distance"]],
+        usable[
+            [
+                "applicable",
+                "reason",
+                "mahalanobis_d2",
+                "nearest_donor_distance",
+                "nearest_loo_nse",
+                "bounds_from",
+            ]
+        ],
     ]
     return pd.concat(parts, axis=1)
 
@@ -1043,6 +1162,16 @@ def _notes(result, error_model: ConformalErrorModel, coverage, usable, level) ->
         notes.append(
             f"{len(flagged)} of {len(usable)} ungauged basins lie outside what the gauged basins "
             f"support ({listed}); treat their estimates as extrapolation (see 'reason')"
+        )
+    failing = usable.index[~usable["skill_applicable"]]
+    if len(failing):
+        listed = ", ".join(map(str, failing[:5])) + (" ..." if len(failing) > 5 else "")
+        notes.append(
+            f"transfer is known to fail where {len(failing)} ungauged basin(s) lie ({listed}): "
+            "their climate lies outside the range where leave-one-out scored NSE > "
+            f"{FAILED_NSE:g}, or transfer failed at their nearest gauged basins; their bounds "
+            "carry those basins' leave-one-out errors (column 'bounds_from'); do not use their "
+            "estimates without a gauging campaign"
         )
     if (~np.isfinite(error_model.lower_q)).any() or (~np.isfinite(error_model.upper_q)).any():
         notes.append(
@@ -1430,3 +1559,55 @@ def _with_held_out(coverage: pd.DataFrame, result, held_out: pd.DataFrame | None
         f"{c}: {old:.2f} -> {new:.3f}" for c, (old, new) in held_out.attrs["widened"].items()
     )
     return coverage
+
+
+# --------------------------------------------------------------------------------------------
+# Where transfer is known to fail: applicability and the bounds' width
+
+
+def _loo_nse(loo, method: str) -> pd.Series:
+    scores = loo.scores[loo.scores["method"] == method]
+    return scores.set_index(scores["basin_id"].astype(str))["nse"].astype(float)
+
+
+def _with_skill(usable: pd.DataFrame, skill: pd.DataFrame) -> pd.DataFrame:
+    """Applicability with the transfer-skill tests: reasons joined, bounds source named."""
+    usable = usable.join(skill)
+    failing = ~usable["skill_applicable"]
+    joined = [
+        "; ".join(part for part in (reason, extra) if part)
+        for reason, extra in zip(usable["reason"], usable["skill_reason"], strict=True)
+    ]
+    usable["reason"] = joined
+    usable["applicable"] = usable["applicable"] & ~failing
+    usable["bounds_from"] = np.where(
+        failing, "nearest gauged basins: " + usable["nearest_gauged"], "all gauged basins"
+    )
+    return usable
+
+
+def _local_bounds(flow_mm, low, high, skill, loo, method, error_model: ConformalErrorModel):
+    """Where transfer is known to fail, widen the bounds to the nearest gauged basins' errors.
+
+    The error model is rebuilt from the leave-one-out residuals of the target's nearest gauged
+    basins only (same classes and class levels as the regional one) and the target's bounds
+    become the wider of the two on every day, so a target in a climate where transfer failed
+    carries the errors transfer made there.
+    """
+    failing = skill.index[~skill["skill_applicable"]]
+    if not len(failing):
+        return low, high
+    low, high = low.copy(), high.copy()
+    for target in failing:
+        nearest = skill.loc[target, "nearest_gauged"].split(", ")
+        local = conformal_bounds(
+            loo.observed[nearest],
+            loo.simulated[method][nearest],
+            level=error_model.level,
+            n_classes=error_model.n_classes,
+            class_levels=error_model.levels,
+        )
+        local_low, local_high = local.bounds(flow_mm[[target]])
+        low[target] = np.minimum(low[target], local_low[target])
+        high[target] = np.maximum(high[target], local_high[target])
+    return low, high

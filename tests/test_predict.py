@@ -25,6 +25,7 @@ from regional.predict import (
     loo_coverage,
     method_flows,
     predict_ungauged,
+    transfer_skill,
     widened_levels,
 )
 
@@ -290,7 +291,7 @@ def test_prediction_table_has_every_column(prediction, demo_result):
     for method in methods:
         expected += [f"k_per_day_{method}", f"k_per_day_{method}_low", f"k_per_day_{method}_high"]
     expected += ["method", "k_per_day", "k_per_day_low", "k_per_day_high"]
-    expected += [*STATISTIC_COLUMNS, "applicable", "reason"]
+    expected += [*STATISTIC_COLUMNS, "applicable", "reason", "nearest_loo_nse", "bounds_from"]
     assert expected == [c for c in table.columns if c in expected]
     assert set(expected) <= set(table.columns)
     assert table["applicable"].dtype == bool
@@ -575,3 +576,93 @@ def test_classes_short_of_the_level_are_widened_in_the_bounds(demo_result, monke
     assert any("bounds widened" in note for note in prediction.notes)
     chosen = prediction.coverage[prediction.coverage["method"] == prediction.method].iloc[0]
     assert chosen["widened_classes"].startswith(tuple(str(c) for c in range(1, 6)))
+
+
+# --------------------------------------------------------------------------------------------
+# Where transfer is known to fail
+
+
+@pytest.fixture
+def dry_failing_region():
+    """An invented region: 40 gauged basins; transfer fails (NSE < 0) where aridity > 1.1."""
+    rng = np.random.default_rng(21)
+    ids = [f"G{i:02d}" for i in range(40)]
+    gauged = pd.DataFrame(
+        {"aridity": np.linspace(0.3, 1.5, 40), "slope_mean": rng.uniform(1.0, 12.0, 40)},
+        index=ids,
+    )
+    nse = pd.Series(np.where(gauged["aridity"] > 1.1, -0.6, 0.75), index=ids)
+    targets = pd.DataFrame(
+        {"aridity": [0.5, 0.9, 1.3, 1.45], "slope_mean": [6.0, 5.0, 6.0, 7.0]},
+        index=["humid", "subhumid", "dry", "driest"],
+    )
+    return gauged, targets, nse
+
+
+def test_targets_in_the_climate_where_transfer_failed_are_flagged(dry_failing_region):
+    gauged, targets, nse = dry_failing_region
+    skill = transfer_skill(gauged, targets, nse, columns=["aridity", "slope_mean"], n_nearest=5)
+    # the well-scored range is that of the basins with NSE > 0: aridity 0.3 .. <= 1.1
+    well = gauged.loc[nse > 0, "aridity"]
+    assert skill["well_scored_low"].iloc[0] == pytest.approx(well.min())
+    assert skill["well_scored_high"].iloc[0] == pytest.approx(well.max())
+    assert skill.loc[["humid", "subhumid"], "skill_applicable"].all()
+    assert not skill.loc[["dry", "driest"], "skill_applicable"].any()
+    assert skill.loc["dry", "skill_reason"].startswith("aridity 1.3 above the range 0.3 to")
+    assert "transfer failed at the 5 nearest gauged basins" in skill.loc["driest", "skill_reason"]
+    assert (skill.loc[["dry", "driest"], "nearest_loo_nse"] < 0).all()
+    # every target lies inside the donors' attribute range: the plain range test misses them
+    plain = applicability(gauged, targets, ["aridity", "slope_mean"])
+    assert plain["outside_range"].eq("").all()
+
+
+def test_no_failure_no_flag(dry_failing_region):
+    gauged, targets, nse = dry_failing_region
+    skill = transfer_skill(
+        gauged, targets, nse.abs(), columns=["aridity", "slope_mean"], n_nearest=5
+    )
+    assert skill["skill_applicable"].all() and (skill["skill_reason"] == "").all()
+    assert skill["well_scored_low"].isna().all()
+
+
+def test_nearest_gauged_basins_that_failed_flag_a_target_inside_the_climate_range():
+    # Failing basins clustered on steep slopes in mid climate: the climate range stays whole,
+    # the nearest-basins test catches a steep target.
+    ids = [f"G{i:02d}" for i in range(30)]
+    slope = np.r_[np.linspace(1.0, 8.0, 24), np.linspace(14.0, 16.0, 6)]
+    gauged = pd.DataFrame({"aridity": np.linspace(0.4, 1.0, 30)[::-1], "slope_mean": slope}, ids)
+    gauged.loc[ids[24:], "aridity"] = 0.7
+    nse = pd.Series(np.where(slope > 10, -1.0, 0.7), index=ids)
+    targets = pd.DataFrame({"aridity": [0.7, 0.7], "slope_mean": [15.0, 3.0]}, ["steep", "gentle"])
+    skill = transfer_skill(gauged, targets, nse, columns=["aridity", "slope_mean"], n_nearest=3)
+    assert not skill.loc["steep", "skill_applicable"]
+    assert skill.loc["steep", "skill_reason"].startswith("transfer failed at the 3 nearest")
+    assert skill.loc["gentle", "skill_applicable"]
+
+
+def test_failing_targets_get_the_nearest_basins_errors_in_their_bounds(demo_result, monkeypatch):
+    # With the failure threshold raised to NSE 0.9, the demo's weaker gauged basins count as
+    # failed: targets near them are flagged, their reason and 'bounds_from' say so, and their
+    # bounds are at least as wide as the regional ones on every day.
+    from regional import predict
+
+    regional_bounds = predict_ungauged(demo_result)
+    monkeypatch.setattr(predict, "FAILED_NSE", 0.9)
+    strict = predict_ungauged(demo_result)
+    table = strict.table
+    failing = table.index[table["bounds_from"].str.startswith("nearest gauged basins")]
+    assert len(failing) >= 1
+    assert (~table.loc[failing, "applicable"]).all()
+    assert table.loc[failing, "reason"].str.contains("leave-one-out NSE").all()
+    assert any("transfer is known to fail" in note for note in strict.notes)
+    width = {}
+    for name, pred in (("regional", regional_bounds), ("strict", strict)):
+        flows = pred.flows.set_index(["basin_id", "date"])
+        width[name] = flows["flow_high_mm"] - flows["flow_low_mm"]
+    wider = width["strict"].loc[list(failing)] >= width["regional"].loc[list(failing)] - 1e-12
+    assert wider.all()
+    assert (width["strict"].loc[list(failing)] > width["regional"].loc[list(failing)]).any()
+    others = table.index.difference(failing)
+    pd.testing.assert_series_equal(
+        width["strict"].loc[list(others)], width["regional"].loc[list(others)]
+    )
