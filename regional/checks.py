@@ -31,6 +31,17 @@ MIN_GAUGED = 3
 MIN_CALIBRATION_DAYS = 365
 #: How many offenders a message lists before "and N more".
 SHOWN = 5
+#: Default ceiling of daily precipitation, mm/day (``[series] max_precip_mm_per_day``). The
+#: greatest one-day rainfall on record is about 1,825 mm (Foc-Foc, La Reunion, 7-8 January
+#: 1966; WMO World Weather and Climate Extremes Archive); a value above the ceiling is a unit
+#: or missing-value-code error, not weather.
+MAX_PRECIP_MM_PER_DAY = 2000.0
+#: Ceiling of daily potential evapotranspiration, mm/day (common practice, no source: open-water
+#: evaporation in the hottest deserts stays below about 15 mm/day).
+MAX_PET_MM_PER_DAY = 30.0
+#: Plausible daily air temperature, deg C: the extremes on record are about -89 deg C (Vostok,
+#: 1983) and 57 deg C (Death Valley, 1913) in the WMO archive of weather extremes (from memory).
+TEMP_RANGE_C = (-90.0, 60.0)
 
 
 @dataclass(frozen=True)
@@ -134,6 +145,25 @@ CHECKS: dict[str, Check] = {
             "negative_forcing",
             "precipitation and PET must not be negative (mm/day)",
             "correct the values; a missing-value code such as -999 must be filled instead",
+        ),
+        Check(
+            "implausible_precip",
+            "daily precipitation must stay below the plausibility ceiling [series] "
+            "max_precip_mm_per_day (default 2,000 mm/day; the greatest one-day rainfall on "
+            "record is about 1,825 mm, WMO archive of weather extremes)",
+            "check the unit (mm/day, not 0.1 mm or m3) and missing-value codes such as 99999; "
+            "raise max_precip_mm_per_day only for a value you have verified",
+        ),
+        Check(
+            "implausible_pet",
+            f"daily PET must not exceed {MAX_PET_MM_PER_DAY:g} mm/day",
+            "check the unit (mm/day) and missing-value codes",
+        ),
+        Check(
+            "implausible_temp",
+            f"daily temperature must lie within {TEMP_RANGE_C[0]:g}..{TEMP_RANGE_C[1]:g} deg C "
+            "(the extremes on record, WMO archive of weather extremes)",
+            "check the unit (deg C, not K or deg F) and missing-value codes",
         ),
         Check(
             "bad_flow",
@@ -264,6 +294,7 @@ def check_series(
     forcing_columns: Sequence[str],
     flow_column: str,
     basin_ids: Sequence[str],
+    max_precip_mm_per_day: float = MAX_PRECIP_MM_PER_DAY,
 ) -> pd.DataFrame:
     """Check the long series table read by :func:`regional.io.read_series` and convert it.
 
@@ -283,6 +314,9 @@ def check_series(
         Observed flow (any unit); empty cells are missing days, values must be >= 0.
     basin_ids : sequence of str
         Ids of the basins layer.
+    max_precip_mm_per_day : float, default 2000
+        Plausibility ceiling of precipitation (mm/day); PET must stay at or below
+        :data:`MAX_PET_MM_PER_DAY` and temperature within :data:`TEMP_RANGE_C`.
 
     Returns
     -------
@@ -294,8 +328,8 @@ def check_series(
     ------
     InputError
         Missing or unknown ids, basins without records, unparsable or duplicated dates,
-        non-numeric values, non-finite or negative forcing, negative or infinite flow, gaps in
-        the forcing.
+        non-numeric values, non-finite, negative or implausible forcing (naming file, column,
+        basin, date and value), negative or infinite flow, gaps in the forcing.
     """
     rows = raw.index
     ids = raw[id_column]
@@ -319,6 +353,12 @@ def check_series(
         bad = (values < 0).to_numpy()
         found = _basin_rows(ids[bad], rows[bad], values[bad])
         _fail_if("negative_forcing", f"{source}, column '{column}'", found)
+    ceilings = _plausible_ranges(forcing_columns, max_precip_mm_per_day)
+    for column, (name, low, high) in ceilings.items():
+        values = clean[column]
+        bad = ((values < low) | (values > high)).to_numpy()
+        found = _basin_dates(ids[bad], rows[bad], dates[bad], values[bad])
+        _fail_if(name, f"{source}, column '{column}'", found)
     flow = clean[flow_column]
     bad = ((flow < 0) | np.isinf(flow)).to_numpy()
     _fail_if(
@@ -588,6 +628,18 @@ def _numbers(raw: pd.Series, ids: pd.Series, rows: pd.Index, *, source: str) -> 
     return values
 
 
+def _plausible_ranges(
+    forcing_columns: Sequence[str], max_precip_mm_per_day: float
+) -> dict[str, tuple[str, float, float]]:
+    """Column -> (check name, lowest, highest plausible value) for precipitation, PET, temp."""
+    names = ("implausible_precip", "implausible_pet", "implausible_temp")
+    bounds = ((-np.inf, max_precip_mm_per_day), (-np.inf, MAX_PET_MM_PER_DAY), TEMP_RANGE_C)
+    return {
+        column: (name, *bound)
+        for column, name, bound in zip(forcing_columns, names, bounds, strict=False)
+    }
+
+
 def _check_forcing_gaps(frame: pd.DataFrame, *, source: str) -> None:
     grouped = frame.groupby("basin_id", sort=False)["date"]
     first, last, count = grouped.min(), grouped.max(), grouped.size()
@@ -660,6 +712,27 @@ def _basin_rows(ids: Sequence[str], rows: Sequence[int], values: object = None) 
     items = [
         f"basin '{basin}' ({word} {row}){value}"
         for basin, row, value in zip(ids[:SHOWN], rows[:SHOWN], shown[:SHOWN], strict=True)
+    ]
+    more = len(ids) - SHOWN
+    return ", ".join(items) + (f" and {more} more" if more > 0 else "")
+
+
+def _basin_dates(
+    ids: Sequence[str], rows: Sequence[int], dates: pd.Series, values: pd.Series
+) -> str:
+    """``basin 'a' on 2001-01-03 (line 5): 1e+09`` for each offender, or ''."""
+    word = getattr(rows, "name", None) or "row"
+    if not len(ids):
+        return ""
+    items = [
+        f"basin '{basin}' on {date:%Y-%m-%d} ({word} {row}): {_shown(value)}"
+        for basin, row, date, value in zip(
+            list(ids)[:SHOWN],
+            list(rows)[:SHOWN],
+            list(dates)[:SHOWN],
+            list(values)[:SHOWN],
+            strict=True,
+        )
     ]
     more = len(ids) - SHOWN
     return ", ".join(items) + (f" and {more} more" if more > 0 else "")

@@ -1,31 +1,46 @@
 """Command-line interface: argument parsing only; every command calls the library.
 
-``main(argv)`` returns the exit code: 0 success, 2 bad input (one message, no traceback).
+``main(argv)`` returns the exit code (:data:`EXIT_CODES`): every failure ends in one message on
+stderr, never a traceback. The numeric libraries are imported inside the commands, after the
+signal handlers are in place, so ``--help`` is quick and Ctrl-C while they load is one line.
 """
 
 from __future__ import annotations
 
 import argparse
+import signal
 import sys
 import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import pandas as pd
+from regional import __version__
+from regional.errors import InputError, InputWarning, RunError
 
-from regional import __version__, io
-from regional.compute import keep_freed_memory
-from regional.errors import InputError, InputWarning
-from regional.models import get_model
-from regional.outputs import loo_summary, update_stage_outputs, write_outputs
-from regional.pipeline import run
-from regional.region import RegionSummary, describe_region, load_region
+if TYPE_CHECKING:
+    import pandas as pd
+
+    from regional.config import Settings
+    from regional.region import RegionSummary
 
 CAUTION = (
     "Caution: flows estimated at ungauged sites carry large uncertainty. Read the leave-one-out "
     "skill and the bounds beside every estimate, and leave design decisions that affect safety "
     "(floods, dam safety, water supply) to local codes and licensed professional practice."
 )
+
+EXIT_CODES = {
+    0: "done",
+    2: "bad input, or an output location refused before any computation",
+    3: "the system failed the run (disk full, no permission, cluster unreachable); earlier "
+    "results are intact",
+    130: "interrupted (Ctrl-C)",
+    143: "terminated (SIGTERM)",
+}
+"""Exit codes of every command, as ``--help`` and the README list them."""
+
+EXIT_TEXT = "Exit codes: " + "; ".join(f"{code} {text}" for code, text in EXIT_CODES.items())
 
 DESCRIPTION = (
     "regional: daily flows and flow statistics at ungauged basins, by transferring calibrated "
@@ -39,7 +54,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="regional",
         description=DESCRIPTION,
-        epilog=CAUTION,
+        epilog=f"{CAUTION} {EXIT_TEXT}.",
     )
     parser.add_argument("--version", action="version", version=f"regional {__version__}")
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
@@ -60,15 +75,17 @@ def _check_parser(subparsers: argparse._SubParsersAction) -> None:
         description=(
             "Validate everything a region names (settings, basins, overlays, raster, series) "
             "and print a summary: basins, gauged and ungauged counts, record length per basin, "
-            "attribute ranges, notes and warnings. Exit code 0 when the region is usable, 2 "
-            "on an input error."
+            "attribute ranges, notes and warnings. It fails (exit code 2) on every input "
+            "problem that would make 'regional run' fail; exit code 0 when the region is usable."
         ),
-        epilog=CAUTION,
+        epilog=f"{CAUTION} {EXIT_TEXT}.",
     )
     parser.add_argument("region", help="region folder holding region.toml, or the TOML file")
 
 
 def _check(args: argparse.Namespace) -> int:
+    from regional.region import describe_region, load_region
+
     summary = describe_region(load_region(args.region))
     print(format_summary(summary))
     return 0
@@ -130,8 +147,11 @@ def _attributes_parser(subparsers: argparse._SubParsersAction) -> None:
         help="write the basin attribute table as CSV",
         description=(
             "Validate a region and write its attribute table (one row per basin, indexed by "
-            "basin_id): the user's own columns and the computed attributes."
+            "basin_id): the user's own columns and the computed attributes. An existing file "
+            "is replaced once the new one is complete; an input of the region or a folder is "
+            "refused."
         ),
+        epilog=EXIT_TEXT + ".",
     )
     parser.add_argument("region", help="region folder holding region.toml, or the TOML file")
     parser.add_argument(
@@ -140,8 +160,13 @@ def _attributes_parser(subparsers: argparse._SubParsersAction) -> None:
 
 
 def _attributes(args: argparse.Namespace) -> int:
-    region = load_region(args.region)
-    path = io.write_csv(region.attributes, args.out)
+    from regional import io
+    from regional.region import load_region
+
+    settings = _settings(args.region)
+    target = io.check_output_file(args.out, inputs=settings.input_paths())
+    region = load_region(settings)
+    path = io.write_csv(region.attributes, target)
     n_basins, n_columns = region.attributes.shape
     print(f"wrote {n_basins} basins x {n_columns} attributes to {path}")
     return 0
@@ -161,9 +186,11 @@ def _run_parser(subparsers: argparse._SubParsersAction) -> None:
             "basin, validate every transfer method by leave-one-out against the calibrated "
             "(upper bound) and median (benchmark) baselines, estimate flows at the ungauged "
             "basins, screen candidate gauge sites, and write results.gpkg, CSV tables, "
-            "figures, report.html and run.json to the output folder."
+            "figures, report.html and run.json to the output folder. The output folder must "
+            "be new, empty, or an earlier results folder of regional (see docs/outputs.md); "
+            "anything else is refused before any computation."
         ),
-        epilog=CAUTION,
+        epilog=f"{CAUTION} {EXIT_TEXT}.",
     )
     parser.add_argument("region", help="region folder holding region.toml, or the TOML file")
     _add_run_options(parser)
@@ -174,32 +201,63 @@ def _add_run_options(parser: argparse.ArgumentParser) -> None:
         "--out",
         type=Path,
         metavar="DIR",
-        help="results folder (default: [output] folder of the region); replaced only when "
-        "the new results are complete",
+        help="results folder (default: [output] folder of the region): new, empty, or an "
+        "earlier results folder of regional, replaced only when the new results are complete",
     )
     parser.add_argument(
         "--scheduler", metavar="ADDRESS", help="run on a Dask cluster (tcp://host:8786)"
     )
     parser.add_argument(
-        "--workers", type=int, metavar="N", help="start a local Dask cluster of N processes"
+        "--workers",
+        type=_positive_int,
+        metavar="N",
+        help="start a local Dask cluster of N processes (N >= 1)",
     )
     parser.add_argument("--quiet", action="store_true", help="no progress bars")
 
 
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be a whole number >= 1; found {text!r}")
+    return value
+
+
 def _run_all(args: argparse.Namespace) -> int:
-    result = _run_with_progress(args)
-    folder = write_outputs(result, _out_folder(args, result))
+    from regional.outputs import write_outputs
+
+    settings = _settings(args.region)
+    target = _checked_out_folder(args, settings, update=False)
+    result = _run_with_progress(args, settings)
+    folder = write_outputs(result, target)
     print(format_run_summary(result))
     print(f"\nresults written to {folder}")
     print(CAUTION)
     return 0
 
 
-def _out_folder(args: argparse.Namespace, result) -> Path:
-    return args.out if args.out is not None else result.settings.output.folder
+def _settings(region: str) -> Settings:
+    from regional.config import load_settings
+
+    return load_settings(region)
 
 
-def _run_with_progress(args: argparse.Namespace):
+def _checked_out_folder(args: argparse.Namespace, settings: Settings, *, update: bool) -> Path:
+    """The output folder, refused before any computation when a run must not write there."""
+    from regional import io
+
+    folder = args.out if args.out is not None else settings.output.folder
+    return io.check_output_folder(
+        folder, inputs=settings.input_paths(), region_folder=settings.folder, update=update
+    )
+
+
+def _run_with_progress(args: argparse.Namespace, settings: Settings):
+    from regional.pipeline import run
+
     bars: dict[str, object] = {}
 
     def progress(stage: str, done: int, total: int) -> None:
@@ -217,7 +275,7 @@ def _run_with_progress(args: argparse.Namespace):
             bar.close()
 
     try:
-        return run(args.region, scheduler=args.scheduler, workers=args.workers, progress=progress)
+        return run(settings, scheduler=args.scheduler, workers=args.workers, progress=progress)
     finally:
         for bar in bars.values():
             bar.close()
@@ -225,6 +283,8 @@ def _run_with_progress(args: argparse.Namespace):
 
 def format_run_summary(result) -> str:
     """The table ``regional run`` prints: leave-one-out skill per model and method."""
+    from regional.outputs import loo_summary
+
     table = loo_summary(result)
     columns = [
         "model",
@@ -248,6 +308,11 @@ def format_run_summary(result) -> str:
         "",
         f"chosen for prediction: model {result.chosen_model}, method {result.chosen_method}",
     ]
+    if result.region.constant_flow:
+        lines.append(
+            "treated as ungauged (constant observed flow): "
+            + ", ".join(result.region.constant_flow)
+        )
     if result.warnings:
         lines.append(f"warnings: {len(result.warnings)} (see report.html)")
     return "\n".join(lines)
@@ -268,8 +333,9 @@ def _predict_parser(subparsers: argparse._SubParsersAction) -> None:
             "method with intervals, daily flows in mm/day and m3/s with lower and upper bounds "
             "(built from the leave-one-out errors), flow statistics and applicability flags. "
             "Writes flows_ungauged.csv, parameters_ungauged.csv, coverage.csv, the 'ungauged' "
-            "layer of results.gpkg and its figures into the results folder, keeping the other "
-            "files of an earlier run."
+            "layer of results.gpkg and its figures into the results folder of an earlier "
+            "'regional run', keeping its other files; the report, loo_summary.csv and run.json "
+            "are brought up to date (prediction level, date and time of each stage)."
         ),
     )
 
@@ -277,16 +343,22 @@ def _predict_parser(subparsers: argparse._SubParsersAction) -> None:
 def _stage_parser(
     subparsers: argparse._SubParsersAction, name: str, *, help: str, description: str
 ) -> None:
-    parser = subparsers.add_parser(name, help=help, description=description, epilog=CAUTION)
+    parser = subparsers.add_parser(
+        name, help=help, description=description, epilog=f"{CAUTION} {EXIT_TEXT}."
+    )
     parser.add_argument("region", help="region folder holding region.toml, or the TOML file")
     _add_run_options(parser)
 
 
 def _predict(args: argparse.Namespace) -> int:
-    result = _run_with_progress(args)
+    from regional.outputs import update_stage_outputs
+
+    settings = _settings(args.region)
+    target = _checked_out_folder(args, settings, update=True)
+    result = _run_with_progress(args, settings)
     if result.prediction is None:
         raise InputError("the region has no ungauged basin: there is nothing to predict")
-    folder = update_stage_outputs(result, _out_folder(args, result), stage="prediction")
+    folder = update_stage_outputs(result, target, stage="prediction")
     print(format_prediction(result))
     print(f"\nprediction written to {folder}")
     print(CAUTION)
@@ -295,6 +367,8 @@ def _predict(args: argparse.Namespace) -> int:
 
 def format_prediction(result) -> str:
     """The table ``regional predict`` prints: one line per ungauged basin."""
+    from regional.models import get_model
+
     prediction = result.prediction
     names = [p.name for p in get_model(result.chosen_model).parameters]
     columns = [*names, *(f"{n}_{side}" for n in names for side in ("low", "high"))]
@@ -323,16 +397,21 @@ def _screen_parser(subparsers: argparse._SubParsersAction) -> None:
             "Run the chain and rank candidate basins ([screening] candidates, default every "
             "ungauged basin) by how much a gauge there would reduce the prediction variance "
             "over the region's ungauged basins, combined with how much its donors disagree. "
-            "Writes screening.csv, the 'screening' layer of results.gpkg and its figure."
+            "Writes screening.csv, the 'screening' layer of results.gpkg and its figure into "
+            "the results folder of an earlier 'regional run'."
         ),
     )
 
 
 def _screen(args: argparse.Namespace) -> int:
-    result = _run_with_progress(args)
+    from regional.outputs import update_stage_outputs
+
+    settings = _settings(args.region)
+    target = _checked_out_folder(args, settings, update=True)
+    result = _run_with_progress(args, settings)
     if result.screening is None:
         raise InputError("the region has no ungauged basin: there is no candidate to screen")
-    folder = update_stage_outputs(result, _out_folder(args, result), stage="screening")
+    folder = update_stage_outputs(result, target, stage="screening")
     table = result.screening.table
     print(
         table[["rank", "score", "variance_reduction", "donor_spread"]].to_string(
@@ -366,32 +445,62 @@ COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
 }
 
 
-def main(argv: Sequence[str] | None = None) -> int:
-    """Run the command line; return the exit code.
+class Terminated(BaseException):
+    """Raised in the main thread when the process receives SIGTERM (handled like Ctrl-C)."""
 
-    Input warnings are printed as ``warning: ...`` lines on stderr; an input error as one
-    ``error: ...`` message on stderr with exit code 2.
+
+def _on_terminate(signum, frame) -> None:
+    raise Terminated()
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; return the exit code (:data:`EXIT_CODES`).
+
+    Input warnings are printed as ``warning: ...`` lines on stderr; a failure as one
+    ``error: ...`` line (or ``interrupted`` / ``terminated``) on stderr, never a traceback.
+    SIGTERM is handled like Ctrl-C: temporary files are removed, earlier results stay intact.
     """
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    keep_freed_memory()
-    if args.command is None:
-        parser.print_help()
-        return 0
-    return _run(COMMANDS[args.command], args)
+    previous = _handle_sigterm()
+    try:
+        parser = build_parser()
+        args = parser.parse_args(argv)
+        if args.command is None:
+            parser.print_help()
+            return 0
+        return _run(COMMANDS[args.command], args)
+    except (KeyboardInterrupt, Terminated) as stop:  # while parsing, before a command runs
+        return _stopped(stop)
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _handle_sigterm():
+    try:
+        return signal.signal(signal.SIGTERM, _on_terminate)
+    except ValueError:  # not the main thread: leave signals alone
+        return None
 
 
 def _run(command: Callable[[argparse.Namespace], int], args: argparse.Namespace) -> int:
-    error: InputError | None = None
+    error: str | None = None
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", InputWarning)
         try:
+            from regional.compute import keep_freed_memory
+
+            keep_freed_memory()
             code = command(args)
         except InputError as exc:
-            code, error = 2, exc
-        except KeyboardInterrupt:
-            code, error = 130, None
-            print("interrupted", file=sys.stderr)
+            code, error = 2, str(exc)
+        except RunError as exc:
+            code, error = 3, str(exc)
+        except OSError as exc:
+            code, error = 3, _system_message(exc)
+        except MemoryError:
+            code, error = 3, "out of memory. Fix: run fewer basins or models at once."
+        except (KeyboardInterrupt, Terminated) as stop:
+            code = _stopped(stop)
     for record in caught:
         if issubclass(record.category, InputWarning):
             print(f"warning: {record.message}", file=sys.stderr)
@@ -400,6 +509,18 @@ def _run(command: Callable[[argparse.Namespace], int], args: argparse.Namespace)
     if error is not None:
         print(f"error: {error}", file=sys.stderr)
     return code
+
+
+def _system_message(error: OSError) -> str:
+    where = f": {error.filename}" if error.filename else ""
+    return f"{error.strerror or error}{where}. Fix: check the disk, the path and its permissions."
+
+
+def _stopped(stop: BaseException) -> int:
+    terminated = isinstance(stop, Terminated)
+    what = "terminated (SIGTERM)" if terminated else "interrupted (Ctrl-C)"
+    print(f"{what}: stopped; temporary files removed, earlier results intact", file=sys.stderr)
+    return 143 if terminated else 130
 
 
 if __name__ == "__main__":

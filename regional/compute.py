@@ -15,7 +15,12 @@ import logging
 from collections.abc import Callable, Sequence
 from typing import Any
 
+from regional.errors import RunError
+
 logger = logging.getLogger(__name__)
+
+CONNECT_TIMEOUT_S = 10.0
+"""Default wait for a Dask scheduler to answer, in seconds (``[compute] connect_timeout_s``)."""
 
 ChunkFn = Callable[[Sequence[str], Any], Any]
 Progress = Callable[[int, int], None] | None
@@ -119,11 +124,24 @@ class DaskExecutor:
         ``workers`` processes is started and closed with :meth:`close`.
     workers : int, optional
         Worker processes of the local cluster (default 2), one thread each.
+    connect_timeout_s : float, default 10
+        How long to wait for the scheduler to answer, in seconds.
+
+    Raises
+    ------
+    RunError
+        The scheduler did not answer within ``connect_timeout_s`` (address and wait named).
     """
 
     name = "dask"
 
-    def __init__(self, scheduler: str | None = None, *, workers: int | None = None) -> None:
+    def __init__(
+        self,
+        scheduler: str | None = None,
+        *,
+        workers: int | None = None,
+        connect_timeout_s: float = CONNECT_TIMEOUT_S,
+    ) -> None:
         try:
             from distributed import Client, LocalCluster
         except ImportError as error:  # pragma: no cover - depends on the environment
@@ -135,7 +153,7 @@ class DaskExecutor:
 
         self._cluster = None
         if scheduler:
-            self.client = Client(scheduler)
+            self.client = _connect(Client, scheduler, connect_timeout_s)
         else:
             with dask.config.set({"distributed.nanny.pre-spawn-environ": WORKER_ENVIRONMENT}):
                 self._cluster = LocalCluster(
@@ -179,8 +197,25 @@ class DaskExecutor:
             self._cluster.close()
 
 
-def make_executor(scheduler: str | None = None, *, workers: int | None = None):
+def _connect(client_class, address: str, timeout_s: float):
+    try:
+        return client_class(address, timeout=timeout_s)
+    except (OSError, TimeoutError) as error:
+        raise RunError(
+            f"cannot reach the Dask scheduler at {address}: no answer after waiting "
+            f"{timeout_s:g} s ({error}). Fix: start the scheduler, check the address and port "
+            "(--scheduler or [compute] scheduler), or wait longer with [compute] "
+            "connect_timeout_s."
+        ) from None
+
+
+def make_executor(
+    scheduler: str | None = None,
+    *,
+    workers: int | None = None,
+    connect_timeout_s: float = CONNECT_TIMEOUT_S,
+):
     """In-process unless a scheduler address or a worker count asks for Dask."""
     if scheduler or workers:
-        return DaskExecutor(scheduler, workers=workers)
+        return DaskExecutor(scheduler, workers=workers, connect_timeout_s=connect_timeout_s)
     return InProcessExecutor()

@@ -96,6 +96,7 @@ class SeriesSettings:
     temp: str | None
     flow: str | None
     flow_m3s: str | None
+    max_precip_mm_per_day: float = 2000.0
 
     @property
     def flow_column(self) -> str:
@@ -182,6 +183,7 @@ class ComputeSettings:
 
     scheduler: str | None
     workers: int | None
+    connect_timeout_s: float = 10.0
 
 
 @dataclass(frozen=True)
@@ -236,6 +238,14 @@ class Settings:
     compute: ComputeSettings
     output: OutputSettings
     report: ReportSettings
+
+    def input_paths(self) -> tuple[Path, ...]:
+        """Every file the region names: this TOML, basins, series, overlays, raster (sorted)."""
+        paths = [self.path, self.basins.path, self.series.path]
+        paths += [overlay.path for overlay in self.overlays]
+        if self.raster is not None:
+            paths.append(self.raster.path)
+        return tuple(sorted(set(paths)))
 
 
 # --------------------------------------------------------------------------------------------
@@ -445,6 +455,7 @@ SECTIONS: dict[str, dict[str, _Key]] = {
         "temp": _Key(_text),
         "flow": _Key(_text),
         "flow_m3s": _Key(_text),
+        "max_precip_mm_per_day": _Key(_number(0.0, open_=True), 2000.0),
     },
     "model": {
         "name": _Key(_choice_list(MODEL_NAMES), "linear"),
@@ -473,7 +484,11 @@ SECTIONS: dict[str, dict[str, _Key]] = {
         "held_out_repeats": _Key(_integer(0), 10),
     },
     "screening": {"candidates": _Key(_text_list)},
-    "compute": {"scheduler": _Key(_scheduler), "workers": _Key(_integer(1))},
+    "compute": {
+        "scheduler": _Key(_scheduler),
+        "workers": _Key(_integer(1)),
+        "connect_timeout_s": _Key(_number(0.0, 600.0, open_=True), 10.0),
+    },
     "output": {"folder": _Key(_path, "results")},
     "report": {
         "flow_unit": _Key(_choice(REPORT_FLOW_UNITS), "m3/s"),

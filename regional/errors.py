@@ -17,3 +17,9 @@ class InputError(ValueError):
 
 class InputWarning(UserWarning):
     """A problem with the inputs that lets the run go on; it lands in the report."""
+
+
+class RunError(RuntimeError):
+    """The system failed the run, not the inputs: disk full, permission denied, a cluster that
+    does not answer. The CLI turns it into one message and exit code 3; earlier results are
+    left intact."""

@@ -7,8 +7,10 @@ raise :class:`regional.errors.InputError` naming the file, layer or column at fa
 from __future__ import annotations
 
 import difflib
+import errno
 import json
 import os
+import re
 import shutil
 import tempfile
 from collections.abc import Mapping, Sequence
@@ -23,7 +25,7 @@ import pyogrio
 import pyogrio.errors
 import pyproj
 
-from regional.errors import InputError
+from regional.errors import InputError, RunError
 
 #: Suffixes read as delimited text by :func:`read_series`.
 CSV_SUFFIXES = (".csv", ".csv.gz", ".txt", ".txt.gz")
@@ -358,12 +360,16 @@ def _read_series_table(path: Path, layer: str | None, columns: list[str]) -> pd.
 def write_csv(frame: pd.DataFrame, path: str | Path, *, index: bool = True) -> Path:
     """Write ``frame`` as CSV atomically: to a temporary name in the same folder, then rename.
 
-    A failure leaves any previous file at ``path`` untouched.
+    A failure leaves any previous file at ``path`` untouched. The file's mode follows the
+    user's umask (e.g. 0644 under a umask of 022).
 
     Raises
     ------
     InputError
         The target folder does not exist.
+    RunError
+        The system refused the write (disk full, permission denied); the temporary file is
+        removed.
     """
     path = Path(path).expanduser().resolve()
     if not path.parent.is_dir():
@@ -371,14 +377,10 @@ def write_csv(frame: pd.DataFrame, path: str | Path, *, index: bool = True) -> P
             f"cannot write {path}: the folder {path.parent} does not exist. Fix: create it or "
             "choose another output path."
         )
-    handle, temporary = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
-        with os.fdopen(handle, "w", newline="", encoding="utf-8") as stream:
-            frame.to_csv(stream, index=index)
-        os.replace(temporary, path)
-    except BaseException:
-        Path(temporary).unlink(missing_ok=True)
-        raise
+        _write_atomically(path, lambda stream: frame.to_csv(stream, index=index), text=True)
+    except OSError as error:
+        raise _write_failure(path, error) from error
     return path
 
 
@@ -441,13 +443,23 @@ def _suggestion(name: str, known: Sequence[str]) -> str:
 
 
 # --------------------------------------------------------------------------------------------
-# Results folder
+# Results folder: ownership, refusal rules, atomic writes
 # --------------------------------------------------------------------------------------------
 
 RESULTS_GPKG = "results.gpkg"
 GPKG_OPTIONS = {"VERSION": "1.2"}
 """GeoPackage dataset creation options: version 1.2, which GDAL 3.6 (Debian stable) reads
 without the warning it gives on the 1.4 that newer GDAL writes by default."""
+#: The manifest that marks a folder as results written by this tool.
+MANIFEST = "run.json"
+#: ``tool`` and ``format`` fields of the manifest (``format`` grows when the layout changes).
+TOOL, FORMAT = "regional", 1
+#: Temporary names this module leaves beside a target while writing: ``.<name>.<pid>.<random>``
+#: then ``.tmp`` (being written), ``.old`` (an earlier folder set aside) or ``.tmp.gpkg``; and
+#: ``.<name>.previous-<pid>`` from earlier versions.
+_TEMPORARY = r"\.(?P<pid>\d+)\.[a-z0-9_]+\.(?:tmp|old|tmp\.gpkg)|\.previous-(?P<old>\d+)"
+#: Tries to move a new folder into place while other writers race for the same name.
+_SWAP_ATTEMPTS = 50
 
 
 def figure_png(figure, *, dpi: int = 110) -> bytes:
@@ -460,6 +472,156 @@ def figure_png(figure, *, dpi: int = 110) -> bytes:
     trim = "tight" if figure.get_layout_engine() is not None else None
     figure.savefig(buffer, format="png", dpi=dpi, bbox_inches=trim)
     return buffer.getvalue()
+
+
+def read_manifest(folder: str | Path) -> dict | None:
+    """The manifest (``run.json``) of a results folder written by this tool, else None.
+
+    A folder is recognised by a ``run.json`` holding a JSON object with ``"tool": "regional"``
+    and an integer ``"format"``; or, for folders written before the format field existed, a
+    ``"regional"`` version text and no ``"format"`` field.
+    """
+    path = Path(folder) / MANIFEST
+    try:
+        manifest = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError):
+        return None
+    if not isinstance(manifest, dict):
+        return None
+    current = manifest.get("tool") == TOOL and isinstance(manifest.get("format"), int)
+    earlier = "format" not in manifest and isinstance(manifest.get(TOOL), str)
+    return manifest if current or earlier else None
+
+
+def is_results_folder(folder: str | Path) -> bool:
+    """True when ``folder`` is a folder holding a manifest of this tool (see
+    :func:`read_manifest`)."""
+    return Path(folder).is_dir() and read_manifest(folder) is not None
+
+
+def check_output_folder(
+    folder: str | Path,
+    *,
+    inputs: Sequence[str | Path],
+    region_folder: str | Path,
+    update: bool = False,
+) -> Path:
+    """Refuse, before any computation, an output folder a run must not replace.
+
+    Rules (docs/outputs.md): the parent must exist and be writable; the target must not be
+    the region folder, an input, nor a folder holding any input (an ancestor of the inputs);
+    it must be absent, an empty folder, or an earlier results folder of this tool. A stage
+    update (``update=True``: ``predict``, ``screen``) needs an earlier results folder.
+
+    Parameters
+    ----------
+    folder : str or Path
+        The results folder asked for.
+    inputs : sequence of str or Path
+        Every file the region names (settings, basins, overlays, raster, series).
+    region_folder : str or Path
+        The folder of ``region.toml``.
+    update : bool, default False
+        The target must already be a results folder of this tool.
+
+    Returns
+    -------
+    Path
+        The target, absolute.
+
+    Raises
+    ------
+    InputError
+        Naming the path, what it is, and what to do.
+    """
+    target = Path(folder).expanduser().resolve()
+    _check_parent(target, what="results")
+    region = Path(region_folder).expanduser().resolve()
+    if target == region:
+        raise InputError(
+            f"refusing to write results to {target}: it is the region folder, and a run "
+            "replaces its whole output folder, inputs included. Fix: choose a new folder, e.g. "
+            f"--out {target / 'results'}."
+        )
+    for path in sorted({Path(p).expanduser().resolve() for p in inputs}):
+        if path == target or target in path.parents:
+            what = "is" if path == target else "holds"
+            raise InputError(
+                f"refusing to write results to {target}: it {what} the region's input {path}, "
+                "and a run replaces its whole output folder. Fix: choose a folder that holds "
+                f"no input, e.g. --out {region / 'results'}."
+            )
+    _check_replaceable(target)
+    if update and not is_results_folder(target):
+        raise InputError(
+            f"no earlier results at {target}: predict and screen update the folder of a "
+            f"complete run (with its {MANIFEST}). Fix: run 'regional run' with this output "
+            "folder first, or point --out at an earlier results folder."
+        )
+    return target
+
+
+def check_output_file(path: str | Path, *, inputs: Sequence[str | Path]) -> Path:
+    """Refuse, before any computation, an output file that would overwrite an input or
+    is not a regular file; the parent must exist and be writable.
+
+    Returns
+    -------
+    Path
+        The target, absolute.
+
+    Raises
+    ------
+    InputError
+        Naming the path, what it is, and what to do.
+    """
+    target = Path(path).expanduser().resolve()
+    _check_parent(target, what="output")
+    if target in {Path(p).expanduser().resolve() for p in inputs}:
+        raise InputError(
+            f"refusing to write {target}: it is one of the region's inputs. Fix: name a new "
+            "file, e.g. attributes.csv."
+        )
+    if target.exists() and not target.is_file():
+        kind = "a folder" if target.is_dir() else "not a regular file"
+        raise InputError(
+            f"refusing to write {target}: it is {kind}. Fix: name a file, e.g. "
+            f"{target / 'attributes.csv'}."
+            if target.is_dir()
+            else f"refusing to write {target}: it is {kind}. Fix: name a regular file."
+        )
+    return target
+
+
+def _check_parent(target: Path, *, what: str) -> None:
+    parent = target.parent
+    if not parent.is_dir():
+        raise InputError(
+            f"cannot write {what} to {target}: the folder {parent} does not exist. Fix: create "
+            "it or choose another output path."
+        )
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise InputError(
+            f"cannot write {what} to {target}: the folder {parent} is read-only for this user. "
+            "Fix: choose an output path in a folder you may write to."
+        )
+
+
+def _check_replaceable(target: Path) -> None:
+    """The target is absent, an empty folder, or a results folder of this tool."""
+    if not (target.exists() or target.is_symlink()):
+        return
+    if not target.is_dir():
+        raise InputError(
+            f"refusing to write results to {target}: it is a file, not a folder. Fix: choose "
+            "a folder name that is free, or an earlier results folder."
+        )
+    if any(target.iterdir()) and not is_results_folder(target):
+        raise InputError(
+            f"refusing to replace {target}: it holds files and is not a results folder of "
+            f"this tool (no {MANIFEST} written by regional). Fix: choose an empty or new "
+            "folder, or move those files away first."
+        )
 
 
 def write_run_folder(
@@ -476,7 +638,11 @@ def write_run_folder(
 
     Everything goes to a temporary folder beside ``folder``; only when every file is written is
     the previous ``folder`` (if any) set aside, the new one renamed into place and the old one
-    removed. A run that fails or is killed while writing leaves the previous results intact.
+    removed. A run that fails or is killed while writing leaves the previous results intact;
+    temporary folders of runs that died (their process is gone) are removed by the next write
+    to the same place. The target is replaced only when it is absent, empty or an earlier
+    results folder of this tool (see :func:`check_output_folder`); two writers racing for it
+    leave one whole folder, the last one moved into place. Modes follow the user's umask.
 
     Parameters
     ----------
@@ -493,28 +659,139 @@ def write_run_folder(
     report : str or None
         HTML text for ``report.html``.
     manifest : mapping
-        Written as ``run.json``.
+        Written as ``run.json``, with ``tool`` and ``format`` added (the ownership marker).
 
     Returns
     -------
     Path
         The results folder.
+
+    Raises
+    ------
+    InputError
+        The parent folder is missing, or the target is not a folder this tool may replace.
+    RunError
+        The system refused a write (disk full, permission denied); the earlier results are
+        intact and the temporary folder is removed.
     """
     target = Path(folder).expanduser().resolve()
-    if not target.parent.is_dir():
-        raise InputError(
-            f"cannot write results to {target}: the folder {target.parent} does not exist. "
-            "Fix: create it or choose another --out folder."
-        )
-    staging = Path(tempfile.mkdtemp(dir=target.parent, prefix=f".{target.name}.", suffix=".tmp"))
-    staging.chmod(0o755)
+    _check_parent(target, what="results")
+    _check_replaceable(target)
+    remove_stale_temporaries(target)
     try:
+        staging = Path(
+            tempfile.mkdtemp(dir=target.parent, prefix=_temporary_prefix(target), suffix=".tmp")
+        )
+    except OSError as error:
+        raise _write_failure(target, error) from error
+    try:
+        staging.chmod(_dir_mode())
         _fill_run_folder(staging, tables, layers, crs, figures, report, manifest)
         _swap_into_place(staging, target)
+    except OSError as error:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise _write_failure(target, error) from error
     except BaseException:
         shutil.rmtree(staging, ignore_errors=True)
         raise
     return target
+
+
+def remove_stale_temporaries(target: str | Path) -> list[Path]:
+    """Remove the temporary files and folders of dead writers beside (or inside) ``target``.
+
+    A temporary name carries the writer's process id; one whose process no longer runs (a
+    run killed by SIGKILL, a power cut) is removed. Those of running writers are kept.
+
+    Returns
+    -------
+    list of Path
+        What was removed.
+    """
+    target = Path(target)
+    pattern = re.compile(r"\." + re.escape(target.name) + f"(?:{_TEMPORARY})$")
+    places = [(target.parent, pattern)]
+    if target.is_dir():
+        places.append((target, re.compile(r"\..+?(?:" + _TEMPORARY + ")$")))
+        if (target / "figures").is_dir():
+            places.append((target / "figures", re.compile(r"\..+?(?:" + _TEMPORARY + ")$")))
+    removed = []
+    for place, regex in places:
+        for entry in _entries(place):
+            match = regex.fullmatch(entry.name)
+            if match is None:
+                continue
+            pid = int(match.group("pid") or match.group("old"))
+            if _process_alive(pid):
+                continue
+            if entry.is_dir() and not entry.is_symlink():
+                shutil.rmtree(entry, ignore_errors=True)
+            else:
+                entry.unlink(missing_ok=True)
+            removed.append(entry)
+    return removed
+
+
+def _entries(folder: Path) -> list[Path]:
+    try:
+        return list(folder.iterdir())
+    except OSError:
+        return []
+
+
+def _process_alive(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:  # e.g. PermissionError: it exists under another user
+        return True
+    return True
+
+
+def _temporary_prefix(target: Path) -> str:
+    return f".{target.name}.{os.getpid()}."
+
+
+def _umask() -> int:
+    """The process umask, read without changing it where the system allows."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("Umask:"):
+                return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def _dir_mode() -> int:
+    """Mode of a new folder under the user's umask (0755 under 022)."""
+    return 0o777 & ~_umask()
+
+
+def _file_mode() -> int:
+    """Mode of a new file under the user's umask (0644 under 022)."""
+    return 0o666 & ~_umask()
+
+
+def _write_failure(target: Path, error: OSError) -> RunError:
+    reason = error.strerror or str(error)
+    where = f" ({error.filename})" if error.filename else ""
+    fix = {
+        errno.ENOSPC: "free disk space or choose an output folder on another disk",
+        errno.EDQUOT: "free space within your quota or choose another output folder",
+        errno.EACCES: "choose an output folder you may write to",
+        errno.EPERM: "choose an output folder you may write to",
+        errno.EROFS: "choose an output folder on a writable disk",
+    }.get(error.errno, "check the disk and the folder's permissions, then run again")
+    return RunError(
+        f"cannot write {target}: {reason}{where}. Earlier results there are intact and the "
+        f"temporary files were removed. Fix: {fix}."
+    )
 
 
 def _fill_run_folder(staging, tables, layers, crs, figures, report, manifest) -> None:
@@ -536,17 +813,47 @@ def _fill_run_folder(staging, tables, layers, crs, figures, report, manifest) ->
             (staging / "figures" / f"{name}.png").write_bytes(png)
     if report is not None:
         (staging / "report.html").write_text(report, encoding="utf-8")
-    (staging / "run.json").write_text(json.dumps(manifest, indent=2, default=str) + "\n")
+    (staging / MANIFEST).write_bytes(_manifest_bytes(manifest))
+
+
+def _manifest_bytes(manifest: Mapping[str, object]) -> bytes:
+    """``run.json`` text: the ownership marker (``tool``, ``format``) first, then the rest."""
+    content = {"tool": TOOL, "format": FORMAT} | {**manifest} | {"tool": TOOL, "format": FORMAT}
+    return (json.dumps(content, indent=2, default=str) + "\n").encode("utf-8")
 
 
 def _swap_into_place(staging: Path, target: Path) -> None:
-    previous = None
-    if target.exists():
-        previous = target.with_name(f".{target.name}.previous-{os.getpid()}")
-        os.replace(target, previous)
-    os.replace(staging, target)
-    if previous is not None:
-        shutil.rmtree(previous, ignore_errors=True)
+    """Rename ``staging`` to ``target``, setting aside whatever results folder is there.
+
+    Another writer may put its folder in place between two steps: then that one is set aside
+    in turn, so the last writer's folder stays, whole. Only results folders of this tool (or
+    empty folders) are ever set aside; folders set aside are removed at the end.
+    """
+    aside: list[Path] = []
+    try:
+        for _ in range(_SWAP_ATTEMPTS):
+            if target.exists() or target.is_symlink():
+                _check_replaceable(target)
+                place = Path(
+                    tempfile.mkdtemp(
+                        dir=target.parent, prefix=_temporary_prefix(target), suffix=".old"
+                    )
+                )
+                aside.append(place)
+                try:
+                    os.rename(target, place)
+                except FileNotFoundError:
+                    pass  # another writer set it aside first
+            try:
+                os.rename(staging, target)
+                return
+            except OSError as error:
+                if error.errno not in (errno.ENOTEMPTY, errno.EEXIST):
+                    raise
+        raise OSError(errno.EBUSY, "other writers kept replacing the folder", str(target))
+    finally:
+        for place in aside:
+            shutil.rmtree(place, ignore_errors=True)
 
 
 def update_run_folder(
@@ -556,54 +863,114 @@ def update_run_folder(
     layers: Mapping[str, gpd.GeoDataFrame],
     crs: object,
     figures: Mapping[str, bytes],
+    report: str | None = None,
+    manifest: Mapping[str, object] | None = None,
 ) -> Path:
-    """Add or replace some files of a results folder, each one atomically.
+    """Add or replace some files of an earlier results folder of this tool, each atomically.
 
     Used by the commands that redo one stage (``predict``, ``screen``): the other files of an
-    earlier full run stay as they are. Every table and figure is written to a temporary name and
-    renamed; ``results.gpkg`` is copied, its layers replaced in the copy, and the copy renamed.
+    earlier full run stay as they are. Every file is written to a temporary name and renamed;
+    ``results.gpkg`` is copied, its layers replaced in the copy, and the copy renamed; the
+    manifest is written last. Modes follow the user's umask.
+
+    Parameters
+    ----------
+    folder : str or Path
+        An earlier results folder (its ``run.json`` written by this tool).
+    tables, layers, crs, figures
+        As for :func:`write_run_folder`.
+    report : str, optional
+        New text of ``report.html``.
+    manifest : mapping, optional
+        New ``run.json`` (``tool`` and ``format`` added).
 
     Returns
     -------
     Path
-        The results folder (created when absent).
+        The results folder.
+
+    Raises
+    ------
+    InputError
+        The folder is not an earlier results folder of this tool.
+    RunError
+        The system refused a write; files not yet replaced keep their earlier content.
     """
     target = Path(folder).expanduser().resolve()
-    if not target.parent.is_dir():
+    _check_parent(target, what="results")
+    if not is_results_folder(target):
         raise InputError(
-            f"cannot write results to {target}: the folder {target.parent} does not exist. "
-            "Fix: create it or choose another --out folder."
+            f"no earlier results at {target}: a stage update needs the folder of a complete "
+            f"run (with its {MANIFEST}). Fix: run 'regional run' with this output folder first."
         )
-    target.mkdir(exist_ok=True)
+    remove_stale_temporaries(target)
+    try:
+        _update_files(target, tables, layers, crs, figures, report)
+        if manifest is not None:
+            content = json.dumps(
+                {"tool": TOOL, "format": FORMAT, **manifest}, indent=2, default=str
+            )
+            _write_bytes_atomically(target / MANIFEST, (content + "\n").encode("utf-8"))
+    except OSError as error:
+        raise _write_failure(target, error) from error
+    return target
+
+
+def read_figures(folder: str | Path) -> dict[str, bytes]:
+    """PNG bytes of ``figures/*.png`` of a results folder, by name (empty when none)."""
+    place = Path(folder) / "figures"
+    if not place.is_dir():
+        return {}
+    return {path.stem: path.read_bytes() for path in sorted(place.glob("*.png"))}
+
+
+def _update_files(target, tables, layers, crs, figures, report) -> None:
     for name, table in tables.items():
-        write_csv(table, target / name, index=not isinstance(table.index, pd.RangeIndex))
+        keep_index = not isinstance(table.index, pd.RangeIndex)
+        _write_atomically(
+            target / name, lambda stream, t=table, i=keep_index: t.to_csv(stream, index=i)
+        )
     if figures:
-        (target / "figures").mkdir(exist_ok=True)
+        (target / "figures").mkdir(mode=_dir_mode(), exist_ok=True)
     for name, png in figures.items():
         _write_bytes_atomically(target / "figures" / f"{name}.png", png)
     if layers:
         _replace_layers(target / RESULTS_GPKG, layers, crs)
-    return target
+    if report is not None:
+        _write_bytes_atomically(target / "report.html", report.encode("utf-8"))
 
 
-def _write_bytes_atomically(path: Path, content: bytes) -> None:
-    handle, temporary = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+def _write_atomically(path: Path, write, *, text: bool = True) -> None:
+    """Call ``write(stream)`` on a temporary file beside ``path``, then rename it to ``path``."""
+    handle, temporary = tempfile.mkstemp(
+        dir=path.parent, prefix=_temporary_prefix(path), suffix=".tmp"
+    )
     try:
-        with os.fdopen(handle, "wb") as stream:
-            stream.write(content)
+        os.fchmod(handle, _file_mode())
+        mode = "w" if text else "wb"
+        options = {"newline": "", "encoding": "utf-8"} if text else {}
+        with os.fdopen(handle, mode, **options) as stream:
+            write(stream)
         os.replace(temporary, path)
     except BaseException:
         Path(temporary).unlink(missing_ok=True)
         raise
 
 
+def _write_bytes_atomically(path: Path, content: bytes) -> None:
+    _write_atomically(path, lambda stream: stream.write(content), text=False)
+
+
 def _replace_layers(gpkg: Path, layers: Mapping[str, gpd.GeoDataFrame], crs: object) -> None:
-    handle, temporary = tempfile.mkstemp(dir=gpkg.parent, prefix=".results.", suffix=".tmp.gpkg")
+    handle, temporary = tempfile.mkstemp(
+        dir=gpkg.parent, prefix=_temporary_prefix(gpkg), suffix=".tmp.gpkg"
+    )
     os.close(handle)
     staged = Path(temporary)
     try:
         if gpkg.exists():
             shutil.copyfile(gpkg, staged)
+            staged.chmod(_file_mode())
             existing = {name for name, _ in pyogrio.list_layers(staged)}
         else:
             staged.unlink()
@@ -622,6 +989,7 @@ def _replace_layers(gpkg: Path, layers: Mapping[str, gpd.GeoDataFrame], crs: obj
                     engine="pyogrio",
                     dataset_options=GPKG_OPTIONS,
                 )
+        staged.chmod(_file_mode())
         os.replace(staged, gpkg)
     except BaseException:
         staged.unlink(missing_ok=True)

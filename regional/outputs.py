@@ -7,8 +7,9 @@ interrupted run never touches the previous results.
 
 from __future__ import annotations
 
+import datetime as dt
 import hashlib
-from dataclasses import fields, is_dataclass
+from dataclasses import fields, is_dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -41,6 +42,8 @@ def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True
     Path
         The results folder.
     """
+    now = _now()
+    result = replace(result, stages={stage: now for stage in _stages_present(result)})
     tables = result_tables(result)
     layers = result_layers(result)
     images: dict[str, bytes] = {}
@@ -63,12 +66,18 @@ def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True
 def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -> Path:
     """Write the files of one stage (``"prediction"`` or ``"screening"``) into ``folder``.
 
-    The other files of an earlier full run in that folder are kept; each file written is
-    replaced atomically.
+    ``folder`` must hold an earlier full run (its ``run.json``). The other files of that run
+    are kept; each file written is replaced atomically. The report is rebuilt (the figures of
+    the other stages read back from the folder) and ``run.json`` updated, so both state the
+    prediction level in force and when each stage wrote the folder.
     """
+    previous = io.read_manifest(folder) or {}
+    stages = dict(previous.get("stages", {})) | {stage: _now()}
+    result = replace(result, stages=stages)
     if stage == "prediction":
         tables = _prediction_tables(result)
-        layers = {"ungauged": _with_geometry(result.prediction.table, result.region.basins)}
+        tables["loo_summary.csv"] = loo_summary(result)
+        layers = {"ungauged": _ungauged_layer(result)}
         drawn = plots.prediction_figures(result)
     elif stage == "screening":
         tables = {"screening.csv": result.screening.table.reset_index()}
@@ -77,9 +86,27 @@ def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -
     else:
         raise ValueError(f"unknown stage {stage!r}: 'prediction' or 'screening'")
     images = {name: io.figure_png(figure) for name, figure in drawn.items()}
+    report = render_report(result, io.read_figures(folder) | images)
+    manifest = previous | _stage_manifest(result)
     return io.update_run_folder(
-        Path(folder), tables=tables, layers=layers, crs=result.region.basins.crs, figures=images
+        Path(folder),
+        tables=tables,
+        layers=layers,
+        crs=result.region.basins.crs,
+        figures=images,
+        report=report,
+        manifest=manifest,
     )
+
+
+def _now() -> str:
+    return dt.datetime.now(dt.UTC).isoformat(timespec="seconds")
+
+
+def _stages_present(result: RunResult) -> list[str]:
+    stages = ["run"]
+    stages += ["prediction"] if result.prediction is not None else []
+    return stages + (["screening"] if result.screening is not None else [])
 
 
 # --------------------------------------------------------------------------------------------
@@ -121,10 +148,15 @@ def donor_counts(result: RunResult) -> pd.DataFrame | None:
 def _prediction_tables(result: RunResult) -> dict[str, pd.DataFrame]:
     prediction = result.prediction
     return {
-        "flows_ungauged.csv": prediction.flows,
-        "parameters_ungauged.csv": prediction.table.reset_index(),
+        "flows_ungauged.csv": prediction.flows.assign(level=prediction.level),
+        "parameters_ungauged.csv": _with_level(prediction.table, prediction.level).reset_index(),
         "coverage.csv": prediction.coverage,
     }
+
+
+def _with_level(table: pd.DataFrame, level: float) -> pd.DataFrame:
+    """The table with the nominal level of its bounds in a ``level`` column."""
+    return table.assign(level=level) if "level" not in table.columns else table
 
 
 def _loo_scores(result: RunResult) -> pd.DataFrame:
@@ -171,10 +203,15 @@ def result_layers(result: RunResult) -> dict[str, gpd.GeoDataFrame]:
     basins = result.region.basins
     layers = {"gauged": _gauged_layer(result)}
     if result.prediction is not None:
-        layers["ungauged"] = _with_geometry(result.prediction.table, basins)
+        layers["ungauged"] = _ungauged_layer(result)
     if result.screening is not None:
         layers["screening"] = _with_geometry(result.screening.table, basins)
     return layers
+
+
+def _ungauged_layer(result: RunResult) -> gpd.GeoDataFrame:
+    prediction = result.prediction
+    return _with_geometry(_with_level(prediction.table, prediction.level), result.region.basins)
 
 
 def _with_geometry(table: pd.DataFrame, basins: gpd.GeoDataFrame) -> gpd.GeoDataFrame:
@@ -210,27 +247,40 @@ def _gauged_layer(result: RunResult) -> gpd.GeoDataFrame:
 
 
 def run_manifest(result: RunResult) -> dict[str, Any]:
-    """``run.json``: input checksums, settings, software versions and timings."""
+    """``run.json``: the ownership marker (``tool``, ``format``, added by :mod:`regional.io`),
+    input checksums, settings, software versions, timings, when each stage wrote the folder,
+    the prediction level in force and the basins treated as ungauged."""
     settings = result.settings
     return {
         "regional": __version__,
         "region": settings.region.name,
-        "inputs": {str(path): _sha256(path) for path in _input_files(settings)},
+        "inputs": {str(path): _sha256(path) for path in settings.input_paths()},
         "settings": _plain(settings),
         "chosen": {"model": result.chosen_model, "method": result.chosen_method},
         "counts": {"gauged": len(result.region.gauged), "ungauged": len(result.region.ungauged)},
         "software": software_versions(),
         "timings_s": {stage: round(seconds, 3) for stage, seconds in result.timings.items()},
+        **_stage_manifest(result),
         "warnings": list(result.warnings),
     }
 
 
-def _input_files(settings) -> list[Path]:
-    paths = [settings.path, settings.basins.path, settings.series.path]
-    paths += [overlay.path for overlay in settings.overlays]
-    if settings.raster is not None:
-        paths.append(settings.raster.path)
-    return sorted(set(Path(p) for p in paths))
+def _stage_manifest(result: RunResult) -> dict[str, Any]:
+    """The manifest entries a stage update rewrites."""
+    prediction = result.prediction
+    return {
+        "stages": dict(result.stages),
+        "prediction": None
+        if prediction is None
+        else {
+            "level": prediction.level,
+            "model": prediction.model,
+            "method": prediction.method,
+        },
+        "settings": _plain(result.settings),
+        "constant_flow_ungauged": list(result.region.constant_flow),
+        "warnings": list(result.warnings),
+    }
 
 
 def _sha256(path: Path) -> str:

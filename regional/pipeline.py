@@ -33,17 +33,13 @@ from regional.errors import InputError, InputWarning
 from regional.models import get_model, parameter_transforms
 from regional.overlap import excluded_donors, overlap_shares
 from regional.predict import predict_ungauged
-from regional.region import Region, load_region
+from regional.region import Region, load_region, transfer_attribute_names
 from regional.result import ModelRun, RunResult
 from regional.screen import screen_candidates
 from regional.transfer import RegressionTransfer
-from regional.transfer.base import numeric_columns
 
 logger = logging.getLogger(__name__)
 
-NOT_TRANSFERABLE = ("runoff_ratio", "centroid_lon", "centroid_lat")
-"""Attributes never used by default: runoff_ratio needs observed flow; coordinates are for
-proximity, not similarity."""
 CALIBRATION_CHUNK = 16
 """Basins per calibration task handed to the executor."""
 
@@ -69,7 +65,8 @@ def run(
         Start a local Dask cluster of this many worker processes; overrides
         ``[compute] workers``.
     progress : callable(stage, done, total), optional
-        Called as basins complete in the ``calibration`` and ``leave-one-out`` stages.
+        Called as basins complete in the stages ``calibration <model>`` and
+        ``leave-one-out <model>``.
 
     Returns
     -------
@@ -81,7 +78,9 @@ def run(
     region = load_region(settings)
     timings["region"] = time.perf_counter() - clock
     executor = make_executor(
-        scheduler or settings.compute.scheduler, workers=workers or settings.compute.workers
+        scheduler or settings.compute.scheduler,
+        workers=workers or settings.compute.workers,
+        connect_timeout_s=settings.compute.connect_timeout_s,
     )
     try:
         with warnings.catch_warnings(record=True) as caught:
@@ -120,11 +119,12 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
         clock = time.perf_counter()
         context = _fold_context(model, region, settings, window, calibration, attributes, excluded)
         counts = choose_donor_counts(
-            context, executor=executor, progress=_stage(progress, "donor count")
+            context, executor=executor, progress=_stage(progress, f"donor count {model}")
         )
         if counts is not None:
             context = with_donor_counts(context, counts.chosen)
-        loo = leave_one_out(context, executor=executor, progress=_stage(progress, "leave-one-out"))
+        stage = _stage(progress, f"leave-one-out {model}")
+        loo = leave_one_out(context, executor=executor, progress=stage)
         regression = _regression_on_all(context, attributes)
         timings[f"leave_one_out_{model}"] = time.perf_counter() - clock
         runs[model] = ModelRun(
@@ -168,26 +168,10 @@ def _stage(progress: Progress, name: str):
 
 
 def transfer_attributes(region: Region, settings: Settings) -> tuple[str, ...]:
-    """Attribute columns for regression and similarity, checked complete at every basin.
-
-    The config's ``[transfer] attributes`` when given; else every numeric attribute except
-    those that need observed flow (``runoff_ratio``) and the coordinates. Attributes with a
-    missing value at any basin stop the run with the basin named.
-    """
-    table = region.attributes
-    chosen = settings.transfer.attributes
-    if chosen is None:
-        chosen = tuple(c for c in numeric_columns(table) if c not in NOT_TRANSFERABLE)
-    missing = table.loc[:, list(chosen)].isna()
-    if missing.to_numpy().any():
-        column = missing.any().idxmax()
-        basins = list(missing.index[missing[column]])
-        raise InputError(
-            f"attribute '{column}' is missing at basin(s) {basins[:5]} "
-            f"({len(basins)} in all); every basin needs every transfer attribute: fill it in "
-            "the basins layer or drop it from [transfer] attributes"
-        )
-    return tuple(chosen)
+    """Attribute columns for regression and similarity (checked finite at every basin when the
+    region was loaded): the config's ``[transfer] attributes`` when given; else every numeric
+    attribute except those that need observed flow (``runoff_ratio``) and the coordinates."""
+    return transfer_attribute_names(settings, region.attributes)
 
 
 def _excluded(region: Region, settings: Settings) -> dict[str, frozenset[str]]:
@@ -258,7 +242,8 @@ def _calibrate(model, region, settings, window: Window, executor, progress) -> p
         fixed=fixed_parameters(settings, snow=temp is not None),
     )
     chunks = chunked(list(region.gauged), CALIBRATION_CHUNK)
-    parts = executor.map(_calibrate_chunk, chunks, job, progress=_stage(progress, "calibration"))
+    stage = _stage(progress, f"calibration {model}")
+    parts = executor.map(_calibrate_chunk, chunks, job, progress=stage)
     return pd.concat(parts)
 
 

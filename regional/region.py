@@ -25,6 +25,9 @@ from regional.errors import InputError, InputWarning
 
 #: mm/day of runoff from 1 m3/s over 1 km2: 86 400 s/day * 1 m3/s / 1e6 m2 * 1000 mm/m.
 MM_PER_DAY_PER_M3S_KM2 = 86.4
+#: Attributes never used for transfer by default: runoff_ratio needs observed flow; coordinates
+#: are for proximity, not similarity.
+NOT_TRANSFERABLE = ("runoff_ratio", "centroid_lon", "centroid_lat")
 
 
 @dataclass(frozen=True, eq=False)
@@ -52,13 +55,19 @@ class Region:
         Observed flow in mm/day (converted from m3/s with the area when given so), NaN where
         missing; all NaN for ungauged basins.
     gauged, ungauged : tuple of str
-        Basins with / without observed flow in the calibration period, in basin order.
+        Basins with / without usable observed flow in the calibration period, in basin order.
+        A basin whose observed flow is constant over the calibration or validation period is
+        ungauged (listed in ``constant_flow``).
     is_point : bool
         Basins were given as points (outlets) carrying their area.
     notes : tuple of str
         What was skipped, trimmed or approximated.
     warnings : tuple of str
         The :class:`~regional.errors.InputWarning` messages raised while loading.
+    constant_flow : tuple of str
+        Basins with observed flow that is one repeated value (e.g. all zero) over the
+        calibration or validation period: they can be neither calibrated nor scored, so they
+        are treated as ungauged and never serve as donors.
     """
 
     settings: Settings
@@ -74,6 +83,7 @@ class Region:
     is_point: bool
     notes: tuple[str, ...]
     warnings: tuple[str, ...]
+    constant_flow: tuple[str, ...] = ()
 
     @property
     def calibration(self) -> tuple[pd.Timestamp, pd.Timestamp]:
@@ -197,12 +207,11 @@ def _build(settings: Settings) -> Region:
     tables = _pivot(long, dates, basins.index, settings)
     flow_mm = _flow_mm(tables.pop("flow"), basins, tables, settings)
     calibration = _check_periods(settings, dates, notes)
-    gauged = _gauged(
-        flow_mm, calibration, f"{series_source}, column '{settings.series.flow_column}'"
-    )
-    checks.warn_flow_gaps(
-        flow_mm, source=f"{series_source}, column '{settings.series.flow_column}'"
-    )
+    flow_source = f"{series_source}, column '{settings.series.flow_column}'"
+    periods = {"calibration": calibration, "validation": settings.model.validation}
+    constant = _constant_flow(flow_mm, periods, flow_source)
+    gauged = _gauged(flow_mm, calibration, flow_source, constant=constant)
+    checks.warn_flow_gaps(flow_mm, source=flow_source)
     attributes = compute_attributes(
         basins,
         precip_mm=tables["precip"],
@@ -213,6 +222,7 @@ def _build(settings: Settings) -> Region:
         dem=dem,
     )
     _check_attribute_choice(settings, attributes.table)
+    _check_transfer_attributes(settings, attributes.table, basins, tables["precip"])
     _check_candidates(settings, basins.index, gauged)
     ungauged = tuple(basin for basin in basins.index if basin not in set(gauged))
     return Region(
@@ -229,6 +239,7 @@ def _build(settings: Settings) -> Region:
         is_point=is_point,
         notes=tuple(notes) + tuple(attributes.notes),
         warnings=(),
+        constant_flow=tuple(basin for basin in basins.index if basin in constant),
     )
 
 
@@ -280,6 +291,7 @@ def _series(settings: Settings, basin_ids: pd.Index) -> tuple[pd.DataFrame, str]
         forcing_columns=forcing,
         flow_column=spec.flow_column,
         basin_ids=list(basin_ids),
+        max_precip_mm_per_day=spec.max_precip_mm_per_day,
     )
     names = {spec.precip: "precip", spec.pet: "pet", spec.flow_column: "flow"}
     if spec.temp:
@@ -367,19 +379,89 @@ def _check_periods(
             f"no [model] calibration period given: the whole record "
             f"{dates[0]:%Y-%m-%d}..{dates[-1]:%Y-%m-%d} is used"
         )
-    lead = (calibration[0] - dates[0]).days
-    if model.initial_storage_mm is None and lead < model.warmup_days:
-        notes.append(
-            f"only {lead} days of forcing before the calibration start, fewer than "
-            f"warmup_days = {model.warmup_days}"
-        )
+    if model.initial_storage_mm is None:
+        _check_warmup(settings, dates, calibration)
     return calibration
 
 
+def _check_warmup(
+    settings: Settings, dates: pd.DatetimeIndex, calibration: tuple[pd.Timestamp, pd.Timestamp]
+) -> None:
+    """The warm-up must fit in the forcing before the first scored day (``run`` fails else).
+
+    With a ``[model] calibration`` period the warm-up must fit before it (or before the
+    validation period when that comes first); without one, the first ``warmup_days`` of the
+    record warm up the store and at least two days must remain to score.
+    """
+    model = settings.model
+    where = f"key 'warmup_days' in [model] of {settings.path}"
+    if model.calibration is None:
+        left = len(dates) - model.warmup_days
+        if left < 2:
+            raise InputError(
+                f"{where}: the warm-up must leave at least 2 days of the record to calibrate "
+                f"on; found warmup_days = {model.warmup_days} and a record of {len(dates)} days "
+                f"({dates[0]:%Y-%m-%d}..{dates[-1]:%Y-%m-%d}). Fix: lower warmup_days, or set "
+                "initial_storage_mm to start without a warm-up."
+            )
+        return
+    first = min(p[0] for p in (calibration, model.validation) if p is not None)
+    lead = (first - dates[0]).days
+    if lead < model.warmup_days:
+        raise InputError(
+            f"{where}: the warm-up must fit in the forcing before the first scored day; found "
+            f"warmup_days = {model.warmup_days} but only {lead} days of forcing from "
+            f"{dates[0]:%Y-%m-%d} to the start {first:%Y-%m-%d}. Fix: set warmup_days <= "
+            f"{lead}, start the calibration period later, or set initial_storage_mm."
+        )
+
+
+def _constant_flow(
+    flow_mm: pd.DataFrame,
+    periods: dict[str, tuple[pd.Timestamp, pd.Timestamp] | None],
+    source: str,
+) -> dict[str, str]:
+    """Basins whose observed flow is one repeated value over a period -> why (warned).
+
+    Such a record can be neither calibrated (no variance to fit) nor scored (NSE and KGE
+    divide by its variance): the basin is treated as ungauged and never serves as a donor.
+    """
+    found: dict[str, str] = {}
+    for name, period in periods.items():
+        if period is None:
+            continue
+        part = flow_mm.loc[period[0] : period[1]]
+        days = part.notna().sum(axis=0)
+        low, high = part.min(axis=0), part.max(axis=0)
+        constant = (days > 0) & (low == high)
+        for basin in constant.index[constant.to_numpy()]:
+            found.setdefault(
+                basin,
+                f"'{basin}' ({name} {period[0]:%Y-%m-%d}..{period[1]:%Y-%m-%d}: "
+                f"{int(days[basin])} observed days, all {low[basin]:g} mm/day)",
+            )
+    if found:
+        warnings.warn(
+            f"{source}: observed flow is constant over a scoring period at "
+            f"{len(found)} basin(s): {', '.join(found.values())}; a constant record can be "
+            "neither calibrated nor scored, so these basins are treated as ungauged and serve "
+            "as no donor. Fix: check the gauge record (a filled gap, a code such as 0 for "
+            "missing); leave missing days empty.",
+            InputWarning,
+            stacklevel=2,
+        )
+    return found
+
+
 def _gauged(
-    flow_mm: pd.DataFrame, calibration: tuple[pd.Timestamp, pd.Timestamp], source: str
+    flow_mm: pd.DataFrame,
+    calibration: tuple[pd.Timestamp, pd.Timestamp],
+    source: str,
+    *,
+    constant: dict[str, str],
 ) -> tuple[str, ...]:
     observed = flow_mm.loc[calibration[0] : calibration[1]].notna().sum(axis=0)
+    observed[observed.index.isin(list(constant))] = 0
     checks.check_gauged(observed, source=source, period=calibration)
     return tuple(observed.index[observed.to_numpy() > 0])
 
@@ -398,18 +480,72 @@ def _check_attribute_choice(settings: Settings, table: pd.DataFrame) -> None:
                     f"transfer attributes must be numeric attribute columns; numeric "
                     f"attributes: {', '.join(numeric)}. Fix: {hint}list only these names."
                 )
-    in_use = list(chosen) if chosen is not None else numeric
-    missing = table[in_use].isna().sum()
-    missing = missing[missing > 0]
-    if len(missing):
-        listing = ", ".join(f"'{name}' ({count} basins)" for name, count in missing.items())
-        warnings.warn(
-            f"attributes with missing values: {listing}; basins missing a transfer attribute "
-            "cannot be predicted by regression or similarity. Fix: fill the values, or drop "
-            "the attribute from [transfer] attributes.",
-            InputWarning,
-            stacklevel=2,
-        )
+
+
+def transfer_attribute_names(settings: Settings, table: pd.DataFrame) -> tuple[str, ...]:
+    """Attribute columns the transfer uses: ``[transfer] attributes`` when given; else every
+    numeric attribute except those in :data:`NOT_TRANSFERABLE`."""
+    chosen = settings.transfer.attributes
+    if chosen is not None:
+        return tuple(chosen)
+    return tuple(c for c in table.columns if _is_numeric(table[c]) and c not in NOT_TRANSFERABLE)
+
+
+def _check_transfer_attributes(
+    settings: Settings, table: pd.DataFrame, basins: gpd.GeoDataFrame, precip: pd.DataFrame
+) -> None:
+    """Every basin needs a finite value of every transfer attribute; name where a gap came from."""
+    names = list(transfer_attribute_names(settings, table))
+    values = table[names].apply(pd.to_numeric, errors="coerce").to_numpy(dtype=float)
+    bad = ~np.isfinite(values)
+    if not bad.any():
+        return
+    column = int(np.flatnonzero(bad.any(axis=0))[0])
+    name = names[column]
+    rows = np.flatnonzero(bad[:, column])
+    found = ", ".join(
+        f"'{table.index[r]}' ({_shown_value(values[r, column])})" for r in rows[: checks.SHOWN]
+    )
+    more = f" and {len(rows) - checks.SHOWN} more" if len(rows) > checks.SHOWN else ""
+    origin = _attribute_origin(settings, name, basins, table.index[rows], precip)
+    raise InputError(
+        f"transfer attribute '{name}' is missing or infinite at {len(rows)} basin(s): "
+        f"{found}{more}; it comes from {origin}. Every basin needs a finite value of every "
+        f"transfer attribute. Fix: correct the source, or drop '{name}' from [transfer] "
+        f"attributes in {settings.path}."
+    )
+
+
+def _shown_value(value: float) -> str:
+    return "missing" if np.isnan(value) else f"{value:g}"
+
+
+def _attribute_origin(
+    settings: Settings,
+    name: str,
+    basins: gpd.GeoDataFrame,
+    where: pd.Index,
+    precip: pd.DataFrame,
+) -> str:
+    if name in basins.columns:
+        return f"column '{name}' of the basins layer {settings.basins.path}"
+    for overlay in settings.overlays:
+        if name in overlay.fields:
+            layer = f" (layer '{overlay.layer}')" if overlay.layer else ""
+            return (
+                f"the overlay {overlay.path}{layer}, field '{name}', whose polygons do not "
+                "cover these basins"
+            )
+    if name == "aridity":
+        mean_p = precip[list(where)].mean(axis=0)
+        dry = [f"'{b}'" for b in mean_p.index[mean_p.to_numpy() == 0]]
+        if dry:
+            return (
+                "the computation aridity = mean PET / mean precipitation, and precipitation "
+                f"is zero on every day at {', '.join(dry[: checks.SHOWN])} (series "
+                f"{settings.series.path}, column '{settings.series.precip}')"
+            )
+    return f"the computation of '{name}' by regional (docs/attributes.md)"
 
 
 def _check_candidates(settings: Settings, basin_ids: pd.Index, gauged: tuple[str, ...]) -> None:
@@ -446,7 +582,7 @@ def _records(region: Region) -> pd.DataFrame:
     gauged = set(region.gauged)
     return pd.DataFrame(
         {
-            "status": ["gauged" if basin in gauged else "ungauged" for basin in flow.columns],
+            "status": [_status(basin, gauged, region.constant_flow) for basin in flow.columns],
             "first_flow": first,
             "last_flow": last,
             "flow_days": counts.astype(int),
@@ -456,6 +592,12 @@ def _records(region: Region) -> pd.DataFrame:
         },
         index=pd.Index(flow.columns, name="basin_id"),
     )
+
+
+def _status(basin: str, gauged: set[str], constant: tuple[str, ...]) -> str:
+    if basin in gauged:
+        return "gauged"
+    return "ungauged (constant flow)" if basin in constant else "ungauged"
 
 
 def _attribute_ranges(table: pd.DataFrame) -> pd.DataFrame:

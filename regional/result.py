@@ -74,6 +74,9 @@ class RunResult:
         :class:`regional.screen.Screening` when candidates were screened.
     warnings : tuple of str
         Everything the user should read, for the report.
+    stages : dict
+        Stage (``run``, ``prediction``, ``screening``) -> when it last wrote the results
+        folder (ISO 8601, UTC); filled by :mod:`regional.outputs` when writing.
     timings : dict
         Stage -> seconds.
     """
@@ -90,6 +93,7 @@ class RunResult:
     screening: object | None = None
     warnings: tuple[str, ...] = ()
     timings: dict[str, float] = field(default_factory=dict)
+    stages: dict[str, str] = field(default_factory=dict)
 
 
 SOFTWARE = (

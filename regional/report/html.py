@@ -903,6 +903,14 @@ def _methods(result: RunResult) -> list[str]:
     return [*parts, _h3("References"), _list(text.references)]
 
 
+def _stages_written(result: RunResult) -> list[str]:
+    """When each stage wrote the results folder (UTC) and the prediction level in force."""
+    rows = [(f"{stage} written (UTC)", when) for stage, when in result.stages.items()]
+    if result.prediction is not None:
+        rows.append(("prediction level in force", f"{result.prediction.level:.0%}"))
+    return [_h3("Stages written"), _key_values(rows)] if rows else []
+
+
 def _run_information(result: RunResult) -> list[str]:
     timings = pd.DataFrame(
         {
@@ -913,6 +921,7 @@ def _run_information(result: RunResult) -> list[str]:
     versions = list(software_versions().items())
     return [
         _p(f"Settings: {result.settings.path}"),
+        *_stages_written(result),
         _h3("Timings"),
         _table(timings),
         _h3("Software"),
