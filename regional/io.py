@@ -12,8 +12,10 @@ import json
 import os
 import re
 import shutil
+import signal
 import tempfile
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from io import BytesIO
 from pathlib import Path
@@ -678,23 +680,47 @@ def write_run_folder(
     _check_parent(target, what="results")
     _check_replaceable(target)
     remove_stale_temporaries(target)
+    staging = None
     try:
-        staging = Path(
-            tempfile.mkdtemp(dir=target.parent, prefix=_temporary_prefix(target), suffix=".tmp")
-        )
-    except OSError as error:
-        raise _write_failure(target, error) from error
-    try:
+        with _signals_held():
+            staging = _temporary_folder(target, ".tmp")
         staging.chmod(_dir_mode())
         _fill_run_folder(staging, tables, layers, crs, figures, report, manifest)
         _swap_into_place(staging, target)
     except OSError as error:
-        shutil.rmtree(staging, ignore_errors=True)
+        _remove(staging)
         raise _write_failure(target, error) from error
     except BaseException:
-        shutil.rmtree(staging, ignore_errors=True)
+        _remove(staging)
         raise
     return target
+
+
+@contextmanager
+def _signals_held() -> Iterator[None]:
+    """Hold Ctrl-C and SIGTERM over a step that must not be cut in two (creating and
+    recording a temporary name, swapping folders); a signal that came meanwhile is delivered
+    right after."""
+    held = {signal.SIGINT, signal.SIGTERM}
+    try:
+        previous = signal.pthread_sigmask(signal.SIG_BLOCK, held)
+    except (AttributeError, ValueError, OSError):  # a system without per-thread signal masks
+        previous = None
+    try:
+        yield
+    finally:
+        if previous is not None:
+            signal.pthread_sigmask(signal.SIG_SETMASK, previous)
+
+
+def _temporary_folder(target: Path, suffix: str) -> Path:
+    prefix = _temporary_prefix(target)
+    return Path(tempfile.mkdtemp(dir=target.parent, prefix=prefix, suffix=suffix))
+
+
+def _remove(path: Path | None) -> None:
+    if path is not None:
+        shutil.rmtree(path, ignore_errors=True)
 
 
 def remove_stale_temporaries(target: str | Path) -> list[Path]:
@@ -832,28 +858,45 @@ def _swap_into_place(staging: Path, target: Path) -> None:
     aside: list[Path] = []
     try:
         for _ in range(_SWAP_ATTEMPTS):
-            if target.exists() or target.is_symlink():
-                _check_replaceable(target)
-                place = Path(
-                    tempfile.mkdtemp(
-                        dir=target.parent, prefix=_temporary_prefix(target), suffix=".old"
-                    )
-                )
-                aside.append(place)
-                try:
-                    os.rename(target, place)
-                except FileNotFoundError:
-                    pass  # another writer set it aside first
-            try:
-                os.rename(staging, target)
-                return
-            except OSError as error:
-                if error.errno not in (errno.ENOTEMPTY, errno.EEXIST):
-                    raise
+            with _signals_held():
+                if _moved_into_place(staging, target, aside):
+                    return
+        _put_back(aside, target)
         raise OSError(errno.EBUSY, "other writers kept replacing the folder", str(target))
     finally:
         for place in aside:
             shutil.rmtree(place, ignore_errors=True)
+
+
+def _moved_into_place(staging: Path, target: Path, aside: list[Path]) -> bool:
+    """One try: set aside what is at ``target``, rename ``staging`` there. False when another
+    writer took the name in between; any other failure puts the earlier folder back."""
+    if target.exists() or target.is_symlink():
+        _check_replaceable(target)
+        aside.append(_temporary_folder(target, ".old"))
+        try:
+            os.rename(target, aside[-1])
+        except FileNotFoundError:
+            pass  # another writer set it aside first
+    try:
+        os.rename(staging, target)
+    except OSError as error:
+        if error.errno in (errno.ENOTEMPTY, errno.EEXIST):
+            return False
+        _put_back(aside, target)
+        raise
+    return True
+
+
+def _put_back(aside: list[Path], target: Path) -> None:
+    """Return the last results folder set aside to ``target`` when nothing took its place."""
+    if target.exists() or target.is_symlink():
+        return
+    for place in reversed(aside):
+        if is_results_folder(place):
+            os.rename(place, target)
+            aside.remove(place)
+            return
 
 
 def update_run_folder(
@@ -942,18 +985,21 @@ def _update_files(target, tables, layers, crs, figures, report) -> None:
 
 def _write_atomically(path: Path, write, *, text: bool = True) -> None:
     """Call ``write(stream)`` on a temporary file beside ``path``, then rename it to ``path``."""
-    handle, temporary = tempfile.mkstemp(
-        dir=path.parent, prefix=_temporary_prefix(path), suffix=".tmp"
-    )
+    temporary = None
+    mode = "w" if text else "wb"
+    options = {"newline": "", "encoding": "utf-8"} if text else {}
     try:
-        os.fchmod(handle, _file_mode())
-        mode = "w" if text else "wb"
-        options = {"newline": "", "encoding": "utf-8"} if text else {}
+        with _signals_held():
+            handle, temporary = tempfile.mkstemp(
+                dir=path.parent, prefix=_temporary_prefix(path), suffix=".tmp"
+            )
         with os.fdopen(handle, mode, **options) as stream:
+            os.fchmod(stream.fileno(), _file_mode())
             write(stream)
         os.replace(temporary, path)
     except BaseException:
-        Path(temporary).unlink(missing_ok=True)
+        if temporary is not None:
+            Path(temporary).unlink(missing_ok=True)
         raise
 
 
@@ -962,12 +1008,14 @@ def _write_bytes_atomically(path: Path, content: bytes) -> None:
 
 
 def _replace_layers(gpkg: Path, layers: Mapping[str, gpd.GeoDataFrame], crs: object) -> None:
-    handle, temporary = tempfile.mkstemp(
-        dir=gpkg.parent, prefix=_temporary_prefix(gpkg), suffix=".tmp.gpkg"
-    )
-    os.close(handle)
-    staged = Path(temporary)
+    staged = None
     try:
+        with _signals_held():
+            handle, temporary = tempfile.mkstemp(
+                dir=gpkg.parent, prefix=_temporary_prefix(gpkg), suffix=".tmp.gpkg"
+            )
+            staged = Path(temporary)
+        os.close(handle)
         if gpkg.exists():
             shutil.copyfile(gpkg, staged)
             staged.chmod(_file_mode())
@@ -992,5 +1040,6 @@ def _replace_layers(gpkg: Path, layers: Mapping[str, gpd.GeoDataFrame], crs: obj
         staged.chmod(_file_mode())
         os.replace(staged, gpkg)
     except BaseException:
-        staged.unlink(missing_ok=True)
+        if staged is not None:
+            staged.unlink(missing_ok=True)
         raise

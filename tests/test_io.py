@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import errno
+import os
+import stat
+
 import geopandas as gpd
 import numpy as np
 import pandas as pd
@@ -11,7 +15,7 @@ from affine import Affine
 from shapely.geometry import Point, box
 
 from regional import io
-from regional.errors import InputError
+from regional.errors import InputError, RunError
 
 
 @pytest.fixture
@@ -252,3 +256,137 @@ def test_write_csv_failure_keeps_previous_file(tmp_path):
 def test_write_csv_missing_folder(tmp_path):
     with pytest.raises(InputError, match=r"the folder .*nowhere does not exist"):
         io.write_csv(pd.DataFrame(), tmp_path / "nowhere" / "out.csv")
+
+
+# ----------------------------------------------------------------------------- results folders
+
+
+def _write(folder, tag: str) -> None:
+    """One small results folder whose every file carries ``tag``."""
+    table = pd.DataFrame({"tag": [tag] * 3})
+    io.write_run_folder(
+        folder,
+        tables={"a.csv": table, "b.csv": table},
+        layers={},
+        crs="EPSG:4326",
+        figures={"f": tag.encode()},
+        report=f"<p>{tag}</p>",
+        manifest={"regional": "test", "tag": tag},
+    )
+
+
+def _dead_pid() -> int:
+    import subprocess
+    import sys
+
+    child = subprocess.Popen([sys.executable, "-c", "pass"])
+    child.wait()
+    return child.pid
+
+
+def test_manifest_marks_ownership_with_tool_and_format(tmp_path):
+    _write(tmp_path / "results", "one")
+    manifest = io.read_manifest(tmp_path / "results")
+    assert (manifest["tool"], manifest["format"], manifest["tag"]) == ("regional", 1, "one")
+    assert io.is_results_folder(tmp_path / "results")
+
+
+@pytest.mark.parametrize(
+    ("content", "ours"),
+    [
+        ('{"regional": "0.1.0", "region": "x"}', True),  # written before the format field
+        ('{"tool": "regional", "format": 1}', True),
+        ('{"tool": "other", "format": 1}', False),
+        ('{"regional": "0.1.0", "format": "one"}', False),
+        ('["regional"]', False),
+        ("not json", False),
+    ],
+)
+def test_earlier_results_recognised_by_their_manifest(tmp_path, content, ours):
+    (tmp_path / "run.json").write_text(content)
+    assert io.is_results_folder(tmp_path) is ours
+
+
+def test_a_folder_of_other_files_is_never_replaced(tmp_path):
+    own = tmp_path / "own"
+    own.mkdir()
+    (own / "run.json").write_text('{"tool": "someone else"}')
+    with pytest.raises(InputError, match="not a results folder of this tool"):
+        _write(own, "one")
+    assert [p.name for p in own.iterdir()] == ["run.json"]
+    assert [p.name for p in tmp_path.iterdir()] == ["own"]
+
+
+def test_stale_temporaries_of_dead_writers_are_removed_and_live_ones_kept(tmp_path):
+    dead, alive = _dead_pid(), os.getpid()
+    stale = [
+        tmp_path / f".results.{dead}.abc_12.tmp",
+        tmp_path / f".results.{dead}.xyz.old",
+        tmp_path / f".results.previous-{dead}",
+    ]
+    live = tmp_path / f".results.{alive}.def.tmp"
+    unrelated = [tmp_path / ".results.notapid.tmp", tmp_path / f".other.{dead}.abc.tmp"]
+    for folder in [*stale, live, *unrelated]:
+        folder.mkdir()
+        (folder / "x.csv").write_text("x")
+    _write(tmp_path / "results", "one")
+    names = {p.name for p in tmp_path.iterdir()}
+    assert not names & {p.name for p in stale}
+    assert {live.name, *(p.name for p in unrelated), "results"} <= names
+
+
+def test_stale_temporary_files_inside_a_results_folder_are_removed(tmp_path):
+    results = tmp_path / "results"
+    _write(results, "one")
+    stale = results / f".a.csv.{_dead_pid()}.q1w2.tmp"
+    stale.write_text("half")
+    io.update_run_folder(
+        results, tables={"a.csv": pd.DataFrame({"x": [1]})}, layers={}, crs=None, figures={}
+    )
+    assert not stale.exists()
+
+
+def test_racing_writers_leave_one_whole_folder(tmp_path):
+    # Four threads write 15 folders each into one name; none may raise, and the folder left
+    # must be one writer's whole output (every file carries the same tag).
+    from concurrent.futures import ThreadPoolExecutor
+
+    target = tmp_path / "results"
+    tags = [f"w{writer}-{n}" for n in range(15) for writer in range(4)]
+    with ThreadPoolExecutor(max_workers=4) as pool:
+        list(pool.map(lambda tag: _write(target, tag), tags))
+    tag = io.read_manifest(target)["tag"]
+    assert set(pd.read_csv(target / "a.csv")["tag"]) == {tag}
+    assert set(pd.read_csv(target / "b.csv")["tag"]) == {tag}
+    assert (target / "figures" / "f.png").read_bytes() == tag.encode()
+    assert (target / "report.html").read_text() == f"<p>{tag}</p>"
+    assert [p.name for p in tmp_path.iterdir()] == ["results"]
+
+
+def test_stage_update_needs_an_earlier_results_folder(tmp_path):
+    (tmp_path / "mine").mkdir()
+    with pytest.raises(InputError, match="no earlier results"):
+        io.update_run_folder(tmp_path / "mine", tables={}, layers={}, crs=None, figures={})
+
+
+def test_write_csv_follows_the_umask(tmp_path):
+    previous = os.umask(0o022)
+    try:
+        path = io.write_csv(pd.DataFrame({"x": [1]}), tmp_path / "a.csv")
+    finally:
+        os.umask(previous)
+    assert stat.S_IMODE(path.stat().st_mode) == 0o644
+
+
+def test_write_csv_disk_full_is_a_run_error_and_leaves_nothing(tmp_path, monkeypatch):
+    path = tmp_path / "out.csv"
+    path.write_text("old\n")
+
+    class Full(pd.DataFrame):
+        def to_csv(self, *args, **kwargs):
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    with pytest.raises(RunError, match="No space left on device.*free disk space"):
+        io.write_csv(Full({"x": [1]}), path)
+    assert path.read_text() == "old\n"
+    assert [p.name for p in tmp_path.iterdir()] == ["out.csv"]

@@ -137,3 +137,25 @@ def test_humid_ungauged_basins_keep_flowing_at_q95(demo_result):
     assert len(humid) >= 6
     assert (humid["q95_mm"] > 0).all(), humid.loc[humid["q95_mm"] <= 0, "q95_mm"]
     assert (humid["min7_mean_mm"] > 0).all()
+
+
+def test_progress_names_the_stage_and_the_model(tmp_path, region_parts):
+    from tiny_region import write_region
+
+    from regional.pipeline import run
+
+    region_parts.config["model"]["name"] = ["linear", "gr4j"]
+    region_parts.config["transfer"]["methods"] = ["similarity"]
+    stages: list[str] = []
+    run(
+        write_region(tmp_path / "region", region_parts),
+        progress=lambda stage, done, total: stages.append(stage),
+    )
+    names = list(dict.fromkeys(stages))
+    assert all(name.endswith((" linear", " gr4j")) for name in names), names
+    assert [n for n in names if n.startswith(("calibration", "leave-one-out"))] == [
+        "calibration linear",
+        "leave-one-out linear",
+        "calibration gr4j",
+        "leave-one-out gr4j",
+    ]
