@@ -13,6 +13,7 @@ import os
 import re
 import shutil
 import signal
+import stat
 import tempfile
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -462,6 +463,8 @@ TOOL, FORMAT = "regional", 1
 _TEMPORARY = r"\.(?P<pid>\d+)\.[a-z0-9_]+\.(?:tmp|old|tmp\.gpkg)|\.previous-(?P<old>\d+)"
 #: Tries to move a new folder into place while other writers race for the same name.
 _SWAP_ATTEMPTS = 50
+#: Looks at a folder that must all find it foreign before it is refused.
+_LOOKS = 3
 
 
 def figure_png(figure, *, dpi: int = 110) -> bytes:
@@ -610,20 +613,36 @@ def _check_parent(target: Path, *, what: str) -> None:
 
 
 def _check_replaceable(target: Path) -> None:
-    """The target is absent, an empty folder, or a results folder of this tool."""
-    if not (target.exists() or target.is_symlink()):
-        return
-    if not target.is_dir():
+    """The target is absent, an empty folder, or a results folder of this tool.
+
+    A folder is judged foreign only when several looks agree: another writer may swap its
+    results into place between two looks, and must not make this one refuse.
+    """
+    try:
+        is_folder = stat.S_ISDIR(target.stat().st_mode)  # one look: writers only place folders
+    except FileNotFoundError:
+        is_folder = not target.is_symlink()  # absent (fine), or a link to nowhere
+    if not is_folder:
         raise InputError(
             f"refusing to write results to {target}: it is a file, not a folder. Fix: choose "
             "a folder name that is free, or an earlier results folder."
         )
-    if any(target.iterdir()) and not is_results_folder(target):
-        raise InputError(
-            f"refusing to replace {target}: it holds files and is not a results folder of "
-            f"this tool (no {MANIFEST} written by regional). Fix: choose an empty or new "
-            "folder, or move those files away first."
-        )
+    if not all(_looks_foreign(target) for _ in range(_LOOKS)):
+        return
+    raise InputError(
+        f"refusing to replace {target}: it holds files and is not a results folder of "
+        f"this tool (no {MANIFEST} written by regional). Fix: choose an empty or new "
+        "folder, or move those files away first."
+    )
+
+
+def _looks_foreign(target: Path) -> bool:
+    """A folder that holds files but no manifest of this tool (False once it is gone)."""
+    try:
+        filled = any(target.iterdir())
+    except (FileNotFoundError, NotADirectoryError):
+        return False
+    return filled and not is_results_folder(target) and target.is_dir()
 
 
 def write_run_folder(

@@ -363,6 +363,22 @@ def test_racing_writers_leave_one_whole_folder(tmp_path):
     assert [p.name for p in tmp_path.iterdir()] == ["results"]
 
 
+def test_racing_processes_leave_one_whole_folder(tmp_path):
+    # As above with three processes (each cleans up after dead writers only, never a live one).
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    target = tmp_path / "results"
+    tags = [f"p{writer}-{n}" for n in range(8) for writer in range(3)]
+    context = multiprocessing.get_context("fork")
+    with ProcessPoolExecutor(max_workers=3, mp_context=context) as pool:
+        list(pool.map(_write, [target] * len(tags), tags))
+    tag = io.read_manifest(target)["tag"]
+    assert set(pd.read_csv(target / "a.csv")["tag"]) == {tag}
+    assert (target / "figures" / "f.png").read_bytes() == tag.encode()
+    assert [p.name for p in tmp_path.iterdir()] == ["results"]
+
+
 def test_stage_update_needs_an_earlier_results_folder(tmp_path):
     (tmp_path / "mine").mkdir()
     with pytest.raises(InputError, match="no earlier results"):
