@@ -27,6 +27,9 @@ from regional.io import Overlay, Raster
 
 #: Fewer gauged basins than this cannot support a transfer.
 MIN_GAUGED = 3
+#: Gauged basins the regression transfer needs: leave-one-out fits it on all but one, and a fit
+#: needs the intercept plus 2 residual degrees of freedom (regional.transfer.regression).
+MIN_GAUGED_REGRESSION = 4
 #: Gauged basins with fewer observed days than this in the calibration period are warned about.
 MIN_CALIBRATION_DAYS = 365
 #: How many offenders a message lists before "and N more".
@@ -189,6 +192,13 @@ CHECKS: dict[str, Check] = {
             "too_few_gauged",
             f"at least {MIN_GAUGED} basins need observed flow in the calibration period",
             "add observed flow, or widen [model] calibration to cover the observations",
+        ),
+        Check(
+            "too_few_for_regression",
+            f"the regression transfer needs at least {MIN_GAUGED_REGRESSION} gauged basins "
+            "(leave-one-out fits it on all but one; a fit needs the intercept and 2 residual "
+            "degrees of freedom)",
+            "drop 'regression' from [transfer] methods, or add observed flow at more basins",
         ),
         Check(
             "flow_gap",
@@ -448,6 +458,18 @@ def check_gauged(
     if len(short):
         listing = _listing([f"'{basin}' ({days} days)" for basin, days in short.items()])
         _warn("short_calibration", source, f"{len(short)} basins in {span}: {listing}")
+
+
+def check_gauged_for_methods(n_gauged: int, *, methods: Sequence[str], source: str) -> None:
+    """Check that the transfer methods can be validated with ``n_gauged`` gauged basins.
+
+    Raises
+    ------
+    InputError
+        ``regression`` is asked for with fewer than :data:`MIN_GAUGED_REGRESSION` gauged basins.
+    """
+    if "regression" in methods and n_gauged < MIN_GAUGED_REGRESSION:
+        _fail_if("too_few_for_regression", f"{source} [transfer] methods", f"{n_gauged} gauged")
 
 
 def flow_gap_days(flow: pd.DataFrame) -> pd.Series:

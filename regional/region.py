@@ -211,6 +211,9 @@ def _build(settings: Settings) -> Region:
     periods = {"calibration": calibration, "validation": settings.model.validation}
     constant = _constant_flow(flow_mm, periods, flow_source)
     gauged = _gauged(flow_mm, calibration, flow_source, constant=constant)
+    checks.check_gauged_for_methods(
+        len(gauged), methods=settings.transfer.methods, source=str(settings.path)
+    )
     checks.warn_flow_gaps(flow_mm, source=flow_source)
     attributes = compute_attributes(
         basins,

@@ -587,3 +587,15 @@ def test_overlay_that_misses_basins_names_the_overlay_file(capsys, project):
     code, _, err = run(capsys, "check", region)
     assert code == 2
     one_error(err, "'sand_frac'", "B06", "region.gpkg (layer 'soils')", "do not cover")
+
+
+def test_too_few_gauged_basins_for_regression_fails_check_and_run(capsys, project):
+    def three_gauged(parts):
+        parts.series.loc[parts.series["basin_id"] == "B04", "flow_mm"] = float("nan")
+
+    region = _region(project, "three", three_gauged)
+    for args in (["check", region], ["run", region, "--out", project / "three_out"]):
+        code, _, err = run(capsys, *args)
+        assert code == 2
+        one_error(err, "[transfer] methods", "at least 4 gauged basins", "found 3 gauged")
+    assert not (project / "three_out").exists()
