@@ -33,7 +33,9 @@ def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True
     result : RunResult
         From :func:`regional.pipeline.run`.
     folder : str or Path
-        Results folder; an existing one is replaced only after the new one is complete.
+        Results folder; an existing one is replaced only after the new one is complete, and
+        only when it is an earlier results folder of regional (else InputError, see
+        :func:`regional.io.check_output_folder`).
     figures : bool, default True
         Draw the figures and the report (False: tables and layers only).
 
@@ -42,6 +44,7 @@ def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True
     Path
         The results folder.
     """
+    folder = _checked(result, folder, update=False)
     now = _now()
     result = replace(result, stages={stage: now for stage in _stages_present(result)})
     tables = result_tables(result)
@@ -71,6 +74,7 @@ def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -
     the other stages read back from the folder) and ``run.json`` updated, so both state the
     prediction level in force and when each stage wrote the folder.
     """
+    folder = _checked(result, folder, update=True)
     previous = io.read_manifest(folder) or {}
     stages = dict(previous.get("stages", {})) | {stage: _now()}
     result = replace(result, stages=stages)
@@ -96,6 +100,14 @@ def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -
         figures=images,
         report=report,
         manifest=manifest,
+    )
+
+
+def _checked(result: RunResult, folder: str | Path, *, update: bool) -> Path:
+    """The folder, refused when a run must not write there (docs/outputs.md)."""
+    settings = result.settings
+    return io.check_output_folder(
+        folder, inputs=settings.input_paths(), region_folder=settings.folder, update=update
     )
 
 
