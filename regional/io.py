@@ -15,6 +15,7 @@ import shutil
 import signal
 import stat
 import tempfile
+import threading
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -718,18 +719,33 @@ def write_run_folder(
 @contextmanager
 def _signals_held() -> Iterator[None]:
     """Hold Ctrl-C and SIGTERM over a step that must not be cut in two (creating and
-    recording a temporary name, swapping folders); a signal that came meanwhile is delivered
-    right after."""
-    held = {signal.SIGINT, signal.SIGTERM}
-    try:
-        previous = signal.pthread_sigmask(signal.SIG_BLOCK, held)
-    except (AttributeError, ValueError, OSError):  # a system without per-thread signal masks
-        previous = None
+    recording a temporary name, swapping folders); a signal that came meanwhile is acted on
+    right after, by the handler that was in place.
+
+    Python runs signal handlers in the main thread whichever thread the system delivered the
+    signal to, so the handlers are swapped for recorders there; elsewhere nothing is held.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    caught: list[int] = []
+    held = (signal.SIGINT, signal.SIGTERM)
+    previous = {number: signal.signal(number, lambda n, _: caught.append(n)) for number in held}
     try:
         yield
     finally:
-        if previous is not None:
-            signal.pthread_sigmask(signal.SIG_SETMASK, previous)
+        for number, handler in previous.items():
+            signal.signal(number, signal.SIG_DFL if handler is None else handler)
+        if caught:
+            _deliver(caught[0], previous[caught[0]])
+
+
+def _deliver(number: int, handler) -> None:
+    """Act on a held signal as its handler would have."""
+    if callable(handler):
+        handler(number, None)
+    elif handler != signal.SIG_IGN:
+        os.kill(os.getpid(), number)  # the default action, e.g. end the process
 
 
 def _temporary_folder(target: Path, suffix: str) -> Path:

@@ -448,13 +448,18 @@ def _region(project: Path, name: str, change) -> Path:
     return write_region(project / name, parts)
 
 
+def _gauge_b05(series: pd.DataFrame) -> None:
+    """Give B05 B01's record, so four basins stay gauged when one turns ungauged (regression
+    needs four)."""
+    b01 = series.loc[series["basin_id"] == "B01", "flow_mm"].to_numpy()
+    series.loc[series["basin_id"] == "B05", "flow_mm"] = b01
+
+
 def test_constant_observed_flow_makes_a_basin_ungauged_and_no_donor(capsys, project):
     def constant(parts):
         series = parts.series
         series.loc[series["basin_id"] == "B04", "flow_mm"] = 0.0
-        # B05 gets a record so that four basins stay gauged (regression needs three per fold)
-        b01 = series.loc[series["basin_id"] == "B01", "flow_mm"].to_numpy()
-        series.loc[series["basin_id"] == "B05", "flow_mm"] = b01
+        _gauge_b05(series)
 
     region = _region(project, "constant", constant)
     before = checksums(region)
@@ -483,6 +488,7 @@ def test_one_repeated_value_over_the_validation_period_is_constant_too(capsys, p
         series = parts.series
         late = (series["basin_id"] == "B02") & (series["date"] >= "2003-01-01")
         series.loc[late, "flow_mm"] = 1.25
+        _gauge_b05(series)
 
     region = _region(project, "flat", flat)
     code, out, err = run(capsys, "check", region)
