@@ -207,6 +207,12 @@ def _connect(client_class, address: str, timeout_s: float):
             "(--scheduler or [compute] scheduler), or wait longer with [compute] "
             "connect_timeout_s."
         ) from None
+    except (MemoryError, ValueError) as error:  # a server answered, in another protocol
+        raise RunError(
+            f"the address {address} answered, but not as a Dask scheduler ({type(error).__name__} "
+            "while reading its greeting). Fix: give the scheduler's own address and port (often "
+            "tcp://HOST:8786; the dashboard port, often 8787, is a web page, not the scheduler)."
+        ) from None
 
 
 def make_executor(

@@ -53,3 +53,27 @@ def test_keep_freed_memory_is_accepted_on_linux():
     from regional.compute import keep_freed_memory
 
     assert keep_freed_memory() is sys.platform.startswith("linux")
+
+
+def test_an_address_that_answers_in_another_protocol_is_named_not_a_scheduler():
+    # A web server (e.g. the dashboard port) answers with text that a Dask client reads as a huge
+    # frame length: that must end in one message naming the address, not "out of memory".
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    import socket
+    import threading
+
+    from regional.errors import RunError
+
+    server = socket.create_server(("127.0.0.1", 0))
+    port = server.getsockname()[1]
+
+    def _answer_like_a_web_server():
+        connection, _ = server.accept()
+        with connection:
+            connection.sendall(b"HTTP/1.1 400 Bad Request\r\n\r\n" * 4)
+            connection.recv(1024)
+
+    threading.Thread(target=_answer_like_a_web_server, daemon=True).start()
+    with pytest.raises(RunError, match=f"127.0.0.1:{port} answered, but not as a Dask scheduler"):
+        make_executor(f"tcp://127.0.0.1:{port}", connect_timeout_s=3)
+    server.close()
