@@ -340,10 +340,28 @@ def test_signal_mid_run_exits_with_its_code_and_leaves_nothing(project, sent, co
     assert leftovers(project) == []
 
 
+def _wait_for_numeric_libraries(child: subprocess.Popen, timeout_s: float = 30.0) -> None:
+    """Return once numpy's compiled core is mapped into the child (Linux /proc), so the signal
+    lands while the command imports its libraries, not during the interpreter's own start-up
+    (which no program can turn into a clean message). Falls back to a fixed wait elsewhere."""
+    maps = Path(f"/proc/{child.pid}/maps")
+    if not maps.exists():
+        time.sleep(0.4)
+        return
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline and child.poll() is None:
+        try:
+            if "_multiarray_umath" in maps.read_text():
+                return
+        except OSError:  # the child has just ended
+            return
+        time.sleep(0.005)
+
+
 def test_ctrl_c_while_the_libraries_import_is_one_line(tmp_path):
     region = write_region(tmp_path / "region", make_parts())
     child = _start(["check", region])
-    time.sleep(0.4)  # the command is importing numpy, pandas, geopandas ... by now
+    _wait_for_numeric_libraries(child)  # the command is importing pandas, geopandas ... now
     child.send_signal(signal.SIGINT)
     _, err = child.communicate(timeout=60)
     err = err.decode()
