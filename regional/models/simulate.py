@@ -115,12 +115,27 @@ def simulate(
     inflow = precip2
     if temp2 is not None:
         snow_params = _parameter_arrays(_SNOW.parameters, params, n, required=False)
-        inflow, snowpack, melt = _SNOW.run(precip2, temp2, snow_params, np.zeros(n))
+        inflow, snowpack, melt = _run_snow(precip2, temp2, snow_params, n)
     start = _initial_storage(chosen, initial_storage, inflow, pet2, model_params, n, warmup_days)
     # A model returns (flow, aet, storage) or, with an exchange term, (..., exchange).
     flow, aet, storage, *exchange = chosen.run(inflow, pet2, model_params, start)
     exchange = exchange[0] if exchange else None
     return Simulation(flow, aet, storage, snowpack, melt, start, warmup_days, exchange)
+
+
+def _run_snow(precip, temp, snow_params, n: int):
+    """The snow store, once for a shared column when every set has the same snow parameters.
+
+    Parameter sets that differ only in the storage model's parameters (a calibration with fixed
+    snow) get the same liquid input, so it is computed once and broadcast (read-only views).
+    """
+    same = all(values.min() == values.max() for values in snow_params.values())
+    if not (same and precip.shape[1] == 1 and temp.shape[1] == 1 and n > 1):
+        return _SNOW.run(precip, temp, snow_params, np.zeros(n))
+    one = {name: values[:1] for name, values in snow_params.items()}
+    liquid, pack, melt = _SNOW.run(precip, temp, one, np.zeros(1))
+    shape = (precip.shape[0], n)
+    return liquid, np.broadcast_to(pack, shape), np.broadcast_to(melt, shape)
 
 
 def _as_columns(values: np.ndarray, name: str) -> np.ndarray:

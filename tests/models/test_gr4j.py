@@ -4,13 +4,19 @@ import math
 
 import numpy as np
 import pytest
+from frozen_gr4j import frozen_gr4j_kernel
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
 import regional
 from regional.models import get_model
-from regional.models.gr4j import WARM_START_FRACTION, _tanh, unit_hydrograph_ordinates
+from regional.models.gr4j import (
+    WARM_START_FRACTION,
+    _gr4j_kernel,
+    _tanh,
+    unit_hydrograph_ordinates,
+)
 
 PARAMS = {"x1_mm": 320.0, "x2_mm_per_day": -0.8, "x3_mm": 70.0, "x4_days": 2.3}
 
@@ -270,3 +276,27 @@ def test_kernel_tanh_matches_numpy():
     # Reference: numpy.tanh; the kernel uses tanh(x) = -expm1(-2x) / (2 + expm1(-2x)), x >= 0.
     x = np.concatenate([[0.0, 1e-300, 1e-12], np.geomspace(1e-8, 800.0, 400)])
     np.testing.assert_allclose([_tanh(v) for v in x], np.tanh(x), rtol=4e-16, atol=0)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    precip=forcing,
+    pet=pets,
+    sets=st.lists(gr4j_sets, min_size=1, max_size=4),
+    share=st.floats(0.0, 1.0),
+    detail=st.booleans(),
+)
+def test_kernel_equals_the_frozen_kernel(precip, pet, sets, share, detail):
+    # Second route: the kernel as it stood before it was optimised (tests/models/frozen_gr4j.py).
+    names = ("x1_mm", "x2_mm_per_day", "x3_mm", "x4_days")
+    x1, x2, x3, x4 = (np.array([s[name] for s in sets]) for name in names)
+    s0, r0 = share * x1, share * x3
+    n, days = len(sets), len(precip)
+    shape = (days, n) if detail else (0, 0)
+    outputs = []
+    for kernel in (_gr4j_kernel, frozen_gr4j_kernel):
+        out = [np.empty((days, n)) for _ in range(4)] + [np.empty(shape), np.empty(shape)]
+        kernel(precip[:, None], pet[:, None], x1, x2, x3, x4, s0.copy(), r0.copy(), *out)
+        outputs.append(out)
+    for new, old in zip(*outputs, strict=True):
+        np.testing.assert_allclose(new, old, rtol=1e-10, atol=1e-10)
