@@ -14,6 +14,7 @@ ORDER = (
     "errors",
     "models",
     "metrics",
+    "flowstats",
     "config",
     "io",
     "checks",
