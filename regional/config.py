@@ -533,11 +533,6 @@ def load_settings(path: str | Path) -> Settings:
     return _assemble(file, sections, overlays)
 
 
-def known_keys(section: str) -> tuple[str, ...]:
-    """Keys accepted in ``[section]`` (for documentation and messages)."""
-    return tuple(SECTIONS[section])
-
-
 # --------------------------------------------------------------------------------------------
 # Steps
 # --------------------------------------------------------------------------------------------

@@ -293,13 +293,23 @@ def donor_simulator(model: str, fixed: Mapping[str, float]):
     """
     table = get_model(model).parameters
 
-    def simulate_sets(model_name, precip, pet, params, **options):
+    def simulate_sets(
+        model_name, precip, pet, params, *, temp=None, initial_storage=None, warmup_days=0
+    ):
         n = len(next(iter(params.values())))
         sets = {name: np.full(n, value) for name, value in fixed.items()}
         for parameter in table:
             values = np.asarray(params[parameter.name], dtype=float)
             sets[parameter.name] = np.clip(values, parameter.lower, parameter.upper)
-        return simulate(model_name, precip, pet, sets, **options)
+        return simulate(
+            model_name,
+            precip,
+            pet,
+            sets,
+            temp=temp,
+            initial_storage=initial_storage,
+            warmup_days=warmup_days,
+        )
 
     return simulate_sets
 

@@ -34,9 +34,9 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pandas as pd
 
+from regional.applicability import applicability
 from regional.errors import InputError, InputWarning
 from regional.models import parameter_transforms
-from regional.predict import applicability
 from regional.transfer import RegressionTransfer, make_transfer
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
@@ -71,8 +71,8 @@ class Screening:
         ``reason``
         (plain words), ``leverage`` (x_c' (X'X)^-1 x_c, mean over parameters),
         ``nearest_donor_distance`` (standardised attributes), ``applicable`` (see
-        :func:`regional.predict.applicability`), and ``donor_ratio_<p>`` (largest over smallest
-        donor value of each log-transformed parameter).
+        :func:`regional.applicability.applicability`), and ``donor_ratio_<p>`` (largest over
+        smallest donor value of each log-transformed parameter).
     notes : tuple of str
         Assumptions and what was left out.
     """

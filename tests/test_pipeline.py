@@ -95,9 +95,9 @@ def test_prediction_method_that_was_not_validated_is_an_input_error(tmp_path):
 
 
 def test_donor_count_chosen_in_leave_one_out_reaches_prediction_and_outputs(tmp_path):
+    from regional.donation import fit_transfers
     from regional.outputs import write_outputs
     from regional.pipeline import run
-    from regional.predict import fit_transfers
     from regional.report.html import render_report
 
     toml = _demo_copy(

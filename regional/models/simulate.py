@@ -20,11 +20,6 @@ _SNOW = DegreeDaySnow()
 EQUILIBRIUM_WINDOW_DAYS = 365
 
 
-def register_model(model: object) -> None:
-    """Make a model available by its ``name`` (used by the modules that define models)."""
-    _MODELS[model.name] = model
-
-
 def model_names() -> tuple[str, ...]:
     """Names of the available storage models, the default (``"linear"``) first."""
     return tuple(_MODELS)

@@ -26,9 +26,6 @@ COMBINE_OPTIONS = ("output", "parameter")
 DEFAULT_TRANSFORMS = {"k_per_day": "log"}
 """Transform used for a parameter column when ``fit`` is not told one; others: identity."""
 
-SET_COLUMNS = ("target_id", "donor_id", "rank", "distance", "weight")
-"""Leading columns of :attr:`Donation.sets`; one column per parameter follows."""
-
 
 @dataclass(frozen=True)
 class Donation:

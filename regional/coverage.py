@@ -1,0 +1,326 @@
+"""How often the daily flow bounds hold: leave-one-out and held-out coverage.
+
+:func:`loo_coverage` measures, for every (model, method) of a run, the share of each gauged
+basin's observed days inside bounds built WITHOUT that basin (all basins at once, see
+:func:`_held_out_quantiles`); :func:`held_out_coverage` does the same at basins held out of the
+whole fit (:mod:`regional.heldout`), and :func:`widened_levels` says which flow classes fall
+short. See ``docs/prediction.md``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import numpy as np
+import pandas as pd
+
+from regional.bounds import (
+    OFFSET_FRACTION,
+    SortedResiduals,
+    aligned,
+    basin_offsets,
+    check_level,
+    conformal_bounds,
+    default_n_classes,
+    flow_classes,
+    log_residuals,
+    pooled_bounds,
+)
+
+if TYPE_CHECKING:  # pragma: no cover - annotations only; the run result sits below this module
+    from regional.result import RunResult
+
+WIDEN_TOLERANCE = 0.03
+"""A flow class whose held-out coverage falls short of the level by more is widened."""
+MAX_CLASS_LEVEL = 0.995
+"""Highest level a widened flow class is rebuilt at."""
+REPORTED_DECILES = (1, 10)
+"""Deciles of each basin's simulated flow whose coverage is reported (lowest and highest)."""
+
+
+def _held_out_coverage(observed: pd.DataFrame, simulated: pd.DataFrame, level: float) -> dict:
+    """Coverage of each basin's observed days by bounds built from the OTHER basins only.
+
+    Classes and offsets are within-basin functions of the simulated flow, so each residual is
+    computed once; the quantiles without each basin come from :func:`_held_out_quantiles`, all
+    basins at once. The number of classes depends on record lengths only and is set once.
+    """
+    obs, sim = aligned(observed, simulated)
+    k = default_n_classes(obs)
+    classes = flow_classes(sim, k)
+    residual, basin, cls = log_residuals(obs, sim, classes, OFFSET_FRACTION)
+    data = SortedResiduals.of(residual, basin, cls, k)
+    n_columns = obs.shape[1]
+    lower = np.empty((k, n_columns))
+    upper = np.empty((k, n_columns))
+    for c, (values, basins) in enumerate(zip(data.values, data.basins, strict=True)):
+        lower[c], upper[c] = _held_out_quantiles(values, basins, level, n_columns)
+    columns = np.broadcast_to(np.arange(n_columns), obs.shape)
+    offsets = basin_offsets(sim)
+    with np.errstate(over="ignore"):
+        low = (sim + offsets) * np.exp(np.minimum(lower, 0.0)[classes, columns]) - offsets
+        high = (sim + offsets) * np.exp(np.maximum(upper, 0.0)[classes, columns]) - offsets
+    low, high = np.clip(np.minimum(low, sim), 0.0, None), np.maximum(high, sim)
+    shares = _coverage_shares(obs, sim, low, high, k)
+    valid = np.isfinite(obs)
+    return {
+        "coverage": _mean_share(shares["all"]),
+        **{f"coverage_decile_{d}": _mean_share(shares[f"decile {d}"]) for d in REPORTED_DECILES},
+        "n_days": int(valid.sum()),
+        "n_basins": int(valid.any(axis=0).sum()),
+    }
+
+
+def _coverage_shares(obs, sim, low, high, n_classes: int) -> dict[str, np.ndarray]:
+    """Share of each basin's observed days inside its bounds: all days, per class, per decile.
+
+    Classes and deciles are within-basin quantiles of the simulated flow (as in the error
+    model), so they exist at an ungauged basin. A basin without an observed day in a group gets
+    NaN there.
+    """
+    valid = np.isfinite(obs)
+    inside = (obs >= low) & (obs <= high) & valid
+    groups = {"all": np.ones_like(valid)}
+    classes = flow_classes(sim, n_classes)
+    for c in range(n_classes):
+        groups[f"class {c + 1}"] = classes == c
+    deciles = flow_classes(sim, 10)
+    for d in REPORTED_DECILES:
+        groups[f"decile {d}"] = deciles == d - 1
+    shares = {}
+    for name, member in groups.items():
+        days = (valid & member).sum(axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            shares[name] = np.where(days > 0, (inside & member).sum(axis=0) / days, np.nan)
+    return shares
+
+
+def _mean_share(shares: np.ndarray) -> float:
+    shares = shares[np.isfinite(shares)]
+    return float(np.mean(shares)) if len(shares) else np.nan
+
+
+def _held_out_quantiles(
+    values: np.ndarray, basins: np.ndarray, level: float, n_columns: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Basin-weighted conformal quantiles of one class with each basin left out in turn.
+
+    Equal to :func:`regional.bounds.pooled_bounds` on the class's residuals without basin j,
+    for every j at once: with B basins in the class and n_b days of basin b, the cumulative
+    weight without j at sorted position i is B / (B - 1) x (C(i) - m_j(i) / (B n_j)), C the
+    full cumulative weight and m_j(i) the days of basin j at or before i; a vectorised
+    bisection over i finds each quantile in O(B log D) instead of refitting B times.
+
+    Returns
+    -------
+    lower, upper : ndarray (n_columns,)
+        Quantiles without each basin (column); basins absent from the class get the full ones.
+    """
+    full_low, full_high = pooled_bounds(values, basins, level)
+    lower, upper = np.full(n_columns, full_low), np.full(n_columns, full_high)
+    days = len(values)
+    if days == 0:
+        return lower, upper
+    codes, inverse, counts = np.unique(basins, return_inverse=True, return_counts=True)
+    n_basins = len(codes)
+    if n_basins == 1:
+        lower[codes], upper[codes] = -np.inf, np.inf
+        return lower, upper
+    cumulative = np.cumsum(1.0 / (n_basins * counts[inverse]))
+    order = np.argsort(inverse, kind="stable")
+    keys = inverse[order] * (days + 1) + order
+    base = np.arange(n_basins) * (days + 1)
+    starts = np.searchsorted(keys, base)
+    scale = n_basins / (n_basins - 1)
+
+    def without(position: np.ndarray) -> np.ndarray:
+        own = np.searchsorted(keys, base + position, side="right") - starts
+        return scale * (cumulative[position] - own / (n_basins * counts))
+
+    remaining = days - counts
+    probabilities = (
+        np.floor((remaining + 1) * (1.0 - level) / 2.0) / remaining,
+        np.ceil((remaining + 1) * (1.0 + level) / 2.0) / remaining,
+    )
+    for out, probability, outside in zip(
+        (lower, upper), probabilities, (-np.inf, np.inf), strict=True
+    ):
+        out[codes] = _bisect_quantiles(values, without, probability, outside, days)
+        unreached = np.flatnonzero(np.isnan(out[codes]))
+        for j in unreached:  # rounding left the last weight short of 1: refit that basin
+            keep = basins != codes[j]
+            bounds = pooled_bounds(values[keep], basins[keep], level)
+            out[codes[j]] = bounds[0] if outside < 0 else bounds[1]
+    return lower, upper
+
+
+def _bisect_quantiles(values, without, probability, outside, days) -> np.ndarray:
+    """Smallest sorted position whose held-out cumulative weight reaches ``probability``."""
+    tolerance = 1e-12
+    target = probability - tolerance
+    lo = np.zeros(len(probability), dtype=np.int64)
+    hi = np.full(len(probability), days, dtype=np.int64)
+    while (lo < hi).any():
+        mid = (lo + hi) // 2
+        reached = without(np.minimum(mid, days - 1)) >= target
+        active = lo < hi
+        hi = np.where(active & reached, mid, hi)
+        lo = np.where(active & ~reached, mid + 1, lo)
+    result = np.where(lo < days, values[np.minimum(lo, days - 1)], np.nan)
+    invalid = (probability <= tolerance) | (probability > 1.0 + tolerance)
+    return np.where(invalid, outside, result)
+
+
+def loo_coverage(result: RunResult, *, level: float) -> pd.DataFrame:
+    """Honest coverage of the conformal bounds of every (model, method) in leave-one-out.
+
+    For each gauged basin the error model is built from the other basins' leave-one-out
+    residuals and the share of the basin's observed evaluation days inside its bounds is
+    counted; ``coverage`` is the mean of those shares over basins (each basin weighs the same).
+
+    Parameters
+    ----------
+    result : RunResult
+        From :func:`regional.pipeline.run`.
+    level : float
+        Nominal level of the bounds, in (0, 1).
+
+    Returns
+    -------
+    DataFrame
+        ``model``, ``method``, ``level``, ``coverage``, ``coverage_decile_1`` and
+        ``coverage_decile_10`` (the same on the days in the lowest and highest tenth of each
+        basin's simulated flow), ``n_days``, ``n_basins``.
+    """
+    level = check_level(level)
+    rows = []
+    for model, run in result.runs.items():
+        loo = run.loo
+        for method in loo.methods:
+            measured = _held_out_coverage(loo.observed, loo.simulated[method], level)
+            rows.append({"model": model, "method": method, "level": level, **measured})
+    deciles = [f"coverage_decile_{d}" for d in REPORTED_DECILES]
+    return pd.DataFrame(
+        rows, columns=["model", "method", "level", "coverage", *deciles, "n_days", "n_basins"]
+    )
+
+
+@dataclass(frozen=True)
+class HeldOutRepeat:
+    """One repeat of the held-out check (:func:`regional.heldout.held_out_flows`).
+
+    Attributes
+    ----------
+    held_out : tuple of str
+        The gauged basins treated as ungauged in this repeat.
+    training_flow : DataFrame
+        Evaluation days x the other gauged basins (the training basins): each one's flow
+        transferred from the other training basins only (leave-one-out within the training
+        basins), mm/day. The error model of the repeat is built from these.
+    held_out_flow : DataFrame
+        Evaluation days x held-out basins: flow transferred from the training basins, mm/day.
+    n_simulated, n_reused : int
+        Basins of the repeat whose flow was simulated afresh, and whose donation equalled their
+        leave-one-out donation so that the leave-one-out flow was reused.
+    """
+
+    held_out: tuple[str, ...]
+    training_flow: pd.DataFrame
+    held_out_flow: pd.DataFrame
+    n_simulated: int
+    n_reused: int
+
+
+def held_out_coverage(
+    observed: pd.DataFrame,
+    repeats: Sequence[HeldOutRepeat],
+    *,
+    level: float,
+    n_classes: int | None = None,
+    class_levels: Sequence[float] | None = None,
+) -> pd.DataFrame:
+    """Coverage of daily flow bounds at basins held out of the whole fit.
+
+    In every repeat the conformal error model (:func:`conformal_bounds`) is built from the
+    training basins' flows only and applied to the held-out basins; the share of each held-out
+    basin's observed days inside its bounds is counted, on all days, per flow class of the error
+    model and on the lowest and highest deciles of its simulated flow. Each (repeat, basin)
+    pair weighs the same in the mean.
+
+    Parameters
+    ----------
+    observed : DataFrame
+        Evaluation days x gauged basins, observed flow, mm/day (NaN = missing).
+    repeats : sequence of HeldOutRepeat
+        From :func:`regional.heldout.held_out_flows`.
+    level : float
+        Nominal level of the bounds.
+    n_classes : int, optional
+        Flow classes of the error model (default: chosen from the training basins' records).
+    class_levels : sequence of float, optional
+        Level per flow class (a widened error model); default ``level`` everywhere.
+
+    Returns
+    -------
+    DataFrame
+        Indexed by ``flow_class`` (``all``, ``class 1`` .., ``decile 1``, ``decile 10``):
+        ``coverage``, ``n_pairs`` ((repeat, basin) pairs with observed days in the class).
+    """
+    level = check_level(level)
+    shares: dict[str, list[float]] = {}
+    for draw in repeats:
+        training = list(draw.training_flow.columns)
+        classes = n_classes or default_n_classes(observed[training].to_numpy(dtype=float))
+        model = conformal_bounds(
+            observed[training],
+            draw.training_flow,
+            level=level,
+            n_classes=classes,
+            class_levels=class_levels,
+        )
+        low, high = model.bounds(draw.held_out_flow)
+        held = list(draw.held_out_flow.columns)
+        obs = observed[held].to_numpy(dtype=float)
+        sim = draw.held_out_flow.to_numpy(dtype=float)
+        per_group = _coverage_shares(obs, sim, low.to_numpy(), high.to_numpy(), classes)
+        for name, values in per_group.items():
+            shares.setdefault(name, []).extend(values[np.isfinite(values)].tolist())
+    rows = [
+        {
+            "flow_class": name,
+            "coverage": float(np.mean(values)) if values else np.nan,
+            "n_pairs": len(values),
+        }
+        for name, values in shares.items()
+    ]
+    return pd.DataFrame(rows, columns=["flow_class", "coverage", "n_pairs"]).set_index(
+        "flow_class"
+    )
+
+
+def widened_levels(coverage: Sequence[float], *, level: float) -> np.ndarray:
+    """Level per flow class after the held-out check: nominal, or raised by the shortfall.
+
+    A class whose held-out coverage falls short of ``level`` by more than
+    :data:`WIDEN_TOLERANCE` gets its quantiles at ``level + shortfall`` (at most
+    :data:`MAX_CLASS_LEVEL`); the others, and classes without a measurement (NaN), keep
+    ``level``.
+
+    Parameters
+    ----------
+    coverage : sequence of float
+        Held-out coverage of each flow class (0 .. 1).
+    level : float
+        Nominal level.
+
+    Returns
+    -------
+    ndarray
+        One level per class.
+    """
+    level = check_level(level)
+    shortfall = np.nan_to_num(level - np.asarray(coverage, dtype=float), nan=0.0)
+    widen = shortfall > WIDEN_TOLERANCE
+    return np.where(widen, np.minimum(level + shortfall, MAX_CLASS_LEVEL), level)

@@ -1,0 +1,130 @@
+"""Tests of regional.coverage: leave-one-out and held-out coverage of the daily bounds."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from regional import bounds, coverage
+from regional.bounds import conformal_bounds
+from regional.coverage import (
+    MAX_CLASS_LEVEL,
+    WIDEN_TOLERANCE,
+    HeldOutRepeat,
+    held_out_coverage,
+    loo_coverage,
+    widened_levels,
+)
+
+
+def test_demo_coverage_of_nominal_90_percent_bounds(demo_result):
+    # the conformal construction's promise (Vovk et al. 2005; Lei et al. 2018), checked on
+    # basins each error model was not built from; the band 0.85-0.95 is set by issue 6
+    coverage = loo_coverage(demo_result, level=0.9)
+    chosen = coverage[coverage["method"] == demo_result.chosen_method].iloc[0]
+    assert 0.85 <= chosen["coverage"] <= 0.95
+    transfers = coverage[coverage["method"] != "calibrated"]
+    assert transfers["coverage"].between(0.85, 0.95).all()
+    assert (coverage["n_basins"] == len(demo_result.region.gauged)).all()
+
+
+def test_held_out_coverage_equals_rebuilding_without_each_basin(demo_result):
+    loo = demo_result.runs[demo_result.chosen_model].loo
+    obs, sim = loo.observed, loo.simulated[demo_result.chosen_method]
+    shares = []
+    for basin in obs.columns:
+        model = conformal_bounds(obs.drop(columns=basin), sim.drop(columns=basin), level=0.9)
+        low, high = model.bounds(sim[[basin]])
+        seen = obs[basin].notna()
+        inside = (obs[basin] >= low[basin]) & (obs[basin] <= high[basin])
+        shares.append(inside[seen].mean())
+    coverage = loo_coverage(demo_result, level=0.9)
+    row = coverage[coverage["method"] == demo_result.chosen_method].iloc[0]
+    assert row["coverage"] == pytest.approx(np.mean(shares), abs=1e-12)
+
+
+def test_held_out_coverage_equals_refitting_without_each_basin():
+    # The all-basins-at-once quantiles must equal the direct route: rebuild the error model
+    # from the residuals of the other basins only, apply it to j, count j's days inside.
+    rng = np.random.default_rng(5)
+    days, n = 400, 12
+    sim = rng.gamma(1.0, 2.0, (days, n))
+    obs = sim * rng.lognormal(0.0, 0.5, (days, n))
+    obs[rng.random((days, n)) < 0.1] = np.nan
+    obs[:150, 3] = np.nan
+    index = pd.date_range("2001-01-01", periods=days)
+    observed, simulated = pd.DataFrame(obs, index), pd.DataFrame(sim, index)
+    fast = coverage._held_out_coverage(observed, simulated, 0.8)
+
+    k = bounds.default_n_classes(obs)
+    classes = bounds.flow_classes(sim, k)
+    residual, basin, cls = bounds.log_residuals(obs, sim, classes, bounds.OFFSET_FRACTION)
+    offsets = bounds.basin_offsets(sim)
+    shares = []
+    for j in range(n):
+        others = basin != j
+        data = bounds.SortedResiduals.of(residual[others], basin[others], cls[others], k)
+        model = bounds._fit(data, levels=np.full(k, 0.8), fraction=bounds.OFFSET_FRACTION)
+        low, high = bounds._apply(sim[:, j], classes[:, j], offsets[j], model)
+        valid = np.isfinite(obs[:, j])
+        shares.append(((obs[:, j] >= low) & (obs[:, j] <= high))[valid].mean())
+    assert k > 1
+    assert fast["coverage"] == pytest.approx(np.mean(shares), abs=1e-12)
+    assert fast["n_basins"] == n
+
+
+def _synthetic_repeats(n_basins=30, days=730, held_noise=0.3, seed=0):
+    """Training basins with log errors N(0, 0.3); held-out basins with log errors N(0, held)."""
+    rng = np.random.default_rng(seed)
+    index = pd.date_range("2001-01-01", periods=days)
+    ids = [f"S{i:02d}" for i in range(n_basins)]
+    sim = pd.DataFrame(rng.gamma(2.0, 1.0, (days, n_basins)), index=index, columns=ids)
+    noise = np.full(n_basins, 0.3)
+    noise[:3] = held_noise
+    obs = sim * np.exp(rng.normal(0.0, 1.0, (days, n_basins)) * noise)
+    repeat = HeldOutRepeat(
+        held_out=tuple(ids[:3]),
+        training_flow=sim[ids[3:]],
+        held_out_flow=sim[ids[:3]],
+        n_simulated=n_basins,
+        n_reused=0,
+    )
+    return obs, [repeat]
+
+
+def test_held_out_coverage_near_nominal_when_basins_are_alike():
+    # Exchangeable basins (same lognormal error): bounds built on the others hold about the
+    # nominal share of a held-out basin's days (split-conformal, Lei et al. 2018).
+    obs, repeats = _synthetic_repeats(held_noise=0.3)
+    table = held_out_coverage(obs, repeats, level=0.9, n_classes=5)
+    assert list(table.index) == [
+        "all",
+        *(f"class {c}" for c in range(1, 6)),
+        "decile 1",
+        "decile 10",
+    ]
+    assert table.loc["all", "coverage"] == pytest.approx(0.9, abs=0.03)
+    assert (table["n_pairs"] == 3).all()
+
+
+def test_noisier_held_out_basins_fall_short_and_widening_restores_them():
+    obs, repeats = _synthetic_repeats(held_noise=0.6)
+    table = held_out_coverage(obs, repeats, level=0.9, n_classes=5)
+    # log errors twice as wide: the 90 % bounds hold P(|Z| < 1.645 / 2) = 0.59 of the days
+    assert table.loc["all", "coverage"] == pytest.approx(
+        2 * stats.norm.cdf(1.645 / 2) - 1, abs=0.05
+    )
+    levels = widened_levels(table.loc[[f"class {c}" for c in range(1, 6)], "coverage"], level=0.9)
+    assert (levels > 0.9).all() and (levels <= MAX_CLASS_LEVEL).all()
+    widened = held_out_coverage(obs, repeats, level=0.9, n_classes=5, class_levels=levels)
+    assert (widened["coverage"] > table["coverage"]).all()
+
+
+def test_widened_levels_rule():
+    # short by 0.06 (> WIDEN_TOLERANCE): raised by the shortfall; short by 0.02: kept; no
+    # measurement: kept; short by 0.4: capped at MAX_CLASS_LEVEL
+    levels = widened_levels([0.90, 0.88, 0.84, np.nan, 0.5], level=0.9)
+    np.testing.assert_allclose(levels, [0.9, 0.9, 0.96, 0.9, MAX_CLASS_LEVEL])
+    assert 0.02 <= WIDEN_TOLERANCE < 0.06

@@ -1,0 +1,95 @@
+"""Tests of regional.heldout: gauged basins held out of the whole fit, and widening."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from regional import coverage
+from regional.bounds import conformal_bounds
+from regional.donation import fit_transfers, method_flows
+from regional.heldout import _held_out_draws, held_out_flows
+from regional.predict import predict_ungauged
+
+
+def test_held_out_draws_hold_every_basin_out_evenly():
+    basins = [f"B{i:02d}" for i in range(34)]
+    draws = _held_out_draws(basins, 3, 22, seed=1)
+    assert draws == _held_out_draws(basins, 3, 22, seed=1)  # seeded
+    assert draws != _held_out_draws(basins, 3, 22, seed=2)
+    assert all(len(set(d)) == 3 for d in draws)
+    counts = pd.Series([b for d in draws for b in d]).value_counts()
+    assert set(counts.index) == set(basins)
+    assert counts.max() - counts.min() <= 1  # 66 places over 34 basins: each once or twice
+
+
+def test_held_out_basins_never_reach_the_fit(demo_result):
+    # Independence: giving the held-out basins absurd calibrated parameters must change
+    # nothing in the repeat: not the training basins' flows (the error model's material) and
+    # not the held-out basins' own flows (they are transferred from the training basins).
+    import dataclasses
+    from types import SimpleNamespace
+
+    model, method = demo_result.chosen_model, "regression"
+    run = demo_result.runs[model]
+    (first,) = held_out_flows(demo_result, model=model, method=method, repeats=1, seed=3)
+    calibrated = run.context.calibrated.copy()
+    calibrated.loc[list(first.held_out), "k_per_day"] = 1.4  # far from every demo basin
+    poisoned = SimpleNamespace(
+        runs={
+            model: SimpleNamespace(
+                context=dataclasses.replace(run.context, calibrated=calibrated), loo=run.loo
+            )
+        },
+        settings=demo_result.settings,
+    )
+    (again,) = held_out_flows(poisoned, model=model, method=method, repeats=1, seed=3)
+    assert again.held_out == first.held_out
+    pd.testing.assert_frame_equal(again.training_flow, first.training_flow)
+    pd.testing.assert_frame_equal(again.held_out_flow, first.held_out_flow)
+    assert first.n_simulated == len(run.loo.observed.columns) and first.n_reused == 0
+
+
+def test_held_out_flows_reuse_leave_one_out_only_where_the_fold_is_the_same(demo_result):
+    # Proximity donors that include no held-out basin give the leave-one-out donation again:
+    # those flows are reused; every flow, reused or not, equals a fresh fit on the training
+    # basins simulated along the leave-one-out path.
+    model = demo_result.chosen_model
+    run = demo_result.runs[model]
+    context = run.context
+    (draw,) = held_out_flows(demo_result, model=model, method="proximity", repeats=1, seed=4)
+    assert draw.n_reused > 0 and draw.n_simulated > 0
+    training = list(draw.training_flow.columns)
+    assert set(training).isdisjoint(draw.held_out)
+    for target in [*training[:4], *draw.held_out]:
+        pool = [b for b in training if b != target and b not in context.excluded.get(target, ())]
+        estimators, _ = fit_transfers(context, level=0.9, train=pool, methods=["proximity"])
+        donation = estimators["proximity"].donate(context.attributes.loc[[target]])
+        assert set(donation.sets["donor_id"]).isdisjoint(draw.held_out)
+        expected = method_flows(context, donation, [target])[context.evaluation, 0]
+        frame = draw.held_out_flow if target in draw.held_out else draw.training_flow
+        np.testing.assert_allclose(frame[target].to_numpy(), expected, rtol=1e-12)
+
+
+def test_classes_short_of_the_level_are_widened_in_the_bounds(demo_result, monkeypatch):
+    # With no tolerance every flow class whose held-out coverage is below the level is rebuilt
+    # at level + shortfall: its quantiles grow, the others stay, and a note says so.
+    monkeypatch.setattr(coverage, "WIDEN_TOLERANCE", 0.0)
+    run = demo_result.runs[demo_result.chosen_model]
+    plain = conformal_bounds(
+        run.loo.observed, run.loo.simulated[demo_result.chosen_method], level=0.8
+    )
+    prediction = predict_ungauged(demo_result, level=0.8)
+    used = prediction.error_model["level"].to_numpy()
+    widened = used > 0.8
+    assert widened.any()
+    shortfall = 0.8 - prediction.held_out.set_index("flow_class")["held_out_coverage"]
+    classes = [f"class {c}" for c in range(1, len(used) + 1)]
+    np.testing.assert_allclose(used[widened], 0.8 + shortfall[classes].to_numpy()[widened])
+    upper, lower = prediction.error_model["upper_q"], prediction.error_model["lower_q"]
+    assert (upper.to_numpy()[widened] >= plain.upper_q[widened]).all()
+    assert (lower.to_numpy()[widened] <= plain.lower_q[widened]).all()
+    np.testing.assert_allclose(upper.to_numpy()[~widened], plain.upper_q[~widened])
+    assert any("bounds widened" in note for note in prediction.notes)
+    chosen = prediction.coverage[prediction.coverage["method"] == prediction.method].iloc[0]
+    assert chosen["widened_classes"].startswith(tuple(str(c) for c in range(1, 6)))
