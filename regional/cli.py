@@ -449,8 +449,23 @@ class Terminated(BaseException):
     """Raised in the main thread when the process receives SIGTERM (handled like Ctrl-C)."""
 
 
+_STOPS_RECEIVED: list[BaseException] = []
+"""Signals received during this command: a compiled library that is importing when Ctrl-C
+arrives can turn the interruption into an ``ImportError`` (numpy does), which is then reported
+as the interruption it was."""
+
+
 def _on_terminate(signum, frame) -> None:
-    raise Terminated()
+    raise _received(Terminated())
+
+
+def _on_interrupt(signum, frame) -> None:
+    raise _received(KeyboardInterrupt())
+
+
+def _received(stop: BaseException) -> BaseException:
+    _STOPS_RECEIVED.append(stop)
+    return stop
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -460,7 +475,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     ``error: ...`` line (or ``interrupted`` / ``terminated``) on stderr, never a traceback.
     SIGTERM is handled like Ctrl-C: temporary files are removed, earlier results stay intact.
     """
-    previous = _handle_sigterm()
+    _STOPS_RECEIVED.clear()
+    previous = _handle_signals()
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
@@ -471,15 +487,19 @@ def main(argv: Sequence[str] | None = None) -> int:
     except (KeyboardInterrupt, Terminated) as stop:  # while parsing, before a command runs
         return _stopped(stop)
     finally:
-        if previous is not None:
-            signal.signal(signal.SIGTERM, previous)
+        for number, handler in previous.items():
+            signal.signal(number, handler)
 
 
-def _handle_sigterm():
+def _handle_signals() -> dict[int, object]:
+    """Install this command's SIGTERM and SIGINT handlers; return the ones they replace."""
     try:
-        return signal.signal(signal.SIGTERM, _on_terminate)
+        return {
+            signal.SIGTERM: signal.signal(signal.SIGTERM, _on_terminate),
+            signal.SIGINT: signal.signal(signal.SIGINT, _on_interrupt),
+        }
     except ValueError:  # not the main thread: leave signals alone
-        return None
+        return {}
 
 
 def _run(command: Callable[[argparse.Namespace], int], args: argparse.Namespace) -> int:
@@ -501,6 +521,10 @@ def _run(command: Callable[[argparse.Namespace], int], args: argparse.Namespace)
             code, error = 3, "out of memory. Fix: run fewer basins or models at once."
         except (KeyboardInterrupt, Terminated) as stop:
             code = _stopped(stop)
+        except ImportError:
+            if not _STOPS_RECEIVED:
+                raise
+            code = _stopped(_STOPS_RECEIVED[-1])
     for record in caught:
         if issubclass(record.category, InputWarning):
             print(f"warning: {record.message}", file=sys.stderr)

@@ -389,6 +389,31 @@ def test_keyboard_interrupt_raised_inside_an_import_is_one_line(capsys, tmp_path
     assert err.splitlines() == [err.strip()] and err.startswith("interrupted (Ctrl-C)")
 
 
+def test_interrupt_turned_into_an_import_error_by_a_library_is_one_line(
+    capsys, tmp_path, monkeypatch
+):
+    # numpy's compiled core, interrupted while it loads, raises ImportError ("could not import
+    # module datetime") instead of KeyboardInterrupt; the command still ends as interrupted.
+    from regional import cli
+
+    class Swallowing:
+        """A finder standing for a compiled library that turns Ctrl-C into an ImportError."""
+
+        def find_spec(self, name, path=None, target=None):
+            if name == "regional.region":
+                try:
+                    cli._on_interrupt(signal.SIGINT, None)
+                except KeyboardInterrupt:
+                    raise ImportError("could not import module 'datetime'") from None
+            return None
+
+    monkeypatch.delitem(sys.modules, "regional.region")
+    monkeypatch.setattr(sys, "meta_path", [Swallowing(), *sys.meta_path])
+    code, _, err = run(capsys, "check", tmp_path)
+    assert code == 130
+    assert err.splitlines() == [err.strip()] and err.startswith("interrupted (Ctrl-C)")
+
+
 def test_package_import_does_not_load_the_numeric_libraries():
     done = subprocess.run(
         [sys.executable, "-c", "import sys, regional.cli; print('pandas' in sys.modules)"],
