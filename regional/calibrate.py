@@ -5,19 +5,18 @@ calibration period after the warm-up, and the optimum is scored again on a separ
 period: the split-sample test of Klemes (1986). One-parameter models use a bounded scalar search:
 a log-spaced grid evaluated in one vectorised call brackets the optimum, then Brent's method
 (Brent 1973, as in ``scipy.optimize.minimize_scalar(method="bounded")``) refines it in the
-transformed space. Models with several free parameters (GR4J) use differential evolution (Storn
-and Price 1997, ``scipy.optimize.differential_evolution``) in the transformed space, the whole
-population simulated as columns of one call per generation, then a vectorised compass search
-(Kolda, Lewis and Torczon 2003) polishes the best member.
+transformed space. Models with several free parameters use one of two searches in the
+transformed space (:mod:`regional.search`): ``fast`` (default), a seeded Sobol screening scored
+in one vectorised call followed by Nelder-Mead descents within a budget of model runs; or
+``thorough``, differential evolution with the whole population simulated as columns of one call
+per generation, then a compass-search polish. The model runs spent are recorded per basin
+(``n_runs``). docs/calibration.md compares the two.
 
 References
 ----------
 Klemes, V. (1986): Operational testing of hydrological simulation models, Hydrol. Sci. J. 31(1),
-13-24. Brent, R. P. (1973): Algorithms for Minimization without Derivatives, Prentice-Hall.
-Storn, R., Price, K. (1997): Differential evolution - a simple and efficient heuristic for global
-optimization over continuous spaces, J. Global Optim. 11, 341-359. Kolda, T. G., Lewis, R. M.,
-Torczon, V. (2003): Optimization by direct search: new perspectives on some classical and modern
-methods, SIAM Review 45(3), 385-482.
+13-24. Brent, R. P. (1973): Algorithms for Minimization without Derivatives, Prentice-Hall. The
+multi-parameter searches' references are in :mod:`regional.search`.
 """
 
 from __future__ import annotations
@@ -27,30 +26,29 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy.optimize import differential_evolution, minimize_scalar
+from scipy.optimize import minimize_scalar
 
 from regional import metrics
 from regional.errors import InputError
-from regional.models import get_model, simulate
+from regional.models import Simulator, get_model, snow_parameters
+from regional.search import SearchResult, evolve_and_polish, screen_and_descend
 
 GRID_SIZE = 41
 """Grid points of the bracketing search over a one-parameter model's bounds."""
 BRENT_XATOL = 1e-6
 """Brent's absolute tolerance in the transformed (e.g. log k) space."""
+SEARCHES = ("fast", "thorough")
+"""Searches for models with several free parameters (see :mod:`regional.search`)."""
+DEFAULT_SEARCH = "fast"
+"""Default multi-parameter search."""
+DEFAULT_MAX_RUNS = 400
+"""Default budget of the fast search: model runs after the Sobol screening."""
 DEFAULT_BUDGET = 60
-"""Default maximum generations of differential evolution (multi-parameter models)."""
+"""Default maximum generations of differential evolution (the thorough search)."""
 DEFAULT_POPSIZE = 8
 """Default population of differential evolution, per free parameter (scipy's ``popsize``)."""
 DEFAULT_SEED = 20240
-"""Default seed of differential evolution: the same data give the same parameters."""
-DE_TOLERANCE = 1e-4
-"""Relative spread of the population's scores at which differential evolution stops early."""
-POLISH_START_STEP = 0.02
-"""First step of the compass search, as a share of each transformed parameter's range."""
-POLISH_MIN_STEP = 1e-5
-"""The compass search stops when every step is below this share of the range."""
-POLISH_MAX_ROUNDS = 60
-"""At most this many compass-search rounds (2 x free parameters simulations each)."""
+"""Default seed of both searches: the same data give the same parameters."""
 FAILED_SCORE = 1e10
 """Energy given to a parameter set whose score is undefined (NaN), so the search avoids it."""
 
@@ -152,6 +150,8 @@ def calibrate(
     budget: int = DEFAULT_BUDGET,
     popsize: int = DEFAULT_POPSIZE,
     seed: int = DEFAULT_SEED,
+    search: str = DEFAULT_SEARCH,
+    max_runs: int = DEFAULT_MAX_RUNS,
 ) -> pd.DataFrame:
     """Calibrate ``model`` at every gauged basin and score it on a validation period.
 
@@ -178,13 +178,20 @@ def calibrate(
     progress : callable(done, total), optional
         Called after each basin.
     budget : int, default 60
-        Multi-parameter models only: maximum generations of differential evolution. Each
-        generation is one simulate call over ``popsize`` x (free parameters) columns; the search
-        stops earlier when the population's scores agree to 1e-4 relative.
+        Thorough search only: maximum generations of differential evolution. Each generation is
+        one simulate call over ``popsize`` x (free parameters) columns; the search stops earlier
+        when the population's scores agree to 1e-4 relative.
     popsize : int, default 8
-        Multi-parameter models only: population size per free parameter (32 sets for GR4J).
+        Thorough search only: population size per free parameter (32 sets for GR4J).
     seed : int, default 20240
-        Multi-parameter models only: seed of differential evolution (reproducible results).
+        Multi-parameter models only: seed of the search (reproducible results).
+    search : {"fast", "thorough"}, default "fast"
+        Multi-parameter models only: Sobol screening then Nelder-Mead descents (``fast``), or
+        differential evolution then a compass polish (``thorough``); see docs/calibration.md.
+    max_runs : int, default 400
+        Fast search only: model runs allowed after the screening (16 Sobol points per free
+        parameter, rounded up to a power of two: 64 for GR4J); descents stop earlier once
+        converged.
 
     Returns
     -------
@@ -192,10 +199,11 @@ def calibrate(
         Indexed by basin_id: one column per model parameter (e.g. ``k_per_day``; fixed ones
         keep their value),
         ``objective``, ``score_calibration``, ``score_validation``, ``n_days_calibration``,
-        ``n_days_validation``, and ``nse_``/``kge_`` of both periods.
+        ``n_days_validation``, ``nse_``/``kge_`` of both periods, and ``n_runs`` (model runs the
+        search spent).
     """
     chosen = get_model(model)
-    search = _search_settings(budget, popsize, seed)
+    search = _search_settings(search, budget, popsize, seed, max_runs)
     if objective not in metrics.OBJECTIVES:
         raise InputError(
             f"unknown objective {objective!r}; choose one of {', '.join(metrics.OBJECTIVES)}"
@@ -205,24 +213,25 @@ def calibrate(
         dates, calibration or (dates[0], dates[-1]), validation, warmup_days=warmup_days
     )
     ids = _basins_to_calibrate(flow_mm, window, basins)
+    part = slice(window.start, window.stop)
+    simulator = Simulator(
+        chosen.name,
+        precip_mm[ids].to_numpy(dtype=float)[part],
+        pet_mm[ids].to_numpy(dtype=float)[part],
+        temp=None if temp_c is None else temp_c[ids].to_numpy(dtype=float)[part],
+        initial_storage=initial_storage,
+        warmup_days=window.warmup_days,
+    )
+    obs = flow_mm[ids].to_numpy(dtype=float)[part]
+    problem = _Problem(chosen, simulator, obs, window, objective, dict(fixed_params or {}))
+    best, n_runs = _search_all(problem, search, len(ids))
+    flows = problem.flows(best)
     rows = []
-    for done, basin in enumerate(ids, start=1):
-        forcing = _basin_forcing(basin, precip_mm, pet_mm, temp_c, window)
-        obs = flow_mm[basin].to_numpy(dtype=float)[window.start : window.stop]
-        rows.append(
-            _calibrate_one(
-                chosen,
-                forcing,
-                obs,
-                window,
-                objective=objective,
-                initial_storage=initial_storage,
-                fixed_params=dict(fixed_params or {}),
-                search=search,
-            )
-        )
+    for column, values in enumerate(best):
+        scores = _period_scores(obs[:, column], flows[:, column], window, objective)
+        rows.append({**values, **scores, "n_runs": int(n_runs[column]) + 1})
         if progress is not None:
-            progress(done, len(ids))
+            progress(column + 1, len(ids))
     table = pd.DataFrame(rows, index=pd.Index(ids, name="basin_id"))
     table.insert(len(chosen.parameters), "objective", objective)
     return table
@@ -230,18 +239,29 @@ def calibrate(
 
 @dataclass(frozen=True)
 class _SearchSettings:
+    name: str
     budget: int
     popsize: int
     seed: int
+    max_runs: int
 
 
-def _search_settings(budget, popsize, seed) -> _SearchSettings:
-    for name, value, least in (("budget", budget, 1), ("popsize", popsize, 2), ("seed", seed, 0)):
+def _search_settings(name, budget, popsize, seed, max_runs) -> _SearchSettings:
+    if name not in SEARCHES:
+        raise InputError(
+            f"unknown calibration search {name!r}; choose one of {', '.join(SEARCHES)}"
+        )
+    for key, value, least in (
+        ("budget", budget, 1),
+        ("popsize", popsize, 2),
+        ("seed", seed, 0),
+        ("max_runs", max_runs, 0),
+    ):
         if isinstance(value, bool) or not isinstance(value, int | np.integer) or value < least:
             raise InputError(
-                f"calibration setting {name} must be a whole number >= {least}: got {value!r}"
+                f"calibration setting {key} must be a whole number >= {least}: got {value!r}"
             )
-    return _SearchSettings(int(budget), int(popsize), int(seed))
+    return _SearchSettings(name, int(budget), int(popsize), int(seed), int(max_runs))
 
 
 def _basins_to_calibrate(flow_mm: pd.DataFrame, window: Window, basins) -> list[str]:
@@ -261,158 +281,141 @@ def _basins_to_calibrate(flow_mm: pd.DataFrame, window: Window, basins) -> list[
     return [str(b) for b in basins]
 
 
-def _basin_forcing(basin, precip_mm, pet_mm, temp_c, window: Window) -> dict[str, np.ndarray]:
-    part = slice(window.start, window.stop)
-    forcing = {
-        "precip": precip_mm[basin].to_numpy(dtype=float)[part],
-        "pet": pet_mm[basin].to_numpy(dtype=float)[part],
-        "temp": None,
-    }
-    if temp_c is not None:
-        forcing["temp"] = temp_c[basin].to_numpy(dtype=float)[part]
-    return forcing
+class _Problem:
+    """The calibration of every basin: one energy over the free parameters' transformed space.
+
+    ``energy(points, owner)`` scores parameter sets (columns of ``points``) of the basins
+    ``owner`` (column positions in the forcing) in one simulation call: -objective over each
+    basin's calibration days, :data:`FAILED_SCORE` where the score is undefined.
+    """
+
+    def __init__(self, chosen, simulator: Simulator, obs, window: Window, objective, fixed):
+        self.free = [p for p in chosen.parameters if p.name not in fixed]
+        self.names = [p.name for p in chosen.parameters]
+        self.simulator = simulator
+        scored = np.where(window.calibration[:, None], obs, np.nan)
+        self.first = int(np.argmax(window.calibration)) if window.calibration.any() else 0
+        self.score = metrics.objective_scorer(objective, scored[self.first :])
+        tables = [chosen.parameters]
+        if simulator.temp is not None:
+            tables.append(snow_parameters())
+        defaults = {p.name: p.initial for table in tables for p in table}
+        _check_fixed(fixed, [p for table in tables for p in table], chosen.name)
+        self.constant = {**defaults, **{k: float(v) for k, v in fixed.items()}}
+        for parameter in self.free:
+            self.constant.pop(parameter.name)
+
+    def sets(self, points: np.ndarray) -> dict[str, np.ndarray]:
+        points = np.asarray(points, dtype=float).reshape(len(self.free), -1)
+        n = points.shape[1]
+        sets = {name: np.full(n, value) for name, value in self.constant.items()}
+        for parameter, row in zip(self.free, points, strict=True):
+            sets[parameter.name] = np.clip(
+                parameter.inverse(row), parameter.lower, parameter.upper
+            )
+        return sets
+
+    def energy(self, points: np.ndarray, owner: np.ndarray) -> np.ndarray:
+        flow = self.simulator.flow_of_sets(self.sets(points), columns=owner)
+        scores = self.score(flow[self.first :], owner)
+        return np.where(np.isfinite(scores), -scores, FAILED_SCORE)
+
+    def flows(self, best: list[dict[str, float]]) -> np.ndarray:
+        """Flow of every basin with its own parameters, mm/day (time, basins)."""
+        n = len(best)
+        sets = {name: np.full(n, value) for name, value in self.constant.items()}
+        sets |= {name: np.array([values[name] for values in best]) for name in best[0]}
+        return self.simulator.flow_of_sets(sets, columns=None)
 
 
-def _calibrate_one(
-    chosen, forcing, obs, window, *, objective, initial_storage, fixed_params, search
-):
-    free = [p for p in chosen.parameters if p.name not in fixed_params]
-    problem = (chosen.name, forcing, obs, window, objective, initial_storage, fixed_params)
-    if len(free) == 1:
-        best = {free[0].name: _scalar_search(free[0], *problem)}
-    elif free:
-        best = _global_search(free, *problem, search)
+def _check_fixed(fixed: dict, table, model: str) -> None:
+    """Fixed values must name a parameter of the model (or snow store) and lie in its bounds."""
+    known = {p.name: p for p in table}
+    unknown = sorted(set(fixed) - set(known))
+    if unknown:
+        raise InputError(
+            f"fixed parameter(s) {unknown} unknown for model {model!r}; known: {sorted(known)} "
+            "(snow parameters need temperature)"
+        )
+    for name, value in fixed.items():
+        parameter = known[name]
+        if not parameter.lower <= float(value) <= parameter.upper:
+            raise InputError(
+                f"fixed parameter {name} = {value!r} {parameter.unit} is outside its bounds "
+                f"[{parameter.lower}, {parameter.upper}]"
+            )
+
+
+def _search_all(problem: _Problem, search: _SearchSettings, n_basins: int):
+    """Best values (parameter units, every model parameter) and runs spent, per basin."""
+    free = problem.free
+    lower = np.array([p.forward(p.lower) for p in free])
+    upper = np.array([p.forward(p.upper) for p in free])
+    start = np.clip([p.forward(p.initial) for p in free], lower, upper)
+    if len(free) >= 2 and search.name == "fast":
+        found = screen_and_descend(
+            problem.energy,
+            lower,
+            upper,
+            n_problems=n_basins,
+            seed=search.seed,
+            max_runs=search.max_runs,
+            start=start,
+        )
     else:
-        best = {}
-    params = {**fixed_params, **best}
-    flow = _simulate_columns(chosen.name, forcing, params, window, initial_storage)[:, 0]
-    values = {p.name: float(params[p.name]) for p in chosen.parameters}
-    return {**values, **_period_scores(obs, flow, window, objective)}
+        found = [
+            _search_one(problem, column, lower, upper, start, search) for column in range(n_basins)
+        ]
+    best = []
+    for result in found:
+        values = dict(problem.constant)
+        for parameter, value in zip(free, result.x, strict=True):
+            value = parameter.inverse(value) if np.isfinite(value) else parameter.initial
+            values[parameter.name] = float(np.clip(value, parameter.lower, parameter.upper))
+        best.append({name: values[name] for name in problem.names})
+    return best, np.array([result.n_runs for result in found])
 
 
-def _simulate_columns(model, forcing, params, window, initial_storage) -> np.ndarray:
-    result = simulate(
-        model,
-        forcing["precip"],
-        forcing["pet"],
-        params,
-        temp=forcing["temp"],
-        initial_storage=initial_storage,
-        warmup_days=window.warmup_days,
+def _search_one(problem: _Problem, column: int, lower, upper, start, search) -> SearchResult:
+    """One basin: Brent for one free parameter, differential evolution for several, or none."""
+
+    def energy(points: np.ndarray) -> np.ndarray:
+        points = np.asarray(points, dtype=float).reshape(len(lower), -1)
+        return problem.energy(points, np.full(points.shape[1], column))
+
+    if len(lower) == 0:
+        return SearchResult(np.empty(0), np.nan, 0)
+    if len(lower) == 1:
+        return _scalar_search(energy, lower[0], upper[0])
+    return evolve_and_polish(
+        energy,
+        lower,
+        upper,
+        seed=search.seed,
+        generations=search.budget,
+        popsize=search.popsize,
+        start=start,
     )
-    return result.flow
 
 
-def _scalar_search(parameter, model, forcing, obs, window, objective, initial_storage, fixed):
-    score_fn = metrics.OBJECTIVES[objective]
-    obs_cal = np.where(window.calibration, obs, np.nan)
-    lo, hi = parameter.forward(parameter.lower), parameter.forward(parameter.upper)
-    grid = np.linspace(lo, hi, GRID_SIZE)
-
-    def evaluate(values_t: np.ndarray) -> np.ndarray:
-        params = {**fixed, parameter.name: parameter.inverse(values_t)}
-        flow = _simulate_columns(model, forcing, params, window, initial_storage)
-        return np.atleast_1d(score_fn(obs_cal, flow))
-
-    scores = evaluate(grid)
-    if not np.isfinite(scores).any():
-        return float(parameter.initial)
-    i = int(np.nanargmax(scores))
+def _scalar_search(energy, lower: float, upper: float) -> SearchResult:
+    """Grid bracket then Brent's bounded method in the transformed space."""
+    grid = np.linspace(lower, upper, GRID_SIZE)
+    energies = energy(grid[None, :])
+    i = int(np.argmin(energies))
+    if not energies[i] < FAILED_SCORE:
+        return SearchResult(np.array([np.nan]), np.inf, GRID_SIZE)
     left, right = grid[max(i - 1, 0)], grid[min(i + 1, GRID_SIZE - 1)]
     found = minimize_scalar(
-        lambda x: -evaluate(np.array([x]))[0],
+        lambda x: energy(np.array([[x]]))[0],
         bounds=(left, right),
         method="bounded",
         options={"xatol": BRENT_XATOL},
     )
-    best_t = found.x if -found.fun >= scores[i] else grid[i]
-    return float(np.clip(parameter.inverse(best_t), parameter.lower, parameter.upper))
-
-
-def _global_search(free, model, forcing, obs, window, objective, initial_storage, fixed, search):
-    """Differential evolution over the free parameters, then a compass-search polish."""
-    energy = _population_energy(
-        free, model, forcing, obs, window, objective, initial_storage, fixed
+    best = found.x if found.fun <= energies[i] else grid[i]
+    return SearchResult(
+        np.array([best]), float(min(found.fun, energies[i])), GRID_SIZE + found.nfev
     )
-    lower = np.array([p.forward(p.lower) for p in free])
-    upper = np.array([p.forward(p.upper) for p in free])
-    start = np.clip([p.forward(p.initial) for p in free], lower, upper)
-    found = differential_evolution(
-        energy,
-        bounds=list(zip(lower, upper, strict=True)),
-        maxiter=search.budget,
-        popsize=search.popsize,
-        tol=DE_TOLERANCE,
-        seed=search.seed,
-        polish=False,
-        init="latinhypercube",
-        x0=start,
-        updating="deferred",
-        vectorized=True,
-    )
-    best_t, _ = _compass_polish(
-        energy,
-        np.asarray(found.x),
-        float(found.fun),
-        lower,
-        upper,
-        population=getattr(found, "population", None),
-    )
-    return {
-        p.name: float(np.clip(p.inverse(value), p.lower, p.upper))
-        for p, value in zip(free, best_t, strict=True)
-    }
-
-
-def _population_energy(free, model, forcing, obs, window, objective, initial_storage, fixed):
-    """Objective of the search: -score for each column of an (n_free, m) array of sets."""
-    score_fn = metrics.OBJECTIVES[objective]
-    scored = np.flatnonzero(window.calibration & np.isfinite(obs))
-    obs_scored = obs[scored]
-
-    def energy(values_t: np.ndarray) -> np.ndarray:
-        values_t = np.asarray(values_t, dtype=float).reshape(len(free), -1)
-        params = dict(fixed)
-        for parameter, row in zip(free, values_t, strict=True):
-            params[parameter.name] = np.clip(
-                parameter.inverse(row), parameter.lower, parameter.upper
-            )
-        flow = _simulate_columns(model, forcing, params, window, initial_storage)
-        scores = np.atleast_1d(score_fn(obs_scored, flow[scored]))
-        return np.where(np.isfinite(scores), -scores, FAILED_SCORE)
-
-    return energy
-
-
-def _compass_polish(energy, best_t, best_energy, lower, upper, population=None):
-    """Compass search (Kolda et al. 2003) along the axes and the population's principal axes.
-
-    Works in coordinates scaled to the bounds. Each round tries +/- one step along every
-    direction in one call: the axes and, when the final population is given, the eigenvectors
-    of its covariance, which follow the valleys that parameter interplay (e.g. X2 and X3)
-    carves across the axes. The best improving trial is taken and the step doubled (up to its
-    start); when none improves, the step is halved.
-    """
-    span = upper - lower
-    directions = np.eye(len(span))
-    if population is not None and len(population) > len(span):
-        scaled = (np.asarray(population) - lower) / span
-        _, vectors = np.linalg.eigh(np.cov(scaled, rowvar=False))
-        directions = np.concatenate([directions, vectors.T])
-    directions = np.concatenate([directions, -directions])
-    step = POLISH_START_STEP
-    for _ in range(POLISH_MAX_ROUNDS):
-        if step < POLISH_MIN_STEP:
-            break
-        trials = np.clip(best_t + directions * step * span, lower, upper)
-        energies = energy(trials.T)
-        i = int(np.argmin(energies))
-        if energies[i] < best_energy:
-            best_t, best_energy = trials[i], float(energies[i])
-            step = min(2.0 * step, POLISH_START_STEP)
-        else:
-            step = step / 2.0
-    return best_t, best_energy
 
 
 def _period_scores(obs, flow, window: Window, objective: str) -> dict[str, float]:

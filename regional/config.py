@@ -36,6 +36,8 @@ TRANSFER_METHODS = ("regression", "similarity", "proximity", "blended", "median"
 COMBINE_MODES = ("output", "parameter")
 #: Donor counts tried in leave-one-out with ``[transfer] donors = "auto"``.
 AUTO_DONOR_COUNTS = tuple(range(1, 11))
+#: Calibration searches for models with several parameters (``[model] search``).
+SEARCHES = ("fast", "thorough")
 #: ``[model] snow`` values.
 SNOW_MODES = ("auto", "true", "false")
 #: Units of flow in the report (``[report] flow_unit``); tables in files keep both.
@@ -127,6 +129,7 @@ class ModelSettings:
     snow_threshold_c: float | None
     melt_threshold_c: float | None
     melt_factor_mm_per_degc_day: float | None
+    search: str = "fast"
 
     @property
     def name(self) -> str:
@@ -461,6 +464,7 @@ SECTIONS: dict[str, dict[str, _Key]] = {
         "name": _Key(_choice_list(MODEL_NAMES), "linear"),
         "snow": _Key(_snow, "auto"),
         "objective": _Key(_choice(OBJECTIVES), "kge"),
+        "search": _Key(_choice(SEARCHES), "fast"),
         "warmup_days": _Key(_integer(0), 365),
         "initial_storage_mm": _Key(_number(0.0)),
         "calibration": _Key(_period),

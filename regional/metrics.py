@@ -19,6 +19,7 @@ constant added before the logarithm: one hundredth of the mean observed flow).
 from __future__ import annotations
 
 import warnings
+from collections.abc import Callable
 from typing import NamedTuple
 
 import numpy as np
@@ -168,6 +169,89 @@ def pbias(obs, sim):
 
 OBJECTIVES = {"kge": kge, "nse": nse, "log_nse": log_nse}
 """Calibration objectives by config name (higher is better for all)."""
+
+
+def objective_scorer(
+    objective: str, obs: np.ndarray
+) -> Callable[[np.ndarray, np.ndarray | None], np.ndarray]:
+    """The objective against fixed observed series, prepared for many simulations.
+
+    ``score(sim, columns)[i]`` equals ``OBJECTIVES[objective](obs[:, columns[i]], sim[:, i])``
+    (without its warning where that is NaN): the masks, means and spreads of the observations
+    are computed once, as a search scores hundreds of simulations against the same series.
+
+    Parameters
+    ----------
+    objective : str
+        A key of :data:`OBJECTIVES`.
+    obs : ndarray, shape (time,) or (time, n_series)
+        Observed flow; NaN = not scored.
+
+    Returns
+    -------
+    callable
+        ``score(sim, columns=None)``: ``sim`` (time, m) on the same days, ``columns`` (m,) the
+        observed series of each simulation (default: series 0 for all) -> (m,) scores, NaN for
+        a series with fewer than 2 scored days or constant observations.
+    """
+    if objective not in OBJECTIVES:
+        raise ValueError(f"unknown objective {objective!r}; choose one of {', '.join(OBJECTIVES)}")
+    obs = np.asarray(obs, dtype=float)
+    obs = obs[:, None] if obs.ndim == 1 else obs
+    mask = np.isfinite(obs)
+    count = mask.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(mask, obs, 0.0).sum(axis=0) / count
+    if objective == "log_nse":
+        offset = LOG_OFFSET_SHARE * mean
+        with np.errstate(invalid="ignore", divide="ignore"):
+            log_obs = np.log(np.where(mask, np.maximum(obs, 0.0), 1.0) + offset)
+        score_log = _moments_scorer("nse", np.where(mask, log_obs, np.nan))
+
+        def score(sim, columns=None):
+            columns = _columns(columns, sim)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                return score_log(np.log(np.maximum(sim, 0.0) + offset[columns]), columns)
+
+        return score
+    return _moments_scorer(objective, obs)
+
+
+def _columns(columns, sim) -> np.ndarray:
+    return np.zeros(sim.shape[1], dtype=np.int64) if columns is None else np.asarray(columns)
+
+
+def _moments_scorer(objective: str, obs: np.ndarray):
+    """NSE or KGE against masked observations (time, n_series), moments computed once."""
+    mask = np.isfinite(obs)
+    count = mask.sum(axis=0)
+    weight = mask.astype(float)
+    obs0 = np.where(mask, obs, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_obs = obs0.sum(axis=0) / count
+        dev_obs = np.where(mask, obs - mean_obs, 0.0)
+    ss_obs = (dev_obs**2).sum(axis=0)
+    bad = (count < 2) | ~(ss_obs > 0)
+
+    def score(sim: np.ndarray, columns=None) -> np.ndarray:
+        columns = _columns(columns, sim)
+        w = weight[:, columns]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            if objective == "nse":
+                sse = (w * (sim - obs0[:, columns]) ** 2).sum(axis=0)
+                value = 1.0 - sse / ss_obs[columns]
+            else:
+                mean_sim = (w * sim).sum(axis=0) / count[columns]
+                dev_sim = w * (sim - mean_sim)
+                ss_sim = (dev_sim**2).sum(axis=0)
+                d_obs = dev_obs[:, columns]
+                r = (d_obs * dev_sim).sum(axis=0) / np.sqrt(ss_obs[columns] * ss_sim)
+                alpha = np.sqrt(ss_sim / ss_obs[columns])
+                beta = mean_sim / mean_obs[columns]
+                value = 1.0 - np.sqrt((r - 1.0) ** 2 + (alpha - 1.0) ** 2 + (beta - 1.0) ** 2)
+        return np.where(bad[columns], np.nan, value)
+
+    return score
 
 
 def all_scores(obs, sim) -> dict[str, np.ndarray]:

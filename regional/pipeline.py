@@ -221,6 +221,7 @@ def _calibrate_chunk(basins, job: _CalibrationJob) -> pd.DataFrame:
         initial_storage=model_settings.initial_storage_mm,
         fixed_params=job.fixed,
         basins=list(basins),
+        search=model_settings.search,
     )
 
 

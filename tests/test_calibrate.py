@@ -9,6 +9,7 @@ import pytest
 import regional
 from regional.calibrate import calibrate, scoring_window
 from regional.errors import InputError
+from regional.models import Simulator
 
 DATES = pd.date_range("2000-01-01", periods=6 * 365)
 TRUE_K = np.array([0.015, 0.07, 0.3, 1.1])
@@ -133,7 +134,13 @@ def test_differential_evolution_recovers_gr4j_parameters_from_noise_free_flow(ob
     # 0.1 mm/day; five scored years and the default search budget.
     precip, pet, flow = _synthetic_gr4j()
     table = calibrate(
-        precip, pet, flow, model="gr4j", objective=objective, calibration=GR4J_CALIBRATION
+        precip,
+        pet,
+        flow,
+        model="gr4j",
+        objective=objective,
+        calibration=GR4J_CALIBRATION,
+        search="thorough",
     )
     np.testing.assert_allclose(table["x1_mm"], GR4J_TRUE["x1_mm"], rtol=0.05)
     np.testing.assert_allclose(table["x3_mm"], GR4J_TRUE["x3_mm"], rtol=0.05)
@@ -149,20 +156,43 @@ def test_differential_evolution_recovers_gr4j_parameters_from_noise_free_flow(ob
     ]
 
 
-def test_population_is_simulated_in_one_call_per_generation(monkeypatch):
+@pytest.mark.parametrize("objective", ["nse", "kge"])
+def test_fast_search_reaches_the_known_optimum_of_noise_free_flow(objective):
+    # The check asked for the fast search (issue 14): on flow generated from known parameters,
+    # every parameter within 1 % and the objective within 1e-6 of its optimum (1), in at most
+    # the default budget of runs.
     precip, pet, flow = _synthetic_gr4j()
-    columns = []
+    table = calibrate(
+        precip, pet, flow, model="gr4j", objective=objective, calibration=GR4J_CALIBRATION
+    )
+    for name, true in GR4J_TRUE.items():
+        scale = np.maximum(np.abs(true), 1.0)  # X2 near 0: 1 % of 1 mm/day
+        np.testing.assert_array_less(np.abs(table[name] - true) / scale, 0.01)
+    assert (table["score_calibration"] > 1.0 - 1e-6).all()
+    assert (table["n_runs"] <= 64 + 1 + 400 + 1).all()
 
-    def counting_simulate(model, precip, pet, params, **kwargs):
-        result = regional.simulate(model, precip, pet, params, **kwargs)
-        columns.append(result.flow.shape[1])
-        return result
+
+@pytest.fixture
+def counts(monkeypatch) -> list[int]:
+    """Columns (parameter sets) of every simulation call the searches make, in order."""
+    seen = []
+
+    class CountingSimulator(Simulator):
+        def flow_of_sets(self, sets, *, columns=None):
+            flow = super().flow_of_sets(sets, columns=columns)
+            seen.append(flow.shape[1])
+            return flow
 
     monkeypatch.setattr(
-        importlib.import_module("regional.calibrate"), "simulate", counting_simulate
+        importlib.import_module("regional.calibrate"), "Simulator", CountingSimulator
     )
+    return seen
+
+
+def test_population_is_simulated_in_one_call_per_generation(counts):
+    precip, pet, flow = _synthetic_gr4j()
     budget, popsize = 5, 6
-    calibrate(
+    table = calibrate(
         precip[["g1"]],
         pet[["g1"]],
         flow[["g1"]],
@@ -170,18 +200,37 @@ def test_population_is_simulated_in_one_call_per_generation(monkeypatch):
         calibration=GR4J_CALIBRATION,
         budget=budget,
         popsize=popsize,
+        search="thorough",
     )
     population = popsize * 4
     # scipy: the initial population, then one call per generation, all members as columns.
-    assert columns[: budget + 1] == [population] * (budget + 1)
+    assert counts[: budget + 1] == [population] * (budget + 1)
     # Then the compass polish (16 trials per round) and the final single run.
-    assert set(columns[budget + 1 : -1]) == {16}
-    assert columns[-1] == 1
+    assert set(counts[budget + 1 : -1]) == {16}
+    assert counts[-1] == 1
+    assert table["n_runs"].item() == sum(counts)
 
 
-def test_multi_parameter_search_is_seeded_and_honours_fixed_parameters():
+def test_fast_search_scores_every_basin_in_each_call(counts):
     precip, pet, flow = _synthetic_gr4j()
-    settings = {"model": "gr4j", "calibration": GR4J_CALIBRATION, "budget": 8, "popsize": 5}
+    table = calibrate(precip, pet, flow, model="gr4j", calibration=GR4J_CALIBRATION)
+    # 64 Sobol points (16 per free parameter) and the table's initial values, for both basins
+    # in one call; then the first simplices (5 points each), then steps of one point per
+    # simplex of both basins (4 when a simplex shrinks); last, both basins' final runs.
+    assert counts[0] == 2 * 65
+    assert counts[1] == 2 * 5
+    assert set(counts[2:-1]) <= {1, 2, 4, 5, 8}
+    assert counts[-1] == 2
+    assert table["n_runs"].sum() == sum(counts)
+    assert (table["n_runs"] <= 65 + 400 + 1).all()
+
+
+@pytest.mark.parametrize(
+    "search", [{"search": "thorough", "budget": 8, "popsize": 5}, {"max_runs": 60}]
+)
+def test_multi_parameter_search_is_seeded_and_honours_fixed_parameters(search):
+    precip, pet, flow = _synthetic_gr4j()
+    settings = {"model": "gr4j", "calibration": GR4J_CALIBRATION, **search}
     precip, pet, flow = precip[["g2"]], pet[["g2"]], flow[["g2"]]
     first = calibrate(precip, pet, flow, seed=3, **settings)
     again = calibrate(precip, pet, flow, seed=3, **settings)
@@ -200,8 +249,7 @@ def test_progress_is_reported_per_basin_for_multi_parameter_models():
         flow,
         model="gr4j",
         calibration=GR4J_CALIBRATION,
-        budget=2,
-        popsize=3,
+        max_runs=10,
         progress=lambda done, total: calls.append((done, total)),
     )
     assert calls == [(1, 2), (2, 2)]
@@ -214,9 +262,34 @@ def test_progress_is_reported_per_basin_for_multi_parameter_models():
         ({"popsize": 1}, r"popsize must be a whole number >= 2: got 1"),
         ({"seed": -1}, r"seed must be a whole number >= 0: got -1"),
         ({"budget": 2.5}, r"budget must be a whole number >= 1: got 2.5"),
+        ({"max_runs": -1}, r"max_runs must be a whole number >= 0: got -1"),
+        ({"search": "quick"}, r"unknown calibration search 'quick'; choose one of fast, thorough"),
     ],
 )
 def test_bad_search_settings_raise_input_error(kwargs, match):
     precip, pet, flow = _synthetic_gr4j()
     with pytest.raises(InputError, match=match):
         calibrate(precip, pet, flow, model="gr4j", **kwargs)
+
+
+def test_seeded_calibrations_are_identical_in_process_and_on_a_two_process_cluster():
+    # Basins are calibrated in chunks on the workers of a local 2-process Dask cluster; the
+    # fast search gives each basin the same path in any company, so the tables are identical.
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    from regional.compute import DaskExecutor
+
+    precip, pet, flow = _synthetic_gr4j()
+    settings = {"model": "gr4j", "calibration": GR4J_CALIBRATION, "max_runs": 120}
+    here = calibrate(precip, pet, flow, **settings)
+    executor = DaskExecutor(workers=2)
+    try:
+        futures = [
+            executor.client.submit(
+                calibrate, precip[[b]], pet[[b]], flow[[b]], pure=False, **settings
+            )
+            for b in flow.columns
+        ]
+        there = pd.concat(executor.client.gather(futures))
+    finally:
+        executor.close()
+    pd.testing.assert_frame_equal(here, there)

@@ -15,6 +15,7 @@ ORDER = (
     "models",
     "metrics",
     "flowstats",
+    "search",
     "config",
     "io",
     "checks",

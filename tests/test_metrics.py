@@ -89,3 +89,27 @@ def test_columns_are_scored_independently():
 def test_length_mismatch_is_an_error():
     with pytest.raises(ValueError, match="differ in length"):
         metrics.nse(OBS, SIM[:3])
+
+
+@pytest.mark.parametrize("objective", ["nse", "kge", "log_nse"])
+def test_prepared_objective_equals_the_metric(objective):
+    # Two routes to one number: the scorer prepared once for a search, and the metric itself,
+    # on series with missing days, one sim per column and several sims per observed series.
+    rng = np.random.default_rng(8)
+    obs = rng.gamma(0.8, 2.0, (120, 3))
+    obs[rng.random(obs.shape) < 0.1] = np.nan
+    sim = rng.gamma(0.8, 2.0, (120, 5))
+    columns = np.array([0, 2, 1, 2, 0])
+    score = metrics.objective_scorer(objective, obs)
+    expected = [metrics.OBJECTIVES[objective](obs[:, c], sim[:, i]) for i, c in enumerate(columns)]
+    np.testing.assert_allclose(score(sim, columns), expected, rtol=1e-12)
+    one = metrics.objective_scorer(objective, obs[:, 1])
+    np.testing.assert_allclose(
+        one(sim), [metrics.OBJECTIVES[objective](obs[:, 1], sim[:, i]) for i in range(5)]
+    )
+
+
+def test_prepared_objective_is_nan_for_a_constant_series():
+    obs = np.column_stack([np.full(10, 2.0), np.arange(10.0)])
+    score = metrics.objective_scorer("nse", obs)(np.ones((10, 2)), np.array([0, 1]))
+    assert np.isnan(score[0]) and np.isfinite(score[1])

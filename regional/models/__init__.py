@@ -10,7 +10,14 @@ from __future__ import annotations
 from regional.models.base import Parameter, Simulation
 from regional.models.gr4j import GR4J
 from regional.models.linear import LinearReservoir
-from regional.models.simulate import get_model, model_names, parameter_transforms, simulate
+from regional.models.simulate import (
+    Simulator,
+    get_model,
+    model_names,
+    parameter_transforms,
+    simulate,
+    snow_parameters,
+)
 from regional.models.snow import DegreeDaySnow
 
 __all__ = [
@@ -19,8 +26,10 @@ __all__ = [
     "LinearReservoir",
     "Parameter",
     "Simulation",
+    "Simulator",
     "get_model",
     "model_names",
     "parameter_transforms",
     "simulate",
+    "snow_parameters",
 ]

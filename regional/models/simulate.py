@@ -41,6 +41,11 @@ def get_model(name: str):
         ) from None
 
 
+def snow_parameters() -> tuple[Parameter, ...]:
+    """Parameter table of the degree-day snow store (in front of any model with temperature)."""
+    return _SNOW.parameters
+
+
 def parameter_transforms(name: str) -> dict[str, str]:
     """Parameter name -> regression transform (``"log"`` / ``"identity"``) of a model."""
     return {parameter.name: parameter.transform for parameter in get_model(name).parameters}
@@ -96,26 +101,97 @@ def simulate(
         For non-finite or negative forcing, mismatched lengths, unknown or missing parameters
         and values outside a parameter's bounds; the message names the argument and value.
     """
-    chosen = get_model(model)
-    precip2, pet2, temp2 = _forcing_columns(precip, pet, temp)
-    n = _count_sets(params, precip2, pet2, temp2)
-    model_params = _parameter_arrays(chosen.parameters, params, n, required=True)
-    known = {p.name for p in chosen.parameters}
-    if temp2 is not None:
-        known |= {p.name for p in _SNOW.parameters}
-    _reject_unknown(params, known, model)
-    warmup_days = _check_warmup(warmup_days, precip2.shape[0])
+    prepared = Simulator(
+        model, precip, pet, temp=temp, initial_storage=initial_storage, warmup_days=warmup_days
+    )
+    return prepared.run(params)
 
-    snowpack = melt = None
-    inflow = precip2
-    if temp2 is not None:
-        snow_params = _parameter_arrays(_SNOW.parameters, params, n, required=False)
-        inflow, snowpack, melt = _run_snow(precip2, temp2, snow_params, n)
-    start = _initial_storage(chosen, initial_storage, inflow, pet2, model_params, n, warmup_days)
-    # A model returns (flow, aet, storage) or, with an exchange term, (..., exchange).
-    flow, aet, storage, *exchange = chosen.run(inflow, pet2, model_params, start)
-    exchange = exchange[0] if exchange else None
-    return Simulation(flow, aet, storage, snowpack, melt, start, warmup_days, exchange)
+
+class Simulator:
+    """One basin's (or one forcing table's) forcing, checked once, run for many parameter sets.
+
+    :func:`simulate` in two steps, for searches that call the model hundreds of times on the
+    same forcing: the forcing and the warm-up are checked here, once; :meth:`run` and
+    :meth:`flow` check only the parameters. Arguments as for :func:`simulate`.
+    """
+
+    def __init__(
+        self,
+        model: str,
+        precip: np.ndarray,
+        pet: np.ndarray,
+        *,
+        temp: np.ndarray | None = None,
+        initial_storage: float | np.ndarray | None = None,
+        warmup_days: int = 0,
+    ) -> None:
+        self.model = get_model(model)
+        self.precip, self.pet, self.temp = _forcing_columns(precip, pet, temp)
+        self.initial_storage = initial_storage
+        self.warmup_days = _check_warmup(warmup_days, self.precip.shape[0])
+        known = {p.name for p in self.model.parameters}
+        if self.temp is not None:
+            known |= {p.name for p in _SNOW.parameters}
+        self._known = known
+
+    def run(self, params: Mapping[str, float | np.ndarray]) -> Simulation:
+        """Simulate every parameter set; see :func:`simulate` for ``params`` and the result."""
+        chosen = self.model
+        n = _count_sets(params, self.precip, self.pet, self.temp)
+        model_params = _parameter_arrays(chosen.parameters, params, n, required=True)
+        _reject_unknown(params, self._known, chosen.name)
+        snowpack = melt = None
+        inflow = self.precip
+        if self.temp is not None:
+            snow_params = _parameter_arrays(_SNOW.parameters, params, n, required=False)
+            inflow, snowpack, melt = _run_snow(self.precip, self.temp, snow_params, n)
+        start = _initial_storage(
+            chosen, self.initial_storage, inflow, self.pet, model_params, n, self.warmup_days
+        )
+        # A model returns (flow, aet, storage) or, with an exchange term, (..., exchange).
+        flow, aet, storage, *exchange = chosen.run(inflow, self.pet, model_params, start)
+        exchange = exchange[0] if exchange else None
+        return Simulation(flow, aet, storage, snowpack, melt, start, self.warmup_days, exchange)
+
+    def flow(self, params: Mapping[str, float | np.ndarray]) -> np.ndarray:
+        """Flow only, mm/day, shaped (time, n)."""
+        return self.run(params).flow
+
+    def flow_of_sets(
+        self, sets: Mapping[str, np.ndarray], *, columns: np.ndarray | None = None
+    ) -> np.ndarray:
+        """Flow, mm/day (time, n), for parameter sets a search keeps within bounds.
+
+        The inner loop of a calibration: ``sets`` holds every parameter of the model (and of
+        the snow store when it runs) as an (n,) float64 array inside its bounds, so nothing is
+        checked again (a search clips its points to the bounds); :meth:`run` checks everything.
+        ``columns`` (n,) picks the forcing column of each set (many basins' sets in one call);
+        None: the forcing as given (one shared column, or one per set).
+        """
+        chosen = self.model
+        model_params = {p.name: sets[p.name] for p in chosen.parameters}
+        n = len(model_params[chosen.parameters[0].name])
+        precip, pet, temp = self.precip, self.pet, self.temp
+        if columns is not None:
+            precip, pet = _pick(precip, columns), _pick(pet, columns)
+            temp = None if temp is None else _pick(temp, columns)
+        inflow = precip
+        if temp is not None:
+            snow_params = {p.name: sets[p.name] for p in _SNOW.parameters}
+            inflow = _run_snow(precip, temp, snow_params, n)[0]
+        start = _initial_storage(
+            chosen, self.initial_storage, inflow, pet, model_params, n, self.warmup_days
+        )
+        return chosen.run(inflow, pet, model_params, start)[0]
+
+
+def _pick(forcing: np.ndarray, columns: np.ndarray) -> np.ndarray:
+    """The forcing columns of the sets (a shared column stays shared)."""
+    if forcing.shape[1] == 1:
+        return forcing
+    if columns.size > 0 and (columns == columns[0]).all():
+        return forcing[:, columns[:1]]
+    return np.ascontiguousarray(forcing[:, columns])
 
 
 def _run_snow(precip, temp, snow_params, n: int):

@@ -76,6 +76,7 @@ COLUMN_LABELS: dict[str, tuple[str, str]] = {
     "kge_validation": ("KGE, validation period", "-"),
     "n_days_calibration": ("Days scored, calibration period", "count"),
     "n_days_validation": ("Days scored, validation period", "count"),
+    "n_runs": ("Model runs of the calibration search", "count"),
     # regression
     "transform": ("Transform", ""),
     "terms": ("Attributes selected", ""),
