@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import resource
 import subprocess
 import sys
 import tempfile
@@ -26,16 +25,29 @@ import time
 from pathlib import Path
 
 import numpy as np
+import pyarrow
+
+_SCHEMA = pyarrow.schema(
+    [
+        ("basin_id", pyarrow.string()),
+        ("date", pyarrow.timestamp("ns")),
+        ("precip_mm", pyarrow.float64()),
+        ("pet_mm", pyarrow.float64()),
+        ("temp_c", pyarrow.float64()),
+        ("flow_mm", pyarrow.float64()),
+    ]
+)
 
 UNGAUGED_SHARE = 0.25
+BUILD_CHUNK = 250
+"""Basins generated and written at a time (one Parquet row group each)."""
 
 
 def make_region(folder: Path, n_basins: int, years: int, seed: int = 11) -> Path:
     """Write an invented region of gauge points and daily series; return its folder."""
     import geopandas as gpd
     import pandas as pd
-
-    import regional
+    import pyarrow.parquet
 
     rng = np.random.default_rng(seed)
     ids = [f"S{i:05d}" for i in range(n_basins)]
@@ -57,28 +69,22 @@ def make_region(folder: Path, n_basins: int, years: int, seed: int = 11) -> Path
     )
     basins.to_file(folder / "basins.gpkg", layer="basins", driver="GPKG")
     dates = pd.date_range("2001-01-01", periods=int(years * 365.25), freq="D")
-    days = len(dates)
     season = np.sin(2 * np.pi * (dates.dayofyear.to_numpy() - 100) / 365.25)
-    regional_storm = rng.gamma(0.5, 6.0, days)
-    precip = regional_storm[:, None] * rng.lognormal(0, 0.35, (days, n_basins)) * wetness
-    pet = np.clip(2.0 + 1.6 * season, 0.1, None)[:, None] * np.ones(n_basins)
-    temp = (9.0 + 10.0 * season)[:, None] - 0.004 * slope * 50 + rng.normal(0, 2, (days, n_basins))
-    k = np.exp(-3.2 + 0.08 * slope - 1.5 * sand + rng.normal(0, 0.2, n_basins))
-    flow = regional.simulate(
-        "linear", precip, pet, {"k_per_day": k}, temp=temp, warmup_days=365
-    ).flow * rng.lognormal(0, 0.1, (days, n_basins))
-    flow[:, rng.random(n_basins) < UNGAUGED_SHARE] = np.nan
-    long = pd.DataFrame(
-        {
-            "basin_id": np.tile(np.array(ids, dtype=object), days),
-            "date": np.repeat(dates.to_numpy(), n_basins),
-            "precip_mm": precip.ravel().round(2),
-            "pet_mm": pet.ravel().round(2),
-            "temp_c": temp.ravel().round(2),
-            "flow_mm": flow.ravel(),
-        }
-    )
-    long.to_parquet(folder / "series.parquet", index=False)
+    regional_storm = rng.gamma(0.5, 6.0, len(dates))
+    with pyarrow.parquet.ParquetWriter(folder / "series.parquet", _SCHEMA) as writer:
+        for first in range(0, n_basins, BUILD_CHUNK):
+            part = slice(first, min(first + BUILD_CHUNK, n_basins))
+            chunk = _chunk_series(
+                np.random.default_rng([seed, first]),
+                ids[part],
+                dates,
+                season,
+                regional_storm,
+                slope=slope[part],
+                sand=sand[part],
+                wetness=wetness[part],
+            )
+            writer.write_table(pyarrow.Table.from_pandas(chunk, _SCHEMA, preserve_index=False))
     end = dates[-1].year
     (folder / "region.toml").write_text(
         f"""[region]
@@ -110,8 +116,90 @@ folder = "results"
     return folder
 
 
+STAGES = (
+    "load_region",
+    "_calibrate",
+    "choose_donor_counts",
+    "leave_one_out",
+    "predict_ungauged",
+    "screen_candidates",
+)
+"""Functions of ``regional.pipeline`` whose peak resident memory is recorded one by one."""
+
+
+def _memory_kb(field: str) -> int:
+    with open("/proc/self/status") as status:
+        for line in status:
+            if line.startswith(field):
+                return int(line.split()[1])
+    return 0
+
+
+def _reset_peak() -> None:
+    """Reset the process's peak resident size (Linux: ``5`` to /proc/self/clear_refs)."""
+    with open("/proc/self/clear_refs", "w") as handle:
+        handle.write("5")
+
+
+def _watched(function, name: str, record: dict):
+    """``function`` wrapped to record resident memory before, at peak and after, in MB."""
+
+    def wrapper(*args, **kwargs):
+        before = _memory_kb("VmRSS")
+        _reset_peak()
+        try:
+            return function(*args, **kwargs)
+        finally:
+            peak = _memory_kb("VmHWM")
+            entry = record.setdefault(name, {"before": before / 1024, "peak": 0.0})
+            entry["peak"] = max(entry["peak"], peak / 1024)
+            entry["after"] = _memory_kb("VmRSS") / 1024
+
+    return wrapper
+
+
+def _watch_stages(record: dict) -> None:
+    from regional import pipeline
+
+    for name in STAGES:
+        setattr(pipeline, name, _watched(getattr(pipeline, name), name, record))
+
+
+def _chunk_series(rng, ids, dates, season, storm, *, slope, sand, wetness):
+    """Long daily table of some basins (invented values), rows by basin then date."""
+    import pandas as pd
+
+    import regional
+
+    days, n_basins = len(dates), len(ids)
+    precip = storm[:, None] * rng.lognormal(0, 0.35, (days, n_basins)) * wetness
+    pet = np.clip(2.0 + 1.6 * season, 0.1, None)[:, None] * np.ones(n_basins)
+    temp = (9.0 + 10.0 * season)[:, None] - 0.004 * slope * 50 + rng.normal(0, 2, (days, n_basins))
+    k = np.exp(-3.2 + 0.08 * slope - 1.5 * sand + rng.normal(0, 0.2, n_basins))
+    flow = regional.simulate(
+        "linear", precip, pet, {"k_per_day": k}, temp=temp, warmup_days=365
+    ).flow * rng.lognormal(0, 0.1, (days, n_basins))
+    flow[:, rng.random(n_basins) < UNGAUGED_SHARE] = np.nan
+    return pd.DataFrame(
+        {
+            "basin_id": np.repeat(np.array(ids, dtype=object), days),
+            "date": np.tile(dates.to_numpy(), n_basins),
+            "precip_mm": precip.T.ravel().round(2),
+            "pet_mm": pet.T.ravel().round(2),
+            "temp_c": temp.T.ravel().round(2),
+            "flow_mm": flow.T.ravel(),
+        }
+    )
+
+
+def build(folder: str, n_basins: int, years: int) -> None:
+    """Write the region in this (separate) process, so the run's memory is its own."""
+    make_region(Path(folder), n_basins, years)
+
+
 def child(n_basins: int, years: int, workers: int) -> None:
     """Build, run and write one configuration; print a JSON line with time and memory."""
+    import gc
     import warnings
 
     from regional.compute import keep_freed_memory
@@ -120,13 +208,19 @@ def child(n_basins: int, years: int, workers: int) -> None:
 
     warnings.simplefilter("ignore")
     keep_freed_memory()  # as the command line does
+    stages: dict = {}
+    _watch_stages(stages)
     with tempfile.TemporaryDirectory() as tmp:
-        folder = make_region(Path(tmp), n_basins, years)
+        folder = Path(tmp)
+        command = [sys.executable, __file__, "--build", tmp, str(n_basins), str(years)]
+        subprocess.run(command, check=True)
+        gc.collect()
+        _reset_peak()
         start = time.perf_counter()
         result = run(folder, workers=workers or None)
-        write_outputs(result, folder / "results")
+        _watched(write_outputs, "write_outputs", stages)(result, folder / "results")
         seconds = time.perf_counter() - start
-    peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    peak_mb = max([_memory_kb("VmHWM") / 1024] + [stage["peak"] for stage in stages.values()])
     print(
         json.dumps(
             {
@@ -135,6 +229,7 @@ def child(n_basins: int, years: int, workers: int) -> None:
                 "seconds": seconds,
                 "peak_mb": peak_mb,
                 "timings": result.timings,
+                "stages": stages,
             }
         )
     )
@@ -146,19 +241,37 @@ def measure(n_basins: int, years: int, workers: int = 0) -> dict:
     return json.loads(output.strip().splitlines()[-1])
 
 
+def _print_cluster(size: int, local: dict, clustered: dict) -> None:
+    print(
+        f"2-worker local Dask cluster vs in-process at N = {size}: "
+        f"{local['seconds'] / clustered['seconds']:.2f} x   (target >= 1.6 on 2 cores)"
+    )
+    stages = ("calibration_linear", "leave_one_out_linear")
+    spread = [sum(run["timings"][s] for s in stages) for run in (local, clustered)]
+    print(
+        f"  of which the distributed stages (calibration + leave-one-out): {spread[0]:.1f} s -> "
+        f"{spread[1]:.1f} s, {spread[0] / spread[1]:.2f} x; the rest (reading, prediction, "
+        "figures, report, starting the workers) runs in the client"
+    )
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--sizes", type=int, nargs=2, default=[500, 2000])
     parser.add_argument("--years", type=int, default=20)
     parser.add_argument("--dask-size", type=int, default=500)
     parser.add_argument("--child", type=int, nargs=3, help=argparse.SUPPRESS)
+    parser.add_argument("--build", nargs=3, help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.build:
+        build(args.build[0], int(args.build[1]), int(args.build[2]))
+        return
     if args.child:
         child(*args.child)
         return
     small, large = (measure(n, args.years) for n in args.sizes)
-    clustered = measure(args.dask_size, args.years, workers=2)
-    local = small if args.dask_size == args.sizes[0] else measure(args.dask_size, args.years)
+    clustered = measure(args.dask_size, args.years, workers=2) if args.dask_size else None
+    local = small if args.dask_size in (0, args.sizes[0]) else measure(args.dask_size, args.years)
     print(f"whole chain, {args.years} years of daily data (region built outside the timing)")
     for row in (small, large):
         stages = ", ".join(f"{k} {v:.1f} s" for k, v in row["timings"].items())
@@ -172,18 +285,22 @@ def main() -> None:
         f"scaling time({large['n']}) / time({small['n']}): {ratio:.2f}"
         f"   (target <= 4.4 for 500 -> 2000)"
     )
-    print(
-        f"2-worker local Dask cluster vs in-process at N = {args.dask_size}: "
-        f"{local['seconds'] / clustered['seconds']:.2f} x   (target >= 1.6 on 2 cores)"
-    )
-    stages = ("calibration_linear", "leave_one_out_linear")
-    spread = [sum(run["timings"][s] for s in stages) for run in (local, clustered)]
-    print(
-        f"  of which the distributed stages (calibration + leave-one-out): {spread[0]:.1f} s -> "
-        f"{spread[1]:.1f} s, {spread[0] / spread[1]:.2f} x; the rest (reading, prediction, "
-        "figures, report, starting the workers) runs in the client"
-    )
+    if clustered is not None:
+        _print_cluster(args.dask_size, local, clustered)
     print(f"peak memory at N = {large['n']}: {large['peak_mb']:.0f} MB   (target <= 4096 MB)")
+    print("resident memory per stage, MB (before -> peak during -> after):")
+    for name in small["stages"]:
+        cells = [
+            f"N = {row['n']}: {row['stages'][name]['before']:6.0f} -> "
+            f"{row['stages'][name]['peak']:6.0f} -> {row['stages'][name]['after']:6.0f}"
+            for row in (small, large)
+        ]
+        marginal = (large["stages"][name]["peak"] - small["stages"][name]["peak"]) / (
+            large["n"] - small["n"]
+        )
+        print(f"  {name:20s} {'   '.join(cells)}   ({marginal:.3f} MB per extra basin at peak)")
+    extra = (large["peak_mb"] - small["peak_mb"]) / (large["n"] - small["n"])
+    print(f"marginal peak memory: {extra:.3f} MB per extra basin   (target <= 0.3)")
 
 
 if __name__ == "__main__":

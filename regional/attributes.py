@@ -275,6 +275,8 @@ def _series_matrix(
     wide = frame.reindex(columns=ids)
     if dates is not None and not wide.index.equals(dates):
         wide = wide.reindex(dates)
+    if all(pd.api.types.is_float_dtype(dtype) for dtype in wide.dtypes):
+        return wide.to_numpy()  # the stored float type (float32): no copy of the whole table
     try:
         return wide.to_numpy(dtype=float, na_value=np.nan)
     except (TypeError, ValueError) as error:
@@ -418,8 +420,8 @@ def _snow_fraction(
         notes.append("snow_fraction skipped: no temperature series given")
         return pd.DataFrame(index=pd.Index(ids))
     valid = np.isfinite(precip) & np.isfinite(temp)
-    total = np.where(valid, precip, 0.0).sum(axis=0)
-    cold = np.where(valid & (temp < SNOW_THRESHOLD_C), precip, 0.0).sum(axis=0)
+    total = np.where(valid, precip, 0.0).sum(axis=0, dtype=np.float64)
+    cold = np.where(valid & (temp < SNOW_THRESHOLD_C), precip, 0.0).sum(axis=0, dtype=np.float64)
     with np.errstate(divide="ignore", invalid="ignore"):
         fraction = np.where(total > 0, cold / total, np.nan)
     missing = ~valid.any(axis=0)
@@ -433,7 +435,7 @@ def _snow_fraction(
 
 def _masked_mean(values: np.ndarray, valid: np.ndarray) -> np.ndarray:
     count = valid.sum(axis=0)
-    total = np.where(valid, values, 0.0).sum(axis=0)
+    total = np.where(valid, values, 0.0).sum(axis=0, dtype=np.float64)
     with np.errstate(divide="ignore", invalid="ignore"):
         return np.where(count > 0, total / count, np.nan)
 

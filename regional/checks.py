@@ -305,6 +305,7 @@ def check_series(
     flow_column: str,
     basin_ids: Sequence[str],
     max_precip_mm_per_day: float = MAX_PRECIP_MM_PER_DAY,
+    whole: bool = True,
 ) -> pd.DataFrame:
     """Check the long series table read by :func:`regional.io.read_series` and convert it.
 
@@ -327,6 +328,10 @@ def check_series(
     max_precip_mm_per_day : float, default 2000
         Plausibility ceiling of precipitation (mm/day); PET must stay at or below
         :data:`MAX_PET_MM_PER_DAY` and temperature within :data:`TEMP_RANGE_C`.
+    whole : bool, default True
+        ``raw`` is the whole table. False for one batch of rows of a streamed table
+        (:func:`regional.io.iter_series`): the checks that need every row (basins without
+        records, duplicated dates, gaps in the forcing) are then left to the caller.
 
     Returns
     -------
@@ -343,13 +348,10 @@ def check_series(
     """
     rows = raw.index
     ids = raw[id_column]
-    _check_ids(ids, rows, source=source, column=id_column, basin_ids=basin_ids)
+    _check_ids(ids, rows, source=source, column=id_column, basin_ids=basin_ids, whole=whole)
     dates = _parse_dates(raw[date_column], ids, rows, source=f"{source}, column '{date_column}'")
-    duplicated = pd.DataFrame({"id": ids, "date": dates}).duplicated(keep=False).to_numpy()
-    found = _grouped_rows(
-        ids[duplicated] + " on " + dates[duplicated].dt.strftime("%Y-%m-%d"), rows[duplicated]
-    )
-    _fail_if("duplicate_date", f"{source}, column '{date_column}'", found)
+    if whole:
+        _check_duplicates(ids, dates, rows, source=f"{source}, column '{date_column}'")
     clean = {"basin_id": ids, "date": dates}
     for column in [*forcing_columns, flow_column]:
         clean[column] = _numbers(raw[column], ids, rows, source=f"{source}, column '{column}'")
@@ -377,8 +379,17 @@ def check_series(
         _basin_rows(ids[bad], rows[bad], flow[bad]),
     )
     frame = pd.DataFrame(clean, index=rows)
-    _check_forcing_gaps(frame, source=f"{source}, column '{date_column}'")
+    if whole:
+        _check_forcing_gaps(frame, source=f"{source}, column '{date_column}'")
     return frame
+
+
+def _check_duplicates(ids: pd.Series, dates: pd.Series, rows: pd.Index, *, source: str) -> None:
+    duplicated = pd.DataFrame({"id": ids, "date": dates}).duplicated(keep=False).to_numpy()
+    found = _grouped_rows(
+        ids[duplicated] + " on " + dates[duplicated].dt.strftime("%Y-%m-%d"), rows[duplicated]
+    )
+    _fail_if("duplicate_date", source, found)
 
 
 def check_common_period(
@@ -588,7 +599,13 @@ def _check_area(
 
 
 def _check_ids(
-    ids: pd.Series, rows: pd.Index, *, source: str, column: str, basin_ids: Sequence[str]
+    ids: pd.Series,
+    rows: pd.Index,
+    *,
+    source: str,
+    column: str,
+    basin_ids: Sequence[str],
+    whole: bool = True,
 ) -> None:
     where = f"{source}, column '{column}'"
     missing = ids.isna().to_numpy()
@@ -600,6 +617,8 @@ def _check_ids(
         found = _listing([f"'{b}' (first at {rows.name} {r})" for b, r in firsts.items()])
         found += _leading_zero_hint(firsts.index, known)
         _fail_if("series_unknown_id", where, f"{_count(len(firsts), 'unknown id')}: {found}")
+    if not whole:
+        return
     absent = known.difference(pd.Index(ids.unique()), sort=False)
     if len(absent):
         quoted = [f"'{basin}'" for basin in absent]
@@ -616,6 +635,17 @@ def _leading_zero_hint(unknown: Sequence[str], known: Sequence[str]) -> str:
         f" (e.g. '{close[0]}' matches an id that differs only by leading zeros: store ids as "
         "text in both files)"
     )
+
+
+def parse_dates(raw: pd.Series, ids: pd.Series, rows: pd.Index, *, source: str) -> pd.Series:
+    """Dates of a series table as datetime64 at midnight.
+
+    Raises
+    ------
+    InputError
+        A value that is not a date, or not at midnight (naming the basin and row).
+    """
+    return _parse_dates(raw, ids, rows, source=source)
 
 
 def _parse_dates(raw: pd.Series, ids: pd.Series, rows: pd.Index, *, source: str) -> pd.Series:

@@ -35,6 +35,8 @@ from regional.errors import InputError, RunError
 CSV_SUFFIXES = (".csv", ".csv.gz", ".txt", ".txt.gz")
 #: Suffixes read as Parquet.
 PARQUET_SUFFIXES = (".parquet", ".pq")
+#: Rows per batch when the series table is streamed (:func:`iter_series`).
+SERIES_BATCH_ROWS = 1_000_000
 #: Index names of series tables: the line in a text file (header = line 1), or the 1-based row.
 LINE, ROW = "line", "row"
 
@@ -305,6 +307,105 @@ def read_series(
         frame = _read_series_table(path, layer, columns)
     frame[id_column] = _as_text(frame[id_column])
     return frame.loc[~frame.isna().all(axis=1)]
+
+
+def iter_series(
+    path: str | Path,
+    *,
+    id_column: str,
+    date_column: str,
+    value_columns: Sequence[str],
+    layer: str | None = None,
+    batch_rows: int = SERIES_BATCH_ROWS,
+) -> Iterator[pd.DataFrame]:
+    """Read the long table of daily series in batches of rows, only the columns asked for.
+
+    Each batch is what :func:`read_series` returns for the whole file, restricted to some
+    consecutive rows: the index keeps the place of each row in the file (``"line"`` or
+    ``"row"``), so messages name the same line whichever batch holds it. CSV and Parquet are
+    read ``batch_rows`` rows at a time (Parquet by record batches of its row groups); a table
+    of a GeoPackage comes as one batch.
+
+    Parameters
+    ----------
+    path, id_column, date_column, value_columns, layer
+        As for :func:`read_series`.
+    batch_rows : int, default 1,000,000
+        Rows per batch (at most).
+
+    Yields
+    ------
+    DataFrame
+        Columns ``id_column``, ``date_column``, then ``value_columns``.
+    """
+    path = _existing_file(path, "series file")
+    columns = [id_column, date_column, *value_columns]
+    name = path.name.lower()
+    if name.endswith(CSV_SUFFIXES):
+        batches = _iter_series_csv(path, columns, batch_rows)
+    elif name.endswith(PARQUET_SUFFIXES):
+        batches = _iter_series_parquet(path, columns, batch_rows)
+    else:
+        batches = iter([_read_series_table(path, layer, columns)])
+    for frame in batches:
+        frame[id_column] = _as_text(frame[id_column])
+        yield frame.loc[~frame.isna().all(axis=1)]
+
+
+def _iter_series_csv(path: Path, columns: list[str], batch_rows: int) -> Iterator[pd.DataFrame]:
+    header = _csv_header(path)
+    _require_columns(header, columns, source=str(path), key="[series]")
+    first_line = 2
+    try:
+        reader = pd.read_csv(
+            path,
+            usecols=columns,
+            dtype={columns[0]: str, columns[1]: str},
+            skip_blank_lines=False,
+            chunksize=batch_rows,
+        )
+        for frame in reader:
+            frame = frame[columns]
+            frame.index = pd.RangeIndex(first_line, first_line + len(frame), name=LINE)
+            first_line += len(frame)
+            yield frame
+    except (pd.errors.ParserError, UnicodeDecodeError, OSError) as error:
+        raise _csv_error(path, error) from None
+
+
+def _iter_series_parquet(
+    path: Path, columns: list[str], batch_rows: int
+) -> Iterator[pd.DataFrame]:
+    import pyarrow
+    import pyarrow.parquet
+
+    first_row = 1
+    try:
+        source = pyarrow.parquet.ParquetFile(path)
+        _require_columns(source.schema_arrow.names, columns, source=str(path), key="[series]")
+        for batch in source.iter_batches(batch_size=batch_rows, columns=columns):
+            frame = batch.to_pandas()[columns]
+            frame.index = pd.RangeIndex(first_row, first_row + len(frame), name=ROW)
+            first_row += len(frame)
+            yield frame
+    except (pyarrow.ArrowException, OSError) as error:
+        raise InputError(f"cannot read {path} as Parquet ({error}).") from None
+    finally:
+        pyarrow.default_memory_pool().release_unused()  # decoding buffers of the row groups
+
+
+def _csv_header(path: Path) -> pd.Index:
+    try:
+        return pd.read_csv(path, nrows=0).columns
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, OSError) as error:
+        raise _csv_error(path, error) from None
+
+
+def _csv_error(path: Path, error: Exception) -> InputError:
+    return InputError(
+        f"cannot read {path} as a comma-separated table ({error}). Fix: save it as CSV "
+        "with a header line and one record per line."
+    )
 
 
 def _read_series_csv(path: Path, columns: list[str]) -> pd.DataFrame:

@@ -22,6 +22,8 @@ from regional import checks, io
 from regional.attributes import compute_attributes
 from regional.config import Settings, load_settings
 from regional.errors import InputError, InputWarning
+from regional.series import read_grids
+from regional.series import tables as series_tables
 
 #: mm/day of runoff from 1 m3/s over 1 km2: 86 400 s/day * 1 m3/s / 1e6 m2 * 1000 mm/m.
 MM_PER_DAY_PER_M3S_KM2 = 86.4
@@ -35,7 +37,8 @@ class Region:
     """Everything a run needs about a region, validated.
 
     Daily tables are DataFrames shaped (days, basins): index ``dates`` (named ``date``), columns
-    ``basin_id`` in the order of ``basins``.
+    ``basin_id`` in the order of ``basins``, values of :data:`regional.series.SERIES_DTYPE`
+    (float32), each basin's column contiguous in memory (:mod:`regional.series`).
 
     Attributes
     ----------
@@ -202,9 +205,10 @@ def _build(settings: Settings) -> Region:
     notes: list[str] = []
     basins, is_point = _basins(settings)
     overlays, dem = _overlays(settings), _raster(settings)
-    long, series_source = _series(settings, basins.index)
-    dates = _common_dates(long, series_source, notes)
-    tables = _pivot(long, dates, basins.index, settings)
+    grids, series_source = read_grids(settings, basins.index)
+    dates = _common_dates(grids.first, grids.last, series_source, notes)
+    tables = series_tables(grids, dates, basins.index)
+    del grids
     flow_mm = _flow_mm(tables.pop("flow"), basins, tables, settings)
     calibration = _check_periods(settings, dates, notes)
     flow_source = f"{series_source}, column '{settings.series.flow_column}'"
@@ -275,36 +279,9 @@ def _raster(settings: Settings) -> io.Raster | None:
     return raster
 
 
-def _series(settings: Settings, basin_ids: pd.Index) -> tuple[pd.DataFrame, str]:
-    spec = settings.series
-    forcing = [spec.precip, spec.pet] + ([spec.temp] if spec.temp else [])
-    raw = io.read_series(
-        spec.path,
-        id_column=spec.id,
-        date_column=spec.date,
-        value_columns=[*forcing, spec.flow_column],
-        layer=spec.layer,
-    )
-    source = f"series {spec.path}" + (f" (table '{spec.layer}')" if spec.layer else "")
-    long = checks.check_series(
-        raw,
-        source=source,
-        id_column=spec.id,
-        date_column=spec.date,
-        forcing_columns=forcing,
-        flow_column=spec.flow_column,
-        basin_ids=list(basin_ids),
-        max_precip_mm_per_day=spec.max_precip_mm_per_day,
-    )
-    names = {spec.precip: "precip", spec.pet: "pet", spec.flow_column: "flow"}
-    if spec.temp:
-        names[spec.temp] = "temp"
-    return long.rename(columns=names), source
-
-
-def _common_dates(long: pd.DataFrame, source: str, notes: list[str]) -> pd.DatetimeIndex:
-    grouped = long.groupby("basin_id", sort=False)["date"]
-    first, last = grouped.min(), grouped.max()
+def _common_dates(
+    first: pd.Series, last: pd.Series, source: str, notes: list[str]
+) -> pd.DatetimeIndex:
     start, end = checks.check_common_period(first, last, source=source)
     trimmed = int(((first < start) | (last > end)).sum())
     if trimmed:
@@ -313,24 +290,6 @@ def _common_dates(long: pd.DataFrame, source: str, notes: list[str]) -> pd.Datet
             f"{start:%Y-%m-%d}..{end:%Y-%m-%d}"
         )
     return pd.date_range(start, end, freq="D", name="date")
-
-
-def _pivot(
-    long: pd.DataFrame, dates: pd.DatetimeIndex, order: pd.Index, settings: Settings
-) -> dict[str, pd.DataFrame]:
-    """Long records -> one (days, basins) table per variable, by direct placement (one pass)."""
-    day = (long["date"].to_numpy() - dates[0].to_datetime64()) // np.timedelta64(1, "D")
-    column = order.get_indexer(long["basin_id"])
-    inside = (day >= 0) & (day < len(dates))
-    day, column = day[inside], column[inside]
-    variables = ["precip", "pet", "flow"] + (["temp"] if settings.series.temp else [])
-    columns = pd.Index(order, name="basin_id")
-    tables = {}
-    for name in variables:
-        grid = np.full((len(dates), len(order)), np.nan)
-        grid[day, column] = long[name].to_numpy()[inside]
-        tables[name] = pd.DataFrame(grid, index=dates, columns=columns)
-    return tables
 
 
 def _flow_mm(
@@ -367,7 +326,11 @@ def flow_m3s_to_mm(flow_m3s: pd.DataFrame, area_km2: pd.Series) -> pd.DataFrame:
         Flow in mm/day: ``flow_m3s * 86.4 / area_km2`` (1 m3/s over 86.4 km2 is 1 mm/day).
     """
     area = area_km2.reindex(flow_m3s.columns).to_numpy(dtype=float)
-    return flow_m3s * (MM_PER_DAY_PER_M3S_KM2 / area)
+    factor = MM_PER_DAY_PER_M3S_KM2 / area
+    dtypes = set(flow_m3s.dtypes)
+    if len(dtypes) == 1 and pd.api.types.is_float_dtype(next(iter(dtypes))):
+        factor = factor.astype(next(iter(dtypes)))  # keep the storage type (float32)
+    return flow_m3s * factor
 
 
 def _check_periods(

@@ -19,6 +19,7 @@ ORDER = (
     "config",
     "io",
     "checks",
+    "series",
     "attributes",
     "overlap",
     "region",

@@ -1,0 +1,97 @@
+"""Daily series streamed in batches into compact grids: the same tables, the same messages."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from tiny_region import write_region
+
+from regional import series
+from regional.errors import InputError
+from regional.region import load_region
+
+SMALL_BATCH = 500
+"""Rows per batch in these tests: every basin's record (1,095 days) spans several batches."""
+
+
+@pytest.mark.parametrize("name", ["series.csv", "series.parquet"])
+def test_batches_give_the_tables_of_one_batch(tmp_path, region_parts, monkeypatch, name):
+    region_parts.series_name = name
+    region_parts.config["series"]["path"] = name
+    folder = write_region(tmp_path / "r", region_parts)
+    whole = load_region(folder)
+    monkeypatch.setattr(series, "BATCH_ROWS", SMALL_BATCH)
+    batched = load_region(folder)
+    for table in ("precip_mm", "pet_mm", "temp_c", "flow_mm"):
+        pd.testing.assert_frame_equal(getattr(batched, table), getattr(whole, table))
+    pd.testing.assert_frame_equal(batched.attributes, whole.attributes)
+
+
+def test_tables_are_float32_and_share_one_grid(region_folder):
+    region = load_region(region_folder)
+    values = region.precip_mm.to_numpy()
+    assert values.dtype == np.float32
+    # each basin's column is one contiguous run of days in memory (a view, no copy)
+    column = region.precip_mm["B02"].to_numpy()
+    assert column.flags["C_CONTIGUOUS"]
+    assert np.shares_memory(column, values)
+
+
+def _message(folder) -> str:
+    with pytest.raises(InputError) as caught:
+        load_region(folder)
+    return str(caught.value)
+
+
+def _rows_shuffled(parts, seed: int = 3):
+    """Records in random order, so a basin's rows fall in many batches."""
+    parts.series = parts.series.sample(frac=1.0, random_state=seed).reset_index(drop=True)
+    return parts
+
+
+@pytest.mark.parametrize(
+    ("break_it", "words"),
+    [
+        ("duplicate", "B02 on 2001-03-02"),
+        ("gap", "B04"),
+        ("absent", "B05"),
+        ("bad_date", "not-a-date"),
+    ],
+)
+def test_problems_spread_over_batches_give_the_whole_table_message(
+    tmp_path, region_parts, monkeypatch, break_it, words
+):
+    table = _rows_shuffled(region_parts).series
+    if break_it == "duplicate":
+        row = table[(table["basin_id"] == "B02") & (table["date"] == "2001-03-02")]
+        table = pd.concat([table, row], ignore_index=True)
+    elif break_it == "gap":
+        table = table.drop(table.index[(table["basin_id"] == "B04")][100:103])
+    elif break_it == "absent":
+        table = table[table["basin_id"] != "B05"]
+    else:
+        table["date"] = table["date"].astype(str)
+        table.loc[table.index[5], "date"] = "not-a-date"
+    region_parts.series = table.reset_index(drop=True)
+    folder = write_region(tmp_path / "r", region_parts)
+    whole = _message(folder)
+    monkeypatch.setattr(series, "BATCH_ROWS", SMALL_BATCH)
+    assert _message(folder) == whole
+    assert words in whole
+
+
+def test_float32_storage_keeps_the_scores_to_1e_5(tmp_path, region_parts, monkeypatch):
+    # Two routes to the same leave-one-out scores: series held as float32 (default) and as
+    # float64; the scores must agree to 1e-5 relative, or 1e-6 absolute for a score near zero
+    # (the rule of docs/scale.md; the scores are of order 1).
+    from regional.pipeline import run
+
+    folder = write_region(tmp_path / "r", region_parts)
+    compact = run(folder).scores
+    monkeypatch.setattr(series, "SERIES_DTYPE", np.float64)
+    wide = run(folder).scores
+    assert load_region(folder).precip_mm.to_numpy().dtype == np.float64
+    numbers = ["nse", "kge", "kge_r", "kge_alpha", "kge_beta", "log_nse", "pbias"]
+    pd.testing.assert_frame_equal(compact.drop(columns=numbers), wide.drop(columns=numbers))
+    np.testing.assert_allclose(compact[numbers], wide[numbers], rtol=1e-5, atol=1e-6)
