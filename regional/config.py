@@ -187,6 +187,7 @@ class ComputeSettings:
     scheduler: str | None
     workers: int | None
     connect_timeout_s: float = 10.0
+    chunk_basins: int | None = None
 
 
 @dataclass(frozen=True)
@@ -492,6 +493,7 @@ SECTIONS: dict[str, dict[str, _Key]] = {
         "scheduler": _Key(_scheduler),
         "workers": _Key(_integer(1)),
         "connect_timeout_s": _Key(_number(0.0, 600.0, open_=True), 10.0),
+        "chunk_basins": _Key(_integer(1)),
     },
     "output": {"folder": _Key(_path, "results")},
     "report": {

@@ -146,6 +146,7 @@ def leave_one_out(
     *,
     executor=None,
     progress: Callable[[int, int], None] | None = None,
+    chunk_basins: int = CHUNK_BASINS,
 ) -> LeaveOneOut:
     """Treat every gauged basin as ungauged in turn and score each transfer method.
 
@@ -158,6 +159,8 @@ def leave_one_out(
         Runs chunks of target basins (:mod:`regional.compute`); default in this process.
     progress : callable(done, total), optional
         Called as target basins complete.
+    chunk_basins : int, default 8
+        Target basins per task; the results do not depend on it (tested).
 
     Returns
     -------
@@ -166,7 +169,7 @@ def leave_one_out(
     _check_context(context)
     executor = executor or InProcessExecutor()
     targets = [str(b) for b in context.calibrated.index]
-    chunks = chunked(targets, CHUNK_BASINS)
+    chunks = chunked(targets, chunk_basins)
     results = executor.map(run_folds, chunks, context, progress=progress)
     folds = [fold for chunk in results for fold in chunk]
     return _assemble(folds, context)
@@ -449,6 +452,7 @@ def choose_donor_counts(
     *,
     executor=None,
     progress: Callable[[int, int], None] | None = None,
+    chunk_basins: int = CHUNK_BASINS,
 ) -> DonorCountChoice | None:
     """Pick the number of donors of each donor method by median leave-one-out NSE.
 
@@ -467,6 +471,8 @@ def choose_donor_counts(
         Runs chunks of target basins (:mod:`regional.compute`); default in this process.
     progress : callable(done, total), optional
         Called as target basins complete.
+    chunk_basins : int, default 8
+        Target basins per task.
 
     Returns
     -------
@@ -479,7 +485,7 @@ def choose_donor_counts(
     _check_context(context)
     executor = executor or InProcessExecutor()
     targets = [str(b) for b in context.calibrated.index]
-    chunks = chunked(targets, CHUNK_BASINS)
+    chunks = chunked(targets, chunk_basins)
     results = executor.map(run_count_folds, chunks, context, progress=progress)
     scores = pd.DataFrame(
         [row for chunk in results for row in chunk],

@@ -41,7 +41,9 @@ from regional.transfer import RegressionTransfer
 logger = logging.getLogger(__name__)
 
 CALIBRATION_CHUNK = 16
-"""Basins per calibration task handed to the executor."""
+"""Basins per calibration task handed to the executor (``[compute] chunk_basins`` overrides)."""
+LOO_CHUNK = 8
+"""Target basins per leave-one-out task (``[compute] chunk_basins`` overrides)."""
 
 Progress = Callable[[str, int, int], None] | None
 
@@ -118,13 +120,17 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
         timings[f"calibration_{model}"] = time.perf_counter() - clock
         clock = time.perf_counter()
         context = _fold_context(model, region, settings, window, calibration, attributes, excluded)
+        chunk = _chunk_basins(settings, LOO_CHUNK)
         counts = choose_donor_counts(
-            context, executor=executor, progress=_stage(progress, f"donor count {model}")
+            context,
+            executor=executor,
+            progress=_stage(progress, f"donor count {model}"),
+            chunk_basins=chunk,
         )
         if counts is not None:
             context = with_donor_counts(context, counts.chosen)
         stage = _stage(progress, f"leave-one-out {model}")
-        loo = leave_one_out(context, executor=executor, progress=stage)
+        loo = leave_one_out(context, executor=executor, progress=stage, chunk_basins=chunk)
         regression = _regression_on_all(context, attributes)
         timings[f"leave_one_out_{model}"] = time.perf_counter() - clock
         runs[model] = ModelRun(
@@ -159,6 +165,11 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
     result = _with(result, screening=screen_candidates(result))
     timings["screening"] = time.perf_counter() - clock
     return result
+
+
+def _chunk_basins(settings: Settings, default: int) -> int:
+    """Basins per task: ``[compute] chunk_basins`` when set, else the stage's default."""
+    return settings.compute.chunk_basins or default
 
 
 def _stage(progress: Progress, name: str):
@@ -242,7 +253,7 @@ def _calibrate(model, region, settings, window: Window, executor, progress) -> p
         settings=settings,
         fixed=fixed_parameters(settings, snow=temp is not None),
     )
-    chunks = chunked(list(region.gauged), CALIBRATION_CHUNK)
+    chunks = chunked(list(region.gauged), _chunk_basins(settings, CALIBRATION_CHUNK))
     stage = _stage(progress, f"calibration {model}")
     parts = executor.map(_calibrate_chunk, chunks, job, progress=stage)
     return pd.concat(parts)
