@@ -173,6 +173,50 @@ def _attributes(args: argparse.Namespace) -> int:
 
 
 # --------------------------------------------------------------------------------------------
+# regional convert REGION --out FILE.parquet
+# --------------------------------------------------------------------------------------------
+
+
+def _convert_parser(subparsers: argparse._SubParsersAction) -> None:
+    parser = subparsers.add_parser(
+        "convert",
+        help="write the daily series as a Parquet store, one row group per basin",
+        description=(
+            "Check a region's basins and daily series and write the series once as a Parquet "
+            "file with one row group per basin (same columns and units, values as float32), "
+            "so that on a Dask cluster each task reads only its own basins. Then set [series] "
+            "path in region.toml to the new file; results are the same as from the original "
+            "file. An existing file is replaced once the new one is complete; an input of the "
+            "region is refused."
+        ),
+        epilog=EXIT_TEXT + ".",
+    )
+    parser.add_argument("region", help="region folder holding region.toml, or the TOML file")
+    parser.add_argument(
+        "--out", required=True, type=Path, metavar="FILE.parquet", help="Parquet file to write"
+    )
+
+
+def _convert(args: argparse.Namespace) -> int:
+    from regional import io
+    from regional.region import convert_series
+
+    settings = _settings(args.region)
+    if not args.out.name.lower().endswith(io.PARQUET_SUFFIXES):
+        raise InputError(
+            f"refusing to write {args.out}: a series store is a Parquet file. Fix: name it "
+            "with .parquet, e.g. series_store.parquet."
+        )
+    target = io.check_output_file(args.out, inputs=settings.input_paths())
+    n_basins, n_rows = convert_series(settings, target)
+    print(
+        f"wrote {n_rows} daily records of {n_basins} basins to {target}, one row group per "
+        f'basin. Use it: in region.toml, [series] path = "{target}"'
+    )
+    return 0
+
+
+# --------------------------------------------------------------------------------------------
 # regional run REGION [--out DIR]
 # --------------------------------------------------------------------------------------------
 
@@ -431,6 +475,7 @@ def _screen(args: argparse.Namespace) -> int:
 PARSERS: dict[str, Callable[[argparse._SubParsersAction], None]] = {
     "check": _check_parser,
     "attributes": _attributes_parser,
+    "convert": _convert_parser,
     "run": _run_parser,
     "predict": _predict_parser,
     "screen": _screen_parser,
@@ -439,6 +484,7 @@ PARSERS: dict[str, Callable[[argparse._SubParsersAction], None]] = {
 COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
     "check": _check,
     "attributes": _attributes,
+    "convert": _convert,
     "run": _run_all,
     "predict": _predict,
     "screen": _screen,

@@ -178,7 +178,9 @@ class DaskExecutor:
         """Scatter ``context`` once, run one task per chunk, gather results in chunk order."""
         from distributed import as_completed
 
-        shared = self.client.scatter(context, broadcast=True)
+        # hash=False: a fresh key per stage, so releasing one stage's copy never races with
+        # the next stage scattering an equal object
+        shared = self.client.scatter(context, broadcast=True, hash=False)
         futures = [
             self.client.submit(function, list(chunk), shared, pure=False) for chunk in chunks
         ]

@@ -34,6 +34,7 @@ from regional.compute import InProcessExecutor, chunked
 from regional.errors import InputError
 from regional.models import get_model, parameter_transforms, simulate
 from regional.models.base import forward, inverse
+from regional.series import StoreReader, shipped
 from regional.transfer import (
     DONOR_METHODS,
     inverse_distance_weights,
@@ -147,6 +148,7 @@ def leave_one_out(
     executor=None,
     progress: Callable[[int, int], None] | None = None,
     chunk_basins: int = CHUNK_BASINS,
+    reader: StoreReader | None = None,
 ) -> LeaveOneOut:
     """Treat every gauged basin as ungauged in turn and score each transfer method.
 
@@ -161,6 +163,9 @@ def leave_one_out(
         Called as target basins complete.
     chunk_basins : int, default 8
         Target basins per task; the results do not depend on it (tested).
+    reader : StoreReader, optional
+        Each task reads its targets' daily tables from the series store
+        (:mod:`regional.series`) instead of receiving the context's tables; same results.
 
     Returns
     -------
@@ -170,7 +175,8 @@ def leave_one_out(
     executor = executor or InProcessExecutor()
     targets = [str(b) for b in context.calibrated.index]
     chunks = chunked(targets, chunk_basins)
-    results = executor.map(run_folds, chunks, context, progress=progress)
+    task, shared = shipped(run_folds, context, reader)
+    results = executor.map(task, chunks, shared, progress=progress)
     folds = [fold for chunk in results for fold in chunk]
     return _assemble(folds, context)
 
@@ -453,6 +459,7 @@ def choose_donor_counts(
     executor=None,
     progress: Callable[[int, int], None] | None = None,
     chunk_basins: int = CHUNK_BASINS,
+    reader: StoreReader | None = None,
 ) -> DonorCountChoice | None:
     """Pick the number of donors of each donor method by median leave-one-out NSE.
 
@@ -473,6 +480,8 @@ def choose_donor_counts(
         Called as target basins complete.
     chunk_basins : int, default 8
         Target basins per task.
+    reader : StoreReader, optional
+        As for :func:`leave_one_out`.
 
     Returns
     -------
@@ -486,7 +495,8 @@ def choose_donor_counts(
     executor = executor or InProcessExecutor()
     targets = [str(b) for b in context.calibrated.index]
     chunks = chunked(targets, chunk_basins)
-    results = executor.map(run_count_folds, chunks, context, progress=progress)
+    task, shared = shipped(run_count_folds, context, reader)
+    results = executor.map(task, chunks, shared, progress=progress)
     scores = pd.DataFrame(
         [row for chunk in results for row in chunk],
         columns=["basin_id", "method", "n_donors", "nse", "kge"],

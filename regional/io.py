@@ -394,6 +394,90 @@ def _iter_series_parquet(
         pyarrow.default_memory_pool().release_unused()  # decoding buffers of the row groups
 
 
+STORE_KEY = b"regional.series_store"
+"""Key of the Parquet file metadata that marks a series store and lists its basins."""
+
+
+def write_series_store(
+    path: str | Path, tables: Iterator[pd.DataFrame], *, basins: Sequence[str]
+) -> Path:
+    """Write a series store: a Parquet file with one row group per basin, atomically.
+
+    Parameters
+    ----------
+    path : str or Path
+        The file to write (a temporary name beside it is renamed into place when complete).
+    tables : iterator of DataFrame
+        One long table per basin, in the order of ``basins``; every table has the same columns
+        (the basin id, the date, float32 values).
+    basins : sequence of str
+        Basin ids, in row-group order: stored in the file metadata, so a reader finds the row
+        group of a basin without reading any other.
+
+    Returns
+    -------
+    Path
+        The file written.
+    """
+    import pyarrow
+    import pyarrow.parquet
+
+    target = Path(path).expanduser().resolve()
+
+    def write(stream) -> None:
+        writer = None
+        try:
+            for table in tables:
+                arrow = pyarrow.Table.from_pandas(table, preserve_index=False)
+                if writer is None:
+                    meta = {STORE_KEY: json.dumps({"version": 1, "basins": list(basins)})}
+                    schema = arrow.schema.with_metadata(meta)
+                    writer = pyarrow.parquet.ParquetWriter(stream, schema, compression="zstd")
+                writer.write_table(arrow.replace_schema_metadata(writer.schema.metadata))
+        finally:
+            if writer is not None:
+                writer.close()
+
+    _write_atomically(target, write, text=False)
+    return target
+
+
+def series_store_basins(path: str | Path) -> tuple[str, ...] | None:
+    """Basin ids of a series store in row-group order, or None when ``path`` is not one."""
+    import pyarrow
+    import pyarrow.parquet
+
+    path = Path(path)
+    if not path.name.lower().endswith(PARQUET_SUFFIXES) or not path.is_file():
+        return None
+    try:
+        meta = pyarrow.parquet.read_schema(path).metadata or {}
+    except (pyarrow.ArrowException, OSError):
+        return None
+    if STORE_KEY not in meta:
+        return None
+    return tuple(json.loads(meta[STORE_KEY])["basins"])
+
+
+def read_store_groups(
+    path: str | Path, groups: Sequence[int], columns: Sequence[str]
+) -> list[pd.DataFrame]:
+    """Read only the given row groups (one basin each) of a series store, only ``columns``."""
+    import pyarrow
+    import pyarrow.parquet
+
+    try:
+        with pyarrow.parquet.ParquetFile(path) as source:
+            return [
+                source.read_row_group(group, columns=list(columns)).to_pandas() for group in groups
+            ]
+    except (pyarrow.ArrowException, OSError) as error:
+        raise RunError(
+            f"cannot read the series store {path} ({error}). Fix: make the file readable "
+            "at this path on every worker (a shared file system), or run without the store."
+        ) from None
+
+
 def _csv_header(path: Path) -> pd.Index:
     try:
         return pd.read_csv(path, nrows=0).columns

@@ -36,6 +36,7 @@ from regional.predict import predict_ungauged
 from regional.region import Region, load_region, transfer_attribute_names
 from regional.result import ModelRun, RunResult
 from regional.screen import screen_candidates
+from regional.series import StoreReader, shipped, store_reader
 from regional.transfer import RegressionTransfer
 
 logger = logging.getLogger(__name__)
@@ -121,16 +122,21 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
         clock = time.perf_counter()
         context = _fold_context(model, region, settings, window, calibration, attributes, excluded)
         chunk = _chunk_basins(settings, LOO_CHUNK)
+        part = region.dates[window.start : window.stop]
+        reader = _store_reader(region, settings, executor, part)
         counts = choose_donor_counts(
             context,
             executor=executor,
             progress=_stage(progress, f"donor count {model}"),
             chunk_basins=chunk,
+            reader=reader,
         )
         if counts is not None:
             context = with_donor_counts(context, counts.chosen)
         stage = _stage(progress, f"leave-one-out {model}")
-        loo = leave_one_out(context, executor=executor, progress=stage, chunk_basins=chunk)
+        loo = leave_one_out(
+            context, executor=executor, progress=stage, chunk_basins=chunk, reader=reader
+        )
         regression = _regression_on_all(context, attributes)
         timings[f"leave_one_out_{model}"] = time.perf_counter() - clock
         runs[model] = ModelRun(
@@ -255,8 +261,19 @@ def _calibrate(model, region, settings, window: Window, executor, progress) -> p
     )
     chunks = chunked(list(region.gauged), _chunk_basins(settings, CALIBRATION_CHUNK))
     stage = _stage(progress, f"calibration {model}")
-    parts = executor.map(_calibrate_chunk, chunks, job, progress=stage)
+    reader = _store_reader(region, settings, executor, region.dates)
+    task, shared = shipped(_calibrate_chunk, job, reader)
+    parts = executor.map(task, chunks, shared, progress=stage)
     return pd.concat(parts)
+
+
+def _store_reader(region: Region, settings: Settings, executor, dates) -> StoreReader | None:
+    """On a cluster, when the series file is a series store, tasks read their own basins."""
+    if executor.name != "dask":
+        return None
+    area = region.attributes["area_km2"] if settings.series.flow_m3s is not None else None
+    with_temp = use_temperature(region, settings) is not None
+    return store_reader(settings, dates, with_temp=with_temp, area_km2=area)
 
 
 def _fold_context(model, region, settings, window, calibration, attributes, excluded):

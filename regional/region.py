@@ -22,7 +22,7 @@ from regional import checks, io
 from regional.attributes import compute_attributes
 from regional.config import Settings, load_settings
 from regional.errors import InputError, InputWarning
-from regional.series import read_grids
+from regional.series import read_grids, write_store
 from regional.series import tables as series_tables
 
 #: mm/day of runoff from 1 m3/s over 1 km2: 86 400 s/day * 1 m3/s / 1e6 m2 * 1000 mm/m.
@@ -176,6 +176,24 @@ def load_region(path: str | Path | Settings) -> Region:
         else:
             warnings.warn_explicit(record.message, record.category, record.filename, record.lineno)
     return replace(region, warnings=tuple(messages))
+
+
+def convert_series(source: str | Path | Settings, target: str | Path) -> tuple[int, int]:
+    """Check a region's basins and series and write the series as a series store.
+
+    The store (:func:`regional.series.write_store`) is a Parquet file with one row group per
+    basin, so a worker of a cluster reads only the basins of its task. Point ``[series] path``
+    at it; the other ``[series]`` keys stay as they are.
+
+    Returns
+    -------
+    (int, int)
+        Basins and rows written.
+    """
+    settings = source if isinstance(source, Settings) else load_settings(source)
+    basins, _ = _basins(settings)
+    rows = write_store(settings, basins.index, target)
+    return len(basins), rows
 
 
 def describe_region(region: Region) -> RegionSummary:

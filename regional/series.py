@@ -16,7 +16,8 @@ reading and one byte per basin-day for the gap check (docs/scale.md).
 from __future__ import annotations
 
 from collections.abc import Iterator, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
+from functools import partial
 
 import numpy as np
 import pandas as pd
@@ -230,3 +231,164 @@ def _check_whole(settings: Settings, basin_ids: pd.Index, source: str) -> None:
         basin_ids=list(basin_ids),
         max_precip_mm_per_day=spec.max_precip_mm_per_day,
     )
+
+
+# --------------------------------------------------------------------------------------------
+# The series store: one row group per basin, read where it is computed
+# --------------------------------------------------------------------------------------------
+
+
+def write_store(settings: Settings, basin_ids: pd.Index, target) -> int:
+    """Check a region's series file and write it as a series store (one row group per basin).
+
+    The store keeps the columns and units of ``[series]`` (so only its ``path`` changes in
+    ``region.toml``), each basin's records in date order, values as :data:`SERIES_DTYPE`: a
+    region read from the store holds the very values it held when read from the source file.
+
+    Returns
+    -------
+    int
+        Rows written.
+    """
+    grids, _ = read_grids(settings, basin_ids)
+    spec = settings.series
+    dates = pd.date_range(grids.start, periods=grids.values["precip"].shape[1], freq="D")
+    names = variables(settings)
+    written = 0
+
+    def tables() -> Iterator[pd.DataFrame]:
+        nonlocal written
+        for row, basin in enumerate(basin_ids):
+            present = np.isfinite(grids.values["precip"][row])
+            columns = {spec.id: np.full(int(present.sum()), str(basin), dtype=object)}
+            columns[spec.date] = dates[present]
+            for name, column in names.items():
+                columns[column] = grids.values[name][row, present]
+            written += int(present.sum())
+            yield pd.DataFrame(columns)
+
+    io.write_series_store(target, tables(), basins=[str(b) for b in basin_ids])
+    return written
+
+
+@dataclass(frozen=True, eq=False)
+class StoreChunk:
+    """Daily tables of some basins read from a series store.
+
+    Attributes
+    ----------
+    tables : dict
+        ``precip_mm``, ``pet_mm``, ``flow_mm`` (and ``temp_c`` when the reader has it) ->
+        DataFrame (dates, basins) of :data:`SERIES_DTYPE`.
+    rows_read : int
+        Rows read from the file: the records of these basins only.
+    """
+
+    tables: dict[str, pd.DataFrame]
+    rows_read: int
+
+
+@dataclass(frozen=True, eq=False)
+class StoreReader:
+    """What a worker needs to read some basins' daily tables from a series store (small).
+
+    Attributes
+    ----------
+    path : str
+        The store, as the workers see it (a shared file system or the same machine).
+    basins : tuple of str
+        Basin ids in row-group order (from the file metadata).
+    columns : dict
+        ``precip_mm``, ``pet_mm``, ``flow_mm`` (``temp_c``) -> column of the store.
+    date_column : str
+        The date column.
+    dates : DatetimeIndex
+        Days of the tables returned (a part of the region's common period).
+    mm_per_m3s : Series or None
+        Per basin, mm/day per m3/s (86.4 / area_km2) when the store holds flow in m3/s.
+    """
+
+    path: str
+    basins: tuple[str, ...]
+    columns: dict[str, str]
+    date_column: str
+    dates: pd.DatetimeIndex
+    mm_per_m3s: pd.Series | None = None
+
+    def read(self, basins: Sequence[str]) -> StoreChunk:
+        """Read the row groups of ``basins`` only and place them on :attr:`dates`."""
+        where = {basin: group for group, basin in enumerate(self.basins)}
+        groups = [where[str(basin)] for basin in basins]
+        wanted = [self.date_column, *self.columns.values()]
+        frames = io.read_store_groups(self.path, groups, wanted)
+        tables = {
+            name: np.full((len(basins), len(self.dates)), np.nan, SERIES_DTYPE)
+            for name in self.columns
+        }
+        rows = 0
+        for column, frame in enumerate(frames):
+            day = self.dates.get_indexer(pd.DatetimeIndex(frame[self.date_column]))
+            inside = day >= 0
+            for name, source in self.columns.items():
+                tables[name][column, day[inside]] = frame[source].to_numpy()[inside]
+            rows += len(frame)
+        ids = pd.Index([str(b) for b in basins], name="basin_id")
+        out = {
+            name: pd.DataFrame(grid.T, index=self.dates, columns=ids, copy=False)
+            for name, grid in tables.items()
+        }
+        if self.mm_per_m3s is not None:
+            factor = self.mm_per_m3s.reindex(ids).to_numpy().astype(SERIES_DTYPE)
+            out["flow_mm"] = out["flow_mm"] * factor
+        return StoreChunk(tables=out, rows_read=rows)
+
+
+def store_reader(
+    settings: Settings,
+    dates: pd.DatetimeIndex,
+    *,
+    with_temp: bool,
+    area_km2: pd.Series | None = None,
+) -> StoreReader | None:
+    """A reader of the region's series file when it is a series store, else None."""
+    spec = settings.series
+    basins = io.series_store_basins(spec.path)
+    if basins is None:
+        return None
+    columns = {"precip_mm": spec.precip, "pet_mm": spec.pet, "flow_mm": spec.flow_column}
+    if with_temp:
+        columns["temp_c"] = spec.temp
+    factor = None
+    if spec.flow_m3s is not None:
+        factor = 86.4 / area_km2.astype(float)
+    return StoreReader(
+        path=str(spec.path),
+        basins=basins,
+        columns=columns,
+        date_column=spec.date,
+        dates=dates,
+        mm_per_m3s=factor,
+    )
+
+
+def shipped(function, context, reader: StoreReader | None):
+    """The task and context to hand an executor: with a reader, the context travels without
+    its daily tables and each task reads its own basins' tables from the store."""
+    if reader is None:
+        return function, context
+    empty = {name: None for name in ("precip_mm", "pet_mm", "flow_mm", "temp_c")}
+    return partial(_from_store, function), _Shipped(replace(context, **empty), reader)
+
+
+@dataclass(frozen=True, eq=False)
+class _Shipped:
+    """A context without its daily tables and the reader of its tasks' tables (one object, so
+    an executor scatters it whole)."""
+
+    context: object
+    reader: StoreReader
+
+
+def _from_store(function, chunk: Sequence[str], shipped_context: _Shipped):
+    tables = shipped_context.reader.read(chunk).tables
+    return function(chunk, replace(shipped_context.context, **tables))

@@ -77,3 +77,43 @@ def test_an_address_that_answers_in_another_protocol_is_named_not_a_scheduler():
     with pytest.raises(RunError, match=f"127.0.0.1:{port} answered, but not as a Dask scheduler"):
         make_executor(f"tcp://127.0.0.1:{port}", connect_timeout_s=3)
     server.close()
+
+
+def test_cluster_reading_a_series_store_gives_the_in_process_tables(tmp_path, region_parts):
+    # `regional convert` writes the series store; a 2-worker local cluster whose tasks read
+    # their own basins from it must give the tables of the in-process run from the CSV file.
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    from tiny_region import write_region
+
+    from regional.cli import main
+    from regional.config import load_settings
+    from regional.pipeline import _store_reader
+    from regional.region import load_region
+
+    folder = write_region(tmp_path / "region", region_parts)
+    store = tmp_path / "store.parquet"
+    assert main(["convert", str(folder), "--out", str(store)]) == 0
+    region_parts.config["series"]["path"] = str(store)
+    from_store = write_region(tmp_path / "from_store", region_parts)
+    settings = load_settings(from_store)
+
+    class Cluster:
+        name = "dask"
+
+    region = load_region(settings)
+    assert _store_reader(region, settings, Cluster(), region.dates) is not None
+    here, there = tmp_path / "in_process", tmp_path / "cluster"
+    assert main(["run", str(folder), "--out", str(here), "--quiet"]) == 0
+    assert main(["run", str(from_store), "--out", str(there), "--quiet", "--workers", "2"]) == 0
+    for name in ("loo_scores.csv", "calibration.csv", "parameters_ungauged.csv"):
+        assert (here / name).read_text() == (there / name).read_text(), name
+
+
+def test_convert_refuses_a_target_that_is_not_parquet(tmp_path, region_parts, capsys):
+    from tiny_region import write_region
+
+    from regional.cli import main
+
+    folder = write_region(tmp_path / "region", region_parts)
+    assert main(["convert", str(folder), "--out", str(tmp_path / "store.csv")]) == 2
+    assert "a series store is a Parquet file" in capsys.readouterr().err

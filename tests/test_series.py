@@ -95,3 +95,49 @@ def test_float32_storage_keeps_the_scores_to_1e_5(tmp_path, region_parts, monkey
     numbers = ["nse", "kge", "kge_r", "kge_alpha", "kge_beta", "log_nse", "pbias"]
     pd.testing.assert_frame_equal(compact.drop(columns=numbers), wide.drop(columns=numbers))
     np.testing.assert_allclose(compact[numbers], wide[numbers], rtol=1e-5, atol=1e-6)
+
+
+def _converted(tmp_path, region_parts) -> tuple:
+    """The tiny region and a copy of it whose [series] path names its series store."""
+    from regional.region import convert_series
+
+    folder = write_region(tmp_path / "source", region_parts)
+    store = tmp_path / "store.parquet"
+    n_basins, n_rows = convert_series(folder, store)
+    assert (n_basins, n_rows) == (6, len(region_parts.series))
+    region_parts.config["series"]["path"] = str(store)
+    return folder, write_region(tmp_path / "from_store", region_parts), store
+
+
+def test_region_read_from_its_store_holds_the_same_tables(tmp_path, region_parts):
+    folder, from_store, _ = _converted(tmp_path, region_parts)
+    first, second = load_region(folder), load_region(from_store)
+    for table in ("precip_mm", "pet_mm", "temp_c", "flow_mm"):
+        pd.testing.assert_frame_equal(getattr(second, table), getattr(first, table))
+    pd.testing.assert_frame_equal(second.attributes, first.attributes)
+
+
+def test_a_task_reads_only_its_own_basins_rows(tmp_path, region_parts):
+    # Second route to the count: the rows of those basins in the long table written.
+    from regional.config import load_settings
+
+    _, from_store, store = _converted(tmp_path, region_parts)
+    region = load_region(from_store)
+    reader = series.store_reader(load_settings(from_store), region.dates, with_temp=True)
+    chunk = ["B02", "B05"]
+    read = reader.read(chunk)
+    expected = int(region_parts.series["basin_id"].isin(chunk).sum())
+    assert read.rows_read == expected < len(region_parts.series)
+    for name, table in read.tables.items():
+        assert list(table.columns) == chunk
+        pd.testing.assert_frame_equal(table, getattr(region, name)[chunk])
+
+
+def test_a_plain_parquet_file_is_not_a_store(tmp_path, region_parts):
+    from regional.config import load_settings
+
+    region_parts.series_name = "series.parquet"
+    region_parts.config["series"]["path"] = "series.parquet"
+    folder = write_region(tmp_path / "r", region_parts)
+    dates = load_region(folder).dates
+    assert series.store_reader(load_settings(folder), dates, with_temp=False) is None
