@@ -493,24 +493,10 @@ def _csv_error(path: Path, error: Exception) -> InputError:
 
 
 def _read_series_csv(path: Path, columns: list[str]) -> pd.DataFrame:
-    try:
-        header = pd.read_csv(path, nrows=0).columns
-        _require_columns(header, columns, source=str(path), key="[series]")
-        frame = pd.read_csv(
-            path,
-            usecols=columns,
-            dtype={columns[0]: str, columns[1]: str},
-            skip_blank_lines=False,
-            low_memory=False,
-        )
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, OSError) as error:
-        raise InputError(
-            f"cannot read {path} as a comma-separated table ({error}). Fix: save it as CSV "
-            "with a header line and one record per line."
-        ) from None
-    frame = frame[columns]
-    frame.index = pd.RangeIndex(2, len(frame) + 2, name=LINE)
-    return frame
+    frames = list(_iter_series_csv(path, columns, SERIES_BATCH_ROWS))
+    if not frames:  # a header and no records
+        return pd.DataFrame(columns=columns, index=pd.RangeIndex(2, 2, name=LINE))
+    return pd.concat(frames)
 
 
 def _read_series_parquet(path: Path, columns: list[str]) -> pd.DataFrame:

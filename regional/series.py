@@ -154,17 +154,7 @@ def _fill(
     grids = {name: np.full((len(basin_ids), days), np.nan, SERIES_DTYPE) for name in names}
     forcing = [spec.precip, spec.pet] + ([spec.temp] if spec.temp else [])
     for raw in _reading(spec, [*forcing, spec.flow_column]):
-        long = checks.check_series(
-            raw,
-            source=source,
-            id_column=spec.id,
-            date_column=spec.date,
-            forcing_columns=forcing,
-            flow_column=spec.flow_column,
-            basin_ids=list(basin_ids),
-            max_precip_mm_per_day=spec.max_precip_mm_per_day,
-            whole=False,
-        )
+        long = _checked(raw, settings, basin_ids, source, whole=False)
         _place(long, grids, names, basin_ids, start)
     first, last = _record_spans(grids["precip"], basin_ids, start)
     return DailyGrids(start=start, values=grids, first=first, last=last)
@@ -221,15 +211,23 @@ def _check_whole(settings: Settings, basin_ids: pd.Index, source: str) -> None:
         value_columns=[*forcing, spec.flow_column],
         layer=spec.layer,
     )
-    checks.check_series(
+    _checked(raw, settings, basin_ids, source, whole=True)
+
+
+def _checked(
+    raw: pd.DataFrame, settings: Settings, basin_ids: pd.Index, source: str, *, whole: bool
+) -> pd.DataFrame:
+    spec = settings.series
+    return checks.check_series(
         raw,
         source=source,
         id_column=spec.id,
         date_column=spec.date,
-        forcing_columns=forcing,
+        forcing_columns=[spec.precip, spec.pet] + ([spec.temp] if spec.temp else []),
         flow_column=spec.flow_column,
         basin_ids=list(basin_ids),
         max_precip_mm_per_day=spec.max_precip_mm_per_day,
+        whole=whole,
     )
 
 
