@@ -349,9 +349,10 @@ def _assemble(folds: list[dict], context: FoldContext) -> LeaveOneOut:
     observed = context.flow_mm.loc[dates, ids]
     simulated = {
         method: pd.DataFrame(
-            np.column_stack([fold["methods"][method]["flow"] for fold in folds]),
+            _flow_columns(folds, method, len(dates)),
             index=dates,
             columns=pd.Index(ids, name="basin_id"),
+            copy=False,
         )
         for method in methods
     }
@@ -372,6 +373,15 @@ def _assemble(folds: list[dict], context: FoldContext) -> LeaveOneOut:
         warnings=notes,
         methods=methods,
     )
+
+
+def _flow_columns(folds: list[dict], method: str, n_days: int) -> np.ndarray:
+    """One method's flows of every fold as (days, folds), each fold's copy dropped once placed
+    (the folds' flows are never held twice)."""
+    values = np.empty((len(folds), n_days))
+    for column, fold in enumerate(folds):
+        values[column] = fold["methods"][method].pop("flow")
+    return values.T
 
 
 def summarise(scores: pd.DataFrame) -> pd.DataFrame:

@@ -18,8 +18,8 @@ import pandas as pd
 
 from regional import __version__, io
 from regional.crossval import CALIBRATED
+from regional.report import figure_drawers, render_report
 from regional.report import figures as plots
-from regional.report import make_figures, render_report
 from regional.result import RunResult, software_versions
 
 SCORE_NAMES = ("nse", "kge", "kge_r", "kge_alpha", "kge_beta", "log_nse", "pbias", "n_days")
@@ -52,7 +52,8 @@ def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True
     images: dict[str, bytes] = {}
     report = None
     if figures:
-        images = {name: io.figure_png(figure) for name, figure in make_figures(result).items()}
+        # one figure in memory at a time: drawn, rendered to PNG, dropped
+        images = {name: io.figure_png(draw()) for name, draw in figure_drawers(result).items()}
         report = render_report(result, images)
     manifest = run_manifest(result)
     return io.write_run_folder(

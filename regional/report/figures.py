@@ -25,6 +25,8 @@ name                        content
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
+from functools import partial
 from typing import TYPE_CHECKING
 
 import matplotlib
@@ -98,19 +100,29 @@ def make_figures(result: RunResult) -> dict[str, Figure]:
     dict of str -> Figure
         In report order.
     """
-    figures = {
-        "loo_nse_map": loo_nse_map(result),
-        "parameters": parameter_scatter(result),
-        "nse_cdf": nse_cdf(result),
-        "hydrographs": hydrographs(result),
+    return {name: draw() for name, draw in figure_drawers(result).items()}
+
+
+def figure_drawers(result: RunResult) -> dict[str, Callable[[], Figure]]:
+    """What :func:`make_figures` draws, as one call per figure (name -> draw it).
+
+    Drawing, rendering and dropping one figure at a time keeps one figure in memory instead of
+    every page of site hydrographs at once (:func:`regional.outputs.write_outputs`).
+    """
+    drawers: dict[str, Callable[[], Figure]] = {
+        "loo_nse_map": lambda: loo_nse_map(result),
+        "parameters": lambda: parameter_scatter(result),
+        "nse_cdf": lambda: nse_cdf(result),
+        "hydrographs": lambda: hydrographs(result),
     }
     if len(result.runs) > 1:
-        figures["model_comparison"] = model_comparison(result)
+        drawers["model_comparison"] = lambda: model_comparison(result)
     if result.prediction is not None:
-        figures |= prediction_figures(result)
+        drawers["ungauged_mean_flow_map"] = lambda: ungauged_mean_flow_map(result)
+        drawers |= _hydrograph_page_drawers(result)
     if result.screening is not None:
-        figures["screening"] = screening_bars(result)
-    return figures
+        drawers["screening"] = lambda: screening_bars(result)
+    return drawers
 
 
 def prediction_figures(result: RunResult) -> dict[str, Figure]:
@@ -457,14 +469,21 @@ def ungauged_hydrograph_pages(
     dict of str -> Figure
         ``ungauged_hydrographs``, then ``ungauged_hydrographs_2``, ``_3``, ...
     """
+    drawers = _hydrograph_page_drawers(result, per_figure=per_figure, log=log)
+    return {name: draw() for name, draw in drawers.items()}
+
+
+def _hydrograph_page_drawers(
+    result: RunResult, *, per_figure: int | None = None, log: bool = True
+) -> dict[str, Callable[[], Figure]]:
     table = _require(result.prediction, "prediction").table
     basins = sorted(table.index, key=lambda b: (bool(table.loc[b, "applicable"]), str(b)))
     per_figure = per_figure or _report_settings(result).sites_per_figure
     pages = _pages(basins, per_figure)
     series = _site_series(result, basins)
     return {
-        _page_name("ungauged_hydrographs", number): _hydrograph_page(
-            result, series, page, window=None, log=log, page=(number, len(pages))
+        _page_name("ungauged_hydrographs", number): partial(
+            _hydrograph_page, result, series, page, window=None, log=log, page=(number, len(pages))
         )
         for number, page in enumerate(pages, start=1)
     }

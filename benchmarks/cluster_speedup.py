@@ -1,0 +1,139 @@
+"""Does a 2-worker local Dask cluster pay off on a chain dominated by calibration (GR4J)?
+
+Builds one invented region (the generator of ``large_region.py``; N basins x Y years, model
+GR4J), writes its series store (``regional convert``), then runs the whole chain twice, each in
+a fresh child process, one after the other on this machine:
+
+- in-process (the default);
+- on a local cluster of 2 worker processes, one thread each, whose tasks read their own basins
+  from the series store (nothing daily is scattered).
+
+Printed: the whole-chain speed-up and, separately, the speed-up of the distributed stages
+(calibration + leave-one-out); the bytes the client scattered to the workers per stage and the
+bytes of results gathered back, per chunk. Also the machine's load average before each run: the
+machine may be shared, so read the ratios with it.
+
+Run:  python benchmarks/cluster_speedup.py [--basins 60] [--years 10]
+Every value of the synthetic region is invented.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import pickle
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+from large_region import make_region
+
+
+def _measure_shipping(record: dict) -> None:
+    """Wrap DaskExecutor.map to count the pickled bytes scattered and gathered per stage."""
+    from regional import compute
+
+    original = compute.DaskExecutor.map
+
+    def counted(self, function, chunks, context, *, progress=None):
+        results = original(self, function, chunks, context, progress=progress)
+        record.append(
+            {
+                "chunks": len(chunks),
+                "scattered_bytes": len(pickle.dumps(context)),
+                "gathered_bytes": sum(len(pickle.dumps(r)) for r in results),
+            }
+        )
+        return results
+
+    compute.DaskExecutor.map = counted
+
+
+def child(folder: str, workers: int) -> None:
+    """Run the chain on the region in ``folder``; print one JSON line."""
+    import warnings
+
+    from regional.compute import keep_freed_memory
+    from regional.outputs import write_outputs
+    from regional.pipeline import run
+
+    warnings.simplefilter("ignore")
+    keep_freed_memory()
+    shipping: list[dict] = []
+    _measure_shipping(shipping)
+    out = Path(folder) / f"results_{workers}"
+    start = time.perf_counter()
+    result = run(folder, workers=workers or None)
+    write_outputs(result, out)
+    seconds = time.perf_counter() - start
+    print(json.dumps({"seconds": seconds, "timings": result.timings, "shipping": shipping}))
+
+
+def build(folder: Path, n_basins: int, years: int) -> None:
+    """The invented region with GR4J, its series read from a series store."""
+    from regional.region import convert_series
+
+    make_region(folder, n_basins, years)
+    toml = folder / "region.toml"
+    text = toml.read_text().replace('name = "linear"', 'name = "gr4j"')
+    toml.write_text(text)
+    convert_series(folder, folder / "store.parquet")
+    toml.write_text(text.replace('path = "series.parquet"', 'path = "store.parquet"'))
+
+
+def measure(folder: Path, workers: int) -> dict:
+    load = os.getloadavg()[0]
+    command = [sys.executable, __file__, "--child", str(folder), str(workers)]
+    output = subprocess.run(command, check=True, capture_output=True, text=True).stdout
+    row = json.loads(output.strip().splitlines()[-1])
+    row["load_before"] = load
+    return row
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--basins", type=int, default=60)
+    parser.add_argument("--years", type=int, default=10)
+    parser.add_argument("--child", nargs=2, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.child:
+        child(args.child[0], int(args.child[1]))
+        return
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        build(folder, args.basins, args.years)
+        local = measure(folder, 0)
+        cluster = measure(folder, 2)
+    stages = ("calibration_gr4j", "leave_one_out_gr4j")
+    spread = [sum(row["timings"][s] for s in stages) for row in (local, cluster)]
+    print(
+        f"GR4J chain, {args.basins} basins x {args.years} years (invented), {os.cpu_count()} cores"
+    )
+    for name, row in (("in-process", local), ("2-worker cluster", cluster)):
+        parts = ", ".join(f"{k} {v:.1f} s" for k, v in row["timings"].items())
+        print(
+            f"  {name:17s} {row['seconds']:7.1f} s (load average before: "
+            f"{row['load_before']:.1f})  [{parts}]"
+        )
+    print(
+        f"whole chain speed-up: {local['seconds'] / cluster['seconds']:.2f} x   "
+        "(target >= 1.6 on 2 cores)"
+    )
+    print(
+        f"distributed stages (calibration + leave-one-out): {spread[0]:.1f} s -> "
+        f"{spread[1]:.1f} s, {spread[0] / spread[1]:.2f} x"
+    )
+    for stage in cluster["shipping"]:
+        scattered = stage["scattered_bytes"] / 1e3
+        per_chunk = stage["gathered_bytes"] / stage["chunks"] / 1e3
+        print(
+            f"  stage of {stage['chunks']} chunks: scattered once {scattered:.0f} kB; "
+            f"gathered {per_chunk:.0f} kB per chunk"
+        )
+
+
+if __name__ == "__main__":
+    main()
