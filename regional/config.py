@@ -34,6 +34,8 @@ OBJECTIVES = ("kge", "nse", "log_nse")
 TRANSFER_METHODS = ("regression", "similarity", "proximity", "blended", "median")
 #: How flows from several donors are combined (``[transfer] combine``).
 COMBINE_MODES = ("output", "parameter")
+STATISTICS_ROUTES = ("auto", "model", "direct")
+"""``[prediction] statistics_route``: pick per statistic, or force the model or direct route."""
 #: Donor counts tried in leave-one-out with ``[transfer] donors = "auto"``.
 AUTO_DONOR_COUNTS = tuple(range(1, 11))
 #: Calibration searches for models with several parameters (``[model] search``).
@@ -171,6 +173,7 @@ class PredictionSettings:
     method: str | None
     model: str | None
     held_out_repeats: int = 10
+    statistics_route: str = "auto"
 
 
 @dataclass(frozen=True)
@@ -487,6 +490,7 @@ SECTIONS: dict[str, dict[str, _Key]] = {
         "method": _Key(_choice(TRANSFER_METHODS)),
         "model": _Key(_choice(MODEL_NAMES)),
         "held_out_repeats": _Key(_integer(0), 10),
+        "statistics_route": _Key(_choice(STATISTICS_ROUTES), "auto"),
     },
     "screening": {"candidates": _Key(_text_list)},
     "compute": {

@@ -80,7 +80,7 @@ def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -
     stages = dict(previous.get("stages", {})) | {stage: _now()}
     result = replace(result, stages=stages)
     if stage == "prediction":
-        tables = _prediction_tables(result)
+        tables = _prediction_tables(result) | statistics_tables(result)
         tables["loo_summary.csv"] = loo_summary(result)
         layers = {"ungauged": _ungauged_layer(result)}
         drawn = plots.prediction_figures(result)
@@ -139,8 +139,24 @@ def result_tables(result: RunResult) -> dict[str, pd.DataFrame]:
         tables["donor_counts.csv"] = counts
     if result.prediction is not None:
         tables |= _prediction_tables(result)
+    tables |= statistics_tables(result)
     if result.screening is not None:
         tables["screening.csv"] = result.screening.table.reset_index()
+    return tables
+
+
+def statistics_tables(result: RunResult) -> dict[str, pd.DataFrame]:
+    """``statistics_loo.csv``, ``statistics_summary.csv`` and, with ungauged basins,
+    ``statistics_ungauged.csv`` (see docs/statistics.md); none without statistics."""
+    statistics = result.statistics
+    if statistics is None:
+        return {}
+    tables = {
+        "statistics_loo.csv": statistics.loo,
+        "statistics_summary.csv": statistics.summary.assign(level=statistics.level),
+    }
+    if len(statistics.ungauged):
+        tables["statistics_ungauged.csv"] = statistics.ungauged.assign(level=statistics.level)
     return tables
 
 
@@ -224,7 +240,10 @@ def result_layers(result: RunResult) -> dict[str, gpd.GeoDataFrame]:
 
 def _ungauged_layer(result: RunResult) -> gpd.GeoDataFrame:
     prediction = result.prediction
-    return _with_geometry(_with_level(prediction.table, prediction.level), result.region.basins)
+    table = _with_level(prediction.table, prediction.level)
+    if result.statistics is not None and len(result.statistics.ungauged):
+        table = table.join(result.statistics.ungauged_wide().add_prefix("stat_"))
+    return _with_geometry(table, result.region.basins)
 
 
 def _with_geometry(table: pd.DataFrame, basins: gpd.GeoDataFrame) -> gpd.GeoDataFrame:
@@ -252,6 +271,8 @@ def _gauged_layer(result: RunResult) -> gpd.GeoDataFrame:
                 continue
             table[f"loo_nse_{method}{suffix}"] = scores[("nse", method)]
             table[f"loo_kge_{method}{suffix}"] = scores[("kge", method)]
+    if result.statistics is not None:
+        table = table.join(result.statistics.gauged_wide().add_prefix("stat_"))
     return _with_geometry(table, region.basins)
 
 

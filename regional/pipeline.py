@@ -37,6 +37,7 @@ from regional.region import Region, load_region, transfer_attribute_names
 from regional.result import ModelRun, RunResult
 from regional.screen import screen_candidates
 from regional.series import StoreReader, shipped, store_reader
+from regional.statroutes import estimate_statistics
 from regional.transfer import RegressionTransfer
 
 logger = logging.getLogger(__name__)
@@ -96,7 +97,7 @@ def run(
     ]
     for run_ in result.runs.values():
         messages += list(run_.loo.warnings)
-    for stage in (result.prediction, result.screening):
+    for stage in (result.prediction, result.statistics, result.screening):
         messages += list(getattr(stage, "notes", ()))
     return _with(result, warnings=tuple(dict.fromkeys(messages)), timings=timings)
 
@@ -163,10 +164,11 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
         chosen_method=method,
     )
     if not region.ungauged:
-        return result
+        return _with_statistics(result, timings)
     clock = time.perf_counter()
     result = _with(result, prediction=predict_ungauged(result))
     timings["prediction"] = time.perf_counter() - clock
+    result = _with_statistics(result, timings)
     clock = time.perf_counter()
     result = _with(result, screening=screen_candidates(result))
     timings["screening"] = time.perf_counter() - clock
@@ -176,6 +178,27 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
 def _chunk_basins(settings: Settings, default: int) -> int:
     """Basins per task: ``[compute] chunk_basins`` when set, else the stage's default."""
     return settings.compute.chunk_basins or default
+
+
+def _with_statistics(result: RunResult, timings: dict[str, float]) -> RunResult:
+    """Flow statistics by every route in leave-one-out, bounded at the ungauged basins."""
+    clock = time.perf_counter()
+    prediction = result.prediction
+    settings = result.settings.prediction
+    flows = None
+    applicable = None
+    if prediction is not None:
+        flows = prediction.flows.pivot(index="date", columns="basin_id", values="flow_mm")
+        applicable = prediction.table["applicable"]
+    statistics = estimate_statistics(
+        result,
+        flows,
+        level=settings.level,
+        route=settings.statistics_route,
+        applicable=applicable,
+    )
+    timings["statistics"] = time.perf_counter() - clock
+    return _with(result, statistics=statistics)
 
 
 def _stage(progress: Progress, name: str):

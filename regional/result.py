@@ -72,6 +72,9 @@ class RunResult:
         :class:`regional.predict.Prediction` when the region has ungauged basins.
     screening : object or None
         :class:`regional.screen.Screening` when candidates were screened.
+    statistics : object or None
+        :class:`regional.statroutes.FlowStatistics`: flow statistics by route in leave-one-out,
+        with bounds at the ungauged basins.
     warnings : tuple of str
         Everything the user should read, for the report.
     stages : dict
@@ -91,6 +94,7 @@ class RunResult:
     chosen_method: str
     prediction: object | None = None
     screening: object | None = None
+    statistics: object | None = None
     warnings: tuple[str, ...] = ()
     timings: dict[str, float] = field(default_factory=dict)
     stages: dict[str, str] = field(default_factory=dict)

@@ -34,6 +34,7 @@ ORDER = (
     "heldout",
     "applicability",
     "predict",
+    "statroutes",
     "screen",
     "report",
     "outputs",
