@@ -71,6 +71,26 @@ def main() -> None:
         print(counts.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
     if result.prediction is not None:
         print(result.prediction.coverage.to_string(index=False))
+    if result.statistics is not None:
+        print("flow statistics in leave-one-out (chosen route per statistic):")
+        summary = result.statistics.summary
+        columns = [
+            "statistic",
+            "route",
+            "n_basins",
+            "median_abs_rel_error",
+            "r2_log",
+            "median_log_bias",
+            "coverage",
+            "held_out_coverage",
+        ]
+        print(
+            summary.loc[summary["chosen"], columns].to_string(
+                index=False, float_format=lambda v: f"{v:.3f}"
+            )
+        )
+        print("median over statistics of each route's median absolute log10 error:")
+        print(summary.groupby("route")["median_abs_log_error"].median().round(3).to_string())
     print("timings:", {k: round(v, 1) for k, v in result.timings.items()})
     calibration = result.runs[result.chosen_model].calibration
     print(

@@ -19,6 +19,8 @@ name                        content
                             as ``ungauged_hydrographs_2``, ``_3``, ... when there are many
 ``screening``               candidate gauge sites ranked by score, with the score's parts
 ``model_comparison``        median leave-one-out NSE per method and model (several models only)
+``statistics_loo``          flow statistics: observed vs leave-one-out estimate, both routes
+``statistics_fdc``          flow-duration curve with its bounds at each ungauged basin
 ==========================  ======================================================================
 """
 
@@ -45,6 +47,7 @@ from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
 from regional.crossval import CALIBRATED, MEDIAN
 from regional.models import get_model
 from regional.report.labels import flow_in_unit
+from regional.report.statistics import statistics_drawers, statistics_figures
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.result import RunResult
@@ -120,14 +123,16 @@ def figure_drawers(result: RunResult) -> dict[str, Callable[[], Figure]]:
     if result.prediction is not None:
         drawers["ungauged_mean_flow_map"] = lambda: ungauged_mean_flow_map(result)
         drawers |= _hydrograph_page_drawers(result)
+    drawers |= statistics_drawers(result)
     if result.screening is not None:
         drawers["screening"] = lambda: screening_bars(result)
     return drawers
 
 
 def prediction_figures(result: RunResult) -> dict[str, Figure]:
-    """The figures of the estimates at ungauged basins: the mean-flow map and every page of
-    site hydrographs (``ungauged_hydrographs``, ``ungauged_hydrographs_2``, ...).
+    """The figures of the estimates at ungauged basins: the mean-flow map, every page of
+    site hydrographs (``ungauged_hydrographs``, ``ungauged_hydrographs_2``, ...) and the flow
+    statistics figures (:mod:`regional.report.statistics`).
 
     Parameters
     ----------
@@ -138,9 +143,8 @@ def prediction_figures(result: RunResult) -> dict[str, Figure]:
     -------
     dict of str -> Figure
     """
-    return {"ungauged_mean_flow_map": ungauged_mean_flow_map(result)} | ungauged_hydrograph_pages(
-        result
-    )
+    figures = {"ungauged_mean_flow_map": ungauged_mean_flow_map(result)}
+    return figures | ungauged_hydrograph_pages(result) | statistics_figures(result)
 
 
 def loo_nse_map(

@@ -34,8 +34,8 @@ def tiny_run(tmp_path_factory: pytest.TempPathFactory):
 
 @pytest.fixture
 def bare_run(tiny_run):
-    """The run without prediction and screening."""
-    return replace(tiny_run, prediction=None, screening=None)
+    """The run without prediction, flow statistics and screening."""
+    return replace(tiny_run, prediction=None, screening=None, statistics=None)
 
 
 @pytest.fixture

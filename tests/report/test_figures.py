@@ -55,9 +55,17 @@ def test_make_figures_with_prediction_and_screening_adds_their_figures(full_run)
         "model_comparison",
         "ungauged_mean_flow_map",
         "ungauged_hydrographs",
+        "statistics_loo",
+        "statistics_fdc",
         "screening",
     ]
     assert all(_has_data(fig) for fig in drawn.values())
+
+
+def test_statistics_figures_are_drawn_without_a_prediction(tiny_run):
+    # Flow statistics are validated in leave-one-out even where no basin is ungauged.
+    drawn = make_figures(replace(tiny_run, prediction=None, screening=None))
+    assert "statistics_loo" in drawn and _has_data(drawn["statistics_loo"])
 
 
 def test_make_figures_one_model_leaves_out_the_comparison(bare_run):
