@@ -43,6 +43,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
+from threadpoolctl import threadpool_limits
 
 from regional import flowstats
 from regional.config import STATISTICS_ROUTES
@@ -312,15 +313,182 @@ def _regression_loo(data: _GaugedData, pool: Sequence[str]) -> pd.DataFrame:
     """Each basin of ``pool`` estimated by the regression fit on the rest of ``pool``."""
     z, logs = _standardised(data, pool)
     position = {b: i for i, b in enumerate(pool)}
-    rows = []
+    extra = {}
     for i, target in enumerate(pool):
-        train = [position[b] for b in data.training(target, pool)]
-        rows.append(regression_log_estimates(z[train], logs[train], z[[i]])[0])
+        train = set(data.training(target, pool))
+        dropped = [position[b] for b in pool if b not in train and b != target]
+        if dropped:
+            extra[i] = dropped
     return pd.DataFrame(
-        10.0 ** np.asarray(rows),
+        10.0 ** regression_loo_logs(z, logs, extra_drop=extra),
         index=pd.Index(list(pool), name="basin_id"),
         columns=data.observed.columns,
     )
+
+
+def regression_loo_logs(z, logs, *, extra_drop: Mapping[int, Sequence[int]] | None = None):
+    """Leave-one-out log10 estimates of the regression route for every basin at once.
+
+    Equal to :func:`regression_log_estimates` fit on all rows but one and applied to that row,
+    with the attribute selection redone in every fold, but computed from the full fits: for a
+    fold dropping row f, the leverages and residuals of the other rows follow from the full
+    hat matrix H and residuals e by Sherman and Morrison's rank-one update,
+    h_ii' = h_ii + H_if^2 / (1 - h_ff) and e_i' = e_i + H_if e_f / (1 - h_ff), which gives every
+    fold's PRESS of every candidate subset from three matrix products; the left-out row's
+    estimate is y_f - e_f / (1 - h_ff) (the PRESS residual). Folds that also drop other rows
+    (donors sharing area with the target, ``extra_drop``) are refit directly.
+
+    Parameters
+    ----------
+    z : ndarray (n, n_attributes)
+        Standardised attributes.
+    logs : ndarray (n, n_statistics)
+        log10 statistics (NaN = unknown: that basin is left out of the statistic's fits).
+    extra_drop : mapping, optional
+        Row -> further rows left out of its fold.
+
+    Returns
+    -------
+    ndarray (n, n_statistics)
+        NaN where the statistic is unknown at the basin or too few basins remain.
+    """
+    with threadpool_limits(limits=1, user_api="blas"):  # small products: threads only wait
+        return _regression_loo_logs(z, logs, dict(extra_drop or {}))
+
+
+def _regression_loo_logs(z, logs, extra_drop: dict) -> np.ndarray:
+    out = np.full(logs.shape, np.nan)
+    known = np.isfinite(logs)
+    patterns: dict[bytes, list[int]] = {}
+    for j in range(logs.shape[1]):
+        patterns.setdefault(known[:, j].tobytes(), []).append(j)
+    for columns in patterns.values():
+        rows = np.flatnonzero(known[:, columns[0]])
+        if len(rows) - 1 >= MIN_BASINS:
+            simple = np.array([r not in extra_drop for r in rows])
+            values = _loo_by_updates(z[rows], logs[np.ix_(rows, columns)])
+            out[np.ix_(rows[simple], columns)] = values[simple]
+    for row, dropped in extra_drop.items():
+        train = np.setdiff1d(np.arange(len(z)), [row, *dropped])
+        out[row] = np.where(
+            known[row], regression_log_estimates(z[train], logs[train], z[[row]])[0], np.nan
+        )
+    return out
+
+
+class _FoldPress:
+    """PRESS of every fold (one row left out) per attribute subset and column, cached.
+
+    :meth:`fill` computes the hat-matrix parts of each requested subset once (O(n^2)) and the
+    PRESS of only the columns asked for (one matrix-vector product each); only the results
+    (n values per subset and column) are kept.
+    """
+
+    def __init__(self, design: np.ndarray, target: np.ndarray) -> None:
+        self.design, self.target = design, target
+        self.press: dict[tuple[tuple[int, ...], int], np.ndarray] = {}
+        self.estimate: dict[tuple[tuple[int, ...], int], np.ndarray] = {}
+
+    def fill(self, requests: Mapping[tuple[int, ...], set[int]]) -> None:
+        for subset, columns in requests.items():
+            missing = sorted(c for c in columns if (subset, c) not in self.press)
+            if missing:
+                self._compute(subset, missing)
+
+    def _compute(self, subset: tuple[int, ...], columns: list[int]) -> None:
+        n = len(self.target)
+        target = self.target[:, columns]
+        q, r = np.linalg.qr(self.design[:, [0, *subset]])
+        diagonal = np.abs(np.diag(r))
+        if diagonal.min() <= 1e-10 * max(diagonal.max(), 1.0):
+            for c in columns:
+                self.press[subset, c] = np.full(n, np.inf)
+                self.estimate[subset, c] = np.full(n, np.nan)
+            return
+        hat = q @ q.T
+        h = np.diag(hat).copy()
+        resid = target - q @ (q.T @ target)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            share = hat / (1.0 - h)[:, None]  # row f: H_fi / (1 - h_ff)
+            leverage = h[None, :] + hat * share  # fold f, row i
+            np.fill_diagonal(leverage, 0.0)  # the left-out row itself is not scored
+            weight = 1.0 / (1.0 - leverage)
+            weight *= weight
+        np.fill_diagonal(weight, 0.0)
+        bad = (~np.isfinite(weight) | (leverage >= 1.0 - 1e-10)).any(axis=1)
+        weight = np.where(np.isfinite(weight), weight, 0.0)
+        cross = weight * share
+        press = (
+            weight @ resid**2
+            + 2.0 * resid * (cross @ resid)
+            + resid**2 * (cross * share).sum(axis=1)[:, None]
+        )
+        press[bad] = np.inf
+        with np.errstate(divide="ignore", invalid="ignore"):
+            estimate = target - resid / (1.0 - h)[:, None]
+        for k, c in enumerate(columns):
+            self.press[subset, c] = press[:, k]
+            self.estimate[subset, c] = estimate[:, k]
+
+    def values(self, subset, folds: np.ndarray, columns: np.ndarray, table) -> np.ndarray:
+        out = np.empty(len(folds))
+        for c in np.unique(columns):
+            where = columns == c
+            out[where] = table[subset, int(c)][folds[where]]
+        return out
+
+
+def _loo_by_updates(z: np.ndarray, logs: np.ndarray) -> np.ndarray:
+    """Leave-one-out estimates (rows, columns) with forward selection in every fold.
+
+    The (fold, column) pairs are grown together: pairs that hold the same subset try the same
+    extensions, so each subset's hat matrix is built once for all of them.
+    """
+    n, m = logs.shape
+    design = np.column_stack([np.ones(n), z])
+    limit = min(n - 1 - MIN_RESIDUAL_DOF - 1, design.shape[1] - 1)
+    cache = _FoldPress(design, logs)
+    fold, column = np.divmod(np.arange(n * m), m)
+    cache.fill({(): set(range(m))})
+    best = cache.values((), fold, column, cache.press)
+    final: dict[tuple[int, ...], list[np.ndarray]] = {}
+    state = {(): np.arange(n * m)}
+    while state:
+        trials = {}
+        for subset, pairs in state.items():
+            candidates = [a for a in range(1, design.shape[1]) if a not in subset]
+            if len(subset) >= limit or not candidates:
+                final.setdefault(subset, []).append(pairs)
+                continue
+            trials[subset] = [tuple(sorted((*subset, a))) for a in candidates]
+        requests: dict[tuple[int, ...], set[int]] = {}
+        for subset, options in trials.items():
+            needed = set(np.unique(column[state[subset]]).tolist())
+            for trial in options:
+                requests.setdefault(trial, set()).update(needed)
+        cache.fill(requests)
+        grown: dict[tuple[int, ...], list[np.ndarray]] = {}
+        for subset, options in trials.items():
+            pairs = state[subset]
+            scores = np.stack(
+                [cache.values(t, fold[pairs], column[pairs], cache.press) for t in options]
+            )
+            pick = np.argmin(scores, axis=0)
+            value = scores[pick, np.arange(len(pairs))]
+            better = value < best[pairs]
+            final.setdefault(subset, []).append(pairs[~better])
+            best[pairs[better]] = value[better]
+            for c in np.unique(pick[better]):
+                grown.setdefault(options[c], []).append(pairs[better & (pick == c)])
+        state = {subset: np.concatenate(parts) for subset, parts in grown.items()}
+    out = np.full((n, m), np.nan)
+    for subset, parts in final.items():
+        pairs = np.concatenate(parts)
+        cache.fill({subset: set(np.unique(column[pairs]).tolist())})
+        out[fold[pairs], column[pairs]] = cache.values(
+            subset, fold[pairs], column[pairs], cache.estimate
+        )
+    return out
 
 
 def _standardised(data: _GaugedData, pool: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:

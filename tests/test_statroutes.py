@@ -60,6 +60,28 @@ def test_regression_route_recovers_a_planted_relation_out_of_sample():
     assert got == pytest.approx(expected, abs=0.03)
 
 
+@pytest.mark.parametrize("seed", [5, 6, 7, 8])
+def test_fast_leave_one_out_equals_refitting_every_fold(seed):
+    # Two routes to the same numbers: the rank-one updates of the full fits against a plain
+    # loop that reruns forward selection and the fit without each basin (and without the
+    # basins that share area with it), on a region with unknown values.
+    rng = np.random.default_rng(seed)
+    n, p = 24, 4
+    z = rng.normal(size=(n, p))
+    logs = z @ (rng.normal(size=(p, 6)) * (rng.random((p, 6)) < 0.5)) * 0.3
+    logs += rng.normal(0, 0.1, logs.shape)
+    logs[:4, 2] = np.nan
+    extra = {3: [9], 10: [11, 12]}
+    fast = sr.regression_loo_logs(z, logs, extra_drop=extra)
+    slow = np.full(logs.shape, np.nan)
+    for i in range(n):
+        train = np.setdiff1d(np.arange(n), [i, *extra.get(i, [])])
+        slow[i] = sr.regression_log_estimates(z[train], logs[train], z[[i]])[0]
+    slow[np.isnan(logs)] = np.nan
+    np.testing.assert_allclose(fast, slow, rtol=0, atol=1e-10)
+    assert np.isnan(fast).sum() == 4
+
+
 def test_regression_route_skips_statistics_known_at_too_few_basins():
     z, logs = _planted(n=12)
     logs[3:, 1] = np.nan  # the second statistic known at 3 basins only
