@@ -186,7 +186,7 @@ def _same_donation(first: Donation, second: Donation) -> bool:
 
 def held_out_check(
     result: RunResult, error_model: ConformalErrorModel, level: float
-) -> tuple[pd.DataFrame | None, ConformalErrorModel, list[str]]:
+) -> tuple[pd.DataFrame | None, ConformalErrorModel, list[str], tuple[HeldOutRepeat, ...]]:
     """Held-out coverage of the chosen bounds; classes short by > tolerance are widened.
 
     Parameters
@@ -200,10 +200,11 @@ def held_out_check(
 
     Returns
     -------
-    (table or None, error model, notes)
+    (table or None, error model, notes, repeats)
         The held-out table (see :attr:`regional.predict.Prediction.held_out`; None when the
-        check does not run), the error model to use (widened where classes fell short) and
-        the notes saying what was done.
+        check does not run), the error model to use (widened where classes fell short), the
+        notes saying what was done, and the repeats' flows (empty when the check does not run;
+        the flow statistics reuse them for their own held-out check).
     """
     run = result.runs[result.chosen_model]
     repeats = result.settings.prediction.held_out_repeats
@@ -213,6 +214,7 @@ def held_out_check(
             None,
             error_model,
             ["no held-out check of the bounds ([prediction] held_out_repeats = 0)"],
+            (),
         )
     if n_gauged < MIN_HELD_OUT_BASINS:
         return (
@@ -222,6 +224,7 @@ def held_out_check(
                 f"no held-out check of the bounds: {n_gauged} gauged basins, fewer than "
                 f"{MIN_HELD_OUT_BASINS}"
             ],
+            (),
         )
     method = result.chosen_method
     draws = held_out_flows(result, model=result.chosen_model, method=method, repeats=repeats)
@@ -251,7 +254,7 @@ def held_out_check(
         reused=sum(d.n_reused for d in draws),
         widened={c + 1: (level, float(levels[c])) for c in np.flatnonzero(widen)},
     )
-    return table, error_model, _held_out_notes(table, level, n_gauged)
+    return table, error_model, _held_out_notes(table, level, n_gauged), tuple(draws)
 
 
 def _held_out_notes(table: pd.DataFrame, level: float, n_gauged: int) -> list[str]:

@@ -185,17 +185,18 @@ def _with_statistics(result: RunResult, timings: dict[str, float]) -> RunResult:
     clock = time.perf_counter()
     prediction = result.prediction
     settings = result.settings.prediction
-    flows = None
-    applicable = None
+    flows, applicable, held_out = None, None, ()
     if prediction is not None:
         flows = prediction.flows.pivot(index="date", columns="basin_id", values="flow_mm")
         applicable = prediction.table["applicable"]
+        held_out = prediction.held_out_draws
     statistics = estimate_statistics(
         result,
         flows,
         level=settings.level,
         route=settings.statistics_route,
         applicable=applicable,
+        held_out=held_out,
     )
     timings["statistics"] = time.perf_counter() - clock
     return _with(result, statistics=statistics)

@@ -22,14 +22,14 @@ Hyndman, R. J., Fan, Y. (1996): Sample quantiles in statistical packages. Am. St
 
 from __future__ import annotations
 
-import warnings
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 
+from regional import flowstats
 from regional.applicability import (
     FAILED_NSE,
     applicability,
@@ -43,9 +43,9 @@ from regional.coverage import loo_coverage
 from regional.crossval import FoldContext
 from regional.donation import fit_transfers, method_flows
 from regional.errors import InputError
+from regional.flowstats import to_m3s
 from regional.heldout import held_out_check, with_held_out
 from regional.models import get_model
-from regional.region import MM_PER_DAY_PER_M3S_KM2
 from regional.transfer import Donation
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
@@ -58,7 +58,25 @@ STATISTIC_COLUMNS = (
     *(f"flow_m{month:02d}_mm" for month in range(1, 13)),
 )
 """Statistic columns of :attr:`Prediction.table` (``mean_flow_m3s`` needs the area)."""
-FLOW_COLUMNS = ("basin_id", "date", "flow_mm", "flow_m3s", "flow_low_mm", "flow_high_mm")
+TABLE_STATISTICS = {
+    "mean_flow_mm": "mean_flow_mm_day",
+    "q5_mm": "q5_mm_day",
+    "q50_mm": "q50_mm_day",
+    "q95_mm": "q95_mm_day",
+    "min7_mean_mm": "min7_mean_mm_day",
+    **{f"flow_m{m:02d}_mm": f"flow_m{m:02d}_mm_day" for m in range(1, 13)},
+}
+"""Prediction table column -> the :mod:`regional.flowstats` statistic it holds (mm/day)."""
+FLOW_COLUMNS = (
+    "basin_id",
+    "date",
+    "flow_mm",
+    "flow_m3s",
+    "flow_low_mm",
+    "flow_high_mm",
+    "flow_low_m3s",
+    "flow_high_m3s",
+)
 """Columns of :attr:`Prediction.flows`."""
 
 
@@ -80,7 +98,8 @@ class Prediction:
         ``reason`` (str, "" when applicable), ``mahalanobis_d2``, ``nearest_donor_distance``.
     flows : DataFrame
         Long: ``basin_id``, ``date``, ``flow_mm``, ``flow_m3s``, ``flow_low_mm``,
-        ``flow_high_mm``, every simulated day after the warm-up.
+        ``flow_high_mm``, ``flow_low_m3s``, ``flow_high_m3s``, every simulated day after the
+        warm-up.
     coverage : DataFrame
         Per (model, method) of leave-one-out: ``model``, ``method``, ``level``, ``coverage``
         (mean over basins of the share of observed days inside the bounds built without the
@@ -107,6 +126,9 @@ class Prediction:
         quantiles were finally taken at; NaN for the deciles and ``all``),
         ``held_out_coverage_widened`` (the same repeats with the widened classes; not an
         independent check). None when the check did not run.
+    held_out_draws : tuple of HeldOutRepeat
+        The repeats' flows (:func:`regional.heldout.held_out_flows`), reused by the flow
+        statistics' held-out check; empty when the check did not run.
     """
 
     model: str
@@ -118,6 +140,7 @@ class Prediction:
     error_model: pd.DataFrame
     notes: tuple[str, ...]
     held_out: pd.DataFrame | None = None
+    held_out_draws: tuple = field(default=(), repr=False)
 
 
 def predict_ungauged(result: RunResult, *, level: float | None = None) -> Prediction:
@@ -160,7 +183,7 @@ def predict_ungauged(result: RunResult, *, level: float | None = None) -> Predic
     error_model = conformal_bounds(
         run.loo.observed, run.loo.simulated[result.chosen_method], level=level
     )
-    held_out, error_model, held_notes = held_out_check(result, error_model, level)
+    held_out, error_model, held_notes, draws = held_out_check(result, error_model, level)
     low, high = error_model.bounds(flow_mm)
     area = result.region.attributes.loc[targets, "area_km2"].astype(float)
     statistics = flow_statistics(flow_mm, area_km2=area)
@@ -194,6 +217,7 @@ def predict_ungauged(result: RunResult, *, level: float | None = None) -> Predic
         error_model=error_model.table,
         notes=tuple(notes + _notes(result, error_model, coverage, usable, level) + held_notes),
         held_out=held_out,
+        held_out_draws=draws,
     )
 
 
@@ -252,14 +276,18 @@ def _table(result, target_attributes, parameters: Mapping[str, pd.DataFrame], st
 def _long_flows(flow_mm: pd.DataFrame, low, high, area: pd.Series) -> pd.DataFrame:
     n_days, n_basins = flow_mm.shape
     values = flow_mm.to_numpy(dtype=float)
+    areas = area.to_numpy(dtype=float)[None, :]
+    low, high = low.to_numpy(dtype=float), high.to_numpy(dtype=float)
     return pd.DataFrame(
         {
             "basin_id": np.repeat(flow_mm.columns.to_numpy(dtype=object), n_days),
             "date": np.tile(flow_mm.index.to_numpy(), n_basins),
             "flow_mm": values.T.ravel(),
-            "flow_m3s": to_m3s(values, area.to_numpy()[None, :]).T.ravel(),
-            "flow_low_mm": low.to_numpy().T.ravel(),
-            "flow_high_mm": high.to_numpy().T.ravel(),
+            "flow_m3s": to_m3s(values, areas).T.ravel(),
+            "flow_low_mm": low.T.ravel(),
+            "flow_high_mm": high.T.ravel(),
+            "flow_low_m3s": to_m3s(low, areas).T.ravel(),
+            "flow_high_m3s": to_m3s(high, areas).T.ravel(),
         },
         columns=list(FLOW_COLUMNS),
     )
@@ -309,57 +337,33 @@ def _notes(result, error_model: ConformalErrorModel, coverage, usable, level) ->
 
 
 def flow_statistics(flow_mm: pd.DataFrame, *, area_km2: pd.Series | None = None) -> pd.DataFrame:
-    """Flow statistics of daily series, one row per basin.
+    """The headline statistics of the prediction table, from :mod:`regional.flowstats`.
 
     Parameters
     ----------
     flow_mm : DataFrame
         Daily flow, mm/day: a DatetimeIndex (daily) x basins; NaN = missing.
     area_km2 : Series, optional
-        Basin areas, km2, indexed by basin id; adds ``mean_flow_m3s`` = mean_flow_mm x area /
-        86.4.
+        Basin areas, km2, indexed by basin id; adds ``mean_flow_m3s``.
 
     Returns
     -------
     DataFrame
-        Indexed by ``basin_id``: ``mean_flow_mm``; ``q5_mm``, ``q50_mm``, ``q95_mm``:
-        flow-duration (exceedance) percentiles, Qx the flow exceeded x% of the time, i.e. the
-        (100 - x)th sample percentile with linear interpolation (Hyndman and Fan 1996 type 7,
-        numpy's default); ``min7_mean_mm``: mean over complete calendar years (every day has a
-        value) of the annual minimum of the trailing 7-day mean (window ending on the day, all 7
-        days present); ``flow_m01_mm`` .. ``flow_m12_mm``: mean of all days of each calendar
-        month; with ``area_km2``, ``mean_flow_m3s``.
+        Indexed by ``basin_id``: the columns of :data:`TABLE_STATISTICS` (each the
+        :mod:`regional.flowstats` statistic named beside it: Weibull flow-duration points, mean
+        annual 7-day minimum over the usable years, monthly means; docs/statistics.md); with
+        ``area_km2``, ``mean_flow_m3s``. The bounded, validated statistics are those of
+        :mod:`regional.statroutes`.
     """
     _check_daily(flow_mm)
-    values = flow_mm.to_numpy(dtype=float)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN basins give NaN
-        table = pd.DataFrame(
-            {
-                "mean_flow_mm": np.nanmean(values, axis=0),
-                "q5_mm": np.nanpercentile(values, 95.0, axis=0),
-                "q50_mm": np.nanpercentile(values, 50.0, axis=0),
-                "q95_mm": np.nanpercentile(values, 5.0, axis=0),
-            },
-            index=pd.Index(flow_mm.columns.astype(str), name="basin_id"),
-        )
-    table["min7_mean_mm"] = _mean_annual_min7(flow_mm).to_numpy()
-    monthly = _monthly_means(flow_mm)
-    for month in range(1, 13):
-        table[f"flow_m{month:02d}_mm"] = monthly.loc[month].to_numpy()
+    values = flowstats.statistics_frame(flow_mm)
+    table = pd.DataFrame(
+        {column: values[name] for column, name in TABLE_STATISTICS.items()}, index=values.index
+    )
     if area_km2 is not None:
         area = pd.Series(area_km2).rename(index=str).reindex(table.index).to_numpy(dtype=float)
         table.insert(1, "mean_flow_m3s", to_m3s(table["mean_flow_mm"].to_numpy(), area))
     return table
-
-
-def to_m3s(flow_mm: np.ndarray, area_km2: np.ndarray) -> np.ndarray:
-    """mm/day -> m3/s through the area: Q_m3s = Q_mm x area_km2 / 86.4."""
-    return (
-        np.asarray(flow_mm, dtype=float)
-        * np.asarray(area_km2, dtype=float)
-        / (MM_PER_DAY_PER_M3S_KM2)
-    )
 
 
 def _check_daily(flow_mm: pd.DataFrame) -> None:
@@ -374,21 +378,3 @@ def _check_daily(flow_mm: pd.DataFrame) -> None:
             "flow statistics: the dates must be increasing with no repeats; sort the series and "
             "drop duplicate days"
         )
-
-
-def _mean_annual_min7(flow_mm: pd.DataFrame) -> pd.Series:
-    """Mean over complete calendar years of the annual minimum trailing 7-day mean."""
-    rolling = flow_mm.astype(float).rolling("7D", min_periods=7).mean()
-    years = flow_mm.index.year
-    present = flow_mm.notna().groupby(years).sum()
-    length = pd.Series(
-        np.where(pd.to_datetime([f"{y}-12-31" for y in present.index]).is_leap_year, 366, 365),
-        index=present.index,
-    )
-    complete = present.eq(length, axis=0)
-    annual = rolling.groupby(years).min().where(complete)
-    return annual.mean(axis=0)
-
-
-def _monthly_means(flow_mm: pd.DataFrame) -> pd.DataFrame:
-    return flow_mm.astype(float).groupby(flow_mm.index.month).mean().reindex(range(1, 13))

@@ -22,11 +22,12 @@ from regional import checks, io
 from regional.attributes import compute_attributes
 from regional.config import Settings, load_settings
 from regional.errors import InputError, InputWarning
+from regional.flowstats import MM_DAY_PER_M3S_KM2
 from regional.series import read_grids, write_store
 from regional.series import tables as series_tables
 
 #: mm/day of runoff from 1 m3/s over 1 km2: 86 400 s/day * 1 m3/s / 1e6 m2 * 1000 mm/m.
-MM_PER_DAY_PER_M3S_KM2 = 86.4
+MM_PER_DAY_PER_M3S_KM2 = MM_DAY_PER_M3S_KM2
 #: Attributes never used for transfer by default: runoff_ratio needs observed flow; coordinates
 #: are for proximity, not similarity.
 NOT_TRANSFERABLE = ("runoff_ratio", "centroid_lon", "centroid_lat")

@@ -203,9 +203,9 @@ def estimate_statistics(
     errors = {name: _log_error(data.observed, est) for name, est in estimates.items()}
     coverage = {name: _loo_coverage(err, level) for name, err in errors.items()}
     summary = _summary(data.observed, estimates, errors, coverage)
+    summary = _choose(summary, route)
     if held_out:
         summary = _with_held_out(summary, data, held_out, level)
-    summary = _choose(summary, route)
     bounds = _bounds(summary, errors, level)
     loo_table = _loo_table(data.observed, estimates)
     notes = _notes(summary, bounds, level, len(data.gauged))
@@ -309,9 +309,14 @@ def _direct_loo(data: _GaugedData) -> dict[str, pd.DataFrame]:
     return out
 
 
-def _regression_loo(data: _GaugedData, pool: Sequence[str]) -> pd.DataFrame:
-    """Each basin of ``pool`` estimated by the regression fit on the rest of ``pool``."""
+def _regression_loo(
+    data: _GaugedData, pool: Sequence[str], columns: Sequence[str] | None = None
+) -> pd.DataFrame:
+    """Each basin of ``pool`` estimated by the regression fit on the rest of ``pool`` (only the
+    statistics ``columns``, default all)."""
+    columns = list(data.observed.columns if columns is None else columns)
     z, logs = _standardised(data, pool)
+    logs = logs[:, [data.observed.columns.get_loc(c) for c in columns]]
     position = {b: i for i, b in enumerate(pool)}
     extra = {}
     for i, target in enumerate(pool):
@@ -322,7 +327,7 @@ def _regression_loo(data: _GaugedData, pool: Sequence[str]) -> pd.DataFrame:
     return pd.DataFrame(
         10.0 ** regression_loo_logs(z, logs, extra_drop=extra),
         index=pd.Index(list(pool), name="basin_id"),
-        columns=data.observed.columns,
+        columns=columns,
     )
 
 
@@ -840,20 +845,24 @@ def _loo_table(observed: pd.DataFrame, estimates: Mapping[str, pd.DataFrame]) ->
 
 
 def _with_held_out(summary, data: _GaugedData, repeats, level) -> pd.DataFrame:
-    """Held-out coverage of every route, from the repeats of the daily held-out check.
+    """Held-out coverage of each statistic's chosen route, from the repeats of the daily
+    held-out check.
 
     In each repeat the route is fit on the training basins only, its leave-one-out errors over
     the training basins give the bounds, and the held-out basins' observed statistics are
     checked against them; each (repeat, basin) pair weighs the same.
     """
+    chosen = summary[summary["chosen"]]
+    needed = {r: list(rows["statistic"]) for r, rows in chosen.groupby("route", sort=False)}
     hits: dict[tuple[str, str], list[float]] = {}
     for draw in repeats:
         held = [str(b) for b in draw.held_out]
         training = [str(b) for b in draw.training_flow.columns]
-        for route, (train_est, held_est) in _held_out_routes(data, draw, training, held).items():
-            train_err = _log_error(data.observed.loc[training], train_est)
-            held_err = _log_error(data.observed.loc[held], held_est)
-            for name in data.observed.columns:
+        routes = _held_out_routes(data, draw, training, held, needed)
+        for route, (train_est, held_est) in routes.items():
+            train_err = _log_error(data.observed.loc[training, needed[route]], train_est)
+            held_err = _log_error(data.observed.loc[held, needed[route]], held_est)
+            for name in needed[route]:
                 lower, upper = conformal_quantiles(train_err[name], level)
                 values = held_err[name].to_numpy(dtype=float)
                 values = values[np.isfinite(values)]
@@ -861,34 +870,38 @@ def _with_held_out(summary, data: _GaugedData, repeats, level) -> pd.DataFrame:
                 hits.setdefault((name, route), []).extend(inside.astype(float).tolist())
     summary = summary.copy()
     for (name, route), values in hits.items():
-        chosen = (summary["statistic"] == name) & (summary["route"] == route)
-        summary.loc[chosen, "held_out_coverage"] = np.mean(values) if values else np.nan
+        rows = (summary["statistic"] == name) & (summary["route"] == route)
+        summary.loc[rows, "held_out_coverage"] = np.mean(values) if values else np.nan
     return summary
 
 
-def _held_out_routes(data: _GaugedData, draw, training, held) -> dict:
-    precip_train, precip_held = data.precip(training), data.precip(held)
-    out = {
-        MODEL: (
+def _held_out_routes(data: _GaugedData, draw, training, held, needed) -> dict:
+    """Route -> (leave-one-out estimates over the training basins, estimates at the held-out
+    basins), both fit on the training basins only, for the routes and statistics needed."""
+    out = {}
+    if MODEL in needed:
+        precip_train, precip_held = data.precip(training), data.precip(held)
+        out[MODEL] = (
             flowstats.statistics_frame(draw.training_flow[training], precip_mm_day=precip_train),
             flowstats.statistics_frame(draw.held_out_flow[held], precip_mm_day=precip_held),
         )
-    }
-    if len(training) >= MIN_BASINS:
+    if REGRESSION in needed and len(training) >= MIN_BASINS + 1:
+        columns = needed[REGRESSION]
+        picked = [data.observed.columns.get_loc(c) for c in columns]
         z, logs = _standardised(data, training)
         targets = standardise_like(data, training, data.attributes.loc[held])
-        estimate = 10.0 ** regression_log_estimates(z, logs, targets)
+        estimate = 10.0 ** regression_log_estimates(z, logs[:, picked], targets)
         out[REGRESSION] = (
-            _regression_loo(data, training),
-            pd.DataFrame(estimate, index=held, columns=data.observed.columns),
+            _regression_loo(data, training, columns),
+            pd.DataFrame(estimate, index=held, columns=columns),
         )
     for route, method in DONOR_ROUTES.items():
-        if method in data.donor_methods:
+        if route in needed and method in data.donor_methods:
             out[route] = (
                 _donor_loo(data, method, training),
                 _donor_estimate(data, method, training, held),
             )
-    return out
+    return {route: (a[needed[route]], b[needed[route]]) for route, (a, b) in out.items()}
 
 
 # --------------------------------------------------------------------------------------------

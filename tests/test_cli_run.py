@@ -81,14 +81,18 @@ def test_run_writes_every_table_with_its_columns(run_folder):
     coefficients = pd.read_csv(run_folder / "regression_coefficients.csv")
     assert {"term", "estimate", "std_error", "t", "p", "vif"} <= set(coefficients.columns)
     flows = pd.read_csv(run_folder / "flows_ungauged.csv", dtype={"basin_id": str})
-    assert list(flows.columns[:6]) == [
+    assert list(flows.columns[:8]) == [
         "basin_id",
         "date",
         "flow_mm",
         "flow_m3s",
         "flow_low_mm",
         "flow_high_mm",
+        "flow_low_m3s",
+        "flow_high_m3s",
     ]
+    for name in ("statistics_ungauged.csv", "statistics_loo.csv", "statistics_summary.csv"):
+        assert len(pd.read_csv(run_folder / name)) > 0, name
 
 
 def test_run_writes_every_layer_with_its_columns(run_folder):

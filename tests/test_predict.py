@@ -6,8 +6,15 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from regional import flowstats
 from regional.errors import InputError
-from regional.predict import FLOW_COLUMNS, STATISTIC_COLUMNS, flow_statistics, predict_ungauged
+from regional.predict import (
+    FLOW_COLUMNS,
+    STATISTIC_COLUMNS,
+    TABLE_STATISTICS,
+    flow_statistics,
+    predict_ungauged,
+)
 
 
 @pytest.fixture(scope="module")
@@ -23,46 +30,18 @@ def _daily(values: np.ndarray, start: str = "2001-01-01", columns=("A",)) -> pd.
     return pd.DataFrame(values, index=dates, columns=list(columns))
 
 
-def test_flow_duration_percentiles_on_a_known_series():
-    # 1..101 mm/day: the type-7 sample percentile p is 1 + p (Hyndman and Fan 1996, definition
-    # 7, numpy's default linear interpolation); Qx is the flow exceeded x% of the time.
-    flow = _daily(np.arange(1.0, 102.0))
-    table = flow_statistics(flow)
-    assert table.loc["A", "q5_mm"] == pytest.approx(96.0)
-    assert table.loc["A", "q50_mm"] == pytest.approx(51.0)
-    assert table.loc["A", "q95_mm"] == pytest.approx(6.0)
-    assert table.loc["A", "mean_flow_mm"] == pytest.approx(51.0)
-
-
-def test_flow_duration_percentiles_match_numpy():
+def test_table_statistics_are_the_flowstats_statistics():
+    # Two names for the same numbers: the prediction table's columns and regional.flowstats
+    # (whose own checks against numpy, pandas, scipy and lmoments3 are in test_flowstats.py).
     rng = np.random.default_rng(4)
     values = rng.gamma(0.8, 2.0, size=(3 * 365, 3))
     values[10:20, 1] = np.nan
     flow = _daily(values, columns=("A", "B", "C"))
     table = flow_statistics(flow)
-    for j, basin in enumerate(flow.columns):
-        column = values[:, j][np.isfinite(values[:, j])]
-        # reference: numpy np.percentile (linear interpolation, Hyndman and Fan 1996 type 7)
-        assert table.loc[basin, "q5_mm"] == pytest.approx(np.percentile(column, 95))
-        assert table.loc[basin, "q50_mm"] == pytest.approx(np.quantile(column, 0.5))
-        assert table.loc[basin, "q95_mm"] == pytest.approx(np.percentile(column, 5))
-
-
-def test_seven_day_minimum_matches_pandas_rolling_on_complete_years():
-    rng = np.random.default_rng(7)
-    values = rng.gamma(1.2, 1.5, size=4 * 365 + 1)  # 2001-2004 (2004 is a leap year)
-    values[800] = np.nan  # 2003 becomes incomplete
-    flow = _daily(values)
-    result = flow_statistics(flow).loc["A", "min7_mean_mm"]
-    # reference: pandas rolling(7).mean() (trailing window, labelled on its last day),
-    # annual minima of complete calendar years only (2003 has a gap)
-    rolling = pd.Series(values, index=flow.index).rolling(7).mean()
-    minima = [rolling[str(year)].min() for year in (2001, 2002, 2004)]
-    assert result == pytest.approx(np.mean(minima))
-    assert flow_statistics(flow.iloc[:300]).loc["A", "min7_mean_mm"] != pytest.approx(
-        result
-    )  # a record shorter than a year has no complete year
-    assert np.isnan(flow_statistics(flow.iloc[:300]).loc["A", "min7_mean_mm"])
+    reference = flowstats.statistics_frame(flow)
+    for column, name in TABLE_STATISTICS.items():
+        np.testing.assert_allclose(table[column], reference[name], rtol=1e-12)
+    assert list(table.columns) == list(TABLE_STATISTICS)
 
 
 def test_monthly_means_and_area_conversion():
@@ -122,9 +101,12 @@ def test_mm_and_m3s_agree_through_the_area(prediction, demo_result):
     area = demo_result.region.attributes["area_km2"]
     flows = prediction.flows
     # Q_m3s = Q_mm x area_km2 / 86.4 (unit arithmetic, common practice, no source)
-    np.testing.assert_allclose(
-        flows["flow_m3s"] * 86.4 / flows["basin_id"].map(area), flows["flow_mm"], rtol=1e-12
-    )
+    for suffix in ("", "_low", "_high"):
+        np.testing.assert_allclose(
+            flows[f"flow{suffix}_m3s"] * 86.4 / flows["basin_id"].map(area),
+            flows[f"flow{suffix}_mm"],
+            rtol=1e-12,
+        )
     table = prediction.table
     np.testing.assert_allclose(
         table["mean_flow_m3s"] * 86.4 / area.loc[table.index], table["mean_flow_mm"], rtol=1e-12

@@ -18,7 +18,7 @@ from collections.abc import Mapping
 import numpy as np
 import pandas as pd
 
-from regional.predict import to_m3s
+from regional.flowstats import to_m3s
 
 M3S = "m3/s"
 MM_DAY = "mm/day"
