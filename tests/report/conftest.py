@@ -113,6 +113,7 @@ def fake_prediction(result, *, seed: int = 1):
         error_model=error_model,
         notes=("bounds from log-flow errors in 2 flow classes",),
         held_out=None,
+        held_out_draws=(),
     )
 
 
