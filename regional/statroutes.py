@@ -118,7 +118,7 @@ class FlowStatistics:
         ``r2_log`` (1 - SSE / SST of log10 est against log10 obs), ``coverage`` (share of
         gauged basins whose observed statistic lies inside bounds built from the other basins'
         errors), ``held_out_coverage`` (the same at basins held out of the whole fit; NaN when
-        not measured), ``chosen`` (bool).
+        not measured; measured for the chosen route only), ``chosen`` (bool).
     bounds : DataFrame
         One row per statistic: ``route`` chosen, ``lower_q``, ``upper_q`` (log10 error
         quantiles; est x 10^q gives the bounds), ``n_basins``, ``coverage``.
@@ -183,7 +183,8 @@ def estimate_statistics(
         Ungauged basin -> bool, the prediction's applicability check.
     held_out : sequence of HeldOutRepeat, optional
         Repeats of the held-out check of the chosen (model, method)
-        (:func:`regional.predict.held_out_flows`); gives held-out coverage of every route.
+        (:func:`regional.heldout.held_out_flows`); gives the held-out coverage of each
+        statistic's chosen route.
 
     Returns
     -------
