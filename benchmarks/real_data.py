@@ -34,7 +34,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--workers", type=int, default=None, help="local Dask workers")
     parser.add_argument("--parts", nargs="*", default=None, help="USGS parts (default: all)")
-    parser.add_argument("--objective", default="kge")
+    parser.add_argument("--objective", default="nse")
     parser.add_argument("--models", nargs="*", default=["linear", "gr4j"])
     parser.add_argument(
         "--methods", nargs="*", default=["regression", "similarity", "proximity", "blended"]

@@ -1,16 +1,18 @@
 """Per-basin calibration of a storage model against observed flow.
 
-For each gauged basin the chosen objective (KGE by default; NSE; log-NSE) is maximised over the
-calibration period after the warm-up, and the optimum is scored again on a separate validation
-period: the split-sample test of Klemes (1986). One-parameter models use a bounded scalar search:
-a log-spaced grid evaluated in one vectorised call brackets the optimum, then Brent's method
-(Brent 1973, as in ``scipy.optimize.minimize_scalar(method="bounded")``) refines it in the
-transformed space. Models with several free parameters use one of two searches in the
-transformed space (:mod:`regional.search`): ``fast`` (default), a seeded Sobol screening scored
-in one vectorised call followed by Nelder-Mead descents within a budget of model runs; or
-``thorough``, differential evolution with the whole population simulated as columns of one call
-per generation, then a compass-search polish. The model runs spent are recorded per basin
-(``n_runs``). docs/calibration.md compares the two.
+For each gauged basin the chosen objective (NSE by default; KGE; log-NSE; a blend of NSE on flow
+and on its square root) is maximised over the calibration period after the warm-up, and the
+optimum is scored again on a separate validation period: the split-sample test of Klemes
+(1986). One-parameter models use a bounded scalar search: a log-spaced grid evaluated in one
+vectorised call brackets the optimum, then Brent's method (Brent 1973, as in
+``scipy.optimize.minimize_scalar(method="bounded")``) refines it in the transformed space.
+Models with several free parameters (GR4J; any model with the snow store, whose parameters are
+calibrated with the model's) use one of two searches in the transformed space
+(:mod:`regional.search`): ``fast`` (default), a seeded Sobol screening of every basin in one
+vectorised call followed by Nelder-Mead descents of all basins in lockstep within a budget of
+model runs; or ``thorough``, differential evolution with the whole population simulated as
+columns of one call per generation, then a compass-search polish. The model runs spent are
+recorded per basin (``n_runs``). docs/calibration.md compares the two.
 
 References
 ----------
@@ -30,7 +32,7 @@ from scipy.optimize import minimize_scalar
 
 from regional import metrics
 from regional.errors import InputError
-from regional.models import Simulator, get_model, snow_parameters
+from regional.models import Simulator, get_model, parameter_table, snow_parameters
 from regional.search import SearchResult, evolve_and_polish, screen_and_descend
 
 GRID_SIZE = 41
@@ -41,7 +43,7 @@ SEARCHES = ("fast", "thorough")
 """Searches for models with several free parameters (see :mod:`regional.search`)."""
 DEFAULT_SEARCH = "fast"
 """Default multi-parameter search."""
-DEFAULT_MAX_RUNS = 400
+DEFAULT_MAX_RUNS = 370
 """Default budget of the fast search: model runs after the Sobol screening."""
 DEFAULT_BUDGET = 60
 """Default maximum generations of differential evolution (the thorough search)."""
@@ -139,7 +141,7 @@ def calibrate(
     *,
     model: str = "linear",
     temp_c: pd.DataFrame | None = None,
-    objective: str = "kge",
+    objective: str = "nse",
     calibration: Period | None = None,
     validation: Period | None = None,
     warmup_days: int = 365,
@@ -162,9 +164,12 @@ def calibrate(
     model : str, default "linear"
         Storage model name.
     temp_c : DataFrame, optional
-        Daily mean temperature, degC, same shape: puts the degree-day snow store in front.
-    objective : {"kge", "nse", "log_nse"}, default "kge"
-        Score maximised over the calibration period.
+        Daily mean temperature, degC, same shape: puts the degree-day snow store in front, and
+        its parameters (``snow_threshold_c``, ``melt_factor_mm_per_degc_day``) are calibrated
+        with the model's unless held in ``fixed_params``.
+    objective : {"nse", "kge", "log_nse", "nse_blend"}, default "nse"
+        Score maximised over the calibration period (the default chosen by leave-one-out on
+        real basins: docs/validation.md).
     calibration, validation : (start, end), optional
         Inclusive dates. Default calibration: the whole record; validation optional.
     warmup_days : int, default 365
@@ -172,7 +177,8 @@ def calibrate(
     initial_storage : float, optional
         Storage at the simulation start, mm; default the store's equilibrium (see simulate).
     fixed_params : mapping, optional
-        Values held fixed (not calibrated), e.g. snow parameters.
+        Values held fixed (not calibrated), e.g. snow parameters (``melt_threshold_c`` sets a
+        melt threshold apart from the snowfall threshold).
     basins : sequence of str, optional
         Basins to calibrate; default every column of ``flow_mm`` with observed calibration days.
     progress : callable(done, total), optional
@@ -188,7 +194,7 @@ def calibrate(
     search : {"fast", "thorough"}, default "fast"
         Multi-parameter models only: Sobol screening then Nelder-Mead descents (``fast``), or
         differential evolution then a compass polish (``thorough``); see docs/calibration.md.
-    max_runs : int, default 400
+    max_runs : int, default 370
         Fast search only: model runs allowed after the screening (16 Sobol points per free
         parameter, rounded up to a power of two: 64 for GR4J); descents stop earlier once
         converged.
@@ -196,8 +202,8 @@ def calibrate(
     Returns
     -------
     DataFrame
-        Indexed by basin_id: one column per model parameter (e.g. ``k_per_day``; fixed ones
-        keep their value),
+        Indexed by basin_id: one column per parameter of the model and, with temperature, of
+        the snow store (e.g. ``k_per_day``; fixed ones keep their value),
         ``objective``, ``score_calibration``, ``score_validation``, ``n_days_calibration``,
         ``n_days_validation``, ``nse_``/``kge_`` of both periods, and ``n_runs`` (model runs the
         search spent).
@@ -233,7 +239,7 @@ def calibrate(
         if progress is not None:
             progress(column + 1, len(ids))
     table = pd.DataFrame(rows, index=pd.Index(ids, name="basin_id"))
-    table.insert(len(chosen.parameters), "objective", objective)
+    table.insert(len(problem.names), "objective", objective)
     return table
 
 
@@ -290,18 +296,19 @@ class _Problem:
     """
 
     def __init__(self, chosen, simulator: Simulator, obs, window: Window, objective, fixed):
-        self.free = [p for p in chosen.parameters if p.name not in fixed]
-        self.names = [p.name for p in chosen.parameters]
+        snow = simulator.temp is not None
+        table = parameter_table(chosen.name, snow=snow)
+        known = [*table, *(snow_parameters(optional=True) if snow else ())]
+        _check_fixed(fixed, known, chosen.name)
+        self.free = [p for p in table if p.name not in fixed]
+        self.names = [p.name for p in table]
         self.simulator = simulator
         scored = np.where(window.calibration[:, None], obs, np.nan)
         self.first = int(np.argmax(window.calibration)) if window.calibration.any() else 0
         self.score = metrics.objective_scorer(objective, scored[self.first :])
-        tables = [chosen.parameters]
-        if simulator.temp is not None:
-            tables.append(snow_parameters())
-        defaults = {p.name: p.initial for table in tables for p in table}
-        _check_fixed(fixed, [p for table in tables for p in table], chosen.name)
-        self.constant = {**defaults, **{k: float(v) for k, v in fixed.items()}}
+        self.constant = {p.name: p.initial for p in table} | {
+            name: float(value) for name, value in fixed.items()
+        }
         for parameter in self.free:
             self.constant.pop(parameter.name)
 

@@ -411,10 +411,8 @@ def _predict(args: argparse.Namespace) -> int:
 
 def format_prediction(result) -> str:
     """The table ``regional predict`` prints: one line per ungauged basin."""
-    from regional.models import get_model
-
     prediction = result.prediction
-    names = [p.name for p in get_model(result.chosen_model).parameters]
+    names = list(result.runs[result.chosen_model].context.transforms)
     columns = [*names, *(f"{n}_{side}" for n in names for side in ("low", "high"))]
     columns += ["mean_flow_mm", "q95_mm", "applicable"]
     coverage = prediction.coverage.set_index(["model", "method"]).loc[

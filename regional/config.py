@@ -29,7 +29,7 @@ CONFIG_NAME = "region.toml"
 #: Storage models a region may name (``[model] name``).
 MODEL_NAMES = ("linear", "gr4j", "linear_potential_et")
 #: Calibration objectives (``[model] objective``).
-OBJECTIVES = ("kge", "nse", "log_nse")
+OBJECTIVES = ("kge", "nse", "log_nse", "nse_blend")
 #: Transfer methods (``[transfer] methods``); ``median`` is the naive benchmark.
 TRANSFER_METHODS = ("regression", "similarity", "proximity", "blended", "median")
 #: How flows from several donors are combined (``[transfer] combine``).
@@ -467,15 +467,16 @@ SECTIONS: dict[str, dict[str, _Key]] = {
     "model": {
         "name": _Key(_choice_list(MODEL_NAMES), "linear"),
         "snow": _Key(_snow, "auto"),
-        "objective": _Key(_choice(OBJECTIVES), "kge"),
+        "objective": _Key(_choice(OBJECTIVES), "nse"),
         "search": _Key(_choice(SEARCHES), "fast"),
         "warmup_days": _Key(_integer(0), 365),
         "initial_storage_mm": _Key(_number(0.0)),
         "calibration": _Key(_period),
         "validation": _Key(_period),
-        "snow_threshold_c": _Key(_number(-20.0, 20.0)),
-        "melt_threshold_c": _Key(_number(-20.0, 20.0)),
-        "melt_factor_mm_per_degc_day": _Key(_number(0.0, 50.0)),
+        # the snow store's bounds (regional.models.snow)
+        "snow_threshold_c": _Key(_number(-3.0, 3.0)),
+        "melt_threshold_c": _Key(_number(-3.0, 4.0)),
+        "melt_factor_mm_per_degc_day": _Key(_number(0.5, 10.0)),
     },
     "transfer": {
         "attributes": _Key(_text_list),

@@ -32,7 +32,7 @@ from regional import metrics
 from regional.calibrate import Window
 from regional.compute import InProcessExecutor, chunked
 from regional.errors import InputError
-from regional.models import get_model, parameter_transforms, simulate
+from regional.models import parameter_table, parameter_transforms, simulate
 from regional.models.base import forward, inverse
 from regional.series import StoreReader, shipped
 from regional.transfer import (
@@ -107,6 +107,13 @@ class FoldContext:
     excluded: Mapping[str, frozenset[str]] = field(default_factory=dict)
     fixed_params: Mapping[str, float] = field(default_factory=dict)
     initial_storage: float | None = None
+
+    @property
+    def transforms(self) -> dict[str, str]:
+        """Transferred parameter -> its regression transform: the model's parameters and,
+        when the snow store runs, the store's, less those fixed in the config."""
+        snow = self.temp_c is not None
+        return parameter_transforms(self.model, snow=snow, fixed=self.fixed_params)
 
 
 @dataclass(frozen=True)
@@ -208,9 +215,8 @@ def run_folds(targets: Sequence[str], context: FoldContext) -> list[dict]:
 
 
 def _one_fold(target: str, context: FoldContext) -> dict:
-    chosen = get_model(context.model)
-    transforms = parameter_transforms(context.model)
-    names = [p.name for p in chosen.parameters]
+    transforms = context.transforms
+    names = list(transforms)
     forcing = _target_forcing(target, context)
     obs = context.flow_mm[target].to_numpy(dtype=float)[context.evaluation]
     train = _training_ids(target, context)
@@ -300,7 +306,7 @@ def donor_simulator(model: str, fixed: Mapping[str, float]):
     log space, say); the set is then simulated at the nearest bound, as calibration would have
     found it.
     """
-    table = get_model(model).parameters
+    table = parameter_table(model, snow=True)
 
     def simulate_sets(
         model_name, precip, pet, params, *, temp=None, initial_storage=None, warmup_days=0
@@ -308,6 +314,8 @@ def donor_simulator(model: str, fixed: Mapping[str, float]):
         n = len(next(iter(params.values())))
         sets = {name: np.full(n, value) for name, value in fixed.items()}
         for parameter in table:
+            if parameter.name not in params:  # snow parameters without the snow store
+                continue
             values = np.asarray(params[parameter.name], dtype=float)
             sets[parameter.name] = np.clip(values, parameter.lower, parameter.upper)
         return simulate(
@@ -530,7 +538,7 @@ def run_count_folds(targets: Sequence[str], context: FoldContext) -> list[dict]:
 
 
 def _count_fold(target: str, context: FoldContext) -> list[dict]:
-    transforms = parameter_transforms(context.model)
+    transforms = context.transforms
     forcing = _target_forcing(target, context)
     obs = context.flow_mm[target].to_numpy(dtype=float)[context.evaluation]
     train = _training_ids(target, context)

@@ -14,7 +14,6 @@ import numpy as np
 
 from regional.crossval import FoldContext, donor_simulator, method_order
 from regional.errors import InputWarning
-from regional.models import parameter_transforms
 from regional.transfer import Donation, make_transfer, simulate_donors
 
 
@@ -44,7 +43,7 @@ def fit_transfers(
         Method -> fitted estimator; distinct warnings raised while fitting.
     """
     options = context.options
-    transforms = parameter_transforms(context.model)
+    transforms = context.transforms
     train = list(context.calibrated.index if train is None else train)
     attributes = list(options.attributes) if options.attributes else None
     estimators = {}

@@ -301,9 +301,10 @@ def _store_reader(region: Region, settings: Settings, executor, dates) -> StoreR
 
 
 def _fold_context(model, region, settings, window, calibration, attributes, excluded):
-    names = [p.name for p in get_model(model).parameters]
     part = slice(window.start, window.stop)
     temp = use_temperature(region, settings)
+    fixed = fixed_parameters(settings, snow=temp is not None)
+    names = list(parameter_transforms(model, snow=temp is not None, fixed=fixed))
     gauged = sorted(calibration.index)  # sorted once: every fold's training rows stay sorted
     calibration = calibration.loc[gauged]
     evaluation = window.validation if window.validation.any() else window.calibration
@@ -319,7 +320,7 @@ def _fold_context(model, region, settings, window, calibration, attributes, excl
         evaluation=evaluation,
         options=_transfer_options(settings, attributes),
         excluded={b: d for b, d in excluded.items() if b in set(gauged)},
-        fixed_params=fixed_parameters(settings, snow=temp is not None),
+        fixed_params=fixed,
         initial_storage=settings.model.initial_storage_mm,
     )
 
@@ -349,7 +350,7 @@ def _fold_columns(region: Region, attributes) -> list[str]:
 
 
 def _regression_on_all(context: FoldContext, attributes) -> RegressionTransfer:
-    transforms = parameter_transforms(context.model)
+    transforms = context.transforms
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", InputWarning)
         return RegressionTransfer(attributes=list(attributes)).fit(

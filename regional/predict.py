@@ -45,7 +45,6 @@ from regional.donation import fit_transfers, method_flows
 from regional.errors import InputError
 from regional.flowstats import to_m3s
 from regional.heldout import held_out_check, with_held_out
-from regional.models import get_model
 from regional.transfer import Donation
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
@@ -240,7 +239,7 @@ def _chosen_flow(context: FoldContext, donation: Donation, targets) -> pd.DataFr
 
 
 def _table(result, target_attributes, parameters: Mapping[str, pd.DataFrame], statistics, usable):
-    names = [p.name for p in get_model(result.chosen_model).parameters]
+    names = list(result.runs[result.chosen_model].context.transforms)
     index = pd.Index(target_attributes.index.astype(str), name="basin_id")
     parts = [target_attributes[list(result.attributes)].set_axis(index)]
     for method, frame in parameters.items():

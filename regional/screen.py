@@ -36,7 +36,6 @@ import pandas as pd
 
 from regional.applicability import applicability
 from regional.errors import InputError, InputWarning
-from regional.models import parameter_transforms
 from regional.transfer import RegressionTransfer, make_transfer
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
@@ -224,7 +223,7 @@ def _candidates(result: RunResult, candidates: Sequence[str] | None) -> list[str
 
 def _donor_spread(context, sites: pd.DataFrame, attributes: Sequence[str]) -> pd.DataFrame:
     """Spread of the similarity donors' transformed parameters at each site, over the region's."""
-    transforms = parameter_transforms(context.model)
+    transforms = context.transforms
     names = list(transforms)
     n_donors = min(context.options.donors_for("similarity"), len(context.calibrated))
     with warnings.catch_warnings():

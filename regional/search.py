@@ -54,7 +54,7 @@ SIMPLEX_STEP = 0.1
 """Edge of the first simplex, as a share of each dimension's range."""
 SIMPLEX_XATOL = 1e-4
 """Nelder-Mead stops when the simplex is this small (share of each range) ..."""
-SIMPLEX_FATOL = 1e-6
+SIMPLEX_FATOL = 1e-5
 """... and its energies agree to this (absolute; scores are dimensionless)."""
 DE_TOLERANCE = 1e-4
 """Relative spread of the population's energies at which differential evolution stops."""

@@ -53,7 +53,7 @@ def build_region(
     *,
     parts: Sequence[str] | None = None,
     models: Sequence[str] = ("linear", "gr4j"),
-    objective: str = "kge",
+    objective: str = "nse",
     methods: Sequence[str] = ("regression", "similarity", "proximity", "blended"),
     donors: int | str = "auto",
 ) -> Path:

@@ -67,7 +67,7 @@ def test_defaults(tmp_path):
     assert (model.names, model.snow, model.objective, model.warmup_days) == (
         ("linear",),
         "auto",
-        "kge",
+        "nse",
         365,
     )
     assert model.calibration is None and model.validation is None

@@ -91,7 +91,7 @@ def test_length_mismatch_is_an_error():
         metrics.nse(OBS, SIM[:3])
 
 
-@pytest.mark.parametrize("objective", ["nse", "kge", "log_nse"])
+@pytest.mark.parametrize("objective", ["nse", "kge", "log_nse", "nse_blend"])
 def test_prepared_objective_equals_the_metric(objective):
     # Two routes to one number: the scorer prepared once for a search, and the metric itself,
     # on series with missing days, one sim per column and several sims per observed series.
@@ -113,3 +113,15 @@ def test_prepared_objective_is_nan_for_a_constant_series():
     obs = np.column_stack([np.full(10, 2.0), np.arange(10.0)])
     score = metrics.objective_scorer("nse", obs)(np.ones((10, 2)), np.array([0, 1]))
     assert np.isnan(score[0]) and np.isfinite(score[1])
+
+
+def test_nse_blend_on_a_hand_worked_series():
+    # Worked here: obs 1, 4, 9, 16 and sim 1, 4, 9, 9.
+    # Flow: mean 7.5, sum of squares about it 129, squared error 49 -> NSE = 80/129.
+    # Square roots: obs 1, 2, 3, 4 (mean 2.5, sum of squares 5), sim 1, 2, 3, 3 (error 1)
+    # -> NSE = 0.8. Blend: (80/129 + 0.8) / 2 = 0.7100775...
+    obs, sim = np.array([1.0, 4.0, 9.0, 16.0]), np.array([1.0, 4.0, 9.0, 9.0])
+    assert metrics.nse_blend(obs, sim) == pytest.approx((80 / 129 + 0.8) / 2, rel=1e-12)
+    assert metrics.nse_blend(obs, obs) == 1.0
+    prepared = metrics.objective_scorer("nse_blend", obs)(sim[:, None])
+    assert prepared[0] == pytest.approx(0.71007751938, rel=1e-10)

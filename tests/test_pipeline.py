@@ -177,3 +177,24 @@ def test_chunked_and_whole_region_runs_give_identical_tables(tmp_path, region_pa
     tables = ("loo_scores.csv", "calibration.csv", "parameters_ungauged.csv", "flows_ungauged.csv")
     for name in tables:
         assert (outputs[3] / name).read_text() == (outputs[1000] / name).read_text(), name
+
+
+def test_snow_parameters_are_calibrated_transferred_and_predicted(tmp_path, region_parts):
+    # With temperature and no snow values in the config, the snow store's parameters are
+    # calibrated with k, regressed and donated like k, and reach the ungauged estimates.
+    from tiny_region import SNOW_HELD, write_region
+
+    from regional.pipeline import run
+
+    for name in SNOW_HELD:
+        del region_parts.config["model"][name]
+    region_parts.config["transfer"]["methods"] = ["regression", "proximity"]
+    result = run(write_region(tmp_path / "region", region_parts))
+    snow = ["snow_threshold_c", "melt_factor_mm_per_degc_day"]
+    gr = result.runs["linear"]
+    assert list(gr.context.transforms) == ["k_per_day", *snow]
+    assert set(snow) <= set(gr.calibration.columns) and (gr.calibration["n_runs"] > 65).all()
+    assert set(snow) <= set(gr.loo.params.columns)
+    assert gr.loo.params[snow].notna().all().all()
+    assert set(snow) <= set(gr.regression.coefficients_["parameter"])
+    assert set(snow) <= set(result.prediction.table.columns)

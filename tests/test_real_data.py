@@ -1,11 +1,12 @@
 """The whole chain on real, observed basins (CAMELS-US in Caravan; see the dataset's README).
 
 A subset small enough for CI: the 59 basins of USGS parts 01 (North Atlantic slope) and 03
-(Ohio), warm-up 1989, calibration 1990-1999, validation 2000-2009, linear store and GR4J, both
-with the degree-day snow store in front; regression, similarity, proximity and blended transfer
-with the number of donors chosen in leave-one-out from 1 to 10. Skipped when the dataset is
-absent (it is kept outside the repository). The figures for every basin come from
-``benchmarks/real_data.py`` and are recorded in docs/validation.md.
+(Ohio), warm-up 1989, calibration 1990-1999, validation 2000-2009, NSE objective, linear store
+and GR4J, both with the degree-day snow store in front (its parameters calibrated);
+regression, similarity, proximity and blended transfer with the number of donors chosen in
+leave-one-out from 1 to 10. Skipped when the dataset is absent (it is kept outside the
+repository). The figures for every basin come from ``benchmarks/real_data.py`` and are
+recorded in docs/validation.md.
 """
 
 from __future__ import annotations
@@ -47,18 +48,23 @@ def test_region_reads_points_with_area_and_snow(real_result):
     assert real_result.runs["gr4j"].context.temp_c is not None  # snow store in front
 
 
-def test_gr4j_best_transfer_beats_median_and_nothing_beats_calibrated(real_result):
+def test_gr4j_best_transfer_beats_median_and_nothing_beats_calibrated_by_much(real_result):
+    # With the snow store calibrated, donors' sets score about as well as the basins' own in
+    # the validation period (0.572-0.573 against 0.569 median NSE on these basins, measured):
+    # calibration on 1990-1999 is no upper bound for 2000-2009. Asserted: no transfer beats the
+    # basins' own calibration by more than 0.02.
     nse = _median_nse(real_result, "gr4j")
     transfers = nse.drop([CALIBRATED, MEDIAN])
     assert transfers.max() > nse[MEDIAN]
-    assert (nse.drop(CALIBRATED) < nse[CALIBRATED]).all()
+    assert (nse.drop(CALIBRATED) < nse[CALIBRATED] + 0.02).all()
 
 
 @pytest.mark.xfail(
     strict=True,
-    reason="not met yet: on these 59 basins with fixed snow parameters and a KGE objective the "
-    "best transfer (similarity, 0.429) beats the regional median (0.360) by 0.069 median NSE, "
-    "and even the basins' own calibration (0.437) only by 0.077 (docs/validation.md)",
+    reason="not met: with the snow store calibrated and the NSE objective the regional median "
+    "set itself scores well on these 59 basins (0.546 median NSE), and the best transfer "
+    "(blended 0.573, similarity 0.572) beats it by 0.027; even the basins' own calibration "
+    "(0.569) beats it by only 0.023 (docs/validation.md)",
 )
 def test_gr4j_best_transfer_beats_median_by_a_tenth(real_result):
     # the target set for this dataset (issue 13): at least 0.10 of median NSE over the median
@@ -91,3 +97,31 @@ def test_linear_best_transfer_beats_median(real_result):
 def test_gr4j_is_chosen_over_the_linear_store(real_result):
     assert real_result.chosen_model == "gr4j"
     assert real_result.chosen_method not in (CALIBRATED, MEDIAN)
+
+
+def test_gr4j_calibrated_snow_beats_fixed_snow_where_snow_matters(real_result):
+    # Basins of the subset with more than 20 % of precipitation as snow (the dataset's
+    # frac_snow attribute): GR4J with the snow store calibrated (the chain's run) against the
+    # same basins calibrated with the store held at its defaults; median validation NSE.
+    from regional.calibrate import calibrate
+    from regional.models import snow_parameters
+
+    region, run_ = real_result.region, real_result.runs["gr4j"]
+    snowy = region.attributes.index[region.attributes["frac_snow"] > 0.2]
+    snowy = [b for b in snowy if b in run_.calibration.index]
+    assert len(snowy) >= 5
+    settings = real_result.settings.model
+    held = calibrate(
+        region.precip_mm[snowy],
+        region.pet_mm[snowy],
+        region.flow_mm[snowy],
+        model="gr4j",
+        temp_c=region.temp_c[snowy],
+        objective=settings.objective,
+        calibration=region.calibration,
+        validation=settings.validation,
+        warmup_days=settings.warmup_days,
+        fixed_params={p.name: p.initial for p in snow_parameters()},
+    )
+    calibrated = run_.calibration.loc[snowy, "nse_validation"].median()
+    assert calibrated > held["nse_validation"].median()

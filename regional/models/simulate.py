@@ -2,14 +2,14 @@
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Collection, Mapping
 
 import numpy as np
 
 from regional.models.base import Parameter, Simulation
 from regional.models.gr4j import GR4J
 from regional.models.linear import LinearReservoir
-from regional.models.snow import DegreeDaySnow
+from regional.models.snow import MELT_THRESHOLD, DegreeDaySnow
 
 _MODELS = {
     "linear": LinearReservoir(),
@@ -41,14 +41,31 @@ def get_model(name: str):
         ) from None
 
 
-def snow_parameters() -> tuple[Parameter, ...]:
-    """Parameter table of the degree-day snow store (in front of any model with temperature)."""
-    return _SNOW.parameters
+def snow_parameters(*, optional: bool = False) -> tuple[Parameter, ...]:
+    """Parameter table of the degree-day snow store (in front of any model with temperature);
+    with ``optional``, also the parameters the store can do without (the melt threshold)."""
+    return (*_SNOW.parameters, *_SNOW.optional) if optional else _SNOW.parameters
 
 
-def parameter_transforms(name: str) -> dict[str, str]:
-    """Parameter name -> regression transform (``"log"`` / ``"identity"``) of a model."""
-    return {parameter.name: parameter.transform for parameter in get_model(name).parameters}
+def parameter_table(
+    name: str, *, snow: bool = False, fixed: Collection[str] = ()
+) -> tuple[Parameter, ...]:
+    """The parameters calibrated and transferred for a model: its own table, then the snow
+    store's when the store runs, less the parameters held ``fixed`` (names).
+
+    Each model part owns its table (:class:`Parameter` rows: name, unit, bounds, transform,
+    default); this only puts the parts of one chain together.
+    """
+    parts = [*get_model(name).parameters, *(_SNOW.parameters if snow else ())]
+    return tuple(p for p in parts if p.name not in set(fixed))
+
+
+def parameter_transforms(
+    name: str, *, snow: bool = False, fixed: Collection[str] = ()
+) -> dict[str, str]:
+    """Parameter name -> regression transform (``"log"`` / ``"identity"``) of
+    :func:`parameter_table`."""
+    return {p.name: p.transform for p in parameter_table(name, snow=snow, fixed=fixed)}
 
 
 def simulate(
@@ -131,7 +148,7 @@ class Simulator:
         self.warmup_days = _check_warmup(warmup_days, self.precip.shape[0])
         known = {p.name for p in self.model.parameters}
         if self.temp is not None:
-            known |= {p.name for p in _SNOW.parameters}
+            known |= {p.name for p in (*_SNOW.parameters, *_SNOW.optional)}
         self._known = known
 
     def run(self, params: Mapping[str, float | np.ndarray]) -> Simulation:
@@ -144,6 +161,8 @@ class Simulator:
         inflow = self.precip
         if self.temp is not None:
             snow_params = _parameter_arrays(_SNOW.parameters, params, n, required=False)
+            if MELT_THRESHOLD.name in params:
+                snow_params |= _parameter_arrays(_SNOW.optional, params, n, required=True)
             inflow, snowpack, melt = _run_snow(self.precip, self.temp, snow_params, n)
         start = _initial_storage(
             chosen, self.initial_storage, inflow, self.pet, model_params, n, self.warmup_days
@@ -178,6 +197,8 @@ class Simulator:
         inflow = precip
         if temp is not None:
             snow_params = {p.name: sets[p.name] for p in _SNOW.parameters}
+            if MELT_THRESHOLD.name in sets:
+                snow_params[MELT_THRESHOLD.name] = sets[MELT_THRESHOLD.name]
             inflow = _run_snow(precip, temp, snow_params, n)[0]
         start = _initial_storage(
             chosen, self.initial_storage, inflow, pet, model_params, n, self.warmup_days

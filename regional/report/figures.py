@@ -45,7 +45,7 @@ from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullLocato
 from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
 
 from regional.crossval import CALIBRATED, MEDIAN
-from regional.models import get_model
+from regional.models import parameter_table
 from regional.report.labels import flow_in_unit
 from regional.report.statistics import statistics_drawers, statistics_figures
 
@@ -222,7 +222,7 @@ def parameter_scatter(result: RunResult, *, model: str | None = None) -> Figure:
     """
     model = model or result.chosen_model
     loo = result.runs[model].loo
-    params = [p for p in get_model(model).parameters if p.name in loo.params.columns]
+    params = [p for p in parameter_table(model, snow=True) if p.name in loo.params.columns]
     methods = [m for m in loo.methods if m != CALIBRATED]
     wide = loo.params.pivot(index="basin_id", columns="method")
     fig = Figure(figsize=(3.2 * len(methods) + 0.6, 3.2 * len(params) + 0.8), layout="constrained")

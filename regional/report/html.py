@@ -21,7 +21,7 @@ import pandas as pd
 
 from regional import flowstats
 from regional.crossval import CALIBRATED, MEDIAN
-from regional.models import get_model
+from regional.models import parameter_table
 from regional.report import statistics as statistics_report
 from regional.report.labels import column_label, flow_in_unit, parameter_labels
 from regional.report.methods import methods_text
@@ -522,12 +522,14 @@ def _calibration(result: RunResult) -> list[str]:
     ]
     for model, run in result.runs.items():
         calibration = run.calibration
-        names = [p.name for p in get_model(model).parameters if p.name in calibration.columns]
+        names = [
+            p.name for p in parameter_table(model, snow=True) if p.name in calibration.columns
+        ]
         columns = [c for c in (*names, *DISTRIBUTION_COLUMNS) if c in calibration.columns]
         spread = calibration[columns].astype(float).describe(percentiles=[0.25, 0.5, 0.75]).T
         spread = spread.rename(columns={"25%": "q25", "50%": "median", "75%": "q75"})
         spread = spread[["count", "min", "q25", "median", "q75", "max"]]
-        labels = parameter_labels(get_model(model).parameters)
+        labels = parameter_labels(parameter_table(model, snow=True))
         spread.index = [_label_with_unit(name, labels) for name in spread.index]
         spread.index.name = "quantity"
         parts.append(_h3(f"Model {model}: distribution over {len(calibration)} gauged basins"))
@@ -805,14 +807,16 @@ def _flow_labels(unit: str) -> dict[str, tuple[str, str]]:
 
 
 def _model_labels(model: str) -> dict[str, tuple[str, str]]:
-    return parameter_labels(get_model(model).parameters)
+    return parameter_labels(parameter_table(model, snow=True))
 
 
 def _parameter_table(result: RunResult) -> pd.DataFrame:
     """The chosen parameters "value (low-high)" per ungauged basin, with the method."""
     prediction = result.prediction
     table = prediction.table
-    names = [p.name for p in get_model(prediction.model).parameters if p.name in table.columns]
+    names = [
+        p.name for p in parameter_table(prediction.model, snow=True) if p.name in table.columns
+    ]
     out = pd.DataFrame(index=table.index)
     if "method" in table.columns:
         out["method"] = table["method"]
@@ -838,7 +842,7 @@ def _with_interval(value: float, low: float, high: float) -> str:
 def _per_method_parameters(result: RunResult) -> pd.DataFrame | None:
     prediction = result.prediction
     table = prediction.table
-    names = [p.name for p in get_model(prediction.model).parameters]
+    names = list(result.runs[prediction.model].context.transforms)
     methods = [m for m in result.runs[prediction.model].loo.methods if m != CALIBRATED]
     out = pd.DataFrame(index=table.index)
     for method in methods:
