@@ -447,3 +447,33 @@ def test_site_estimates_in_mm_per_day_when_asked(full_run):
         low, high = flows.loc[basin]
         assert f"{low:.3g}\u2013{high:.3g}" in row
     assert "Flow statistics (mm/day)" in page
+
+
+def test_statistics_section_shows_the_runs_estimates_as_copyable_text(tiny_run):
+    # Two routes to the same numbers: the tab-separated text in the report against the run's
+    # statistics_ungauged table (flows in the report's unit, m3/s by default).
+    import html as html_module
+
+    from regional.report import statistics as statistics_report
+
+    page = render_report(tiny_run, {})
+    section = page[page.index('<section id="statistics">') :]
+    section = section[: section.index("</section>")]
+    assert "Skill of each statistic in leave-one-out" in section
+    text = html_module.unescape(section[section.index("<pre>") + 5 : section.index("</pre>")])
+    rows = [line.split("\t") for line in text.splitlines()]
+    assert rows[0][:7] == ["basin_id", "statistic", "estimate", "low", "high", "unit", "route"]
+    table = tiny_run.statistics.ungauged.set_index(["basin_id", "statistic"])
+    unit = tiny_run.settings.report.flow_unit
+    checked = 0
+    for basin, label, estimate, *_ in rows[1:]:
+        name = next(
+            n for n in table.index.get_level_values(1) if statistics_report.describe(n) == label
+        )
+        row = table.loc[(basin, name)]
+        column = "estimate_m3s" if row["unit"] == "mm/day" and unit == "m3/s" else "estimate"
+        if estimate:
+            assert float(estimate) == pytest.approx(row[column], rel=1e-3)
+            checked += 1
+    assert checked > 0
+    assert len(rows) - 1 == len(table)
