@@ -12,6 +12,7 @@ from dataclasses import dataclass, field
 
 import pandas as pd
 
+from regional import __version__
 from regional.config import Settings
 from regional.crossval import FoldContext, LeaveOneOut
 from regional.region import Region
@@ -101,7 +102,6 @@ class RunResult:
 
 
 SOFTWARE = (
-    "regional",
     "numpy",
     "pandas",
     "scipy",
@@ -114,12 +114,13 @@ SOFTWARE = (
     "rasterio",
     "matplotlib",
 )
-"""Packages whose versions are recorded with every run (report and run.json)."""
+"""Packages whose versions are recorded with every run (report and run.json); this package's
+own version is ``regional.__version__`` (its distribution is named ``regional-flows``)."""
 
 
 def software_versions() -> dict[str, str]:
     """Python and package versions of this run, ``"not installed"`` for absent ones."""
-    versions = {"python": platform.python_version()}
+    versions = {"python": platform.python_version(), "regional": __version__}
     for name in SOFTWARE:
         try:
             versions[name] = importlib.metadata.version(name)
