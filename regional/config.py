@@ -118,7 +118,9 @@ class ModelSettings:
     """``[model]``: storage model(s), objective, warm-up and periods.
 
     ``calibration`` is ``None`` when the whole common record is used; ``validation`` is ``None``
-    when no split-sample test is asked for.
+    when no split-sample test is asked for. ``parameters`` names the user's table of calibrated
+    parameters (``basin_id`` plus the model's parameter columns); ``None``: every gauged basin
+    is calibrated.
     """
 
     names: tuple[str, ...]
@@ -132,6 +134,7 @@ class ModelSettings:
     melt_threshold_c: float | None
     melt_factor_mm_per_degc_day: float | None
     search: str = "fast"
+    parameters: Path | None = None
 
     @property
     def name(self) -> str:
@@ -247,8 +250,11 @@ class Settings:
     report: ReportSettings
 
     def input_paths(self) -> tuple[Path, ...]:
-        """Every file the region names: this TOML, basins, series, overlays, raster (sorted)."""
+        """Every file the region names: this TOML, basins, series, overlays, raster, the user's
+        parameter table (sorted)."""
         paths = [self.path, self.basins.path, self.series.path]
+        if self.model.parameters is not None:
+            paths.append(self.model.parameters)
         paths += [overlay.path for overlay in self.overlays]
         if self.raster is not None:
             paths.append(self.raster.path)
@@ -476,6 +482,7 @@ SECTIONS: dict[str, dict[str, _Key]] = {
         "snow_threshold_c": _Key(_number(-20.0, 20.0)),
         "melt_threshold_c": _Key(_number(-20.0, 20.0)),
         "melt_factor_mm_per_degc_day": _Key(_number(0.0, 50.0)),
+        "parameters": _Key(_path),
     },
     "transfer": {
         "attributes": _Key(_text_list),

@@ -528,6 +528,64 @@ def _read_series_table(path: Path, layer: str | None, columns: list[str]) -> pd.
 
 
 # --------------------------------------------------------------------------------------------
+# The user's table of calibrated parameters
+# --------------------------------------------------------------------------------------------
+
+PARAMETER_ID = "basin_id"
+"""Id column of the user's parameter table (``[model] parameters``)."""
+
+
+def read_parameter_table(path: str | Path) -> pd.DataFrame:
+    """Read the user's table of calibrated parameters, every cell as text.
+
+    Parameters
+    ----------
+    path : str or Path
+        CSV (optionally gzip-compressed) or Parquet: a ``basin_id`` column and one column per
+        model parameter (e.g. ``k_per_day``, 1/day).
+
+    Returns
+    -------
+    DataFrame
+        ``basin_id`` as text, the other columns as read (text for CSV, blank cells missing),
+        checked and converted by :func:`regional.checks.check_parameter_table`. The index is
+        the place of the row in the file: ``"line"`` for CSV (the header is line 1), ``"row"``
+        (1-based) for Parquet. Entirely blank rows are dropped.
+
+    Raises
+    ------
+    InputError
+        Missing or unreadable file, no ``basin_id`` column.
+    """
+    path = _existing_file(path, "parameter table ([model] parameters)")
+    if path.name.lower().endswith(PARQUET_SUFFIXES):
+        try:
+            frame = pd.read_parquet(path).reset_index(drop=True)
+        except (OSError, ValueError) as error:
+            raise InputError(f"cannot read {path} as Parquet ({error}).") from None
+        frame.index = pd.RangeIndex(1, len(frame) + 1, name=ROW)
+    else:
+        try:
+            frame = pd.read_csv(path, dtype=str, keep_default_na=False, skip_blank_lines=False)
+        except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as error:
+            raise InputError(
+                f"cannot read {path} as a comma-separated table ({error}). Fix: save it as CSV "
+                "with a header line and one basin per line."
+            ) from None
+        frame.index = pd.RangeIndex(2, len(frame) + 2, name=LINE)
+        frame = frame.apply(lambda column: column.str.strip()).replace("", np.nan)
+    frame.columns = [str(column).strip() for column in frame.columns]
+    if PARAMETER_ID not in frame.columns:
+        raise InputError(
+            f"parameter table {path} ([model] parameters) has no '{PARAMETER_ID}' column; "
+            f"found columns {_listing(list(frame.columns))}. Fix: name the id column "
+            f"'{PARAMETER_ID}' and give one column per model parameter (e.g. 'k_per_day')."
+        )
+    frame[PARAMETER_ID] = _as_text(frame[PARAMETER_ID])
+    return frame.loc[~frame.isna().all(axis=1)]
+
+
+# --------------------------------------------------------------------------------------------
 # Writers
 # --------------------------------------------------------------------------------------------
 

@@ -18,6 +18,7 @@ import pandas as pd
 
 from regional import __version__, io
 from regional.crossval import CALIBRATED
+from regional.region import Region
 from regional.report import figure_drawers, render_report
 from regional.report import figures as plots
 from regional.result import RunResult, software_versions
@@ -141,7 +142,8 @@ def result_tables(result: RunResult) -> dict[str, pd.DataFrame]:
         tables |= _prediction_tables(result)
     tables |= statistics_tables(result)
     if result.screening is not None:
-        tables["screening.csv"] = result.screening.table.reset_index()
+        screening = with_basin_columns(result.screening.table, result.region)
+        tables["screening.csv"] = screening.reset_index()
     return tables
 
 
@@ -158,6 +160,19 @@ def statistics_tables(result: RunResult) -> dict[str, pd.DataFrame]:
     if len(statistics.ungauged):
         tables["statistics_ungauged.csv"] = statistics.ungauged.assign(level=statistics.level)
     return tables
+
+
+def with_basin_columns(table: pd.DataFrame, region: Region) -> pd.DataFrame:
+    """``table`` (indexed by ``basin_id``) with the basins layer's own columns in front.
+
+    Every column of the user's basins layer (station names, rivers, codes ...) that the table
+    does not already hold is placed first, so each basin's row carries them.
+    """
+    basins = region.basins
+    own = [c for c in basins.columns if c != basins.geometry.name and c not in table.columns]
+    front = pd.DataFrame(basins[own]).reindex(table.index.astype(str))
+    front.index = table.index
+    return pd.concat([front, table], axis=1)
 
 
 def donor_counts(result: RunResult) -> pd.DataFrame | None:
@@ -178,7 +193,9 @@ def _prediction_tables(result: RunResult) -> dict[str, pd.DataFrame]:
     prediction = result.prediction
     return {
         "flows_ungauged.csv": prediction.flows.assign(level=prediction.level),
-        "parameters_ungauged.csv": _with_level(prediction.table, prediction.level).reset_index(),
+        "parameters_ungauged.csv": with_basin_columns(
+            _with_level(prediction.table, prediction.level), result.region
+        ).reset_index(),
         "coverage.csv": prediction.coverage,
     }
 
@@ -220,7 +237,7 @@ def _coefficients(result: RunResult) -> pd.DataFrame:
 
 def _calibration(result: RunResult) -> pd.DataFrame:
     parts = [run.calibration.assign(model=model) for model, run in result.runs.items()]
-    return pd.concat(parts).reset_index()
+    return with_basin_columns(pd.concat(parts), result.region).reset_index()
 
 
 # --------------------------------------------------------------------------------------------
@@ -234,13 +251,14 @@ def result_layers(result: RunResult) -> dict[str, gpd.GeoDataFrame]:
     if result.prediction is not None:
         layers["ungauged"] = _ungauged_layer(result)
     if result.screening is not None:
-        layers["screening"] = _with_geometry(result.screening.table, basins)
+        screening = with_basin_columns(result.screening.table, result.region)
+        layers["screening"] = _with_geometry(screening, basins)
     return layers
 
 
 def _ungauged_layer(result: RunResult) -> gpd.GeoDataFrame:
     prediction = result.prediction
-    table = _with_level(prediction.table, prediction.level)
+    table = with_basin_columns(_with_level(prediction.table, prediction.level), result.region)
     if result.statistics is not None and len(result.statistics.ungauged):
         table = table.join(result.statistics.ungauged_wide().add_prefix("stat_"))
     return _with_geometry(table, result.region.basins)
@@ -260,7 +278,7 @@ def _gauged_layer(result: RunResult) -> gpd.GeoDataFrame:
     region = result.region
     gauged = list(region.gauged)
     several = len(result.runs) > 1
-    table = region.attributes.loc[gauged, list(result.attributes)].copy()
+    table = with_basin_columns(region.attributes.loc[gauged, list(result.attributes)], region)
     for model, run in result.runs.items():
         suffix = f"_{model}" if several else ""
         calibration = run.calibration.drop(columns=["objective"]).add_suffix(suffix)
@@ -292,6 +310,7 @@ def run_manifest(result: RunResult) -> dict[str, Any]:
         "settings": _plain(settings),
         "chosen": {"model": result.chosen_model, "method": result.chosen_method},
         "counts": {"gauged": len(result.region.gauged), "ungauged": len(result.region.ungauged)},
+        "user_parameters": _user_parameters(result),
         "software": software_versions(),
         "timings_s": {stage: round(seconds, 3) for stage, seconds in result.timings.items()},
         **_stage_manifest(result),
@@ -315,6 +334,14 @@ def _stage_manifest(result: RunResult) -> dict[str, Any]:
         "constant_flow_ungauged": list(result.region.constant_flow),
         "warnings": list(result.warnings),
     }
+
+
+def _user_parameters(result: RunResult) -> dict[str, Any] | None:
+    """The user's parameter table and the gauged basins whose parameters came from it."""
+    table = result.settings.model.parameters
+    if table is None:
+        return None
+    return {"table": str(table), "basins": list(result.region.user_parameter_basins)}
 
 
 def _sha256(path: Path) -> str:

@@ -99,7 +99,21 @@ def run(
         messages += list(run_.loo.warnings)
     for stage in (result.prediction, result.statistics, result.screening):
         messages += list(getattr(stage, "notes", ()))
+    messages += _user_parameter_notes(region)
     return _with(result, warnings=tuple(dict.fromkeys(messages)), timings=timings)
+
+
+def _user_parameter_notes(region: Region) -> list[str]:
+    given = region.user_parameter_basins
+    if not given:
+        return []
+    shown = ", ".join(given[:10]) + (f" and {len(given) - 10} more" if len(given) > 10 else "")
+    return [
+        f"parameters of {len(given)} of {len(region.gauged)} gauged basins come from the "
+        f"user's table {region.settings.model.parameters} ([model] parameters), not from "
+        f"calibration: {shown}; their own-calibration scores are the scores of those "
+        "parameters ('parameters_from' in calibration.csv)"
+    ]
 
 
 def _with(result: RunResult, **changes) -> RunResult:
@@ -272,6 +286,12 @@ def _period(settings: Settings, name: str, dates: pd.DatetimeIndex):
 
 
 def _calibrate(model, region, settings, window: Window, executor, progress) -> pd.DataFrame:
+    """Calibration table of ``model``: the user's parameters scored, the other basins searched.
+
+    Basins of the user's parameter table (``[model] parameters``) are not calibrated: their
+    given parameters are simulated and scored like a calibration result, so that leave-one-out
+    compares like with like; ``parameters_from`` says which basins' parameters came from where.
+    """
     get_model(model)
     temp = use_temperature(region, settings)
     job = _CalibrationJob(
@@ -283,12 +303,22 @@ def _calibrate(model, region, settings, window: Window, executor, progress) -> p
         settings=settings,
         fixed=fixed_parameters(settings, snow=temp is not None),
     )
-    chunks = chunked(list(region.gauged), _chunk_basins(settings, CALIBRATION_CHUNK))
-    stage = _stage(progress, f"calibration {model}")
-    reader = _store_reader(region, settings, executor, region.dates)
-    task, shared = shipped(_calibrate_chunk, job, reader)
-    parts = executor.map(task, chunks, shared, progress=stage)
-    return pd.concat(parts)
+    given = region.user_parameter_basins
+    searched = [basin for basin in region.gauged if basin not in set(given)]
+    parts = []
+    if searched:
+        chunks = chunked(searched, _chunk_basins(settings, CALIBRATION_CHUNK))
+        stage = _stage(progress, f"calibration {model}")
+        reader = _store_reader(region, settings, executor, region.dates)
+        task, shared = shipped(_calibrate_chunk, job, reader)
+        found = executor.map(task, chunks, shared, progress=stage)
+        parts = [part.assign(parameters_from="calibration") for part in found]
+    names = [p.name for p in get_model(model).parameters]
+    for basin in given:
+        own = region.parameters.loc[basin, names].to_dict()
+        scored = _calibrate_chunk([basin], replace(job, fixed={**job.fixed, **own}))
+        parts.append(scored.assign(parameters_from="user"))
+    return pd.concat(parts).loc[list(region.gauged)]
 
 
 def _store_reader(region: Region, settings: Settings, executor, dates) -> StoreReader | None:
