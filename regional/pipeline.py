@@ -16,6 +16,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from regional import io
 from regional.calibrate import Window, calibrate, scoring_window
 from regional.compute import chunked, make_executor
 from regional.config import Settings, load_settings
@@ -30,6 +31,7 @@ from regional.crossval import (
     with_donor_counts,
 )
 from regional.errors import InputError, InputWarning
+from regional.fitted import fit_region
 from regional.models import get_model, parameter_transforms
 from regional.overlap import excluded_donors, overlap_shares
 from regional.predict import predict_ungauged
@@ -177,6 +179,10 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
         chosen_model=model,
         chosen_method=method,
     )
+    clock = time.perf_counter()
+    fitted = fit_region(result, inputs=io.file_checksums(settings.input_paths()))
+    result = _with(result, fitted=fitted)
+    timings["fitted_region"] = time.perf_counter() - clock
     if not region.ungauged:
         return _with_statistics(result, timings)
     clock = time.perf_counter()

@@ -237,7 +237,7 @@ def describe_region(region: Region) -> RegionSummary:
 def _build(settings: Settings) -> Region:
     notes: list[str] = []
     basins, is_point = _basins(settings)
-    overlays, dem = _overlays(settings), _raster(settings)
+    overlays, dem = region_overlays(settings), region_raster(settings)
     grids, series_source = read_grids(settings, basins.index)
     dates = _common_dates(grids.first, grids.last, series_source, notes)
     tables = series_tables(grids, dates, basins.index)
@@ -318,7 +318,8 @@ def _basins(settings: Settings) -> tuple[gpd.GeoDataFrame, bool]:
     return basins, is_point
 
 
-def _overlays(settings: Settings) -> tuple[io.Overlay, ...]:
+def region_overlays(settings: Settings) -> tuple[io.Overlay, ...]:
+    """The overlay layers the settings name, read and checked."""
     overlays = []
     for spec in settings.overlays:
         overlay = io.read_overlay(spec.path, spec.layer, fields=spec.fields)
@@ -327,7 +328,8 @@ def _overlays(settings: Settings) -> tuple[io.Overlay, ...]:
     return tuple(overlays)
 
 
-def _raster(settings: Settings) -> io.Raster | None:
+def region_raster(settings: Settings) -> io.Raster | None:
+    """The raster the settings name (None without one), read and checked."""
     if settings.raster is None:
         return None
     raster = io.read_raster(settings.raster.path)

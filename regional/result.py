@@ -76,6 +76,9 @@ class RunResult:
     statistics : object or None
         :class:`regional.statroutes.FlowStatistics`: flow statistics by route in leave-one-out,
         with bounds at the ungauged basins.
+    fitted : object or None
+        :class:`regional.fitted.FittedRegion`: what prediction and screening used, stored
+        with the results for reuse; None when the region has no ungauged basin.
     warnings : tuple of str
         Everything the user should read, for the report.
     stages : dict
@@ -96,6 +99,7 @@ class RunResult:
     prediction: object | None = None
     screening: object | None = None
     statistics: object | None = None
+    fitted: object | None = None
     warnings: tuple[str, ...] = ()
     timings: dict[str, float] = field(default_factory=dict)
     stages: dict[str, str] = field(default_factory=dict)
