@@ -22,18 +22,21 @@ from typing import Any
 
 import pandas as pd
 
+from regional import transfer
 from regional.errors import InputError
+from regional.models import model_names
 
 CONFIG_NAME = "region.toml"
 
-#: Storage models a region may name (``[model] name``).
-MODEL_NAMES = ("linear", "gr4j", "linear_potential_et")
+#: Storage models a region may name (``[model] name``): the models' registry.
+MODEL_NAMES = model_names()
 #: Calibration objectives (``[model] objective``).
 OBJECTIVES = ("kge", "nse", "log_nse")
-#: Transfer methods (``[transfer] methods``); ``median`` is the naive benchmark.
-TRANSFER_METHODS = ("regression", "similarity", "proximity", "blended", "median")
+#: Transfer methods (``[transfer] methods``): the methods' registry; ``median`` is the naive
+#: benchmark.
+TRANSFER_METHODS = tuple(transfer.TRANSFER_METHODS)
 #: How flows from several donors are combined (``[transfer] combine``).
-COMBINE_MODES = ("output", "parameter")
+COMBINE_MODES = transfer.COMBINE_OPTIONS
 STATISTICS_ROUTES = ("auto", "model", "direct")
 """``[prediction] statistics_route``: pick per statistic, or force the model or direct route."""
 #: Donor counts tried in leave-one-out with ``[transfer] donors = "auto"``.

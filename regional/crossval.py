@@ -37,8 +37,8 @@ from regional.models.base import forward, inverse
 from regional.series import StoreReader, shipped
 from regional.transfer import (
     DONOR_METHODS,
+    fit_transfer,
     inverse_distance_weights,
-    make_transfer,
     simulate_donors,
 )
 from regional.transfer.base import weighted_estimate
@@ -277,18 +277,15 @@ def _transfer_flow(method, target, train, context, forcing, transforms):
 def _fold_donation(method, target, train, context, transforms, n_donors):
     """Fit ``method`` on the fold's training basins and donate to the target."""
     options = context.options
-    attributes = list(options.attributes) if options.attributes else None
-    estimator = make_transfer(
+    estimator = fit_transfer(
         method,
-        attributes=attributes if method != "proximity" else None,
-        n_donors=n_donors,
-        power=options.power,
-        combine=options.combine,
-    )
-    estimator.fit(
         context.attributes.loc[train],
         context.calibrated.loc[train, list(transforms)],
         transforms=transforms,
+        attributes=list(options.attributes) if options.attributes else None,
+        n_donors=n_donors,
+        power=options.power,
+        combine=options.combine,
     )
     return estimator.donate(context.attributes.loc[[target]])
 

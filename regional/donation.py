@@ -15,7 +15,7 @@ import numpy as np
 from regional.crossval import FoldContext, donor_simulator, method_order
 from regional.errors import InputWarning
 from regional.models import parameter_transforms
-from regional.transfer import Donation, make_transfer, simulate_donors
+from regional.transfer import Donation, fit_transfer, simulate_donors
 
 
 def fit_transfers(
@@ -52,18 +52,16 @@ def fit_transfers(
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", InputWarning)
         for method in chosen:
-            estimator = make_transfer(
+            estimators[method] = fit_transfer(
                 method,
-                attributes=attributes if method != "proximity" else None,
-                n_donors=min(options.donors_for(method), len(train)),
-                power=options.power,
-                combine=options.combine,
-                level=level,
-            )
-            estimators[method] = estimator.fit(
                 context.attributes.loc[train],
                 context.calibrated.loc[train, list(transforms)],
                 transforms=transforms,
+                attributes=attributes,
+                n_donors=options.donors_for(method),
+                power=options.power,
+                combine=options.combine,
+                level=level,
             )
     notes = sorted({f"prediction: {w.message}" for w in caught})
     return estimators, notes

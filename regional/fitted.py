@@ -30,7 +30,7 @@ from regional.crossval import FoldContext, TransferOptions
 from regional.errors import InputError, InputWarning
 from regional.heldout import held_out_check, with_held_out
 from regional.models import parameter_transforms
-from regional.transfer import RegressionTransfer
+from regional.transfer import RegressionTransfer, fit_transfer
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; the run result sits below this module
     from regional.result import RunResult
@@ -170,10 +170,12 @@ class FittedRegion:
         transforms = parameter_transforms(self.model)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", InputWarning)  # reported when the run fitted it
-            return RegressionTransfer(attributes=list(self.attributes)).fit(
+            return fit_transfer(
+                "regression",
                 self.training[self.training_columns],
                 self.training[list(self.parameters)],
                 transforms=transforms,
+                attributes=list(self.attributes),
             )
 
 

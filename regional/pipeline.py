@@ -40,7 +40,7 @@ from regional.result import ModelRun, RunResult
 from regional.screen import screen_candidates
 from regional.series import StoreReader, shipped, store_reader
 from regional.statroutes import estimate_statistics
-from regional.transfer import RegressionTransfer
+from regional.transfer import RegressionTransfer, fit_transfer
 
 logger = logging.getLogger(__name__)
 
@@ -388,8 +388,12 @@ def _regression_on_all(context: FoldContext, attributes) -> RegressionTransfer:
     transforms = parameter_transforms(context.model)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", InputWarning)
-        return RegressionTransfer(attributes=list(attributes)).fit(
-            context.attributes, context.calibrated, transforms=transforms
+        return fit_transfer(
+            "regression",
+            context.attributes,
+            context.calibrated,
+            transforms=transforms,
+            attributes=list(attributes),
         )
 
 

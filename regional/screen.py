@@ -38,7 +38,7 @@ from regional.applicability import applicability
 from regional.errors import InputError, InputWarning
 from regional.fitted import FittedRegion, fit_region
 from regional.models import parameter_transforms
-from regional.transfer import RegressionTransfer, make_transfer
+from regional.transfer import RegressionTransfer, fit_transfer
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
     from regional.region import Region
@@ -251,10 +251,14 @@ def _donor_spread(fitted: FittedRegion, sites: pd.DataFrame) -> pd.DataFrame:
     n_donors = min(fitted.options.donors_for("similarity"), len(calibrated))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", InputWarning)  # already reported by leave-one-out
-        similarity = make_transfer(
-            "similarity", attributes=list(fitted.attributes), n_donors=n_donors
+        similarity = fit_transfer(
+            "similarity",
+            fitted.training[fitted.training_columns],
+            calibrated,
+            transforms=transforms,
+            attributes=list(fitted.attributes),
+            n_donors=n_donors,
         )
-        similarity.fit(fitted.training[fitted.training_columns], calibrated, transforms=transforms)
     sets = similarity.donate(sites).sets
     index = pd.Index(sites.index.astype(str), name="basin_id")
     table = pd.DataFrame(index=index)
