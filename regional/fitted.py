@@ -93,6 +93,9 @@ class FittedRegion:
         flow, mm/day (local bounds where transfer is known to fail).
     area_crs : str
         The region's equal-area CRS (PROJ text), in which new sites' attributes are computed.
+    held_out_draws : tuple of HeldOutRepeat
+        The repeats of the held-out check (their flows), for the held-out coverage of the flow
+        statistics in the same run; kept in memory only (not among the stored files).
     inputs : dict
         Input file -> SHA-256 when fitted (:func:`stale_reason`).
     settings : dict
@@ -120,6 +123,7 @@ class FittedRegion:
     loo_observed: pd.DataFrame
     loo_simulated: pd.DataFrame
     area_crs: str = ""
+    held_out_draws: tuple = field(default=(), repr=False)
     inputs: dict[str, str] = field(default_factory=dict)
     settings: dict = field(default_factory=dict)
 
@@ -206,7 +210,7 @@ def fit_region(
     run = result.runs[result.chosen_model]
     context, loo, method = run.context, run.loo, result.chosen_method
     error_model = conformal_bounds(loo.observed, loo.simulated[method], level=level)
-    held_out, error_model, notes = held_out_check(result, error_model, level)
+    held_out, error_model, notes, draws = held_out_check(result, error_model, level)
     coverage = with_held_out(loo_coverage(result, level=level), result, held_out)
     dates = context.precip_mm.index
     return FittedRegion(
@@ -231,6 +235,7 @@ def fit_region(
         loo_observed=loo.observed,
         loo_simulated=loo.simulated[method],
         area_crs=equal_area_crs(result.region.basins).srs,
+        held_out_draws=draws,
         inputs=dict(inputs or {}),
         settings=fit_settings(result.settings),
     )
