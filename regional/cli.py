@@ -479,7 +479,8 @@ def _predict_sites(args: argparse.Namespace, settings: Settings, results: Path) 
     prediction = predict_new_sites(fitted, sites)
     folder = write_site_outputs(out, prediction, sites, fitted_from=results)
     print(format_prediction(prediction, what="sites"))
-    print(f"\nestimates at {len(sites.attributes)} sites written to {folder}")
+    count = len(sites.attributes)
+    print(f"\nestimates at {count} site{'' if count == 1 else 's'} written to {folder}")
     print(CAUTION)
     return 0
 
