@@ -259,7 +259,21 @@ def _transfer_flow(method, target, train, context, forcing, transforms):
     donation = _fold_donation(method, target, train, context, transforms, n_donors)
     names = list(transforms)
     estimate = weighted_estimate(donation.sets, names, transforms).iloc[0].to_dict()
-    simulator = donor_simulator(context.model, context.fixed_params)
+    return estimate, donation_flow(context, donation, target, forcing)
+
+
+def donation_flow(
+    context: FoldContext, donation, target: str, forcing: Mapping | None = None
+) -> np.ndarray:
+    """Flow of one target from its donated sets: the one simulation step that leave-one-out,
+    the held-out check and prediction share.
+
+    The target's own forcing over the window of ``context`` (or ``forcing``, its arrays), the
+    fixed snow parameters, the same warm-up and initial storage; donors combined by
+    :func:`regional.transfer.simulate_donors`. Returns mm/day over the window, warm-up
+    included.
+    """
+    forcing = _target_forcing(target, context) if forcing is None else forcing
     flows = simulate_donors(
         donation,
         target,
@@ -269,9 +283,9 @@ def _transfer_flow(method, target, train, context, forcing, transforms):
         model=context.model,
         warmup_days=context.window.warmup_days,
         initial_storage=context.initial_storage,
-        simulate=simulator,
+        simulate=donor_simulator(context.model, context.fixed_params),
     )
-    return estimate, flows.flow
+    return flows.flow
 
 
 def _fold_donation(method, target, train, context, transforms, n_donors):
