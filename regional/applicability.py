@@ -287,8 +287,8 @@ def local_bounds(
     high: pd.DataFrame,
     *,
     skill: pd.DataFrame,
-    loo: LeaveOneOut,
-    method: str,
+    observed: pd.DataFrame,
+    simulated: pd.DataFrame,
     error_model: ConformalErrorModel,
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Where transfer is known to fail, widen the bounds to the nearest gauged basins' errors.
@@ -304,10 +304,9 @@ def local_bounds(
         Days x targets: simulated flow and its regional bounds, mm/day.
     skill : DataFrame
         From :func:`transfer_skill` (targets where ``skill_applicable`` is False are widened).
-    loo : LeaveOneOut
-        The leave-one-out of the chosen model.
-    method : str
-        The chosen transfer method.
+    observed, simulated : DataFrame
+        Evaluation days x gauged basins: observed flow and the chosen method's leave-one-out
+        flow, mm/day.
     error_model : ConformalErrorModel
         The regional error model (its classes and class levels are kept).
 
@@ -323,8 +322,8 @@ def local_bounds(
     for target in failing:
         nearest = skill.loc[target, "nearest_gauged"].split(", ")
         local = conformal_bounds(
-            loo.observed[nearest],
-            loo.simulated[method][nearest],
+            observed[nearest],
+            simulated[nearest],
             level=error_model.level,
             n_classes=error_model.n_classes,
             class_levels=error_model.levels,

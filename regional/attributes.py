@@ -84,6 +84,7 @@ def compute_attributes(
     flow_mm: pd.DataFrame | None = None,
     overlays: Sequence[io.Overlay] = (),
     dem: io.Raster | None = None,
+    area_crs: pyproj.CRS | str | None = None,
 ) -> Attributes:
     """Compute the attribute table of a region's basins.
 
@@ -108,6 +109,10 @@ def compute_attributes(
     dem : regional.io.Raster, optional
         Elevation grid in metres, north-up; enables ``elevation_mean`` (m) and ``slope_mean``
         (degrees).
+    area_crs : pyproj.CRS or str, optional
+        Equal-area CRS of the centroids and overlay intersections; default
+        :func:`equal_area_crs` of ``basins``. New sites of a fitted region are given the
+        region's, so that their attributes are computed exactly as the region's were.
 
     Returns
     -------
@@ -127,7 +132,8 @@ def compute_attributes(
     notes: list[str] = []
     series = _align_series(ids, precip_mm=precip_mm, pet_mm=pet_mm, temp_c=temp_c, flow_mm=flow_mm)
     _check_overlay_fields(overlays)
-    parts = [_centroids(basins, kind)]
+    area_crs = equal_area_crs(basins) if area_crs is None else pyproj.CRS(area_crs)
+    parts = [_centroids(basins, kind, area_crs)]
     if kind == "polygon":
         parts.append(_area_perimeter_compactness(basins))
     else:
@@ -139,7 +145,6 @@ def compute_attributes(
     parts.append(_runoff_ratio(series["precip"], series["flow"], ids, notes))
     parts.append(_snow_fraction(series["precip"], series["temp"], ids, notes))
     if kind == "polygon":
-        area_crs = _equal_area_crs(basins)
         for overlay in overlays:
             parts.append(_overlay_means(basins, overlay, area_crs, notes))
         if dem is not None:
@@ -308,7 +313,7 @@ def _shortlist(values, limit: int = 5) -> str:
 # ----------------------------------------------------------------------------- geometry
 
 
-def _equal_area_crs(basins: gpd.GeoDataFrame) -> pyproj.CRS:
+def equal_area_crs(basins: gpd.GeoDataFrame) -> pyproj.CRS:
     """Lambert azimuthal equal-area CRS centred on the region (WGS84 datum, metres)."""
     lon_min, lat_min, lon_max, lat_max = basins.geometry.to_crs(_WGS84).total_bounds
     return pyproj.CRS.from_proj4(
@@ -317,11 +322,11 @@ def _equal_area_crs(basins: gpd.GeoDataFrame) -> pyproj.CRS:
     )
 
 
-def _centroids(basins: gpd.GeoDataFrame, kind: str) -> pd.DataFrame:
+def _centroids(basins: gpd.GeoDataFrame, kind: str, area_crs: pyproj.CRS) -> pd.DataFrame:
     """Centroid in WGS84 degrees: polygon centroid taken in an equal-area CRS, or the point."""
     geometry = basins.geometry
     if kind == "polygon":
-        geometry = geometry.to_crs(_equal_area_crs(basins)).centroid
+        geometry = geometry.to_crs(area_crs).centroid
     lonlat = geometry.to_crs(_WGS84)
     return pd.DataFrame(
         {"centroid_lon": lonlat.x.to_numpy(), "centroid_lat": lonlat.y.to_numpy()},
@@ -420,8 +425,8 @@ def _snow_fraction(
         notes.append("snow_fraction skipped: no temperature series given")
         return pd.DataFrame(index=pd.Index(ids))
     valid = np.isfinite(precip) & np.isfinite(temp)
-    total = np.where(valid, precip, 0.0).sum(axis=0, dtype=np.float64)
-    cold = np.where(valid & (temp < SNOW_THRESHOLD_C), precip, 0.0).sum(axis=0, dtype=np.float64)
+    total = _column_sums(np.where(valid, precip, 0.0))
+    cold = _column_sums(np.where(valid & (temp < SNOW_THRESHOLD_C), precip, 0.0))
     with np.errstate(divide="ignore", invalid="ignore"):
         fraction = np.where(total > 0, cold / total, np.nan)
     missing = ~valid.any(axis=0)
@@ -435,9 +440,19 @@ def _snow_fraction(
 
 def _masked_mean(values: np.ndarray, valid: np.ndarray) -> np.ndarray:
     count = valid.sum(axis=0)
-    total = np.where(valid, values, 0.0).sum(axis=0, dtype=np.float64)
+    total = _column_sums(np.where(valid, values, 0.0))
     with np.errstate(divide="ignore", invalid="ignore"):
         return np.where(count > 0, total / count, np.nan)
+
+
+def _column_sums(values: np.ndarray) -> np.ndarray:
+    """Sum of each column (basin), each summed on its own in contiguous memory.
+
+    A basin's sum then does not depend on how many other basins share the array or on its
+    memory layout, so a basin alone (a new site of a fitted region) gets the bits it had among
+    the region's basins.
+    """
+    return np.ascontiguousarray(np.asarray(values, dtype=float).T).sum(axis=1)
 
 
 # ----------------------------------------------------------------------------- overlays

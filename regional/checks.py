@@ -14,7 +14,7 @@ loops in Python over records. Rows are named as the user sees them: ``line N`` i
 from __future__ import annotations
 
 import warnings
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import geopandas as gpd
@@ -199,6 +199,57 @@ CHECKS: dict[str, Check] = {
             "(leave-one-out fits it on all but one; a fit needs the intercept and 2 residual "
             "degrees of freedom)",
             "drop 'regression' from [transfer] methods, or add observed flow at more basins",
+        ),
+        # the user's parameter table ([model] parameters)
+        Check(
+            "parameters_missing_column",
+            "the parameter table needs a column for every parameter of every model in "
+            "[model] name",
+            "add the column (parameter names and units are in docs/config.md), or drop the "
+            "model from [model] name",
+        ),
+        Check(
+            "parameters_unknown_column",
+            "every column of the parameter table other than basin_id must be a parameter of a "
+            "model in [model] name (snow parameters are set for the whole region in [model])",
+            "remove or rename the column",
+        ),
+        Check(
+            "parameters_missing_id",
+            "every row of the parameter table needs a basin id",
+            "fill in the id or delete the row",
+        ),
+        Check(
+            "parameters_duplicate_id",
+            "each basin may appear once in the parameter table",
+            "keep one row per basin",
+        ),
+        Check(
+            "parameters_unknown_id",
+            "every basin of the parameter table must be a basin of the basins layer",
+            "correct the id (ids are compared as text) or delete the row",
+        ),
+        Check(
+            "parameters_without_flow",
+            "a basin with user parameters must have observed flow in the calibration period "
+            "(parameters of basins without flow cannot serve as donors yet)",
+            "delete the row, or add the basin's observed flow",
+        ),
+        Check(
+            "parameters_non_numeric",
+            "parameter values must be numbers (decimal point '.')",
+            "correct the value",
+        ),
+        Check(
+            "parameters_missing_value",
+            "every basin of the parameter table needs a value of every parameter",
+            "fill in the value, or delete the row to calibrate the basin",
+        ),
+        Check(
+            "parameters_out_of_bounds",
+            "parameter values must lie within the model's bounds",
+            "check the unit (e.g. k_per_day in 1/day) and the value; the bounds are in the "
+            "model's page in docs/",
         ),
         Check(
             "flow_gap",
@@ -533,6 +584,81 @@ def warn_flow_gaps(flow: pd.DataFrame, *, source: str) -> pd.Series:
     return gaps
 
 
+def check_parameter_table(
+    raw: pd.DataFrame,
+    *,
+    source: str,
+    bounds: Mapping[str, tuple[float, float, str]],
+    basin_ids: Sequence[str],
+    gauged: Sequence[str],
+) -> pd.DataFrame:
+    """Check the user's parameter table read by :func:`regional.io.read_parameter_table`.
+
+    Parameters
+    ----------
+    raw : DataFrame
+        ``basin_id`` (text) and parameter columns as read; the index is the line or row.
+    source : str
+        The file, for messages.
+    bounds : mapping
+        Parameter name -> (lower, upper, model name) of every model in ``[model] name``.
+    basin_ids, gauged : sequence of str
+        The basins of the basins layer, and those with observed flow in the calibration period.
+
+    Returns
+    -------
+    DataFrame
+        Indexed by ``basin_id``: one float column per parameter, in the order of ``bounds``.
+
+    Raises
+    ------
+    InputError
+        A missing or unknown column, a missing, repeated or unknown basin id, a basin without
+        observed flow, a non-numeric, missing or out-of-bounds value: naming the file, column,
+        basin and line (or row).
+    """
+    columns = [c for c in raw.columns if c != "basin_id"]
+    missing = [f"'{name}' (model '{bounds[name][2]}')" for name in bounds if name not in columns]
+    present = ", ".join(f"'{c}'" for c in raw.columns)
+    found = f"no column {_listing(missing)} among {present}" if missing else ""
+    _fail_if("parameters_missing_column", source, found)
+    unknown = [f"'{c}'" for c in columns if c not in bounds]
+    _fail_if("parameters_unknown_column", source, _listing(unknown))
+    ids, rows = raw["basin_id"], raw.index
+    blank = ids.isna().to_numpy()
+    _fail_if(
+        "parameters_missing_id",
+        f"{source}, column 'basin_id'",
+        _rows_listing(rows[blank], word=rows.name or "row"),
+    )
+    repeated = ids.duplicated(keep=False).to_numpy()
+    _fail_if(
+        "parameters_duplicate_id",
+        f"{source}, column 'basin_id'",
+        _grouped_rows(ids[repeated], rows[repeated]),
+    )
+    for name, members in (
+        ("parameters_unknown_id", basin_ids),
+        ("parameters_without_flow", gauged),
+    ):
+        outside = (~ids.isin(list(members))).to_numpy()
+        _fail_if(name, f"{source}, column 'basin_id'", _basin_rows(ids[outside], rows[outside]))
+    values = {}
+    for name, (lower, upper, _) in bounds.items():
+        where = f"{source}, column '{name}'"
+        cell = raw[name]
+        empty = cell.isna().to_numpy()
+        _fail_if("parameters_missing_value", where, _basin_rows(ids[empty], rows[empty], "empty"))
+        number = _numbers(cell, ids, rows, source=where, check="parameters_non_numeric")
+        outside = ((number < lower) | (number > upper) | ~np.isfinite(number)).to_numpy()
+        found = _basin_rows(ids[outside], rows[outside], cell[outside])
+        _fail_if(
+            "parameters_out_of_bounds", where, found and f"{found} (bounds {lower:g} to {upper:g})"
+        )
+        values[name] = number.to_numpy()
+    return pd.DataFrame(values, index=pd.Index(ids.to_numpy(dtype=object), name="basin_id"))
+
+
 def message(name: str, where: str, found: str) -> str:
     """The message of check ``name``: where, the rule, what was found, the fix."""
     check = CHECKS[name]
@@ -669,14 +795,16 @@ def _parse_dates(raw: pd.Series, ids: pd.Series, rows: pd.Index, *, source: str)
     return parsed.astype("datetime64[ns]")
 
 
-def _numbers(raw: pd.Series, ids: pd.Series, rows: pd.Index, *, source: str) -> pd.Series:
+def _numbers(
+    raw: pd.Series, ids: pd.Series, rows: pd.Index, *, source: str, check: str = "non_numeric"
+) -> pd.Series:
     if pd.api.types.is_bool_dtype(raw):
         raw = raw.astype(object)
     if pd.api.types.is_numeric_dtype(raw):
         return raw.astype(np.float64)
     values = pd.to_numeric(raw, errors="coerce").astype(np.float64)
     bad = (values.isna() & raw.notna()).to_numpy()
-    _fail_if("non_numeric", source, _basin_rows(ids[bad], rows[bad], raw[bad]))
+    _fail_if(check, source, _basin_rows(ids[bad], rows[bad], raw[bad]))
     return values
 
 

@@ -368,58 +368,138 @@ def format_run_summary(result) -> str:
 
 
 def _predict_parser(subparsers: argparse._SubParsersAction) -> None:
-    _stage_parser(
+    parser = _stage_parser(
         subparsers,
         "predict",
-        help="flows, bounds and flow statistics at the ungauged basins",
+        help="flows, bounds and flow statistics at the ungauged basins, or at new sites",
         description=(
-            "Run the chain and write the estimates at the ungauged basins: parameters per "
-            "method with intervals, daily flows in mm/day and m3/s with lower and upper bounds "
-            "(built from the leave-one-out errors), flow statistics and applicability flags. "
-            "Writes flows_ungauged.csv, parameters_ungauged.csv, coverage.csv, the 'ungauged' "
-            "layer of results.gpkg and its figures into the results folder of an earlier "
-            "'regional run', keeping its other files; the report, loo_summary.csv and run.json "
-            "are brought up to date (prediction level, date and time of each stage)."
+            "Write the estimates at the ungauged basins: parameters per method with intervals, "
+            "daily flows in mm/day and m3/s with lower and upper bounds (built from the "
+            "leave-one-out errors), flow statistics and applicability flags, into the results "
+            "folder of an earlier 'regional run' (flows_ungauged.csv, parameters_ungauged.csv, "
+            "coverage.csv, the 'ungauged' layer). When the inputs and settings are those the "
+            "run was fitted from, the fitted region stored there is reused: no calibration, no "
+            "leave-one-out, the same estimates. Otherwise the chain runs again (the reason is "
+            "printed) and the report, figures, loo_summary.csv and run.json are brought up to "
+            "date. With --sites, the estimates are made at new sites instead and written to "
+            "their own folder."
         ),
+    )
+    parser.add_argument(
+        "--sites",
+        type=Path,
+        metavar="SITES",
+        help="vector file of new sites (polygons, or points with an area column) with the "
+        "region's id column; their daily forcing in a file of the same name beside it "
+        "(SITES.csv, .csv.gz or .parquet, the region's series columns, no flow)",
+    )
+    parser.add_argument(
+        "--sites-out",
+        type=Path,
+        metavar="DIR",
+        help="folder for the estimates at the sites (default: <SITES name>_estimates beside "
+        "SITES): new, empty, or an earlier output of regional",
     )
 
 
 def _stage_parser(
     subparsers: argparse._SubParsersAction, name: str, *, help: str, description: str
-) -> None:
+) -> argparse.ArgumentParser:
     parser = subparsers.add_parser(
         name, help=help, description=description, epilog=f"{CAUTION} {EXIT_TEXT}."
     )
     parser.add_argument("region", help="region folder holding region.toml, or the TOML file")
     _add_run_options(parser)
+    return parser
 
 
 def _predict(args: argparse.Namespace) -> int:
-    from regional.outputs import update_stage_outputs
-
     settings = _settings(args.region)
     target = _checked_out_folder(args, settings, update=True)
-    result = _run_with_progress(args, settings)
-    if result.prediction is None:
-        raise InputError("the region has no ungauged basin: there is nothing to predict")
-    folder = update_stage_outputs(result, target, stage="prediction")
-    print(format_prediction(result))
+    if args.sites is not None:
+        return _predict_sites(args, settings, target)
+    prediction, folder = _stage_reusing_the_fit(args, settings, target, stage="prediction")
+    print(format_prediction(prediction))
     print(f"\nprediction written to {folder}")
     print(CAUTION)
     return 0
 
 
-def format_prediction(result) -> str:
-    """The table ``regional predict`` prints: one line per ungauged basin."""
-    prediction = result.prediction
-    names = list(result.runs[result.chosen_model].context.transforms)
+def _stage_reusing_the_fit(
+    args: argparse.Namespace, settings: Settings, target: Path, *, stage: str
+) -> tuple[object, Path]:
+    """Prediction or screening from the stored fitted region, or from a new run (saying why).
+
+    Returns the stage's result and the results folder it was written to.
+    """
+    from regional.outputs import update_reused_outputs, update_stage_outputs
+    from regional.predict import predict_region
+    from regional.region import load_region
+    from regional.reuse import screen_region, stored_fit
+
+    fitted, reason = stored_fit(settings, target)
+    if fitted is not None:
+        print(f"reusing the fitted region stored in {target} (inputs and settings unchanged)")
+        region = load_region(settings)
+        make = predict_region if stage == "prediction" else screen_region
+        made = make(fitted, region)
+        return made, update_reused_outputs(target, region, **{stage: made})
+    print(f"fitting the region again: {reason}")
+    result = _run_with_progress(args, settings)
+    made = getattr(result, stage)
+    if made is None:
+        raise InputError(f"the region has no ungauged basin: there is nothing for {stage}")
+    return made, update_stage_outputs(result, target, stage=stage)
+
+
+def _predict_sites(args: argparse.Namespace, settings: Settings, results: Path) -> int:
+    from regional import io
+    from regional.reuse import predict_new_sites, stored_fit, write_site_outputs
+    from regional.sites import load_sites
+
+    sites_path = args.sites.expanduser().resolve()
+    out = args.sites_out or sites_path.with_name(sites_path.name.split(".")[0] + "_estimates")
+    out = io.check_output_folder(
+        out,
+        inputs=[*settings.input_paths(), sites_path],
+        region_folder=settings.folder,
+        update=False,
+    )
+    fitted, reason = stored_fit(settings, results)
+    if fitted is None:
+        print(f"fitting the region again: {reason}")
+        from regional.outputs import write_outputs
+
+        result = _run_with_progress(args, settings)
+        write_outputs(result, results)
+        fitted = result.fitted
+    else:
+        print(f"reusing the fitted region stored in {results} (inputs and settings unchanged)")
+    sites = load_sites(sites_path, settings, area_crs=fitted.area_crs)
+    prediction = predict_new_sites(fitted, sites)
+    folder = write_site_outputs(out, prediction, sites, fitted_from=results)
+    print(format_prediction(prediction, what="sites"))
+    count = len(sites.attributes)
+    print(f"\nestimates at {count} site{'' if count == 1 else 's'} written to {folder}")
+    print(CAUTION)
+    return 0
+
+
+def format_prediction(prediction, *, what: str = "ungauged basins") -> str:
+    """The table ``regional predict`` prints: one line per ungauged basin (or site)."""
+    table = prediction.table
+    names = [  # the chosen model's parameters, snow ones included: p, p_low, p_high, p_{method}
+        c
+        for c in table.columns
+        if {f"{c}_low", f"{c}_high", f"{c}_{prediction.method}"} <= set(table.columns)
+    ]
     columns = [*names, *(f"{n}_{side}" for n in names for side in ("low", "high"))]
     columns += ["mean_flow_mm", "q95_mm", "applicable"]
     coverage = prediction.coverage.set_index(["model", "method"]).loc[
         (prediction.model, prediction.method), "coverage"
     ]
     lines = [
-        f"ungauged basins: {len(prediction.table)}; model {prediction.model}, method "
+        f"{what}: {len(prediction.table)}; model {prediction.model}, method "
         f"{prediction.method}; bounds at {prediction.level:.0%}, leave-one-out coverage "
         f"{coverage:.1%}",
         prediction.table[columns].to_string(float_format=lambda v: f"{v:.4g}"),
@@ -446,15 +526,10 @@ def _screen_parser(subparsers: argparse._SubParsersAction) -> None:
 
 
 def _screen(args: argparse.Namespace) -> int:
-    from regional.outputs import update_stage_outputs
-
     settings = _settings(args.region)
     target = _checked_out_folder(args, settings, update=True)
-    result = _run_with_progress(args, settings)
-    if result.screening is None:
-        raise InputError("the region has no ungauged basin: there is no candidate to screen")
-    folder = update_stage_outputs(result, target, stage="screening")
-    table = result.screening.table
+    screening, folder = _stage_reusing_the_fit(args, settings, target, stage="screening")
+    table = screening.table
     print(
         table[["rank", "score", "variance_reduction", "donor_spread"]].to_string(
             float_format=lambda v: f"{v:.3g}"

@@ -161,7 +161,7 @@ class DaskExecutor:
         except ImportError as error:  # pragma: no cover - depends on the environment
             raise RuntimeError(
                 "running on a Dask cluster needs the 'distributed' package: "
-                'pip install "regional[cluster]"'
+                'pip install -e ".[cluster]" from the checkout'
             ) from error
         import dask
 

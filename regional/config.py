@@ -22,18 +22,21 @@ from typing import Any
 
 import pandas as pd
 
+from regional import transfer
 from regional.errors import InputError
+from regional.models import model_names
 
 CONFIG_NAME = "region.toml"
 
-#: Storage models a region may name (``[model] name``).
-MODEL_NAMES = ("linear", "gr4j", "linear_potential_et")
+#: Storage models a region may name (``[model] name``): the models' registry.
+MODEL_NAMES = model_names()
 #: Calibration objectives (``[model] objective``).
 OBJECTIVES = ("kge", "nse", "log_nse", "nse_blend")
-#: Transfer methods (``[transfer] methods``); ``median`` is the naive benchmark.
-TRANSFER_METHODS = ("regression", "similarity", "proximity", "blended", "median")
+#: Transfer methods (``[transfer] methods``): the methods' registry; ``median`` is the naive
+#: benchmark.
+TRANSFER_METHODS = tuple(transfer.TRANSFER_METHODS)
 #: How flows from several donors are combined (``[transfer] combine``).
-COMBINE_MODES = ("output", "parameter")
+COMBINE_MODES = transfer.COMBINE_OPTIONS
 STATISTICS_ROUTES = ("auto", "model", "direct")
 """``[prediction] statistics_route``: pick per statistic, or force the model or direct route."""
 #: Donor counts tried in leave-one-out with ``[transfer] donors = "auto"``.
@@ -118,7 +121,9 @@ class ModelSettings:
     """``[model]``: storage model(s), objective, warm-up and periods.
 
     ``calibration`` is ``None`` when the whole common record is used; ``validation`` is ``None``
-    when no split-sample test is asked for.
+    when no split-sample test is asked for. ``parameters`` names the user's table of calibrated
+    parameters (``basin_id`` plus the model's parameter columns); ``None``: every gauged basin
+    is calibrated.
     """
 
     names: tuple[str, ...]
@@ -132,6 +137,7 @@ class ModelSettings:
     melt_threshold_c: float | None
     melt_factor_mm_per_degc_day: float | None
     search: str = "fast"
+    parameters: Path | None = None
 
     @property
     def name(self) -> str:
@@ -247,8 +253,11 @@ class Settings:
     report: ReportSettings
 
     def input_paths(self) -> tuple[Path, ...]:
-        """Every file the region names: this TOML, basins, series, overlays, raster (sorted)."""
+        """Every file the region names: this TOML, basins, series, overlays, raster, the user's
+        parameter table (sorted)."""
         paths = [self.path, self.basins.path, self.series.path]
+        if self.model.parameters is not None:
+            paths.append(self.model.parameters)
         paths += [overlay.path for overlay in self.overlays]
         if self.raster is not None:
             paths.append(self.raster.path)
@@ -477,6 +486,7 @@ SECTIONS: dict[str, dict[str, _Key]] = {
         "snow_threshold_c": _Key(_number(-3.0, 3.0)),
         "melt_threshold_c": _Key(_number(-3.0, 4.0)),
         "melt_factor_mm_per_degc_day": _Key(_number(0.5, 10.0)),
+        "parameters": _Key(_path),
     },
     "transfer": {
         "attributes": _Key(_text_list),

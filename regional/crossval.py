@@ -37,8 +37,8 @@ from regional.models.base import forward, inverse
 from regional.series import StoreReader, shipped
 from regional.transfer import (
     DONOR_METHODS,
+    fit_transfer,
     inverse_distance_weights,
-    make_transfer,
     simulate_donors,
 )
 from regional.transfer.base import weighted_estimate
@@ -265,7 +265,21 @@ def _transfer_flow(method, target, train, context, forcing, transforms):
     donation = _fold_donation(method, target, train, context, transforms, n_donors)
     names = list(transforms)
     estimate = weighted_estimate(donation.sets, names, transforms).iloc[0].to_dict()
-    simulator = donor_simulator(context.model, context.fixed_params)
+    return estimate, donation_flow(context, donation, target, forcing)
+
+
+def donation_flow(
+    context: FoldContext, donation, target: str, forcing: Mapping | None = None
+) -> np.ndarray:
+    """Flow of one target from its donated sets: the one simulation step that leave-one-out,
+    the held-out check and prediction share.
+
+    The target's own forcing over the window of ``context`` (or ``forcing``, its arrays), the
+    fixed snow parameters, the same warm-up and initial storage; donors combined by
+    :func:`regional.transfer.simulate_donors`. Returns mm/day over the window, warm-up
+    included.
+    """
+    forcing = _target_forcing(target, context) if forcing is None else forcing
     flows = simulate_donors(
         donation,
         target,
@@ -275,26 +289,23 @@ def _transfer_flow(method, target, train, context, forcing, transforms):
         model=context.model,
         warmup_days=context.window.warmup_days,
         initial_storage=context.initial_storage,
-        simulate=simulator,
+        simulate=donor_simulator(context.model, context.fixed_params),
     )
-    return estimate, flows.flow
+    return flows.flow
 
 
 def _fold_donation(method, target, train, context, transforms, n_donors):
     """Fit ``method`` on the fold's training basins and donate to the target."""
     options = context.options
-    attributes = list(options.attributes) if options.attributes else None
-    estimator = make_transfer(
+    estimator = fit_transfer(
         method,
-        attributes=attributes if method != "proximity" else None,
-        n_donors=n_donors,
-        power=options.power,
-        combine=options.combine,
-    )
-    estimator.fit(
         context.attributes.loc[train],
         context.calibrated.loc[train, list(transforms)],
         transforms=transforms,
+        attributes=list(options.attributes) if options.attributes else None,
+        n_donors=n_donors,
+        power=options.power,
+        combine=options.combine,
     )
     return estimator.donate(context.attributes.loc[[target]])
 

@@ -1,8 +1,9 @@
 """Transfer methods fit on gauged basins, and their donations simulated at targets.
 
 :func:`fit_transfers` fits every configured method (and the median benchmark) on the gauged
-basins of a fold context; :func:`method_flows` simulates a donation at its targets exactly as
-leave-one-out does (:mod:`regional.crossval`).
+basins of a fold context with :func:`regional.transfer.fit_transfer`; :func:`method_flows`
+simulates a donation at its targets with :func:`regional.crossval.donation_flow`, the step
+leave-one-out takes for each of its folds.
 """
 
 from __future__ import annotations
@@ -12,9 +13,9 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from regional.crossval import FoldContext, donor_simulator, method_order
+from regional.crossval import FoldContext, donation_flow, method_order
 from regional.errors import InputWarning
-from regional.transfer import Donation, make_transfer, simulate_donors
+from regional.transfer import Donation, fit_transfer
 
 
 def fit_transfers(
@@ -51,18 +52,16 @@ def fit_transfers(
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", InputWarning)
         for method in chosen:
-            estimator = make_transfer(
+            estimators[method] = fit_transfer(
                 method,
-                attributes=attributes if method != "proximity" else None,
-                n_donors=min(options.donors_for(method), len(train)),
-                power=options.power,
-                combine=options.combine,
-                level=level,
-            )
-            estimators[method] = estimator.fit(
                 context.attributes.loc[train],
                 context.calibrated.loc[train, list(transforms)],
                 transforms=transforms,
+                attributes=attributes,
+                n_donors=options.donors_for(method),
+                power=options.power,
+                combine=options.combine,
+                level=level,
             )
     notes = sorted({f"prediction: {w.message}" for w in caught})
     return estimators, notes
@@ -80,20 +79,4 @@ def method_flows(context: FoldContext, donation: Donation, targets: Sequence[str
     ndarray (window days, n_targets)
         mm/day, warm-up days included.
     """
-    temp = context.temp_c
-    simulator = donor_simulator(context.model, context.fixed_params)
-    columns = []
-    for target in targets:
-        flows = simulate_donors(
-            donation,
-            target,
-            precip=context.precip_mm[target].to_numpy(dtype=float),
-            pet=context.pet_mm[target].to_numpy(dtype=float),
-            temp=None if temp is None else temp[target].to_numpy(dtype=float),
-            model=context.model,
-            warmup_days=context.window.warmup_days,
-            initial_storage=context.initial_storage,
-            simulate=simulator,
-        )
-        columns.append(flows.flow)
-    return np.column_stack(columns)
+    return np.column_stack([donation_flow(context, donation, target) for target in targets])

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import difflib
 import errno
+import hashlib
 import json
 import os
 import re
@@ -528,6 +529,83 @@ def _read_series_table(path: Path, layer: str | None, columns: list[str]) -> pd.
 
 
 # --------------------------------------------------------------------------------------------
+# The user's table of calibrated parameters
+# --------------------------------------------------------------------------------------------
+
+PARAMETER_ID = "basin_id"
+"""Id column of the user's parameter table (``[model] parameters``)."""
+
+
+def read_parameter_table(path: str | Path) -> pd.DataFrame:
+    """Read the user's table of calibrated parameters, every cell as text.
+
+    Parameters
+    ----------
+    path : str or Path
+        CSV (optionally gzip-compressed) or Parquet: a ``basin_id`` column and one column per
+        model parameter (e.g. ``k_per_day``, 1/day).
+
+    Returns
+    -------
+    DataFrame
+        ``basin_id`` as text, the other columns as read (text for CSV, blank cells missing),
+        checked and converted by :func:`regional.checks.check_parameter_table`. The index is
+        the place of the row in the file: ``"line"`` for CSV (the header is line 1), ``"row"``
+        (1-based) for Parquet. Entirely blank rows are dropped.
+
+    Raises
+    ------
+    InputError
+        Missing or unreadable file, no ``basin_id`` column.
+    """
+    path = _existing_file(path, "parameter table ([model] parameters)")
+    if path.name.lower().endswith(PARQUET_SUFFIXES):
+        try:
+            frame = pd.read_parquet(path).reset_index(drop=True)
+        except (OSError, ValueError) as error:
+            raise InputError(f"cannot read {path} as Parquet ({error}).") from None
+        frame.index = pd.RangeIndex(1, len(frame) + 1, name=ROW)
+    else:
+        try:
+            frame = pd.read_csv(path, dtype=str, keep_default_na=False, skip_blank_lines=False)
+        except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as error:
+            raise InputError(
+                f"cannot read {path} as a comma-separated table ({error}). Fix: save it as CSV "
+                "with a header line and one basin per line."
+            ) from None
+        frame.index = pd.RangeIndex(2, len(frame) + 2, name=LINE)
+        frame = frame.apply(lambda column: column.str.strip()).replace("", np.nan)
+    frame.columns = [str(column).strip() for column in frame.columns]
+    if PARAMETER_ID not in frame.columns:
+        raise InputError(
+            f"parameter table {path} ([model] parameters) has no '{PARAMETER_ID}' column; "
+            f"found columns {_listing(list(frame.columns))}. Fix: name the id column "
+            f"'{PARAMETER_ID}' and give one column per model parameter (e.g. 'k_per_day')."
+        )
+    frame[PARAMETER_ID] = _as_text(frame[PARAMETER_ID])
+    return frame.loc[~frame.isna().all(axis=1)]
+
+
+# --------------------------------------------------------------------------------------------
+# Checksums
+# --------------------------------------------------------------------------------------------
+
+
+def file_checksums(paths: Sequence[str | Path]) -> dict[str, str]:
+    """SHA-256 (hex) of each file, by its path as text."""
+    return {str(path): sha256(path) for path in paths}
+
+
+def sha256(path: str | Path) -> str:
+    """SHA-256 (hex) of one file, read in blocks of 1 MiB."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as stream:
+        for block in iter(lambda: stream.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+# --------------------------------------------------------------------------------------------
 # Writers
 # --------------------------------------------------------------------------------------------
 
@@ -826,6 +904,7 @@ def write_run_folder(
     figures: Mapping[str, bytes],
     report: str | None,
     manifest: Mapping[str, object],
+    files: Mapping[str, bytes | pd.DataFrame] | None = None,
 ) -> Path:
     """Write a complete results folder, then move it into place.
 
@@ -853,6 +932,9 @@ def write_run_folder(
         HTML text for ``report.html``.
     manifest : mapping
         Written as ``run.json``, with ``tool`` and ``format`` added (the ownership marker).
+    files : mapping, optional
+        Further files by relative name (one sub-folder deep, e.g. ``fitted/region.json``):
+        bytes written as they are, DataFrames as Parquet (index kept).
 
     Returns
     -------
@@ -877,6 +959,8 @@ def write_run_folder(
             staging = _temporary_folder(target, ".tmp")
         staging.chmod(_dir_mode())
         _fill_run_folder(staging, tables, layers, crs, figures, report, manifest)
+        for name, content in (files or {}).items():
+            _write_file(staging, name, content)
         _swap_into_place(staging, target)
     except OSError as error:
         _remove(staging)
@@ -1114,6 +1198,7 @@ def update_run_folder(
     figures: Mapping[str, bytes],
     report: str | None = None,
     manifest: Mapping[str, object] | None = None,
+    files: Mapping[str, bytes | pd.DataFrame] | None = None,
 ) -> Path:
     """Add or replace some files of an earlier results folder of this tool, each atomically.
 
@@ -1132,6 +1217,9 @@ def update_run_folder(
         New text of ``report.html``.
     manifest : mapping, optional
         New ``run.json`` (``tool`` and ``format`` added).
+    files : mapping, optional
+        As for :func:`write_run_folder`; each sub-folder named is replaced as a whole (its
+        other files removed once the new ones are in place).
 
     Returns
     -------
@@ -1155,6 +1243,7 @@ def update_run_folder(
     remove_stale_temporaries(target)
     try:
         _update_files(target, tables, layers, crs, figures, report)
+        _update_extra_files(target, files or {})
         if manifest is not None:
             content = json.dumps(
                 {"tool": TOOL, "format": FORMAT, **manifest}, indent=2, default=str
@@ -1187,6 +1276,58 @@ def _update_files(target, tables, layers, crs, figures, report) -> None:
         _replace_layers(target / RESULTS_GPKG, layers, crs)
     if report is not None:
         _write_bytes_atomically(target / "report.html", report.encode("utf-8"))
+
+
+def _write_file(folder: Path, name: str, content: bytes | pd.DataFrame) -> None:
+    """Write one further file (bytes, or a DataFrame as Parquet) into a new folder."""
+    path = folder / name
+    path.parent.mkdir(mode=_dir_mode(), exist_ok=True)
+    if isinstance(content, pd.DataFrame):
+        content.to_parquet(path)
+        path.chmod(_file_mode())
+    else:
+        path.write_bytes(content)
+
+
+def _update_extra_files(target: Path, files: Mapping[str, bytes | pd.DataFrame]) -> None:
+    """Replace further files atomically; stale files of the sub-folders named are removed."""
+    for name, content in files.items():
+        path = target / name
+        path.parent.mkdir(mode=_dir_mode(), exist_ok=True)
+        if isinstance(content, pd.DataFrame):
+            _write_atomically(path, lambda stream, t=content: t.to_parquet(stream), text=False)
+        else:
+            _write_bytes_atomically(path, content)
+    folders = {(target / name).parent for name in files} - {target}
+    kept = {target / name for name in files}
+    for folder in folders:
+        for stale in folder.iterdir():
+            if stale.is_file() and stale not in kept and not stale.name.endswith(".tmp"):
+                stale.unlink()
+
+
+def read_folder_files(folder: str | Path, sub: str) -> dict[str, bytes | pd.DataFrame]:
+    """The files of ``folder/sub`` by relative name: Parquet as DataFrames, others as bytes.
+
+    Empty when the sub-folder is absent. Raises :class:`~regional.errors.InputError` when a
+    Parquet file cannot be read.
+    """
+    place = Path(folder) / sub
+    if not place.is_dir():
+        return {}
+    found: dict[str, bytes | pd.DataFrame] = {}
+    for path in sorted(place.iterdir()):
+        if not path.is_file() or path.name.endswith(".tmp"):
+            continue
+        name = f"{sub}/{path.name}"
+        if path.suffix == ".parquet":
+            try:
+                found[name] = pd.read_parquet(path)
+            except (OSError, ValueError) as error:
+                raise InputError(f"cannot read {path} as Parquet ({error}).") from None
+        else:
+            found[name] = path.read_bytes()
+    return found
 
 
 def _write_atomically(path: Path, write, *, text: bool = True) -> None:

@@ -8,7 +8,6 @@ interrupted run never touches the previous results.
 from __future__ import annotations
 
 import datetime as dt
-import hashlib
 from dataclasses import fields, is_dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -18,9 +17,14 @@ import pandas as pd
 
 from regional import __version__, io
 from regional.crossval import CALIBRATED
+from regional.fitted import FOLDER, META, fitted_files
+from regional.predict import Prediction
+from regional.region import Region
 from regional.report import figure_drawers, render_report
 from regional.report import figures as plots
 from regional.result import RunResult, software_versions
+from regional.reuse import with_basin_columns, with_geometry, with_level
+from regional.screen import Screening
 
 SCORE_NAMES = ("nse", "kge", "kge_r", "kge_alpha", "kge_beta", "log_nse", "pbias", "n_days")
 
@@ -64,7 +68,16 @@ def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True
         figures=images,
         report=report,
         manifest=manifest,
+        files=fitted_region_files(result),
     )
+
+
+def fitted_region_files(result: RunResult) -> dict[str, bytes | pd.DataFrame]:
+    """The ``fitted/`` files of a run (empty without a fitted region): see docs/outputs.md."""
+    if result.fitted is None:
+        return {}
+    meta, tables = fitted_files(result.fitted)
+    return {META: meta, **tables}
 
 
 def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -> Path:
@@ -80,13 +93,17 @@ def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -
     stages = dict(previous.get("stages", {})) | {stage: _now()}
     result = replace(result, stages=stages)
     if stage == "prediction":
-        tables = _prediction_tables(result) | statistics_tables(result)
+        tables = prediction_tables(result.prediction, result.region)
+        tables |= statistics_tables(result)
         tables["loo_summary.csv"] = loo_summary(result)
-        layers = {"ungauged": _ungauged_layer(result)}
+        layers = {
+            "ungauged": prediction_layer(result.prediction, result.region, result.statistics)
+        }
         drawn = plots.prediction_figures(result)
     elif stage == "screening":
-        tables = {"screening.csv": result.screening.table.reset_index()}
-        layers = {"screening": _with_geometry(result.screening.table, result.region.basins)}
+        screening = with_basin_columns(result.screening.table, result.region)
+        tables = {"screening.csv": screening.reset_index()}
+        layers = {"screening": with_geometry(screening, result.region.basins)}
         drawn = {"screening": plots.screening_bars(result)}
     else:
         raise ValueError(f"unknown stage {stage!r}: 'prediction' or 'screening'")
@@ -101,6 +118,45 @@ def update_stage_outputs(result: RunResult, folder: str | Path, *, stage: str) -
         figures=images,
         report=report,
         manifest=manifest,
+        files=fitted_region_files(result),
+    )
+
+
+def update_reused_outputs(
+    folder: str | Path,
+    region: Region,
+    *,
+    prediction: Prediction | None = None,
+    screening: Screening | None = None,
+) -> Path:
+    """Write a stage computed from the stored fitted region into its results folder.
+
+    The inputs and settings are those the folder's run was fitted from, so the stage's tables
+    are those the run wrote (rewritten, byte for byte the same); the layers, report, figures
+    and the statistics (from the run's leave-one-out) stay as they are; ``run.json`` records
+    when the stage ran and that it reused the fitted region.
+    """
+    folder = Path(folder)
+    previous = io.read_manifest(folder) or {}
+    stages = dict(previous.get("stages", {}))
+    reused = set((previous.get("reused_fitted_region") or {}).get("stages", []))
+    tables: dict[str, pd.DataFrame] = {}
+    if prediction is not None:
+        tables |= prediction_tables(prediction, region)
+        stages["prediction"] = _now()
+        reused.add("prediction")
+    if screening is not None:
+        tables["screening.csv"] = with_basin_columns(screening.table, region).reset_index()
+        stages["screening"] = _now()
+        reused.add("screening")
+    reused = {"folder": str(folder / FOLDER), "stages": sorted(reused)}
+    return io.update_run_folder(
+        folder,
+        tables=tables,
+        layers={},
+        crs=region.basins.crs,
+        figures={},
+        manifest=previous | {"stages": stages, "reused_fitted_region": reused},
     )
 
 
@@ -138,10 +194,11 @@ def result_tables(result: RunResult) -> dict[str, pd.DataFrame]:
     if counts is not None:
         tables["donor_counts.csv"] = counts
     if result.prediction is not None:
-        tables |= _prediction_tables(result)
+        tables |= prediction_tables(result.prediction, result.region)
     tables |= statistics_tables(result)
     if result.screening is not None:
-        tables["screening.csv"] = result.screening.table.reset_index()
+        screening = with_basin_columns(result.screening.table, result.region)
+        tables["screening.csv"] = screening.reset_index()
     return tables
 
 
@@ -174,18 +231,15 @@ def donor_counts(result: RunResult) -> pd.DataFrame | None:
     return table[first + [c for c in table.columns if c not in first]]
 
 
-def _prediction_tables(result: RunResult) -> dict[str, pd.DataFrame]:
-    prediction = result.prediction
+def prediction_tables(prediction: Prediction, region: Region) -> dict[str, pd.DataFrame]:
+    """``flows_ungauged.csv``, ``parameters_ungauged.csv`` and ``coverage.csv``."""
     return {
         "flows_ungauged.csv": prediction.flows.assign(level=prediction.level),
-        "parameters_ungauged.csv": _with_level(prediction.table, prediction.level).reset_index(),
+        "parameters_ungauged.csv": with_basin_columns(
+            with_level(prediction.table, prediction.level), region
+        ).reset_index(),
         "coverage.csv": prediction.coverage,
     }
-
-
-def _with_level(table: pd.DataFrame, level: float) -> pd.DataFrame:
-    """The table with the nominal level of its bounds in a ``level`` column."""
-    return table.assign(level=level) if "level" not in table.columns else table
 
 
 def _loo_scores(result: RunResult) -> pd.DataFrame:
@@ -220,7 +274,7 @@ def _coefficients(result: RunResult) -> pd.DataFrame:
 
 def _calibration(result: RunResult) -> pd.DataFrame:
     parts = [run.calibration.assign(model=model) for model, run in result.runs.items()]
-    return pd.concat(parts).reset_index()
+    return with_basin_columns(pd.concat(parts), result.region).reset_index()
 
 
 # --------------------------------------------------------------------------------------------
@@ -232,35 +286,29 @@ def result_layers(result: RunResult) -> dict[str, gpd.GeoDataFrame]:
     basins = result.region.basins
     layers = {"gauged": _gauged_layer(result)}
     if result.prediction is not None:
-        layers["ungauged"] = _ungauged_layer(result)
+        layers["ungauged"] = prediction_layer(result.prediction, result.region, result.statistics)
     if result.screening is not None:
-        layers["screening"] = _with_geometry(result.screening.table, basins)
+        screening = with_basin_columns(result.screening.table, result.region)
+        layers["screening"] = with_geometry(screening, basins)
     return layers
 
 
-def _ungauged_layer(result: RunResult) -> gpd.GeoDataFrame:
-    prediction = result.prediction
-    table = _with_level(prediction.table, prediction.level)
-    if result.statistics is not None and len(result.statistics.ungauged):
-        table = table.join(result.statistics.ungauged_wide().add_prefix("stat_"))
-    return _with_geometry(table, result.region.basins)
-
-
-def _with_geometry(table: pd.DataFrame, basins: gpd.GeoDataFrame) -> gpd.GeoDataFrame:
-    table = table.copy()
-    table.index = table.index.astype(str)
-    frame = gpd.GeoDataFrame(
-        table, geometry=basins.geometry.reindex(table.index).to_numpy(), crs=basins.crs
-    )
-    frame.index.name = "basin_id"
-    return frame.reset_index()
+def prediction_layer(
+    prediction: Prediction, region: Region, statistics: object | None = None
+) -> gpd.GeoDataFrame:
+    """The ``ungauged`` layer of ``results.gpkg`` (with the statistics' ``stat_`` columns when
+    given)."""
+    table = with_basin_columns(with_level(prediction.table, prediction.level), region)
+    if statistics is not None and len(statistics.ungauged):
+        table = table.join(statistics.ungauged_wide().add_prefix("stat_"))
+    return with_geometry(table, region.basins)
 
 
 def _gauged_layer(result: RunResult) -> gpd.GeoDataFrame:
     region = result.region
     gauged = list(region.gauged)
     several = len(result.runs) > 1
-    table = region.attributes.loc[gauged, list(result.attributes)].copy()
+    table = with_basin_columns(region.attributes.loc[gauged, list(result.attributes)], region)
     for model, run in result.runs.items():
         suffix = f"_{model}" if several else ""
         calibration = run.calibration.drop(columns=["objective"]).add_suffix(suffix)
@@ -273,7 +321,7 @@ def _gauged_layer(result: RunResult) -> gpd.GeoDataFrame:
             table[f"loo_kge_{method}{suffix}"] = scores[("kge", method)]
     if result.statistics is not None:
         table = table.join(result.statistics.gauged_wide().add_prefix("stat_"))
-    return _with_geometry(table, region.basins)
+    return with_geometry(table, region.basins)
 
 
 # --------------------------------------------------------------------------------------------
@@ -288,10 +336,11 @@ def run_manifest(result: RunResult) -> dict[str, Any]:
     return {
         "regional": __version__,
         "region": settings.region.name,
-        "inputs": {str(path): _sha256(path) for path in settings.input_paths()},
+        "inputs": io.file_checksums(settings.input_paths()),
         "settings": _plain(settings),
         "chosen": {"model": result.chosen_model, "method": result.chosen_method},
         "counts": {"gauged": len(result.region.gauged), "ungauged": len(result.region.ungauged)},
+        "user_parameters": _user_parameters(result),
         "software": software_versions(),
         "timings_s": {stage: round(seconds, 3) for stage, seconds in result.timings.items()},
         **_stage_manifest(result),
@@ -317,12 +366,12 @@ def _stage_manifest(result: RunResult) -> dict[str, Any]:
     }
 
 
-def _sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as stream:
-        for block in iter(lambda: stream.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
+def _user_parameters(result: RunResult) -> dict[str, Any] | None:
+    """The user's parameter table and the gauged basins whose parameters came from it."""
+    table = result.settings.model.parameters
+    if table is None:
+        return None
+    return {"table": str(table), "basins": list(result.region.user_parameter_basins)}
 
 
 def _plain(value: Any) -> Any:

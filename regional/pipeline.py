@@ -16,6 +16,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from regional import io
 from regional.calibrate import Window, calibrate, scoring_window
 from regional.compute import chunk_size, chunked, make_executor
 from regional.config import Settings, load_settings
@@ -30,6 +31,7 @@ from regional.crossval import (
     with_donor_counts,
 )
 from regional.errors import InputError, InputWarning
+from regional.fitted import fit_region
 from regional.models import get_model, parameter_transforms
 from regional.overlap import excluded_donors, overlap_shares
 from regional.predict import predict_ungauged
@@ -38,7 +40,7 @@ from regional.result import ModelRun, RunResult
 from regional.screen import screen_candidates
 from regional.series import StoreReader, shipped, store_reader
 from regional.statroutes import estimate_statistics
-from regional.transfer import RegressionTransfer
+from regional.transfer import RegressionTransfer, fit_transfer
 
 logger = logging.getLogger(__name__)
 
@@ -99,7 +101,21 @@ def run(
         messages += list(run_.loo.warnings)
     for stage in (result.prediction, result.statistics, result.screening):
         messages += list(getattr(stage, "notes", ()))
+    messages += _user_parameter_notes(region)
     return _with(result, warnings=tuple(dict.fromkeys(messages)), timings=timings)
+
+
+def _user_parameter_notes(region: Region) -> list[str]:
+    given = region.user_parameter_basins
+    if not given:
+        return []
+    shown = ", ".join(given[:10]) + (f" and {len(given) - 10} more" if len(given) > 10 else "")
+    return [
+        f"parameters of {len(given)} of {len(region.gauged)} gauged basins come from the "
+        f"user's table {region.settings.model.parameters} ([model] parameters), not from "
+        f"calibration: {shown}; their own-calibration scores are the scores of those "
+        "parameters ('parameters_from' in calibration.csv)"
+    ]
 
 
 def _with(result: RunResult, **changes) -> RunResult:
@@ -163,6 +179,10 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
         chosen_model=model,
         chosen_method=method,
     )
+    clock = time.perf_counter()
+    fitted = fit_region(result, inputs=io.file_checksums(settings.input_paths()))
+    result = _with(result, fitted=fitted)
+    timings["fitted_region"] = time.perf_counter() - clock
     if not region.ungauged:
         return _with_statistics(result, timings)
     clock = time.perf_counter()
@@ -275,6 +295,12 @@ def _period(settings: Settings, name: str, dates: pd.DatetimeIndex):
 
 
 def _calibrate(model, region, settings, window: Window, executor, progress) -> pd.DataFrame:
+    """Calibration table of ``model``: the user's parameters scored, the other basins searched.
+
+    Basins of the user's parameter table (``[model] parameters``) are not calibrated: their
+    given parameters are simulated and scored like a calibration result, so that leave-one-out
+    compares like with like; ``parameters_from`` says which basins' parameters came from where.
+    """
     get_model(model)
     temp = use_temperature(region, settings)
     job = _CalibrationJob(
@@ -286,15 +312,25 @@ def _calibrate(model, region, settings, window: Window, executor, progress) -> p
         settings=settings,
         fixed=fixed_parameters(settings, snow=temp is not None),
     )
-    size = _chunk_basins(
-        settings, CALIBRATION_CHUNK, n_basins=len(region.gauged), executor=executor
-    )
-    chunks = chunked(list(region.gauged), size)
-    stage = _stage(progress, f"calibration {model}")
-    reader = _store_reader(region, settings, executor, region.dates)
-    task, shared = shipped(_calibrate_chunk, job, reader)
-    parts = executor.map(task, chunks, shared, progress=stage)
-    return pd.concat(parts)
+    given = region.user_parameter_basins
+    searched = [basin for basin in region.gauged if basin not in set(given)]
+    parts = []
+    if searched:
+        size = _chunk_basins(
+            settings, CALIBRATION_CHUNK, n_basins=len(searched), executor=executor
+        )
+        chunks = chunked(searched, size)
+        stage = _stage(progress, f"calibration {model}")
+        reader = _store_reader(region, settings, executor, region.dates)
+        task, shared = shipped(_calibrate_chunk, job, reader)
+        found = executor.map(task, chunks, shared, progress=stage)
+        parts = [part.assign(parameters_from="calibration") for part in found]
+    names = [p.name for p in get_model(model).parameters]
+    for basin in given:
+        own = region.parameters.loc[basin, names].to_dict()
+        scored = _calibrate_chunk([basin], replace(job, fixed={**job.fixed, **own}))
+        parts.append(scored.assign(parameters_from="user"))
+    return pd.concat(parts).loc[list(region.gauged)]
 
 
 def _store_reader(region: Region, settings: Settings, executor, dates) -> StoreReader | None:
@@ -359,8 +395,12 @@ def _regression_on_all(context: FoldContext, attributes) -> RegressionTransfer:
     transforms = context.transforms
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", InputWarning)
-        return RegressionTransfer(attributes=list(attributes)).fit(
-            context.attributes, context.calibrated, transforms=transforms
+        return fit_transfer(
+            "regression",
+            context.attributes,
+            context.calibrated,
+            transforms=transforms,
+            attributes=list(attributes),
         )
 
 

@@ -35,19 +35,18 @@ from regional.applicability import (
     applicability,
     join_skill,
     local_bounds,
-    method_nse,
     transfer_skill,
 )
-from regional.bounds import ConformalErrorModel, check_level, conformal_bounds
-from regional.coverage import loo_coverage
+from regional.bounds import ConformalErrorModel, check_level
 from regional.crossval import FoldContext
 from regional.donation import fit_transfers, method_flows
 from regional.errors import InputError
+from regional.fitted import FittedRegion, fit_region
 from regional.flowstats import to_m3s
-from regional.heldout import held_out_check, with_held_out
 from regional.transfer import Donation
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
+    from regional.region import Region
     from regional.result import RunResult
 
 SUMMARY_STATISTICS = ("mean_flow_mm", "mean_flow_m3s", "q5_mm", "q50_mm", "q95_mm", "min7_mean_mm")
@@ -163,35 +162,81 @@ def predict_ungauged(result: RunResult, *, level: float | None = None) -> Predic
         When the region has no ungauged basin, or the level is not in (0, 1).
     """
     level = check_level(result.settings.prediction.level if level is None else level)
-    targets = list(result.region.ungauged)
+    fitted = result.fitted
+    if fitted is None or fitted.level != level:
+        fitted = fit_region(result, level=level)
+    return predict_region(fitted, result.region)
+
+
+def predict_region(fitted: FittedRegion, region: Region) -> Prediction:
+    """Estimates at the region's ungauged basins from a fitted region (no calibration).
+
+    Raises
+    ------
+    InputError
+        When the region has no ungauged basin.
+    """
+    targets = list(region.ungauged)
     if not targets:
         raise InputError(
             "the region has no ungauged basin to predict: every basin has observed flow in the "
             "calibration period; add basins without flow to the basins layer"
         )
-    run = result.runs[result.chosen_model]
-    context = run.context
-    target_attributes = result.region.attributes.loc[targets]
-    donations, parameters, notes = _parameters_by_method(context, target_attributes, level)
-    if result.chosen_method not in donations:
+    return predict_sites(
+        fitted,
+        region.attributes.loc[targets],
+        precip_mm=region.precip_mm[targets],
+        pet_mm=region.pet_mm[targets],
+        temp_c=None if region.temp_c is None else region.temp_c[targets],
+    )
+
+
+def predict_sites(
+    fitted: FittedRegion,
+    attributes: pd.DataFrame,
+    *,
+    precip_mm: pd.DataFrame,
+    pet_mm: pd.DataFrame,
+    temp_c: pd.DataFrame | None = None,
+) -> Prediction:
+    """Estimates at target sites from a fitted region alone (no calibration, no refit of it).
+
+    Parameters
+    ----------
+    fitted : FittedRegion
+        From :func:`regional.fitted.fit_region`, or read back from a results folder.
+    attributes : DataFrame
+        Targets x attributes (the transfer attributes, coordinates for proximity, and
+        ``area_km2``), indexed by site id.
+    precip_mm, pet_mm : DataFrame
+        Days x targets, mm/day, covering the fitted window.
+    temp_c : DataFrame, optional
+        Days x targets, degC; needed when the fitted region runs the snow store.
+
+    Returns
+    -------
+    Prediction
+    """
+    level = fitted.level
+    targets = list(attributes.index)
+    context = fitted.context(precip_mm[targets], pet_mm[targets], temp_c)
+    donations, parameters, notes = _parameters_by_method(context, attributes, level)
+    if fitted.method not in donations:
         raise InputError(
-            f"[prediction] method {result.chosen_method!r} is not a transfer method; choose one "
+            f"[prediction] method {fitted.method!r} is not a transfer method; choose one "
             f"of {', '.join(map(repr, donations))}"
         )
-    flow_mm = _chosen_flow(context, donations[result.chosen_method], targets)
-    error_model = conformal_bounds(
-        run.loo.observed, run.loo.simulated[result.chosen_method], level=level
-    )
-    held_out, error_model, held_notes, draws = held_out_check(result, error_model, level)
+    flow_mm = _chosen_flow(context, donations[fitted.method], targets)
+    error_model = fitted.error_model
     low, high = error_model.bounds(flow_mm)
-    area = result.region.attributes.loc[targets, "area_km2"].astype(float)
+    area = attributes["area_km2"].astype(float)
     statistics = flow_statistics(flow_mm, area_km2=area)
-    usable = applicability(context.attributes, target_attributes, result.attributes)
+    usable = applicability(context.attributes, attributes, fitted.attributes)
     skill = transfer_skill(
         context.attributes,
-        target_attributes,
-        method_nse(run.loo, result.chosen_method),
-        columns=result.attributes,
+        attributes,
+        fitted.loo_nse,
+        columns=fitted.attributes,
         n_nearest=context.options.n_donors,
     )
     usable = join_skill(usable, skill)
@@ -200,23 +245,23 @@ def predict_ungauged(result: RunResult, *, level: float | None = None) -> Predic
         low,
         high,
         skill=skill,
-        loo=run.loo,
-        method=result.chosen_method,
+        observed=fitted.loo_observed,
+        simulated=fitted.loo_simulated,
         error_model=error_model,
     )
-    coverage = with_held_out(loo_coverage(result, level=level), result, held_out)
-    table = _table(result, target_attributes, parameters, statistics, usable)
+    coverage = fitted.coverage
+    table = _table(fitted, attributes, parameters, statistics, usable)
     return Prediction(
-        model=result.chosen_model,
-        method=result.chosen_method,
+        model=fitted.model,
+        method=fitted.method,
         level=level,
         table=table,
         flows=_long_flows(flow_mm, low, high, area),
         coverage=coverage,
         error_model=error_model.table,
-        notes=tuple(notes + _notes(result, error_model, coverage, usable, level) + held_notes),
-        held_out=held_out,
-        held_out_draws=draws,
+        notes=tuple(notes + _notes(fitted, error_model, coverage, usable) + list(fitted.notes)),
+        held_out=fitted.held_out,
+        held_out_draws=fitted.held_out_draws,
     )
 
 
@@ -238,10 +283,10 @@ def _chosen_flow(context: FoldContext, donation: Donation, targets) -> pd.DataFr
     return pd.DataFrame(flow[warmup:], index=dates, columns=pd.Index(targets, name="basin_id"))
 
 
-def _table(result, target_attributes, parameters: Mapping[str, pd.DataFrame], statistics, usable):
-    names = list(result.runs[result.chosen_model].context.transforms)
+def _table(fitted, target_attributes, parameters: Mapping[str, pd.DataFrame], statistics, usable):
+    names = list(fitted.parameters)
     index = pd.Index(target_attributes.index.astype(str), name="basin_id")
-    parts = [target_attributes[list(result.attributes)].set_axis(index)]
+    parts = [target_attributes[list(fitted.attributes)].set_axis(index)]
     for method, frame in parameters.items():
         frame = frame.set_axis(index)
         columns = {}
@@ -250,8 +295,8 @@ def _table(result, target_attributes, parameters: Mapping[str, pd.DataFrame], st
             columns[f"{name}_{method}_low"] = frame[f"{name}_low"]
             columns[f"{name}_{method}_high"] = frame[f"{name}_high"]
         parts.append(pd.DataFrame(columns, index=index))
-    chosen = parameters[result.chosen_method].set_axis(index)
-    picked = pd.DataFrame({"method": result.chosen_method}, index=index)
+    chosen = parameters[fitted.method].set_axis(index)
+    picked = pd.DataFrame({"method": fitted.method}, index=index)
     for name in names:
         for suffix in ("", "_low", "_high"):
             picked[f"{name}{suffix}"] = chosen[f"{name}{suffix}"]
@@ -292,16 +337,15 @@ def _long_flows(flow_mm: pd.DataFrame, low, high, area: pd.Series) -> pd.DataFra
     )
 
 
-def _notes(result, error_model: ConformalErrorModel, coverage, usable, level) -> list[str]:
+def _notes(fitted, error_model: ConformalErrorModel, coverage, usable) -> list[str]:
+    level = fitted.level
     notes = []
-    chosen = coverage[
-        (coverage["model"] == result.chosen_model) & (coverage["method"] == result.chosen_method)
-    ]
+    chosen = coverage[(coverage["model"] == fitted.model) & (coverage["method"] == fitted.method)]
     if len(chosen):
         row = chosen.iloc[0]
         notes.append(
             f"daily bounds at nominal {level:.0%} from the leave-one-out errors of "
-            f"{result.chosen_method} ({error_model.n_basins} basins, {error_model.n_classes} "
+            f"{fitted.method} ({error_model.n_basins} basins, {error_model.n_classes} "
             f"flow class(es), log offset {error_model.offset_fraction:.0%} of each basin's mean "
             f"flow); measured leave-one-out coverage {row['coverage']:.1%} over "
             f"{int(row['n_basins'])} basins"

@@ -23,6 +23,7 @@ from regional.attributes import compute_attributes
 from regional.config import Settings, load_settings
 from regional.errors import InputError, InputWarning
 from regional.flowstats import MM_DAY_PER_M3S_KM2
+from regional.models import get_model
 from regional.series import read_grids, write_store
 from regional.series import tables as series_tables
 
@@ -72,6 +73,10 @@ class Region:
         Basins with observed flow that is one repeated value (e.g. all zero) over the
         calibration or validation period: they can be neither calibrated nor scored, so they
         are treated as ungauged and never serve as donors.
+    parameters : DataFrame or None
+        The user's calibrated parameters (``[model] parameters``), indexed by ``basin_id``
+        (gauged basins), one column per parameter of every model in ``[model] name``; these
+        basins are not calibrated. None when the config names no table.
     """
 
     settings: Settings
@@ -88,6 +93,15 @@ class Region:
     notes: tuple[str, ...]
     warnings: tuple[str, ...]
     constant_flow: tuple[str, ...] = ()
+    parameters: pd.DataFrame | None = None
+
+    @property
+    def user_parameter_basins(self) -> tuple[str, ...]:
+        """Gauged basins whose parameters the user gave (``[model] parameters``), in order."""
+        if self.parameters is None:
+            return ()
+        given = set(self.parameters.index)
+        return tuple(basin for basin in self.gauged if basin in given)
 
     @property
     def calibration(self) -> tuple[pd.Timestamp, pd.Timestamp]:
@@ -223,7 +237,7 @@ def describe_region(region: Region) -> RegionSummary:
 def _build(settings: Settings) -> Region:
     notes: list[str] = []
     basins, is_point = _basins(settings)
-    overlays, dem = _overlays(settings), _raster(settings)
+    overlays, dem = region_overlays(settings), region_raster(settings)
     grids, series_source = read_grids(settings, basins.index)
     dates = _common_dates(grids.first, grids.last, series_source, notes)
     tables = series_tables(grids, dates, basins.index)
@@ -250,6 +264,7 @@ def _build(settings: Settings) -> Region:
     _check_attribute_choice(settings, attributes.table)
     _check_transfer_attributes(settings, attributes.table, basins, tables["precip"])
     _check_candidates(settings, basins.index, gauged)
+    parameters = _user_parameters(settings, basins.index, gauged)
     ungauged = tuple(basin for basin in basins.index if basin not in set(gauged))
     return Region(
         settings=settings,
@@ -266,6 +281,28 @@ def _build(settings: Settings) -> Region:
         notes=tuple(notes) + tuple(attributes.notes),
         warnings=(),
         constant_flow=tuple(basin for basin in basins.index if basin in constant),
+        parameters=parameters,
+    )
+
+
+def _user_parameters(
+    settings: Settings, basin_ids: pd.Index, gauged: tuple[str, ...]
+) -> pd.DataFrame | None:
+    """The user's parameter table, checked against the models' parameters and bounds."""
+    path = settings.model.parameters
+    if path is None:
+        return None
+    bounds = {
+        parameter.name: (parameter.lower, parameter.upper, name)
+        for name in settings.model.names
+        for parameter in get_model(name).parameters
+    }
+    return checks.check_parameter_table(
+        io.read_parameter_table(path),
+        source=f"parameter table {path}",
+        bounds=bounds,
+        basin_ids=list(basin_ids),
+        gauged=list(gauged),
     )
 
 
@@ -281,7 +318,8 @@ def _basins(settings: Settings) -> tuple[gpd.GeoDataFrame, bool]:
     return basins, is_point
 
 
-def _overlays(settings: Settings) -> tuple[io.Overlay, ...]:
+def region_overlays(settings: Settings) -> tuple[io.Overlay, ...]:
+    """The overlay layers the settings name, read and checked."""
     overlays = []
     for spec in settings.overlays:
         overlay = io.read_overlay(spec.path, spec.layer, fields=spec.fields)
@@ -290,7 +328,8 @@ def _overlays(settings: Settings) -> tuple[io.Overlay, ...]:
     return tuple(overlays)
 
 
-def _raster(settings: Settings) -> io.Raster | None:
+def region_raster(settings: Settings) -> io.Raster | None:
+    """The raster the settings name (None without one), read and checked."""
     if settings.raster is None:
         return None
     raster = io.read_raster(settings.raster.path)

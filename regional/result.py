@@ -12,6 +12,7 @@ from dataclasses import dataclass, field
 
 import pandas as pd
 
+from regional import __version__
 from regional.config import Settings
 from regional.crossval import FoldContext, LeaveOneOut
 from regional.region import Region
@@ -75,6 +76,9 @@ class RunResult:
     statistics : object or None
         :class:`regional.statroutes.FlowStatistics`: flow statistics by route in leave-one-out,
         with bounds at the ungauged basins.
+    fitted : object or None
+        :class:`regional.fitted.FittedRegion`: what prediction and screening used, stored
+        with the results for reuse; None when the region has no ungauged basin.
     warnings : tuple of str
         Everything the user should read, for the report.
     stages : dict
@@ -95,13 +99,13 @@ class RunResult:
     prediction: object | None = None
     screening: object | None = None
     statistics: object | None = None
+    fitted: object | None = None
     warnings: tuple[str, ...] = ()
     timings: dict[str, float] = field(default_factory=dict)
     stages: dict[str, str] = field(default_factory=dict)
 
 
 SOFTWARE = (
-    "regional",
     "numpy",
     "pandas",
     "scipy",
@@ -114,12 +118,13 @@ SOFTWARE = (
     "rasterio",
     "matplotlib",
 )
-"""Packages whose versions are recorded with every run (report and run.json)."""
+"""Packages whose versions are recorded with every run (report and run.json); this package's
+own version is ``regional.__version__`` (its distribution is named ``regional-flows``)."""
 
 
 def software_versions() -> dict[str, str]:
     """Python and package versions of this run, ``"not installed"`` for absent ones."""
-    versions = {"python": platform.python_version()}
+    versions = {"python": platform.python_version(), "regional": __version__}
     for name in SOFTWARE:
         try:
             versions[name] = importlib.metadata.version(name)

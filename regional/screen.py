@@ -36,9 +36,11 @@ import pandas as pd
 
 from regional.applicability import applicability
 from regional.errors import InputError, InputWarning
-from regional.transfer import RegressionTransfer, make_transfer
+from regional.fitted import FittedRegion, fit_region
+from regional.transfer import RegressionTransfer, fit_transfer
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
+    from regional.region import Region
     from regional.result import RunResult
 
 TABLE_COLUMNS = (
@@ -176,24 +178,43 @@ def screen_candidates(result: RunResult, *, candidates: Sequence[str] | None = N
         without ungauged basins.
     """
     region = result.region
-    chosen = _candidates(result, candidates)
-    run = result.runs[result.chosen_model]
+    if candidates is None:
+        candidates = result.settings.screening.candidates
+    chosen = candidate_ids(region, candidates)
+    fitted = result.fitted if result.fitted is not None else fit_region(result)
     attributes = region.attributes
-    targets = attributes.loc[list(region.ungauged)]
-    sites = attributes.loc[chosen]
-    reduction = variance_reduction(run.regression, sites, targets)
-    spread = _donor_spread(run.context, sites, result.attributes)
-    usable = applicability(run.context.attributes, sites, result.attributes)
+    return screen_sites(fitted, attributes.loc[chosen], attributes.loc[list(region.ungauged)])
+
+
+def screen_sites(fitted: FittedRegion, sites: pd.DataFrame, targets: pd.DataFrame) -> Screening:
+    """Rank candidate sites from a fitted region alone (see :func:`screen_candidates`).
+
+    Parameters
+    ----------
+    fitted : FittedRegion
+        The fitted region (its regression is refit on the stored training table).
+    sites : DataFrame
+        Candidate sites x attributes, indexed by id.
+    targets : DataFrame
+        The ungauged basins whose prediction variance a new gauge should reduce.
+
+    Returns
+    -------
+    Screening
+    """
+    regression = fitted.regression()
+    gauged = fitted.training[fitted.training_columns]
+    reduction = variance_reduction(regression, sites, targets)
+    spread = _donor_spread(fitted, sites)
+    usable = applicability(gauged, sites, fitted.attributes)
     table = _score(reduction, spread, usable)
     table["reason"] = _reasons(table, spread, usable, len(targets))
     ordered = [*TABLE_COLUMNS, *[c for c in table.columns if c not in TABLE_COLUMNS]]
-    return Screening(table=table[ordered], notes=_notes(run.regression, spread, len(targets)))
+    return Screening(table=table[ordered], notes=_notes(regression, spread, len(targets)))
 
 
-def _candidates(result: RunResult, candidates: Sequence[str] | None) -> list[str]:
-    region = result.region
-    if candidates is None:
-        candidates = result.settings.screening.candidates
+def candidate_ids(region: Region, candidates: Sequence[str] | None) -> list[str]:
+    """The candidate sites, checked: ungauged basins of the region (default: every one)."""
     if candidates is None:
         candidates = region.ungauged
     chosen = [str(c) for c in candidates]
@@ -221,15 +242,22 @@ def _candidates(result: RunResult, candidates: Sequence[str] | None) -> list[str
     return list(dict.fromkeys(chosen))
 
 
-def _donor_spread(context, sites: pd.DataFrame, attributes: Sequence[str]) -> pd.DataFrame:
+def _donor_spread(fitted: FittedRegion, sites: pd.DataFrame) -> pd.DataFrame:
     """Spread of the similarity donors' transformed parameters at each site, over the region's."""
-    transforms = context.transforms
+    transforms = fitted.transforms
     names = list(transforms)
-    n_donors = min(context.options.donors_for("similarity"), len(context.calibrated))
+    calibrated = fitted.training[names]
+    n_donors = min(fitted.options.donors_for("similarity"), len(calibrated))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", InputWarning)  # already reported by leave-one-out
-        similarity = make_transfer("similarity", attributes=list(attributes), n_donors=n_donors)
-        similarity.fit(context.attributes, context.calibrated[names], transforms=transforms)
+        similarity = fit_transfer(
+            "similarity",
+            fitted.training[fitted.training_columns],
+            calibrated,
+            transforms=transforms,
+            attributes=list(fitted.attributes),
+            n_donors=n_donors,
+        )
     sets = similarity.donate(sites).sets
     index = pd.Index(sites.index.astype(str), name="basin_id")
     table = pd.DataFrame(index=index)
@@ -238,7 +266,7 @@ def _donor_spread(context, sites: pd.DataFrame, attributes: Sequence[str]) -> pd
         log = transforms[name] == "log"
         values = sets[name].to_numpy(dtype=float)
         values = np.log(values) if log else values
-        regional = context.calibrated[name].to_numpy(dtype=float)
+        regional = calibrated[name].to_numpy(dtype=float)
         regional_sd = np.std(np.log(regional) if log else regional, ddof=1)
         grouped = pd.Series(values, index=sets["target_id"].astype(str)).groupby(level=0)
         spread = grouped.std(ddof=0).reindex(index).to_numpy(dtype=float)

@@ -394,3 +394,57 @@ def test_unknown_transfer_attribute(capsys, tmp_path, region_parts):
         "'sandfrac' is not an attribute",
         "did you mean 'sand_frac'?",
     )
+
+
+# ----------------------------------------------------------------------------- user parameters
+
+
+@pytest.mark.parametrize(
+    ("table", "patterns"),
+    [
+        pytest.param(
+            "basin_id,k_per_day\nB01,0.05\nB99,0.07\n",
+            ["column 'basin_id'", "basin 'B99' (line 3)", "must be a basin of the basins layer"],
+            id="unknown basin",
+        ),
+        pytest.param(
+            "basin_id,k\nB01,0.05\n",
+            ["no column 'k_per_day' (model 'linear') among 'basin_id', 'k'"],
+            id="missing column",
+        ),
+        pytest.param(
+            "basin_id,k_per_day\nB01,0.05\nB02,-0.1\n",
+            ["column 'k_per_day'", "basin 'B02' (line 3): '-0.1'", "bounds 0.001 to 1.5"],
+            id="negative value",
+        ),
+        pytest.param(
+            "basin_id,k_per_day\nB01,0.05\nB02,fast\n",
+            ["column 'k_per_day'", "basin 'B02' (line 3): 'fast'", "must be numbers"],
+            id="non-numeric value",
+        ),
+        pytest.param(
+            "basin_id,k_per_day\nB01,0.05\nB02,\n",
+            ["column 'k_per_day'", "basin 'B02' (line 3): empty", "needs a value"],
+            id="empty value",
+        ),
+        pytest.param(
+            "basin_id,k_per_day\nB01,0.05\nB01,0.06\n",
+            ["column 'basin_id'", "'B01' at lines 2, 3"],
+            id="repeated basin",
+        ),
+        pytest.param(
+            "basin_id,k_per_day\nB01,0.05\nB05,0.06\n",
+            ["basin 'B05' (line 3)", "must have observed flow"],
+            id="basin without flow",
+        ),
+    ],
+)
+def test_bad_parameter_table_names_file_column_basin_and_line(
+    capsys, tmp_path, region_parts, table, patterns
+):
+    region_parts.config["model"]["parameters"] = "constants.csv"
+    folder = write_region(tmp_path / "r", region_parts)
+    (folder / "constants.csv").write_text(table)
+    before = checksums(folder)
+    check_fails(capsys, folder, "constants.csv", *patterns)
+    assert checksums(folder) == before

@@ -409,3 +409,87 @@ def test_two_models_are_compared_side_by_side(tmp_path, region_parts, capsys):
     assert "gr4j" in printed and "chosen for prediction: model" in printed
     gauged = pyogrio.read_dataframe(out / "results.gpkg", layer="gauged")
     assert {"k_per_day_linear", "x1_mm_gr4j", "loo_nse_similarity_gr4j"} <= set(gauged.columns)
+
+
+# ----------------------------------------------------------------------------- reuse (issue 15)
+
+
+def _fail_if_called(name):
+    def refuse(*args, **kwargs):
+        raise AssertionError(f"{name} was called: the fitted region was not reused")
+
+    return refuse
+
+
+def test_predict_and_screen_after_run_reuse_the_fitted_region(
+    run_folder, tmp_path, capsys, monkeypatch
+):
+    # Unchanged inputs and settings: no calibration and no leave-one-out run (both would
+    # raise here), and the estimates are the run's, byte for byte.
+    from regional import pipeline
+
+    folder = tmp_path / "results"
+    shutil.copytree(run_folder, folder)
+    names = ["flows_ungauged.csv", "parameters_ungauged.csv", "coverage.csv", "screening.csv"]
+    before = {name: (folder / name).read_bytes() for name in names}
+    monkeypatch.setattr(pipeline, "calibrate", _fail_if_called("calibrate"))
+    monkeypatch.setattr(pipeline, "leave_one_out", _fail_if_called("leave_one_out"))
+    assert main(["predict", str(DEMO), "--out", str(folder), "--quiet"]) == 0
+    assert "reusing the fitted region" in capsys.readouterr().out
+    assert main(["screen", str(DEMO), "--out", str(folder), "--quiet"]) == 0
+    assert "reusing the fitted region" in capsys.readouterr().out
+    for name in names:
+        assert (folder / name).read_bytes() == before[name], name
+    manifest = json.loads((folder / "run.json").read_text())
+    assert manifest["reused_fitted_region"]["stages"] == ["prediction", "screening"]
+
+
+def test_predict_refits_and_says_why_when_an_input_changed(tmp_path, region_parts, capsys):
+    from tiny_region import write_region
+
+    folder = write_region(tmp_path / "region", region_parts)
+    out = tmp_path / "results"
+    assert main(["run", str(folder), "--out", str(out), "--quiet"]) == 0
+    with open(folder / "series.csv", "a") as stream:
+        stream.write("\n")  # same records, other bytes: a changed input all the same
+    capsys.readouterr()
+    assert main(["predict", str(folder), "--out", str(out), "--quiet"]) == 0
+    said = capsys.readouterr().out
+    assert "fitting the region again: input changed since the region was fitted" in said
+    assert str(folder / "series.csv") in said
+    assert main(["predict", str(folder), "--out", str(out), "--quiet"]) == 0
+    assert "reusing the fitted region" in capsys.readouterr().out
+
+
+def test_new_sites_get_the_estimates_they_had_inside_the_region(run_folder, tmp_path, capsys):
+    # Two ungauged demo basins cut out as new sites (their polygons and forcing): the estimates
+    # equal those the run gave them as basins of the region (attributes bit for bit; the
+    # numbers to rounding, as linear algebra on 2 rows may round otherwise than on 14).
+    import geopandas as gpd
+
+    sites = ["DR09", "DR24"]
+    basins = gpd.read_file(DEMO / "region.gpkg", layer="basins")
+    basins[basins["basin_id"].isin(sites)].to_file(tmp_path / "intakes.gpkg", driver="GPKG")
+    series = pd.read_csv(DEMO / "series.csv.gz", dtype={"basin_id": str})
+    forcing = series[series["basin_id"].isin(sites)].drop(columns="flow_mm")
+    forcing.to_csv(tmp_path / "intakes.csv", index=False)
+    out = tmp_path / "estimates"
+    args = ["predict", str(DEMO), "--out", str(run_folder), "--quiet"]
+    assert main([*args, "--sites", str(tmp_path / "intakes.gpkg"), "--sites-out", str(out)]) == 0
+    assert "sites: 2" in capsys.readouterr().out
+    flows = pd.read_csv(out / "flows_sites.csv", dtype={"basin_id": str})
+    inside = pd.read_csv(run_folder / "flows_ungauged.csv", dtype={"basin_id": str})
+    inside = inside[inside["basin_id"].isin(sites)].reset_index(drop=True)
+    pd.testing.assert_frame_equal(flows, inside, check_exact=False, rtol=1e-12, atol=1e-12)
+    table = pd.read_csv(out / "parameters_sites.csv", dtype={"basin_id": str})
+    region = pd.read_csv(run_folder / "parameters_ungauged.csv", dtype={"basin_id": str})
+    region = region.set_index("basin_id").loc[sites].reset_index()
+    assert list(table.columns) == list(region.columns)
+    pd.testing.assert_frame_equal(
+        table, region, check_exact=False, check_dtype=False, rtol=1e-12, atol=1e-12
+    )
+    attributes = ["area_km2", "aridity", "sand_frac", "slope_mean", "elevation_mean"]
+    pd.testing.assert_frame_equal(table[attributes], region[attributes], check_exact=True)
+    manifest = json.loads((out / "run.json").read_text())
+    assert manifest["fitted_region"] == str(run_folder / "fitted")
+    assert pyogrio.list_layers(out / "results.gpkg")[0][0] == "sites"

@@ -61,3 +61,13 @@ def test_main_job_runs_without_the_test_extra(tmp_path):
     )
     assert done.returncode == 0, done.stderr[-2000:]
     assert (tmp_path / "results" / "report.html").is_file()
+
+
+def test_distribution_name_is_not_the_unrelated_project_on_the_index():
+    # The package index holds an unrelated project called "regional" (issue 15): the
+    # distribution is named "regional-flows"; the import package and the command stay regional.
+    project = tomllib.loads((ROOT / "pyproject.toml").read_text())["project"]
+    assert project["name"] == "regional-flows"
+    assert project["scripts"] == {"regional": "regional.cli:main"}
+    readme = (ROOT / "README.md").read_text()
+    assert "`regional-flows`" in readme and "pip install -e ." in readme

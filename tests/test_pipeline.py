@@ -198,3 +198,50 @@ def test_snow_parameters_are_calibrated_transferred_and_predicted(tmp_path, regi
     assert gr.loo.params[snow].notna().all().all()
     assert set(snow) <= set(gr.regression.coefficients_["parameter"])
     assert set(snow) <= set(result.prediction.table.columns)
+
+
+@pytest.mark.filterwarnings("ignore::regional.errors.InputWarning")
+def test_user_constants_skip_calibration_and_recover_the_relation_at_least_as_tightly(tmp_path):
+    # The demo's hidden true k of every gauged basin (truth.json) given as the user's constants:
+    # no basin is searched (n_runs counts the model runs: the scoring run alone), each keeps
+    # its given k with the score of that k, and the
+    # regression on the relation's own attributes lands at least as close to the true
+    # coefficients (distance in standard errors) as with calibrated k (issue 15).
+    from regional.outputs import run_manifest
+    from regional.pipeline import run
+
+    truth = json.loads((DEMO / "truth.json").read_text())
+    gauged = {b: v["k_per_day"] for b, v in truth["basins"].items() if v["gauged"]}
+    table = tmp_path / "constants.csv"
+    pd.Series(gauged, name="k_per_day").rename_axis("basin_id").to_csv(table)
+    changes = [
+        (
+            '"area_km2", "slope_mean", "aridity", "sand_frac", "elevation_mean"',
+            '"slope_mean", "aridity", "sand_frac"',
+        ),
+        ('"regression", "similarity", "proximity"', '"regression"'),
+        ("[output]", "[prediction]\nheld_out_repeats = 0\n\n[output]"),
+    ]
+    (tmp_path / "cal").mkdir()
+    (tmp_path / "user").mkdir()
+    by_calibration = _demo_copy(tmp_path / "cal", *changes)
+    by_user = _demo_copy(
+        tmp_path / "user", *changes, ("[model]", f'[model]\nparameters = "{table}"')
+    )
+    calibrated = run(by_calibration)
+    assert (calibrated.runs["linear"].calibration["n_runs"] > 1).all()
+    given = run(by_user)
+    own = given.runs["linear"].calibration
+    assert (own["parameters_from"] == "user").all() and (own["n_runs"] == 1).all()
+    np.testing.assert_array_equal(own["k_per_day"], pd.Series(gauged)[own.index])
+    assert np.isfinite(own["score_calibration"]).all()
+    assert run_manifest(given)["user_parameters"]["basins"] == list(given.region.gauged)
+    assert any("come from the user's table" in note for note in given.warnings)
+
+    def distance(result):
+        fitted = result.runs["linear"].regression.coefficients_.set_index("term")
+        terms = list(truth["coefficients"])
+        error = fitted.loc[terms, "estimate_raw"] - pd.Series(truth["coefficients"])[terms]
+        return float(((error / fitted.loc[terms, "std_error_raw"]) ** 2).sum())
+
+    assert distance(given) <= distance(calibrated)

@@ -7,7 +7,7 @@ regression transform) and simulates many parameter sets or basins in one call on
 
 from __future__ import annotations
 
-from regional.models.base import Parameter, Simulation
+from regional.models.base import Parameter, Simulation, StorageModel
 from regional.models.gr4j import GR4J
 from regional.models.linear import LinearReservoir
 from regional.models.simulate import (
@@ -28,6 +28,7 @@ __all__ = [
     "Parameter",
     "Simulation",
     "Simulator",
+    "StorageModel",
     "get_model",
     "model_names",
     "parameter_table",

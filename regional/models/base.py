@@ -5,7 +5,9 @@ Pure numpy; no pandas, no I/O.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
+from typing import Protocol, runtime_checkable
 
 import numpy as np
 
@@ -109,3 +111,43 @@ class Simulation:
     def scored_flow(self) -> np.ndarray:
         """Flow after the warm-up, mm/day, shaped (time - warmup_days, n)."""
         return self.flow[self.warmup_days :]
+
+
+@runtime_checkable
+class StorageModel(Protocol):
+    """What a storage model provides; the models' registry (:func:`regional.models.get_model`)
+    holds one instance per name. A new model is one module implementing this plus one registry
+    line; calibration, transfer and simulation read everything else from it.
+
+    Attributes
+    ----------
+    name : str
+        Registry name, e.g. ``"linear"``.
+    parameters : tuple of Parameter
+        The parameter table (names with units, initial values, bounds, transforms).
+    description : str
+        One paragraph for the report.
+    references : tuple of str
+        Publications of the model.
+    """
+
+    name: str
+    parameters: tuple[Parameter, ...]
+    description: str
+    references: tuple[str, ...]
+
+    def equilibrium_storage(
+        self, inflow: np.ndarray, pet: np.ndarray, params: Mapping[str, np.ndarray]
+    ) -> np.ndarray:
+        """Default storage at the start, mm, shaped (n,)."""
+        ...
+
+    def run(
+        self,
+        inflow: np.ndarray,
+        pet: np.ndarray,
+        params: Mapping[str, np.ndarray],
+        initial_storage: np.ndarray,
+    ) -> tuple[np.ndarray, ...]:
+        """Flow, actual evapotranspiration and storage (and exchange), each (time, n)."""
+        ...

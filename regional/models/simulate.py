@@ -6,7 +6,7 @@ from collections.abc import Collection, Mapping
 
 import numpy as np
 
-from regional.models.base import Parameter, Simulation
+from regional.models.base import Parameter, Simulation, StorageModel
 from regional.models.gr4j import GR4J
 from regional.models.linear import LinearReservoir
 from regional.models.snow import MELT_THRESHOLD, DegreeDaySnow
@@ -25,7 +25,7 @@ def model_names() -> tuple[str, ...]:
     return tuple(_MODELS)
 
 
-def get_model(name: str):
+def get_model(name: str) -> StorageModel:
     """Return the storage model called ``name`` (e.g. ``"linear"``).
 
     Raises

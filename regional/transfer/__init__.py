@@ -10,7 +10,9 @@ donation into flow by output or parameter averaging.
 from __future__ import annotations
 
 import difflib
-from collections.abc import Sequence
+import inspect
+from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING
 
 from regional.errors import InputError
 from regional.transfer.base import COMBINE_OPTIONS, Donation
@@ -29,6 +31,9 @@ from regional.transfer.donors import (
 from regional.transfer.median import MedianTransfer
 from regional.transfer.regression import RegressionTransfer, press
 
+if TYPE_CHECKING:  # pragma: no cover - annotations only
+    import pandas as pd
+
 TRANSFER_METHODS = {
     "regression": RegressionTransfer,
     "similarity": SimilarityTransfer,
@@ -36,9 +41,34 @@ TRANSFER_METHODS = {
     "blended": BlendedTransfer,
     "median": MedianTransfer,
 }
-"""Method name -> estimator class."""
+"""The registry: method name -> estimator class. A new method is one module (an estimator
+following the contract above, its options in ``__init__``) and one line here; the config reads
+the allowed names from this registry, and :func:`make_transfer` passes each method the shared
+settings its ``__init__`` takes."""
 
-DONOR_METHODS = ("similarity", "proximity", "blended")
+SHARED_SETTINGS = ("attributes", "n_donors", "power", "combine", "level")
+"""Settings of ``[transfer]`` and ``[prediction]`` a method receives when its ``__init__`` has
+the parameter of that name."""
+
+
+def method_settings(name: str) -> tuple[str, ...]:
+    """The shared settings method ``name`` takes (read from its estimator's ``__init__``)."""
+    parameters = inspect.signature(_registered(name).__init__).parameters
+    return tuple(setting for setting in SHARED_SETTINGS if setting in parameters)
+
+
+def _registered(name: str) -> type:
+    if name in TRANSFER_METHODS:
+        return TRANSFER_METHODS[name]
+    close = difflib.get_close_matches(str(name), list(TRANSFER_METHODS), n=1)
+    hint = f" Did you mean {close[0]!r}?" if close else ""
+    raise InputError(
+        f"unknown transfer method {name!r}; known methods: "
+        f"{', '.join(map(repr, TRANSFER_METHODS))}.{hint}"
+    )
+
+
+DONOR_METHODS = tuple(name for name in TRANSFER_METHODS if "n_donors" in method_settings(name))
 """Methods that donate the k nearest gauged basins' sets (their number of donors can be chosen)."""
 
 
@@ -53,9 +83,9 @@ def make_transfer(
 ):
     """Build an unfitted transfer estimator by method name from shared settings.
 
-    Settings a method does not have are ignored: ``attributes`` applies to regression,
-    similarity and blended; ``n_donors``, ``power`` and ``combine`` to similarity, proximity and
-    blended; ``level`` to regression and median.
+    Settings a method does not have are ignored (:func:`method_settings`): ``attributes``
+    applies to regression, similarity and blended; ``n_donors``, ``power`` and ``combine`` to
+    similarity, proximity and blended; ``level`` to regression and median.
 
     Parameters
     ----------
@@ -77,31 +107,64 @@ def make_transfer(
     InputError
         For an unknown method name (with the closest known name).
     """
-    if name == "regression":
-        return RegressionTransfer(attributes=attributes, level=level)
-    if name == "similarity":
-        return SimilarityTransfer(
-            attributes=attributes, n_donors=n_donors, power=power, combine=combine
-        )
-    if name == "proximity":
-        return ProximityTransfer(n_donors=n_donors, power=power, combine=combine)
-    if name == "blended":
-        return BlendedTransfer(
-            attributes=attributes, n_donors=n_donors, power=power, combine=combine
-        )
-    if name == "median":
-        return MedianTransfer(level=level)
-    close = difflib.get_close_matches(str(name), list(TRANSFER_METHODS), n=1)
-    hint = f" Did you mean {close[0]!r}?" if close else ""
-    raise InputError(
-        f"unknown transfer method {name!r}; known methods: "
-        f"{', '.join(map(repr, TRANSFER_METHODS))}.{hint}"
+    given = {
+        "attributes": attributes,
+        "n_donors": n_donors,
+        "power": power,
+        "combine": combine,
+        "level": level,
+    }
+    estimator = _registered(name)
+    return estimator(**{setting: given[setting] for setting in method_settings(name)})
+
+
+def fit_transfer(
+    name: str,
+    X: pd.DataFrame,
+    y: pd.DataFrame,
+    *,
+    transforms: Mapping[str, str],
+    attributes: Sequence[str] | None = None,
+    n_donors: int = 5,
+    power: float = 1.0,
+    combine: str = "output",
+    level: float = 0.9,
+):
+    """Fit method ``name`` on these basins: the one step leave-one-out, the held-out check,
+    prediction and screening share (each then donates to its targets and simulates the
+    donation with :func:`simulate_donors`).
+
+    Parameters
+    ----------
+    name : str
+        A registered method (:data:`TRANSFER_METHODS`).
+    X, y : DataFrame
+        Training basins' attributes and parameters (parameter units), indexed by basin id.
+    transforms : mapping
+        Parameter -> ``"log"`` / ``"identity"``.
+    attributes, n_donors, power, combine, level
+        The shared settings (see :func:`make_transfer`); ``n_donors`` is capped at the number
+        of training basins.
+
+    Returns
+    -------
+    The fitted estimator.
+    """
+    estimator = make_transfer(
+        name,
+        attributes=attributes,
+        n_donors=min(n_donors, len(X)),
+        power=power,
+        combine=combine,
+        level=level,
     )
+    return estimator.fit(X, y, transforms=transforms)
 
 
 __all__ = [
     "COMBINE_OPTIONS",
     "DONOR_METHODS",
+    "SHARED_SETTINGS",
     "TRANSFER_METHODS",
     "BlendedTransfer",
     "Donation",
@@ -111,9 +174,11 @@ __all__ = [
     "RegressionTransfer",
     "SimilarityTransfer",
     "average_parameters",
+    "fit_transfer",
     "great_circle_km",
     "inverse_distance_weights",
     "make_transfer",
+    "method_settings",
     "press",
     "simulate_donors",
 ]

@@ -1,0 +1,430 @@
+"""A fitted region: everything prediction and screening need, without the run that made it.
+
+:func:`fit_region` gathers, from a finished run, the chosen (model, method), the training
+table of the transfer (gauged attributes and calibrated parameters), the transfer options, the
+simulation window, the conformal error model of the daily bounds (after the held-out check),
+the coverage tables and the leave-one-out flows that local bounds need. Prediction and
+screening (:mod:`regional.predict`, :mod:`regional.screen`) run on a :class:`FittedRegion`
+alone. :func:`fitted_files` and :func:`from_files` turn it into open files (JSON and Parquet,
+no pickles of code objects) and back; :func:`stale_reason` says whether the inputs it was
+fitted from have changed. The format is described in ``docs/outputs.md``.
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
+
+import numpy as np
+import pandas as pd
+
+from regional.applicability import method_nse
+from regional.attributes import equal_area_crs
+from regional.bounds import ConformalErrorModel, check_level, conformal_bounds
+from regional.calibrate import Window
+from regional.config import Settings
+from regional.coverage import loo_coverage
+from regional.crossval import FoldContext, TransferOptions
+from regional.errors import InputError, InputWarning
+from regional.heldout import held_out_check, with_held_out
+from regional.models import parameter_transforms
+from regional.transfer import RegressionTransfer, fit_transfer
+
+if TYPE_CHECKING:  # pragma: no cover - annotations only; the run result sits below this module
+    from regional.result import RunResult
+
+FORMAT = 1
+"""Version of the stored layout (grows when it changes)."""
+FOLDER = "fitted"
+"""Sub-folder of a results folder holding the fitted region."""
+META = f"{FOLDER}/region.json"
+TRAINING = f"{FOLDER}/training.parquet"
+LOO_OBSERVED = f"{FOLDER}/loo_observed.parquet"
+LOO_SIMULATED = f"{FOLDER}/loo_simulated.parquet"
+LOO_NSE = f"{FOLDER}/loo_nse.parquet"
+COVERAGE = f"{FOLDER}/coverage.parquet"
+HELD_OUT = f"{FOLDER}/held_out.parquet"
+
+
+@dataclass(frozen=True)
+class FittedRegion:
+    """What prediction and screening need from a run (see :func:`fit_region`).
+
+    Attributes
+    ----------
+    model, method : str
+        The chosen storage model and transfer method.
+    level : float
+        Nominal level of the bounds and parameter intervals.
+    attributes : tuple of str
+        Transfer attributes (regression, similarity, applicability).
+    training : DataFrame
+        Gauged basins (sorted ids): the transfer attributes and coordinates the folds saw,
+        then the calibrated (or user-given) parameters of the chosen model.
+    parameters : tuple of str
+        The chosen model's parameter names (the last columns of ``training``).
+    options : TransferOptions
+        Methods, donor counts (as chosen in leave-one-out), weighting and combination.
+    first_day, last_day : Timestamp
+        The simulated window (warm-up included) of every target.
+    warmup_days : int
+        Leading days of the window that only spin up the stores.
+    initial_storage : float or None
+        Storage at the start, mm (None: the model's own).
+    snow : bool
+        Whether the snow store runs (then targets need temperature).
+    fixed_params : dict
+        Snow parameters set for the whole region (empty without snow or when the model's
+        defaults are used).
+    error_model : ConformalErrorModel
+        The bounds of the chosen (model, method), widened where the held-out check said so.
+    coverage : DataFrame
+        Leave-one-out and held-out coverage (see :attr:`regional.predict.Prediction.coverage`).
+    held_out : DataFrame or None
+        The held-out check table (its ``attrs`` kept), None when it did not run.
+    notes : tuple of str
+        The notes of the held-out check.
+    loo_nse : Series
+        Leave-one-out NSE of the chosen method per gauged basin.
+    loo_observed, loo_simulated : DataFrame
+        Evaluation days x gauged basins: observed flow and the chosen method's leave-one-out
+        flow, mm/day (local bounds where transfer is known to fail).
+    area_crs : str
+        The region's equal-area CRS (PROJ text), in which new sites' attributes are computed.
+    held_out_draws : tuple of HeldOutRepeat
+        The repeats of the held-out check (their flows), for the held-out coverage of the flow
+        statistics in the same run; kept in memory only (not among the stored files).
+    inputs : dict
+        Input file -> SHA-256 when fitted (:func:`stale_reason`).
+    settings : dict
+        The settings as plain values when fitted.
+    """
+
+    model: str
+    method: str
+    level: float
+    attributes: tuple[str, ...]
+    training: pd.DataFrame
+    parameters: tuple[str, ...]
+    options: TransferOptions
+    first_day: pd.Timestamp
+    last_day: pd.Timestamp
+    warmup_days: int
+    initial_storage: float | None
+    snow: bool
+    fixed_params: dict[str, float]
+    error_model: ConformalErrorModel
+    coverage: pd.DataFrame
+    held_out: pd.DataFrame | None
+    notes: tuple[str, ...]
+    loo_nse: pd.Series
+    loo_observed: pd.DataFrame
+    loo_simulated: pd.DataFrame
+    area_crs: str = ""
+    held_out_draws: tuple = field(default=(), repr=False)
+    inputs: dict[str, str] = field(default_factory=dict)
+    settings: dict = field(default_factory=dict)
+
+    def context(
+        self, precip_mm: pd.DataFrame, pet_mm: pd.DataFrame, temp_c: pd.DataFrame | None
+    ) -> FoldContext:
+        """A fold context for simulating targets: their forcing over the fitted window.
+
+        Parameters
+        ----------
+        precip_mm, pet_mm, temp_c : DataFrame
+            Days x targets, mm/day and degC (``temp_c`` None without snow); they must cover
+            ``first_day`` .. ``last_day``.
+        """
+        dates = precip_mm.index
+        if len(dates) == 0 or dates[0] > self.first_day or dates[-1] < self.last_day:
+            found = f"{dates[0]:%Y-%m-%d}..{dates[-1]:%Y-%m-%d}" if len(dates) else "no day"
+            raise InputError(
+                f"the forcing of the sites covers {found}, but the fitted region simulates "
+                f"{self.first_day:%Y-%m-%d}..{self.last_day:%Y-%m-%d} (warm-up included). "
+                "Fix: give daily forcing over that whole window."
+            )
+        part = slice(self.first_day, self.last_day)
+        precip = precip_mm.loc[part]
+        days = len(precip)
+        return FoldContext(
+            model=self.model,
+            attributes=self.training[self.training_columns],
+            calibrated=self.training[list(self.parameters)],
+            precip_mm=precip,
+            pet_mm=pet_mm.loc[part],
+            temp_c=temp_c.loc[part] if self.snow else None,
+            flow_mm=pd.DataFrame(index=precip.index),
+            window=Window(0, days, self.warmup_days, np.zeros(days, bool), np.zeros(days, bool)),
+            evaluation=np.zeros(days, bool),
+            options=self.options,
+            fixed_params=dict(self.fixed_params),
+            initial_storage=self.initial_storage,
+        )
+
+    @property
+    def transforms(self) -> dict[str, str]:
+        """Parameter name -> regression transform of :attr:`parameters` (snow ones included)."""
+        return parameter_transforms(self.model, snow=self.snow, fixed=self.fixed_params)
+
+    @property
+    def training_columns(self) -> list[str]:
+        """The attribute (and coordinate) columns of ``training``."""
+        return [c for c in self.training.columns if c not in self.parameters]
+
+    def regression(self) -> RegressionTransfer:
+        """The regression of the chosen model's parameters fit on every gauged basin."""
+        transforms = self.transforms
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", InputWarning)  # reported when the run fitted it
+            return fit_transfer(
+                "regression",
+                self.training[self.training_columns],
+                self.training[list(self.parameters)],
+                transforms=transforms,
+                attributes=list(self.attributes),
+            )
+
+
+def fit_region(
+    result: RunResult, *, level: float | None = None, inputs: dict[str, str] | None = None
+) -> FittedRegion:
+    """Gather the fitted region of a finished run (calibration and leave-one-out done).
+
+    The error model of the chosen (model, method) is built from the leave-one-out residuals
+    (:func:`regional.bounds.conformal_bounds`), checked on basins held out of the whole fit and
+    widened where they fall short (:func:`regional.heldout.held_out_check`); the coverage of
+    every (model, method) is measured (:func:`regional.coverage.loo_coverage`).
+
+    Parameters
+    ----------
+    result : RunResult
+        From the pipeline, before prediction.
+    level : float, optional
+        Nominal level; default ``[prediction] level``.
+    inputs : dict, optional
+        Input file -> SHA-256, stored to tell later whether the inputs changed.
+
+    Returns
+    -------
+    FittedRegion
+    """
+    level = check_level(result.settings.prediction.level if level is None else level)
+    run = result.runs[result.chosen_model]
+    context, loo, method = run.context, run.loo, result.chosen_method
+    error_model = conformal_bounds(loo.observed, loo.simulated[method], level=level)
+    held_out, error_model, notes, draws = held_out_check(result, error_model, level)
+    coverage = with_held_out(loo_coverage(result, level=level), result, held_out)
+    dates = context.precip_mm.index
+    return FittedRegion(
+        model=result.chosen_model,
+        method=method,
+        level=level,
+        attributes=tuple(result.attributes),
+        training=context.attributes.join(context.calibrated),
+        parameters=tuple(context.calibrated.columns),
+        options=context.options,
+        first_day=dates[0],
+        last_day=dates[-1],
+        warmup_days=context.window.warmup_days,
+        initial_storage=context.initial_storage,
+        snow=context.temp_c is not None,
+        fixed_params=dict(context.fixed_params),
+        error_model=error_model,
+        coverage=coverage,
+        held_out=held_out,
+        notes=tuple(notes),
+        loo_nse=method_nse(loo, method),
+        loo_observed=loo.observed,
+        loo_simulated=loo.simulated[method],
+        area_crs=equal_area_crs(result.region.basins).srs,
+        held_out_draws=draws,
+        inputs=dict(inputs or {}),
+        settings=fit_settings(result.settings),
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# Open files and back
+
+
+def fitted_files(fitted: FittedRegion) -> tuple[bytes, dict[str, pd.DataFrame]]:
+    """The fitted region as the JSON text of ``fitted/region.json`` and Parquet tables.
+
+    Returns
+    -------
+    (meta, tables)
+        UTF-8 JSON bytes (floats written exactly: Python's shortest round-trip repr, with
+        ``Infinity`` for an unbounded class) and file name -> DataFrame (written as Parquet,
+        index kept).
+    """
+    model = fitted.error_model
+    meta = {
+        "format": FORMAT,
+        "model": fitted.model,
+        "method": fitted.method,
+        "level": fitted.level,
+        "attributes": list(fitted.attributes),
+        "parameters": list(fitted.parameters),
+        "options": plain(fitted.options),
+        "window": {
+            "first_day": f"{fitted.first_day:%Y-%m-%d}",
+            "last_day": f"{fitted.last_day:%Y-%m-%d}",
+            "warmup_days": fitted.warmup_days,
+        },
+        "initial_storage_mm": fitted.initial_storage,
+        "snow": fitted.snow,
+        "fixed_params": fitted.fixed_params,
+        "error_model": {
+            "level": model.level,
+            "offset_fraction": model.offset_fraction,
+            "edges": model.edges.tolist(),
+            "lower_q": model.lower_q.tolist(),
+            "upper_q": model.upper_q.tolist(),
+            "n_days": model.n_days.tolist(),
+            "n_basins": model.n_basins,
+            "class_levels": None if model.class_levels is None else model.levels.tolist(),
+        },
+        "held_out_attrs": None if fitted.held_out is None else plain(fitted.held_out.attrs),
+        "notes": list(fitted.notes),
+        "area_crs": fitted.area_crs,
+        "inputs": fitted.inputs,
+        "settings": fitted.settings,
+    }
+    tables = {
+        TRAINING: fitted.training,
+        LOO_OBSERVED: fitted.loo_observed,
+        LOO_SIMULATED: fitted.loo_simulated,
+        LOO_NSE: fitted.loo_nse.to_frame("nse"),
+        COVERAGE: fitted.coverage,
+    }
+    if fitted.held_out is not None:
+        held_out = fitted.held_out.copy()
+        held_out.attrs = {}  # kept in region.json
+        tables[HELD_OUT] = held_out
+    text = json.dumps(meta, indent=1, allow_nan=True)
+    return (text + "\n").encode("utf-8"), tables
+
+
+def from_files(meta: bytes, tables: dict[str, pd.DataFrame]) -> FittedRegion:
+    """Rebuild a :class:`FittedRegion` from :func:`fitted_files`' output."""
+    info = json.loads(meta.decode("utf-8"))
+    model = info["error_model"]
+    window = info["window"]
+    options = info["options"]
+    held_out = tables.get(HELD_OUT)
+    if held_out is not None:
+        held_out = held_out.copy()
+        held_out.attrs.update(_held_out_attrs(info["held_out_attrs"]))
+    return FittedRegion(
+        model=info["model"],
+        method=info["method"],
+        level=float(info["level"]),
+        attributes=tuple(info["attributes"]),
+        training=tables[TRAINING],
+        parameters=tuple(info["parameters"]),
+        options=TransferOptions(
+            methods=tuple(options["methods"]),
+            attributes=None if options["attributes"] is None else tuple(options["attributes"]),
+            n_donors=int(options["n_donors"]),
+            power=float(options["power"]),
+            combine=options["combine"],
+            donor_choices=tuple(options["donor_choices"]),
+            chosen_donors={k: int(v) for k, v in options["chosen_donors"].items()},
+        ),
+        first_day=pd.Timestamp(window["first_day"]),
+        last_day=pd.Timestamp(window["last_day"]),
+        warmup_days=int(window["warmup_days"]),
+        initial_storage=info["initial_storage_mm"],
+        snow=bool(info["snow"]),
+        fixed_params={k: float(v) for k, v in info["fixed_params"].items()},
+        error_model=ConformalErrorModel(
+            level=float(model["level"]),
+            offset_fraction=float(model["offset_fraction"]),
+            edges=np.asarray(model["edges"], dtype=float),
+            lower_q=np.asarray(model["lower_q"], dtype=float),
+            upper_q=np.asarray(model["upper_q"], dtype=float),
+            n_days=np.asarray(model["n_days"], dtype=float),
+            n_basins=int(model["n_basins"]),
+            class_levels=None
+            if model["class_levels"] is None
+            else np.asarray(model["class_levels"], dtype=float),
+        ),
+        coverage=tables[COVERAGE],
+        held_out=held_out,
+        notes=tuple(info["notes"]),
+        loo_nse=tables[LOO_NSE]["nse"],
+        loo_observed=tables[LOO_OBSERVED],
+        loo_simulated=tables[LOO_SIMULATED],
+        area_crs=info["area_crs"],
+        inputs=dict(info["inputs"]),
+        settings=info["settings"],
+    )
+
+
+def _held_out_attrs(attrs: dict) -> dict:
+    widened = {int(c): (float(old), float(new)) for c, (old, new) in attrs["widened"].items()}
+    return {**attrs, "widened": widened}
+
+
+def stale_reason(meta: bytes | None, settings: Settings, inputs: dict[str, str]) -> str | None:
+    """Why a stored fitted region cannot be reused; None when it can.
+
+    Parameters
+    ----------
+    meta : bytes or None
+        ``fitted/region.json`` of the results folder (None: absent).
+    settings : Settings
+        The settings now.
+    inputs : dict
+        Input file -> SHA-256 now.
+    """
+    if meta is None:
+        return "the results folder holds no fitted region (written by 'regional run')"
+    try:
+        info = json.loads(meta.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError):
+        return "the stored fitted region is unreadable"
+    if info.get("format") != FORMAT:
+        return f"the stored fitted region has format {info.get('format')!r}, not {FORMAT}"
+    before = info.get("inputs", {})
+    changed = sorted(
+        path for path in set(before) | set(inputs) if before.get(path) != inputs.get(path)
+    )
+    if changed:
+        return f"input changed since the region was fitted: {', '.join(changed)}"
+    now = fit_settings(settings)
+    before = info.get("settings", {})
+    changed = [name for name in now if before.get(name) != now[name]]
+    if changed:
+        listed = ", ".join(f"[{name}]" for name in changed)
+        return f"settings changed since the region was fitted: {listed} of {settings.path}"
+    return None
+
+
+FIT_SECTIONS = ("basins", "overlays", "raster", "series", "model", "transfer", "prediction")
+"""Sections of the settings a fitted region depends on (not compute, output, report)."""
+
+
+def fit_settings(settings: Settings) -> dict:
+    """The settings a fitted region depends on, as plain values."""
+    return {name: plain(getattr(settings, name)) for name in FIT_SECTIONS}
+
+
+def plain(value):
+    """Dataclasses, paths, dates, tuples and numpy numbers -> JSON-ready values."""
+    if hasattr(value, "__dataclass_fields__"):
+        return {name: plain(getattr(value, name)) for name in value.__dataclass_fields__}
+    if isinstance(value, dict):
+        return {str(k): plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [plain(v) for v in value]
+    if isinstance(value, pd.Timestamp):
+        return f"{value:%Y-%m-%d}"
+    if isinstance(value, np.generic):
+        return value.item()
+    if value is None or isinstance(value, bool | int | float | str):
+        return value
+    return str(value)
