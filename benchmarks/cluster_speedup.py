@@ -10,8 +10,10 @@ a fresh child process, one after the other on this machine:
 
 Printed: the whole-chain speed-up and, separately, the speed-up of the distributed stages
 (calibration + leave-one-out); the bytes the client scattered to the workers per stage and the
-bytes of results gathered back, per chunk. Also the machine's load average before each run: the
-machine may be shared, so read the ratios with it.
+bytes of results gathered back, per chunk. Before each run, the load average and how much more
+work two processes did than one in a short spin (about 2 on an idle 2-core machine, about 1
+when other work keeps the cores busy): no cluster can gain more than that, so read the ratios
+with it.
 
 Run:  python benchmarks/cluster_speedup.py [--basins 60] [--years 10]
 Every value of the synthetic region is invented.
@@ -72,6 +74,26 @@ def child(folder: str, workers: int) -> None:
     print(json.dumps({"seconds": seconds, "timings": result.timings, "shipping": shipping}))
 
 
+def _spin(_: int = 0) -> float:
+    start = time.perf_counter()
+    total = 0
+    for i in range(10_000_000):
+        total += i
+    return time.perf_counter() - start
+
+
+def parallel_capacity() -> float:
+    """Work done per second by two processes at once over one alone: about 2 on an idle
+    2-core machine, about 1 when other work already keeps the cores busy."""
+    from concurrent.futures import ProcessPoolExecutor
+
+    with ProcessPoolExecutor(2) as pool:
+        list(pool.map(_spin, [0, 0]))  # start both processes first
+        alone = pool.submit(_spin).result()
+        together = max(pool.map(_spin, [0, 0]))
+    return 2 * alone / together
+
+
 def build(folder: Path, n_basins: int, years: int) -> None:
     """The invented region with GR4J, its series read from a series store."""
     from regional.region import convert_series
@@ -86,10 +108,12 @@ def build(folder: Path, n_basins: int, years: int) -> None:
 
 def measure(folder: Path, workers: int) -> dict:
     load = os.getloadavg()[0]
+    capacity = parallel_capacity()
     command = [sys.executable, __file__, "--child", str(folder), str(workers)]
     output = subprocess.run(command, check=True, capture_output=True, text=True).stdout
     row = json.loads(output.strip().splitlines()[-1])
     row["load_before"] = load
+    row["capacity"] = capacity
     return row
 
 
@@ -115,8 +139,9 @@ def main() -> None:
     for name, row in (("in-process", local), ("2-worker cluster", cluster)):
         parts = ", ".join(f"{k} {v:.1f} s" for k, v in row["timings"].items())
         print(
-            f"  {name:17s} {row['seconds']:7.1f} s (load average before: "
-            f"{row['load_before']:.1f})  [{parts}]"
+            f"  {name:17s} {row['seconds']:7.1f} s (before it: load average "
+            f"{row['load_before']:.1f}, two processes did {row['capacity']:.2f} x the work of "
+            f"one)  [{parts}]"
         )
     print(
         f"whole chain speed-up: {local['seconds'] / cluster['seconds']:.2f} x   "

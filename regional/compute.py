@@ -79,6 +79,19 @@ def warm_up() -> None:
         simulate(name, forcing, forcing, params, temp=forcing)
 
 
+TASKS_PER_WORKER = 4
+"""Least number of tasks per worker a stage aims at, so that no worker idles at the end."""
+
+
+def chunk_size(n_items: int, default: int, *, n_workers: int) -> int:
+    """Items per task: ``default``, smaller when that leaves fewer than
+    :data:`TASKS_PER_WORKER` tasks per worker (a few expensive GR4J calibrations must not all
+    land on one worker while the other waits)."""
+    if n_workers <= 1:
+        return default
+    return max(1, min(default, -(-n_items // (TASKS_PER_WORKER * n_workers))))
+
+
 def chunked(items: Sequence[str], size: int) -> list[list[str]]:
     """Cut ``items`` into consecutive chunks of at most ``size`` (order kept)."""
     if size < 1:
@@ -90,6 +103,7 @@ class InProcessExecutor:
     """Run every chunk here, one after another (the default)."""
 
     name = "in-process"
+    n_workers = 1
 
     def map(
         self,
@@ -191,6 +205,11 @@ class DaskExecutor:
             if progress is not None:
                 progress(done, total)
         return self.client.gather(futures)
+
+    @property
+    def n_workers(self) -> int:
+        """Workers connected to the scheduler now (at least 1)."""
+        return max(1, len(self.client.scheduler_info().get("workers", {})))
 
     def close(self) -> None:
         """Close the client, and the local cluster when this executor started it."""

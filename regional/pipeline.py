@@ -17,7 +17,7 @@ from pathlib import Path
 import pandas as pd
 
 from regional.calibrate import Window, calibrate, scoring_window
-from regional.compute import chunked, make_executor
+from regional.compute import chunk_size, chunked, make_executor
 from regional.config import Settings, load_settings
 from regional.crossval import (
     CALIBRATED,
@@ -122,7 +122,7 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
         timings[f"calibration_{model}"] = time.perf_counter() - clock
         clock = time.perf_counter()
         context = _fold_context(model, region, settings, window, calibration, attributes, excluded)
-        chunk = _chunk_basins(settings, LOO_CHUNK)
+        chunk = _chunk_basins(settings, LOO_CHUNK, n_basins=len(calibration), executor=executor)
         part = region.dates[window.start : window.stop]
         reader = _store_reader(region, settings, executor, part)
         counts = choose_donor_counts(
@@ -175,9 +175,12 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
     return result
 
 
-def _chunk_basins(settings: Settings, default: int) -> int:
-    """Basins per task: ``[compute] chunk_basins`` when set, else the stage's default."""
-    return settings.compute.chunk_basins or default
+def _chunk_basins(settings: Settings, default: int, *, n_basins: int, executor) -> int:
+    """Basins per task: ``[compute] chunk_basins`` when set, else the stage's default, made
+    smaller on a cluster so that every worker gets several tasks (:func:`chunk_size`)."""
+    if settings.compute.chunk_basins:
+        return settings.compute.chunk_basins
+    return chunk_size(n_basins, default, n_workers=getattr(executor, "n_workers", 1))
 
 
 def _with_statistics(result: RunResult, timings: dict[str, float]) -> RunResult:
@@ -283,7 +286,10 @@ def _calibrate(model, region, settings, window: Window, executor, progress) -> p
         settings=settings,
         fixed=fixed_parameters(settings, snow=temp is not None),
     )
-    chunks = chunked(list(region.gauged), _chunk_basins(settings, CALIBRATION_CHUNK))
+    size = _chunk_basins(
+        settings, CALIBRATION_CHUNK, n_basins=len(region.gauged), executor=executor
+    )
+    chunks = chunked(list(region.gauged), size)
     stage = _stage(progress, f"calibration {model}")
     reader = _store_reader(region, settings, executor, region.dates)
     task, shared = shipped(_calibrate_chunk, job, reader)

@@ -2,7 +2,7 @@
 
 import pytest
 
-from regional.compute import InProcessExecutor, chunked, make_executor
+from regional.compute import InProcessExecutor, chunk_size, chunked, make_executor
 
 
 def _square_all(chunk, context):
@@ -13,6 +13,15 @@ def test_chunked_keeps_order_and_sizes():
     assert chunked(list("abcde"), 2) == [["a", "b"], ["c", "d"], ["e"]]
     with pytest.raises(ValueError, match="chunk size must be >= 1"):
         chunked(["a"], 0)
+
+
+def test_chunk_size_leaves_every_worker_several_tasks():
+    # in process: the stage's default; on 2 workers, 45 basins make at least 8 tasks
+    assert chunk_size(45, 16, n_workers=1) == 16
+    size = chunk_size(45, 16, n_workers=2)
+    assert size == 6 and len(chunked(list(range(45)), size)) >= 4 * 2
+    assert chunk_size(1000, 16, n_workers=2) == 16
+    assert chunk_size(1, 16, n_workers=8) == 1
 
 
 def test_in_process_map_reports_progress_in_basins():
