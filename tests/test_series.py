@@ -141,3 +141,21 @@ def test_a_plain_parquet_file_is_not_a_store(tmp_path, region_parts):
     folder = write_region(tmp_path / "r", region_parts)
     dates = load_region(folder).dates
     assert series.store_reader(load_settings(folder), dates, with_temp=False) is None
+
+
+def test_a_store_of_flow_in_m3s_gives_flow_in_mm_on_the_worker(tmp_path, region_parts):
+    # Two routes to mm/day: the region's own conversion when read (region.flow_mm) and the
+    # reader's, which converts on the worker with the areas it carries.
+    from regional.config import load_settings
+
+    series_keys = region_parts.config["series"]
+    series_keys["flow_m3s"] = series_keys.pop("flow")
+    _, from_store, _ = _converted(tmp_path, region_parts)
+    region = load_region(from_store)
+    settings = load_settings(from_store)
+    reader = series.store_reader(
+        settings, region.dates, with_temp=False, area_km2=region.attributes["area_km2"]
+    )
+    flow = reader.read(["B01", "B03"]).tables["flow_mm"]
+    assert "temp_c" not in reader.read(["B01"]).tables
+    np.testing.assert_allclose(flow, region.flow_mm[["B01", "B03"]], rtol=1e-6)
