@@ -1,16 +1,19 @@
-"""Whole-chain timing on a synthetic region of N basins x 20 years, measured side by side.
+"""Whole-chain time and memory on a synthetic region of N basins x 20 years, side by side.
 
-Each configuration runs in a fresh child process (same machine, same moment) that builds the
-region folder (gauge points with area and attributes, daily series in Parquet), runs
+Each configuration runs in a fresh child process (same machine, same moment); a separate
+process first writes the region folder (gauge points with area and attributes, daily series in
+Parquet, converted to a series store), so the run's memory is its own. The child runs
 ``regional.pipeline.run`` and writes the outputs (figures and report included), then reports
-its own wall time and peak memory. Printed:
+its wall time and resident memory before, at the peak of, and after each stage. Printed:
 
-- time per basin at each N, and the scaling ratio time(N_large) / time(N_small)
-  (4.4 for 500 -> 2000 means close to linear: 4 x the basins);
-- the speed-up of a local Dask cluster of 2 worker processes over the in-process run;
-- peak resident memory of the in-process runs (the Dask workers' memory is their own).
+- time per basin at each N, the scaling ratio time(N_2) / time(N_1) (4.4 for 500 -> 2000 means
+  close to linear: 4 x the basins) and time per basin at the largest N over the smallest;
+- peak memory at each N, per stage, and the marginal peak memory per extra basin (N_1 -> N_2);
+- the speed-up of a local Dask cluster of 2 worker processes over the in-process run, and the
+  peak memory of the client and of each worker.
 
-Run:  python benchmarks/large_region.py [--sizes 500 2000] [--years 20] [--dask-size 500]
+Run:  python benchmarks/large_region.py [--sizes 500 2000 10000] [--years 20] [--dask-size 500]
+(``--dask-size 0`` skips the cluster run.)
 Every value of the synthetic region is invented.
 """
 
@@ -193,8 +196,42 @@ def _chunk_series(rng, ids, dates, season, storm, *, slope, sand, wetness):
 
 
 def build(folder: str, n_basins: int, years: int) -> None:
-    """Write the region in this (separate) process, so the run's memory is its own."""
+    """Write the region in this (separate) process, so the run's memory is its own; its series
+    are then read from a series store (``regional convert``), as a cluster would read them."""
+    from regional.region import convert_series
+
     make_region(Path(folder), n_basins, years)
+    convert_series(Path(folder), Path(folder) / "store.parquet")
+    toml = Path(folder) / "region.toml"
+    text = toml.read_text().replace('path = "series.parquet"', 'path = "store.parquet"')
+    toml.write_text(text)
+    (Path(folder) / "series.parquet").unlink()
+
+
+def _peak_mb() -> float:
+    import resource
+
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def _local_cluster(workers: int):
+    """A local cluster of ``workers`` processes started here (so their memory can be read)."""
+    import logging
+
+    import dask
+    from distributed import Client, LocalCluster
+
+    from regional.compute import WORKER_ENVIRONMENT
+
+    with dask.config.set({"distributed.nanny.pre-spawn-environ": WORKER_ENVIRONMENT}):
+        cluster = LocalCluster(
+            n_workers=workers,
+            threads_per_worker=1,
+            processes=True,
+            dashboard_address=None,
+            silence_logs=logging.ERROR,
+        )
+    return cluster, Client(cluster)
 
 
 def child(n_basins: int, years: int, workers: int) -> None:
@@ -210,16 +247,23 @@ def child(n_basins: int, years: int, workers: int) -> None:
     keep_freed_memory()  # as the command line does
     stages: dict = {}
     _watch_stages(stages)
+    worker_mb: list[float] = []
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         command = [sys.executable, __file__, "--build", tmp, str(n_basins), str(years)]
         subprocess.run(command, check=True)
+        cluster, client = _local_cluster(workers) if workers else (None, None)
         gc.collect()
         _reset_peak()
         start = time.perf_counter()
-        result = run(folder, workers=workers or None)
+        address = cluster.scheduler_address if cluster else None
+        result = run(folder, scheduler=address)
         _watched(write_outputs, "write_outputs", stages)(result, folder / "results")
         seconds = time.perf_counter() - start
+        if cluster is not None:
+            worker_mb = list(client.run(_peak_mb).values())
+            client.close()
+            cluster.close()
     peak_mb = max([_memory_kb("VmHWM") / 1024] + [stage["peak"] for stage in stages.values()])
     print(
         json.dumps(
@@ -228,6 +272,7 @@ def child(n_basins: int, years: int, workers: int) -> None:
                 "workers": workers,
                 "seconds": seconds,
                 "peak_mb": peak_mb,
+                "worker_peak_mb": worker_mb,
                 "timings": result.timings,
                 "stages": stages,
             }
@@ -251,43 +296,16 @@ def _print_cluster(size: int, local: dict, clustered: dict) -> None:
     print(
         f"  of which the distributed stages (calibration + leave-one-out): {spread[0]:.1f} s -> "
         f"{spread[1]:.1f} s, {spread[0] / spread[1]:.2f} x; the rest (reading, prediction, "
-        "figures, report, starting the workers) runs in the client"
+        "figures, report) runs in the client"
     )
-
-
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--sizes", type=int, nargs=2, default=[500, 2000])
-    parser.add_argument("--years", type=int, default=20)
-    parser.add_argument("--dask-size", type=int, default=500)
-    parser.add_argument("--child", type=int, nargs=3, help=argparse.SUPPRESS)
-    parser.add_argument("--build", nargs=3, help=argparse.SUPPRESS)
-    args = parser.parse_args()
-    if args.build:
-        build(args.build[0], int(args.build[1]), int(args.build[2]))
-        return
-    if args.child:
-        child(*args.child)
-        return
-    small, large = (measure(n, args.years) for n in args.sizes)
-    clustered = measure(args.dask_size, args.years, workers=2) if args.dask_size else None
-    local = small if args.dask_size in (0, args.sizes[0]) else measure(args.dask_size, args.years)
-    print(f"whole chain, {args.years} years of daily data (region built outside the timing)")
-    for row in (small, large):
-        stages = ", ".join(f"{k} {v:.1f} s" for k, v in row["timings"].items())
-        print(
-            f"  N = {row['n']:5d}: {row['seconds']:7.1f} s  "
-            f"({row['seconds'] / row['n'] * 1000:.0f} ms/basin; peak {row['peak_mb']:.0f} MB)"
-            f"  [{stages}]"
-        )
-    ratio = large["seconds"] / small["seconds"]
+    workers = ", ".join(f"{mb:.0f} MB" for mb in clustered["worker_peak_mb"])
     print(
-        f"scaling time({large['n']}) / time({small['n']}): {ratio:.2f}"
-        f"   (target <= 4.4 for 500 -> 2000)"
+        f"  peak memory on the cluster: client {clustered['peak_mb']:.0f} MB (the scheduler "
+        f"runs in it too; target <= 1024 MB at 10,000 basins), workers {workers}"
     )
-    if clustered is not None:
-        _print_cluster(args.dask_size, local, clustered)
-    print(f"peak memory at N = {large['n']}: {large['peak_mb']:.0f} MB   (target <= 4096 MB)")
+
+
+def _print_stages(small: dict, large: dict) -> None:
     print("resident memory per stage, MB (before -> peak during -> after):")
     for name in small["stages"]:
         cells = [
@@ -301,6 +319,56 @@ def main() -> None:
         print(f"  {name:20s} {'   '.join(cells)}   ({marginal:.3f} MB per extra basin at peak)")
     extra = (large["peak_mb"] - small["peak_mb"]) / (large["n"] - small["n"])
     print(f"marginal peak memory: {extra:.3f} MB per extra basin   (target <= 0.3)")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--sizes", type=int, nargs="+", default=[500, 2000])
+    parser.add_argument("--years", type=int, default=20)
+    parser.add_argument("--dask-size", type=int, default=500)
+    parser.add_argument("--child", type=int, nargs=3, help=argparse.SUPPRESS)
+    parser.add_argument("--build", nargs=3, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.build:
+        build(args.build[0], int(args.build[1]), int(args.build[2]))
+        return
+    if args.child:
+        child(*args.child)
+        return
+    if len(args.sizes) < 2:
+        parser.error("--sizes needs at least two region sizes")
+    rows = [measure(n, args.years) for n in args.sizes]
+    clustered = measure(args.dask_size, args.years, workers=2) if args.dask_size else None
+    by_size = {row["n"]: row for row in rows}
+    local = by_size.get(args.dask_size) or (
+        measure(args.dask_size, args.years) if clustered else None
+    )
+    print(f"whole chain, {args.years} years of daily data (region built outside the timing)")
+    for row in rows:
+        stages = ", ".join(f"{k} {v:.1f} s" for k, v in row["timings"].items())
+        print(
+            f"  N = {row['n']:5d}: {row['seconds']:7.1f} s  "
+            f"({row['seconds'] / row['n'] * 1000:.0f} ms/basin; peak {row['peak_mb']:.0f} MB)"
+            f"  [{stages}]"
+        )
+    small, large = rows[0], rows[1]
+    ratio = large["seconds"] / small["seconds"]
+    print(
+        f"scaling time({large['n']}) / time({small['n']}): {ratio:.2f}"
+        f"   (target <= 4.4 for 500 -> 2000)"
+    )
+    per_basin = (rows[-1]["seconds"] / rows[-1]["n"]) / (small["seconds"] / small["n"])
+    print(
+        f"time per basin at N = {rows[-1]['n']} / at N = {small['n']}: {per_basin:.2f}"
+        "   (target <= 1.2 for 10,000 against 500)"
+    )
+    if clustered is not None:
+        _print_cluster(args.dask_size, local, clustered)
+    print(
+        f"peak memory at N = {rows[-1]['n']}: {rows[-1]['peak_mb']:.0f} MB   (target <= 4096 MB "
+        "at 10,000 basins)"
+    )
+    _print_stages(small, large)
 
 
 if __name__ == "__main__":
