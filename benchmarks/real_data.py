@@ -73,6 +73,16 @@ def main() -> None:
         print(counts.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
     if result.prediction is not None:
         print(result.prediction.coverage.to_string(index=False))
+    else:  # every basin gauged: the held-out check of the bounds through the fitted region
+        from regional.fitted import fit_region
+
+        fitted = fit_region(result)
+        if fitted.held_out is not None:
+            print(
+                f"held-out coverage of the {fitted.level:.0%} bounds ({fitted.model}, "
+                f"{fitted.method}; {fitted.held_out.attrs.get('repeats')} repeats):"
+            )
+            print(fitted.held_out.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
     if result.statistics is not None:
         print("flow statistics in leave-one-out (chosen route per statistic):")
         summary = result.statistics.summary
