@@ -25,6 +25,8 @@ import pandas as pd
 from regional import transfer
 from regional.errors import InputError
 from regional.models import model_names
+from regional.models.snow import MELT_THRESHOLD
+from regional.models.snow import PARAMETERS as SNOW_PARAMETERS
 
 CONFIG_NAME = "region.toml"
 
@@ -482,10 +484,8 @@ SECTIONS: dict[str, dict[str, _Key]] = {
         "initial_storage_mm": _Key(_number(0.0)),
         "calibration": _Key(_period),
         "validation": _Key(_period),
-        # the snow store's bounds (regional.models.snow)
-        "snow_threshold_c": _Key(_number(-3.0, 3.0)),
-        "melt_threshold_c": _Key(_number(-3.0, 4.0)),
-        "melt_factor_mm_per_degc_day": _Key(_number(0.5, 10.0)),
+        # held snow values lie within the snow store's own bounds (regional.models.snow)
+        **{p.name: _Key(_number(p.lower, p.upper)) for p in (*SNOW_PARAMETERS, MELT_THRESHOLD)},
         "parameters": _Key(_path),
     },
     "transfer": {
