@@ -230,12 +230,6 @@ CHECKS: dict[str, Check] = {
             "correct the id (ids are compared as text) or delete the row",
         ),
         Check(
-            "parameters_without_flow",
-            "a basin with user parameters must have observed flow in the calibration period "
-            "(parameters of basins without flow cannot serve as donors yet)",
-            "delete the row, or add the basin's observed flow",
-        ),
-        Check(
             "parameters_non_numeric",
             "parameter values must be numbers (decimal point '.')",
             "correct the value",
@@ -590,7 +584,6 @@ def check_parameter_table(
     source: str,
     bounds: Mapping[str, tuple[float, float, str]],
     basin_ids: Sequence[str],
-    gauged: Sequence[str],
 ) -> pd.DataFrame:
     """Check the user's parameter table read by :func:`regional.io.read_parameter_table`.
 
@@ -602,8 +595,9 @@ def check_parameter_table(
         The file, for messages.
     bounds : mapping
         Parameter name -> (lower, upper, model name) of every model in ``[model] name``.
-    basin_ids, gauged : sequence of str
-        The basins of the basins layer, and those with observed flow in the calibration period.
+    basin_ids : sequence of str
+        The basins of the basins layer (with or without observed flow: a basin without flow
+        serves as a donor only).
 
     Returns
     -------
@@ -613,9 +607,8 @@ def check_parameter_table(
     Raises
     ------
     InputError
-        A missing or unknown column, a missing, repeated or unknown basin id, a basin without
-        observed flow, a non-numeric, missing or out-of-bounds value: naming the file, column,
-        basin and line (or row).
+        A missing or unknown column, a missing, repeated or unknown basin id, a non-numeric,
+        missing or out-of-bounds value: naming the file, column, basin and line (or row).
     """
     columns = [c for c in raw.columns if c != "basin_id"]
     missing = [f"'{name}' (model '{bounds[name][2]}')" for name in bounds if name not in columns]
@@ -637,12 +630,12 @@ def check_parameter_table(
         f"{source}, column 'basin_id'",
         _grouped_rows(ids[repeated], rows[repeated]),
     )
-    for name, members in (
-        ("parameters_unknown_id", basin_ids),
-        ("parameters_without_flow", gauged),
-    ):
-        outside = (~ids.isin(list(members))).to_numpy()
-        _fail_if(name, f"{source}, column 'basin_id'", _basin_rows(ids[outside], rows[outside]))
+    outside = (~ids.isin(list(basin_ids))).to_numpy()
+    _fail_if(
+        "parameters_unknown_id",
+        f"{source}, column 'basin_id'",
+        _basin_rows(ids[outside], rows[outside]),
+    )
     values = {}
     for name, (lower, upper, _) in bounds.items():
         where = f"{source}, column '{name}'"

@@ -92,6 +92,8 @@ class FoldContext:
 
     Forcing and flow hold only the simulated window (``window.start:window.stop``);
     ``fixed_params`` (snow parameters set in the config) is empty when no snow store runs.
+    ``donor_only`` names basins of ``calibrated`` (the user's parameters, no observed flow)
+    that serve as donors in every fold but are never a target (:attr:`targets`).
     """
 
     model: str
@@ -107,6 +109,13 @@ class FoldContext:
     excluded: Mapping[str, frozenset[str]] = field(default_factory=dict)
     fixed_params: Mapping[str, float] = field(default_factory=dict)
     initial_storage: float | None = None
+    donor_only: frozenset[str] = frozenset()
+
+    @property
+    def targets(self) -> list[str]:
+        """The basins scored in leave-one-out: every basin of ``calibrated`` with observed
+        flow (not in ``donor_only``), in its order."""
+        return [str(b) for b in self.calibrated.index if b not in self.donor_only]
 
     @property
     def transforms(self) -> dict[str, str]:
@@ -180,8 +189,7 @@ def leave_one_out(
     """
     _check_context(context)
     executor = executor or InProcessExecutor()
-    targets = [str(b) for b in context.calibrated.index]
-    chunks = chunked(targets, chunk_basins)
+    chunks = chunked(context.targets, chunk_basins)
     task, shared = shipped(run_folds, context, reader)
     results = executor.map(task, chunks, shared, progress=progress)
     folds = [fold for chunk in results for fold in chunk]
@@ -200,9 +208,10 @@ def _check_context(context: FoldContext) -> None:
     if not context.attributes.index.equals(gauged):
         raise ValueError("attributes and calibrated parameters must share one index")
     needed = 3
-    if len(gauged) < needed:
+    if len(context.targets) < needed:
         raise InputError(
-            f"leave-one-out needs at least {needed} gauged basins; found {len(gauged)}: "
+            f"leave-one-out needs at least {needed} gauged basins; found "
+            f"{len(context.targets)}: "
             "add gauged basins or widen the calibration period"
         )
     if not context.evaluation.any():
@@ -522,8 +531,7 @@ def choose_donor_counts(
         return None
     _check_context(context)
     executor = executor or InProcessExecutor()
-    targets = [str(b) for b in context.calibrated.index]
-    chunks = chunked(targets, chunk_basins)
+    chunks = chunked(context.targets, chunk_basins)
     task, shared = shipped(run_count_folds, context, reader)
     results = executor.map(task, chunks, shared, progress=progress)
     scores = pd.DataFrame(

@@ -126,8 +126,9 @@ class _HeldOutFolds:
 
     def repeat(self, held: tuple[str, ...], training: list[str]) -> HeldOutRepeat:
         start_simulated, start_reused = self.simulated, self.reused
-        training_flow = self._flows(training, pool=training)
-        held_flow = self._flows(list(held), pool=training)
+        pool = sorted([*training, *self.context.donor_only])  # donor-only basins always donate
+        training_flow = self._flows(training, pool=pool)
+        held_flow = self._flows(list(held), pool=pool)
         return HeldOutRepeat(
             held_out=held,
             training_flow=training_flow,

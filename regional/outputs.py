@@ -306,7 +306,7 @@ def prediction_layer(
 
 def _gauged_layer(result: RunResult) -> gpd.GeoDataFrame:
     region = result.region
-    gauged = list(region.gauged)
+    gauged = [*region.gauged, *region.donor_only]  # donor-only rows: no scores
     several = len(result.runs) > 1
     table = with_basin_columns(region.attributes.loc[gauged, list(result.attributes)], region)
     for model, run in result.runs.items():
@@ -367,11 +367,16 @@ def _stage_manifest(result: RunResult) -> dict[str, Any]:
 
 
 def _user_parameters(result: RunResult) -> dict[str, Any] | None:
-    """The user's parameter table and the gauged basins whose parameters came from it."""
+    """The user's parameter table, the gauged basins whose parameters came from it, and the
+    basins without flow that serve as donors only."""
     table = result.settings.model.parameters
     if table is None:
         return None
-    return {"table": str(table), "basins": list(result.region.user_parameter_basins)}
+    return {
+        "table": str(table),
+        "basins": list(result.region.user_parameter_basins),
+        "donor_only": list(result.region.donor_only),
+    }
 
 
 def _plain(value: Any) -> Any:

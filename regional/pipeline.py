@@ -106,16 +106,31 @@ def run(
 
 
 def _user_parameter_notes(region: Region) -> list[str]:
-    given = region.user_parameter_basins
-    if not given:
-        return []
-    shown = ", ".join(given[:10]) + (f" and {len(given) - 10} more" if len(given) > 10 else "")
-    return [
-        f"parameters of {len(given)} of {len(region.gauged)} gauged basins come from the "
-        f"user's table {region.settings.model.parameters} ([model] parameters), not from "
-        f"calibration: {shown}; their own-calibration scores are the scores of those "
-        "parameters ('parameters_from' in calibration.csv)"
-    ]
+    given, donors = region.user_parameter_basins, region.donor_only
+    notes = []
+    if given:
+        notes.append(
+            f"parameters of {len(given)} of {len(region.gauged)} gauged basins come from the "
+            f"user's table {region.settings.model.parameters} ([model] parameters), not from "
+            f"calibration: {_shown(given)}; their own-calibration scores are the scores of "
+            "those parameters ('parameters_from' in calibration.csv)"
+        )
+    if donors:
+        notes.append(
+            f"{len(donors)} basins have parameters in the user's table "
+            f"{region.settings.model.parameters} but no observed flow in the calibration "
+            f"period: {_shown(donors)}; they serve as donors of parameter transfer "
+            "(regression rows, similarity and proximity donors) in leave-one-out, prediction "
+            "and screening, but are not scored, never a leave-one-out target, not in the "
+            "error model of the bounds and not estimated ('parameters_from' = user with "
+            "empty scores in calibration.csv)"
+        )
+    return notes
+
+
+def _shown(basins: tuple[str, ...]) -> str:
+    more = f" and {len(basins) - 10} more" if len(basins) > 10 else ""
+    return ", ".join(basins[:10]) + more
 
 
 def _with(result: RunResult, **changes) -> RunResult:
@@ -330,7 +345,18 @@ def _calibrate(model, region, settings, window: Window, executor, progress) -> p
         own = region.parameters.loc[basin, names].to_dict()
         scored = _calibrate_chunk([basin], replace(job, fixed={**job.fixed, **own}))
         parts.append(scored.assign(parameters_from="user"))
-    return pd.concat(parts).loc[list(region.gauged)]
+    table = pd.concat(parts).loc[list(region.gauged)]
+    if not region.donor_only:
+        return table
+    return pd.concat([table, _donor_rows(region, names, job.fixed)])
+
+
+def _donor_rows(region: Region, names: list[str], fixed: dict[str, float]) -> pd.DataFrame:
+    """Calibration rows of the donor-only basins: the user's parameters (and the snow values
+    held in the config), no score (no observed flow), ``parameters_from`` = user."""
+    rows = region.parameters.loc[list(region.donor_only), names].assign(**fixed)
+    rows.index.name = "basin_id"
+    return rows.assign(parameters_from="user")
 
 
 def _store_reader(region: Region, settings: Settings, executor, dates) -> StoreReader | None:
@@ -364,6 +390,7 @@ def _fold_context(model, region, settings, window, calibration, attributes, excl
         excluded={b: d for b, d in excluded.items() if b in set(gauged)},
         fixed_params=fixed,
         initial_storage=settings.model.initial_storage_mm,
+        donor_only=frozenset(region.donor_only),
     )
 
 

@@ -62,7 +62,8 @@ class Region:
     gauged, ungauged : tuple of str
         Basins with / without usable observed flow in the calibration period, in basin order.
         A basin whose observed flow is constant over the calibration or validation period is
-        ungauged (listed in ``constant_flow``).
+        ungauged (listed in ``constant_flow``). A basin without usable flow whose parameters
+        the user gave is neither: it is a donor only (:attr:`donor_only`).
     is_point : bool
         Basins were given as points (outlets) carrying their area.
     notes : tuple of str
@@ -72,11 +73,12 @@ class Region:
     constant_flow : tuple of str
         Basins with observed flow that is one repeated value (e.g. all zero) over the
         calibration or validation period: they can be neither calibrated nor scored, so they
-        are treated as ungauged and never serve as donors.
+        are treated as ungauged and never serve as donors (unless the user gave their
+        parameters: then they are donors only, see :attr:`donor_only`).
     parameters : DataFrame or None
-        The user's calibrated parameters (``[model] parameters``), indexed by ``basin_id``
-        (gauged basins), one column per parameter of every model in ``[model] name``; these
-        basins are not calibrated. None when the config names no table.
+        The user's calibrated parameters (``[model] parameters``), indexed by ``basin_id``,
+        one column per parameter of every model in ``[model] name``; these basins are not
+        calibrated. None when the config names no table.
     """
 
     settings: Settings
@@ -102,6 +104,16 @@ class Region:
             return ()
         given = set(self.parameters.index)
         return tuple(basin for basin in self.gauged if basin in given)
+
+    @property
+    def donor_only(self) -> tuple[str, ...]:
+        """Basins whose parameters the user gave but which have no usable observed flow, in
+        basin order: they serve as donors of parameter transfer (training rows, donor
+        neighbours) but are not scored, never a leave-one-out target and not estimated."""
+        if self.parameters is None:
+            return ()
+        given, gauged = set(self.parameters.index), set(self.gauged)
+        return tuple(b for b in self.basins.index if b in given and b not in gauged)
 
     @property
     def calibration(self) -> tuple[pd.Timestamp, pd.Timestamp]:
@@ -263,9 +275,10 @@ def _build(settings: Settings) -> Region:
     )
     _check_attribute_choice(settings, attributes.table)
     _check_transfer_attributes(settings, attributes.table, basins, tables["precip"])
-    _check_candidates(settings, basins.index, gauged)
-    parameters = _user_parameters(settings, basins.index, gauged)
-    ungauged = tuple(basin for basin in basins.index if basin not in set(gauged))
+    parameters = _user_parameters(settings, basins.index, gauged, temp=tables.get("temp"))
+    known = set(gauged) | (set() if parameters is None else set(parameters.index))
+    _check_candidates(settings, basins.index, gauged, known=known)
+    ungauged = tuple(basin for basin in basins.index if basin not in known)
     return Region(
         settings=settings,
         basins=basins,
@@ -286,7 +299,11 @@ def _build(settings: Settings) -> Region:
 
 
 def _user_parameters(
-    settings: Settings, basin_ids: pd.Index, gauged: tuple[str, ...]
+    settings: Settings,
+    basin_ids: pd.Index,
+    gauged: tuple[str, ...],
+    *,
+    temp: pd.DataFrame | None,
 ) -> pd.DataFrame | None:
     """The user's parameter table, checked against the models' parameters and bounds."""
     path = settings.model.parameters
@@ -297,13 +314,33 @@ def _user_parameters(
         for name in settings.model.names
         for parameter in get_model(name).parameters
     }
-    return checks.check_parameter_table(
+    table = checks.check_parameter_table(
         io.read_parameter_table(path),
         source=f"parameter table {path}",
         bounds=bounds,
         basin_ids=list(basin_ids),
-        gauged=list(gauged),
     )
+    _check_donor_snow(settings, [b for b in table.index if b not in set(gauged)], temp=temp)
+    return table
+
+
+def _check_donor_snow(settings: Settings, donors: list[str], *, temp: pd.DataFrame | None) -> None:
+    """Basins without flow cannot calibrate snow parameters: the config must hold them."""
+    model = settings.model
+    if not donors or not model.use_snow(has_temperature=temp is not None):
+        return
+    held = {"snow_threshold_c": model.snow_threshold_c}
+    held["melt_factor_mm_per_degc_day"] = model.melt_factor_mm_per_degc_day
+    missing = [name for name, value in held.items() if value is None]
+    if missing:
+        shown = ", ".join(f"'{b}'" for b in donors[:5]) + (" ..." if len(donors) > 5 else "")
+        raise InputError(
+            f"parameter table {model.parameters} ([model] parameters): basins {shown} have no "
+            "observed flow in the calibration period, so the snow store's parameters "
+            f"({', '.join(missing)}) cannot be calibrated there, and the table holds none. "
+            f"Fix: set {' and '.join(missing)} in [model] of {settings.path}, give those "
+            "basins' observed flow, or delete their rows."
+        )
 
 
 def _basins(settings: Settings) -> tuple[gpd.GeoDataFrame, bool]:
@@ -572,14 +609,19 @@ def _attribute_origin(
     return f"the computation of '{name}' by regional (docs/attributes.md)"
 
 
-def _check_candidates(settings: Settings, basin_ids: pd.Index, gauged: tuple[str, ...]) -> None:
+def _check_candidates(
+    settings: Settings, basin_ids: pd.Index, gauged: tuple[str, ...], *, known: set[str]
+) -> None:
     candidates = settings.screening.candidates
     if candidates is None:
         return
     unknown = [basin for basin in candidates if basin not in basin_ids]
     already = [basin for basin in candidates if basin in set(gauged)]
-    if unknown or already:
+    given = [basin for basin in candidates if basin in known and basin not in set(gauged)]
+    if unknown or already or given:
         problem = f"unknown basin ids {unknown}" if unknown else f"basins already gauged {already}"
+        if given and not (unknown or already):
+            problem = f"basins whose parameters the user gave ([model] parameters) {given}"
         raise InputError(
             f"key 'candidates' in [screening] of {settings.path}: candidates must be ungauged "
             f"basins of the basins layer; found {problem}. Fix: list ungauged basin ids (as "
@@ -603,10 +645,15 @@ def _records(region: Region) -> pd.DataFrame:
     first = valid.idxmax(axis=0).where(counts > 0)
     last = valid.iloc[::-1].idxmax(axis=0).where(counts > 0)
     start, end = region.calibration
-    gauged = set(region.gauged)
+    gauged, donors = set(region.gauged), set(region.donor_only)
     return pd.DataFrame(
         {
-            "status": [_status(basin, gauged, region.constant_flow) for basin in flow.columns],
+            "status": [
+                "donor (user parameters, no flow)"
+                if basin in donors
+                else _status(basin, gauged, region.constant_flow)
+                for basin in flow.columns
+            ],
             "first_flow": first,
             "last_flow": last,
             "flow_days": counts.astype(int),

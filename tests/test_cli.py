@@ -432,11 +432,6 @@ def test_unknown_transfer_attribute(capsys, tmp_path, region_parts):
             ["column 'basin_id'", "'B01' at lines 2, 3"],
             id="repeated basin",
         ),
-        pytest.param(
-            "basin_id,k_per_day\nB01,0.05\nB05,0.06\n",
-            ["basin 'B05' (line 3)", "must have observed flow"],
-            id="basin without flow",
-        ),
     ],
 )
 def test_bad_parameter_table_names_file_column_basin_and_line(
@@ -448,3 +443,18 @@ def test_bad_parameter_table_names_file_column_basin_and_line(
     before = checksums(folder)
     check_fails(capsys, folder, "constants.csv", *patterns)
     assert checksums(folder) == before
+
+
+def test_parameters_without_flow_need_the_snow_values_held_in_the_config(
+    capsys, tmp_path, region_parts
+):
+    # A basin without observed flow cannot calibrate the snow store's parameters: with the
+    # store on and its values not held in [model], its row in the table is refused.
+    from tiny_region import SNOW_HELD
+
+    for name in SNOW_HELD:
+        del region_parts.config["model"][name]
+    region_parts.config["model"]["parameters"] = "constants.csv"
+    folder = write_region(tmp_path / "r", region_parts)
+    (folder / "constants.csv").write_text("basin_id,k_per_day\nB01,0.05\nB05,0.06\n")
+    check_fails(capsys, folder, "constants.csv", "'B05'", "no observed flow", "snow_threshold_c")

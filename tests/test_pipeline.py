@@ -252,3 +252,57 @@ def test_user_constants_skip_calibration_and_recover_the_relation_at_least_as_ti
     assert (error.abs() < 2).all(), error
     ratio = fitted(given)["std_error_raw"] / fitted(calibrated)["std_error_raw"]
     assert (ratio <= 1.01).all(), ratio
+
+
+@pytest.mark.filterwarnings("ignore::regional.errors.InputWarning")
+def test_user_constants_without_flow_serve_as_donors_and_are_not_scored(tmp_path):
+    # Two gauged demo basins lose their observed flow but keep their (hidden true) constants
+    # in the user's table: they become donors only (issue 15 item 1) - regression rows and
+    # donor neighbours in every fold and in prediction - but are never scored, never a
+    # leave-one-out target, not in the error model and not estimated.
+    from regional.donation import fit_transfers
+    from regional.outputs import run_manifest, write_outputs
+    from regional.pipeline import run
+
+    truth = json.loads((DEMO / "truth.json").read_text())["basins"]
+    donors = ["DR03", "DR10"]
+    series = pd.read_csv(DEMO / "series.csv.gz", dtype={"basin_id": str})
+    series.loc[series["basin_id"].isin(donors), "flow_mm"] = np.nan
+    series.to_csv(tmp_path / "series.csv", index=False)
+    table = tmp_path / "constants.csv"
+    constants = pd.Series({b: truth[b]["k_per_day"] for b in donors}, name="k_per_day")
+    constants.rename_axis("basin_id").to_csv(table)
+    toml = _demo_copy(
+        tmp_path,
+        (f'path = "{DEMO}/series.csv.gz"', f'path = "{tmp_path}/series.csv"'),
+        ("[model]", f'[model]\nparameters = "{table}"'),
+    )
+    result = run(toml)
+    region, linear = result.region, result.runs["linear"]
+    assert region.donor_only == tuple(donors)
+    assert not set(donors) & (set(region.gauged) | set(region.ungauged))
+    n_gauged = sum(v["gauged"] for v in truth.values()) - len(donors)
+    assert len(region.gauged) == n_gauged
+    # donors: training rows of the regression on all basins and of the fitted region
+    assert linear.regression.n_train_ == n_gauged + len(donors)
+    assert set(donors) <= set(result.fitted.training.index)
+    assert set(linear.context.targets) == set(region.gauged)
+    estimators, _ = fit_transfers(linear.context, level=0.9, methods=["proximity"])
+    sets = estimators["proximity"].donate(linear.context.attributes.loc[list(region.gauged)])
+    assert set(donors) <= set(sets.sets["donor_id"])
+    # not scored, not targets, not in the error model, not estimated
+    assert not set(donors) & set(linear.loo.scores["basin_id"])
+    assert not set(donors) & set(result.fitted.loo_nse.index)
+    assert result.fitted.error_model.n_basins <= n_gauged
+    assert not set(donors) & set(result.prediction.table.index)
+    rows = linear.calibration.loc[donors]
+    assert (rows["parameters_from"] == "user").all()
+    np.testing.assert_array_equal(rows["k_per_day"], constants[donors])
+    assert rows["score_calibration"].isna().all()
+    assert run_manifest(result)["user_parameters"]["donor_only"] == donors
+    assert any("serve as donors of parameter transfer" in note for note in result.warnings)
+    folder = write_outputs(result, tmp_path / "out")
+    written = pd.read_csv(folder / "calibration.csv", dtype={"basin_id": str})
+    written = written.set_index("basin_id").loc[donors]
+    assert (written["parameters_from"] == "user").all() and written["nse_calibration"].isna().all()
+    assert "serve as donors of parameter transfer" in (folder / "report.html").read_text()
