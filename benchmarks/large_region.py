@@ -124,8 +124,8 @@ STAGES = (
     "_calibrate",
     "choose_donor_counts",
     "leave_one_out",
-    "predict_ungauged",
-    "screen_candidates",
+    "predict_region",
+    "screen_region",
 )
 """Functions of ``regional.pipeline`` whose peak resident memory is recorded one by one."""
 

@@ -74,9 +74,9 @@ def main() -> None:
     if result.prediction is not None:
         print(result.prediction.coverage.to_string(index=False))
     else:  # every basin gauged: the held-out check of the bounds through the fitted region
-        from regional.fitted import fit_region
+        from regional.fitted import fit_result
 
-        fitted = fit_region(result)
+        fitted = fit_result(result)
         if fitted.held_out is not None:
             print(
                 f"held-out coverage of the {fitted.level:.0%} bounds ({fitted.model}, "

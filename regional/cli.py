@@ -435,7 +435,8 @@ def _stage_reusing_the_fit(
     from regional.outputs import update_reused_outputs, update_stage_outputs
     from regional.predict import predict_region
     from regional.region import load_region
-    from regional.reuse import screen_region, stored_fit
+    from regional.reuse import stored_fit
+    from regional.screen import screen_region
 
     fitted, reason = stored_fit(settings, target)
     if fitted is not None:

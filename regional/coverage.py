@@ -9,7 +9,7 @@ short. See ``docs/prediction.md``.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -29,8 +29,8 @@ from regional.bounds import (
     pooled_bounds,
 )
 
-if TYPE_CHECKING:  # pragma: no cover - annotations only; the run result sits below this module
-    from regional.result import RunResult
+if TYPE_CHECKING:  # pragma: no cover - annotations only
+    from regional.result import ModelRun
 
 WIDEN_TOLERANCE = 0.03
 """A flow class whose held-out coverage falls short of the level by more is widened."""
@@ -173,7 +173,7 @@ def _bisect_quantiles(values, without, probability, outside, days) -> np.ndarray
     return np.where(invalid, outside, result)
 
 
-def loo_coverage(result: RunResult, *, level: float) -> pd.DataFrame:
+def loo_coverage(runs: Mapping[str, ModelRun], *, level: float) -> pd.DataFrame:
     """Honest coverage of the conformal bounds of every (model, method) in leave-one-out.
 
     For each gauged basin the error model is built from the other basins' leave-one-out
@@ -182,8 +182,8 @@ def loo_coverage(result: RunResult, *, level: float) -> pd.DataFrame:
 
     Parameters
     ----------
-    result : RunResult
-        From :func:`regional.pipeline.run`.
+    runs : mapping
+        Model name -> :class:`~regional.result.ModelRun` (leave-one-out done).
     level : float
         Nominal level of the bounds, in (0, 1).
 
@@ -196,7 +196,7 @@ def loo_coverage(result: RunResult, *, level: float) -> pd.DataFrame:
     """
     level = check_level(level)
     rows = []
-    for model, run in result.runs.items():
+    for model, run in runs.items():
         loo = run.loo
         for method in loo.methods:
             measured = _held_out_coverage(loo.observed, loo.simulated[method], level)

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import json
 import warnings
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
@@ -32,8 +33,10 @@ from regional.heldout import held_out_check, with_held_out
 from regional.models import parameter_transforms
 from regional.transfer import RegressionTransfer, fit_transfer
 
-if TYPE_CHECKING:  # pragma: no cover - annotations only; the run result sits below this module
-    from regional.result import RunResult
+if TYPE_CHECKING:  # pragma: no cover - annotations only
+    import geopandas as gpd
+
+    from regional.result import ModelRun, RunResult
 
 FORMAT = 1
 """Version of the stored layout (grows when it changes)."""
@@ -189,9 +192,17 @@ class FittedRegion:
 
 
 def fit_region(
-    result: RunResult, *, level: float | None = None, inputs: dict[str, str] | None = None
+    runs: Mapping[str, ModelRun],
+    *,
+    model: str,
+    method: str,
+    attributes: Sequence[str],
+    settings: Settings,
+    basins: gpd.GeoDataFrame,
+    level: float | None = None,
+    inputs: dict[str, str] | None = None,
 ) -> FittedRegion:
-    """Gather the fitted region of a finished run (calibration and leave-one-out done).
+    """Gather the fitted region from the per-model calibration and leave-one-out runs.
 
     The error model of the chosen (model, method) is built from the leave-one-out residuals
     (:func:`regional.bounds.conformal_bounds`), checked on basins held out of the whole fit and
@@ -200,8 +211,17 @@ def fit_region(
 
     Parameters
     ----------
-    result : RunResult
-        From the pipeline, before prediction.
+    runs : mapping
+        Model name -> :class:`~regional.result.ModelRun` (calibration and leave-one-out done).
+    model, method : str
+        The chosen storage model and transfer method.
+    attributes : sequence of str
+        Transfer attributes (regression, similarity, applicability).
+    settings : Settings
+        The settings of the run (level, held-out repeats; stored to tell later whether they
+        changed).
+    basins : GeoDataFrame
+        The region's basins (their equal-area CRS is kept for new sites).
     level : float, optional
         Nominal level; default ``[prediction] level``.
     inputs : dict, optional
@@ -211,18 +231,25 @@ def fit_region(
     -------
     FittedRegion
     """
-    level = check_level(result.settings.prediction.level if level is None else level)
-    run = result.runs[result.chosen_model]
-    context, loo, method = run.context, run.loo, result.chosen_method
+    level = check_level(settings.prediction.level if level is None else level)
+    run = runs[model]
+    context, loo = run.context, run.loo
     error_model = conformal_bounds(loo.observed, loo.simulated[method], level=level)
-    held_out, error_model, notes, draws = held_out_check(result, error_model, level)
-    coverage = with_held_out(loo_coverage(result, level=level), result, held_out)
+    held_out, error_model, notes, draws = held_out_check(
+        run,
+        method,
+        error_model,
+        level=level,
+        repeats=settings.prediction.held_out_repeats,
+        fit_level=settings.prediction.level,
+    )
+    coverage = with_held_out(loo_coverage(runs, level=level), held_out, model=model, method=method)
     dates = context.precip_mm.index
     return FittedRegion(
-        model=result.chosen_model,
+        model=model,
         method=method,
         level=level,
-        attributes=tuple(result.attributes),
+        attributes=tuple(attributes),
         training=context.attributes.join(context.calibrated),
         parameters=tuple(context.calibrated.columns),
         options=context.options,
@@ -239,10 +266,28 @@ def fit_region(
         loo_nse=method_nse(loo, method),
         loo_observed=loo.observed,
         loo_simulated=loo.simulated[method],
-        area_crs=equal_area_crs(result.region.basins).srs,
+        area_crs=equal_area_crs(basins).srs,
         held_out_draws=draws,
         inputs=dict(inputs or {}),
-        settings=fit_settings(result.settings),
+        settings=fit_settings(settings),
+    )
+
+
+def fit_result(result: RunResult, *, level: float | None = None) -> FittedRegion:
+    """The fitted region of a finished run: its own when fitted at ``level`` (default
+    ``[prediction] level``), else gathered again from its runs at that level."""
+    level = check_level(result.settings.prediction.level if level is None else level)
+    fitted = result.fitted
+    if isinstance(fitted, FittedRegion) and fitted.level == level:
+        return fitted
+    return fit_region(
+        result.runs,
+        model=result.chosen_model,
+        method=result.chosen_method,
+        attributes=result.attributes,
+        settings=result.settings,
+        basins=result.region.basins,
+        level=level,
     )
 
 

@@ -26,8 +26,8 @@ from regional.donation import fit_transfers, method_flows
 from regional.errors import InputError
 from regional.transfer import Donation
 
-if TYPE_CHECKING:  # pragma: no cover - annotations only; the run result sits below this module
-    from regional.result import RunResult
+if TYPE_CHECKING:  # pragma: no cover - annotations only
+    from regional.result import ModelRun
 
 HELD_OUT_FRACTION = 0.1
 """Share of the gauged basins held out of the whole fit in each repeat of the held-out check."""
@@ -41,11 +41,11 @@ leave-one-out flow is reused); regression and median refit on other basins alway
 
 
 def held_out_flows(
-    result: RunResult,
+    run: ModelRun,
     *,
-    model: str,
     method: str,
     repeats: int,
+    level: float,
     fraction: float = HELD_OUT_FRACTION,
     seed: int = HELD_OUT_SEED,
 ) -> list[HeldOutRepeat]:
@@ -63,12 +63,14 @@ def held_out_flows(
 
     Parameters
     ----------
-    result : RunResult
-        A finished run (leave-one-out done).
-    model, method : str
-        The storage model and transfer method checked (usually the chosen ones).
+    run : ModelRun
+        Calibration and leave-one-out of the storage model checked (usually the chosen one).
+    method : str
+        The transfer method checked (usually the chosen one).
     repeats : int
         Number of random draws (>= 1).
+    level : float
+        Interval level the transfers are fit with (regression and median intervals).
     fraction : float, default :data:`HELD_OUT_FRACTION`
         Share of the gauged basins held out per draw, in (0, 1).
     seed : int, default :data:`HELD_OUT_SEED`
@@ -82,7 +84,6 @@ def held_out_flows(
         raise ValueError(f"repeats must be a whole number >= 1: got {repeats!r}")
     if not 0.0 < fraction < 1.0:
         raise ValueError(f"fraction must lie strictly between 0 and 1: got {fraction!r}")
-    run = result.runs[model]
     gauged = [str(b) for b in run.loo.observed.columns]
     size = max(1, round(fraction * len(gauged)))
     if size > len(gauged) - 3:
@@ -90,7 +91,7 @@ def held_out_flows(
             f"the held-out check needs at least {size + 3} gauged basins to hold out {size}; "
             f"found {len(gauged)}"
         )
-    folds = _HeldOutFolds(run.context, run.loo, method, level=result.settings.prediction.level)
+    folds = _HeldOutFolds(run.context, run.loo, method, level=level)
     draws = []
     for held in _held_out_draws(gauged, size, int(repeats), seed):
         training = [b for b in gauged if b not in held]
@@ -186,18 +187,30 @@ def _same_donation(first: Donation, second: Donation) -> bool:
 
 
 def held_out_check(
-    result: RunResult, error_model: ConformalErrorModel, level: float
+    run: ModelRun,
+    method: str,
+    error_model: ConformalErrorModel,
+    *,
+    level: float,
+    repeats: int,
+    fit_level: float,
 ) -> tuple[pd.DataFrame | None, ConformalErrorModel, list[str], tuple[HeldOutRepeat, ...]]:
     """Held-out coverage of the chosen bounds; classes short by > tolerance are widened.
 
     Parameters
     ----------
-    result : RunResult
-        A finished run; its chosen (model, method) is checked.
+    run : ModelRun
+        Calibration and leave-one-out of the chosen storage model.
+    method : str
+        The chosen transfer method.
     error_model : ConformalErrorModel
         The chosen bounds as first built from all leave-one-out residuals.
     level : float
         Nominal level of the bounds.
+    repeats : int
+        Repeats of the check (``[prediction] held_out_repeats``; 0: no check).
+    fit_level : float
+        Interval level the transfers are fit with (``[prediction] level``).
 
     Returns
     -------
@@ -207,8 +220,6 @@ def held_out_check(
         notes saying what was done, and the repeats' flows (empty when the check does not run;
         the flow statistics reuse them for their own held-out check).
     """
-    run = result.runs[result.chosen_model]
-    repeats = result.settings.prediction.held_out_repeats
     n_gauged = run.loo.observed.shape[1]
     if repeats == 0:
         return (
@@ -227,8 +238,7 @@ def held_out_check(
             ],
             (),
         )
-    method = result.chosen_method
-    draws = held_out_flows(result, model=result.chosen_model, method=method, repeats=repeats)
+    draws = held_out_flows(run, method=method, repeats=repeats, level=fit_level)
     observed, simulated = run.loo.observed, run.loo.simulated[method]
     k = error_model.n_classes
     table = held_out_coverage(observed, draws, level=level, n_classes=k)
@@ -284,7 +294,7 @@ def _held_out_notes(table: pd.DataFrame, level: float, n_gauged: int) -> list[st
 
 
 def with_held_out(
-    coverage: pd.DataFrame, result: RunResult, held_out: pd.DataFrame | None
+    coverage: pd.DataFrame, held_out: pd.DataFrame | None, *, model: str, method: str
 ) -> pd.DataFrame:
     """Coverage table with the held-out columns filled on the chosen (model, method) row."""
     coverage = coverage.copy()
@@ -300,9 +310,7 @@ def with_held_out(
         coverage[name] = default
     if held_out is None:
         return coverage
-    chosen = (coverage["model"] == result.chosen_model) & (
-        coverage["method"] == result.chosen_method
-    )
+    chosen = (coverage["model"] == model) & (coverage["method"] == method)
     rows = held_out.set_index("flow_class")
     coverage.loc[chosen, "held_out_coverage"] = rows.loc["all", "held_out_coverage"]
     for d in REPORTED_DECILES:

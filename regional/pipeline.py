@@ -34,10 +34,10 @@ from regional.errors import InputError, InputWarning
 from regional.fitted import fit_region
 from regional.models import get_model, parameter_transforms
 from regional.overlap import excluded_donors, overlap_shares
-from regional.predict import predict_ungauged
+from regional.predict import predict_region
 from regional.region import Region, load_region, transfer_attribute_names
 from regional.result import ModelRun, RunResult
-from regional.screen import screen_candidates
+from regional.screen import screen_region
 from regional.series import StoreReader, shipped, store_reader
 from regional.statroutes import estimate_statistics
 from regional.transfer import RegressionTransfer, fit_transfer
@@ -91,18 +91,24 @@ def run(
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", InputWarning)
-            result = _chain(settings, region, executor, progress, timings)
+            stages = _chain(settings, region, executor, progress, timings)
     finally:
         executor.close()
     messages = list(region.warnings) + [
         str(w.message) for w in caught if issubclass(w.category, InputWarning)
     ]
-    for run_ in result.runs.values():
+    for run_ in stages["runs"].values():
         messages += list(run_.loo.warnings)
-    for stage in (result.prediction, result.statistics, result.screening):
-        messages += list(getattr(stage, "notes", ()))
+    for stage in ("prediction", "statistics", "screening"):
+        messages += list(getattr(stages[stage], "notes", ()))
     messages += _user_parameter_notes(region)
-    return _with(result, warnings=tuple(dict.fromkeys(messages)), timings=timings)
+    return RunResult(
+        settings=settings,
+        region=region,
+        **stages,
+        warnings=tuple(dict.fromkeys(messages)),
+        timings=timings,
+    )
 
 
 def _user_parameter_notes(region: Region) -> list[str]:
@@ -133,12 +139,54 @@ def _shown(basins: tuple[str, ...]) -> str:
     return ", ".join(basins[:10]) + more
 
 
-def _with(result: RunResult, **changes) -> RunResult:
-    return replace(result, **changes)
-
-
-def _chain(settings, region, executor, progress, timings) -> RunResult:
+def _chain(settings, region, executor, progress, timings) -> dict:
+    """Every stage after loading the region: the fields of the :class:`RunResult`."""
     attributes = transfer_attributes(region, settings)
+    runs = _model_runs(settings, region, attributes, executor, progress, timings)
+    scores = pd.concat([r.loo.scores.assign(model=m) for m, r in runs.items()], ignore_index=True)[
+        ["basin_id", "model", *runs[settings.model.names[0]].loo.scores.columns[1:]]
+    ]
+    summary = summarise(scores)
+    model, method = _choose(summary, settings)
+    clock = time.perf_counter()
+    fitted = fit_region(
+        runs,
+        model=model,
+        method=method,
+        attributes=attributes,
+        settings=settings,
+        basins=region.basins,
+        inputs=io.file_checksums(settings.input_paths()),
+    )
+    timings["fitted_region"] = time.perf_counter() - clock
+    prediction = screening = None
+    if region.ungauged:
+        clock = time.perf_counter()
+        prediction = predict_region(fitted, region)
+        timings["prediction"] = time.perf_counter() - clock
+    clock = time.perf_counter()
+    statistics = _statistics(runs[model], method, region, attributes, prediction)
+    timings["statistics"] = time.perf_counter() - clock
+    if region.ungauged:
+        clock = time.perf_counter()
+        screening = screen_region(fitted, region)
+        timings["screening"] = time.perf_counter() - clock
+    return {
+        "attributes": attributes,
+        "runs": runs,
+        "scores": scores,
+        "summary": summary,
+        "chosen_model": model,
+        "chosen_method": method,
+        "prediction": prediction,
+        "screening": screening,
+        "statistics": statistics,
+        "fitted": fitted,
+    }
+
+
+def _model_runs(settings, region, attributes, executor, progress, timings) -> dict:
+    """Calibration and leave-one-out of every storage model of ``[model] name``."""
     window = scoring_window(
         region.dates,
         region.calibration,
@@ -179,35 +227,7 @@ def _chain(settings, region, executor, progress, timings) -> RunResult:
             context,
             donor_counts=None if counts is None else counts.table,
         )
-    scores = pd.concat([r.loo.scores.assign(model=m) for m, r in runs.items()], ignore_index=True)[
-        ["basin_id", "model", *runs[settings.model.names[0]].loo.scores.columns[1:]]
-    ]
-    summary = summarise(scores)
-    model, method = _choose(summary, settings)
-    result = RunResult(
-        settings=settings,
-        region=region,
-        attributes=attributes,
-        runs=runs,
-        scores=scores,
-        summary=summary,
-        chosen_model=model,
-        chosen_method=method,
-    )
-    clock = time.perf_counter()
-    fitted = fit_region(result, inputs=io.file_checksums(settings.input_paths()))
-    result = _with(result, fitted=fitted)
-    timings["fitted_region"] = time.perf_counter() - clock
-    if not region.ungauged:
-        return _with_statistics(result, timings)
-    clock = time.perf_counter()
-    result = _with(result, prediction=predict_ungauged(result))
-    timings["prediction"] = time.perf_counter() - clock
-    result = _with_statistics(result, timings)
-    clock = time.perf_counter()
-    result = _with(result, screening=screen_candidates(result))
-    timings["screening"] = time.perf_counter() - clock
-    return result
+    return runs
 
 
 def _chunk_basins(settings: Settings, default: int, *, n_basins: int, executor) -> int:
@@ -218,26 +238,25 @@ def _chunk_basins(settings: Settings, default: int, *, n_basins: int, executor) 
     return chunk_size(n_basins, default, n_workers=getattr(executor, "n_workers", 1))
 
 
-def _with_statistics(result: RunResult, timings: dict[str, float]) -> RunResult:
+def _statistics(run: ModelRun, method: str, region: Region, attributes, prediction):
     """Flow statistics by every route in leave-one-out, bounded at the ungauged basins."""
-    clock = time.perf_counter()
-    prediction = result.prediction
-    settings = result.settings.prediction
+    settings = region.settings.prediction
     flows, applicable, held_out = None, None, ()
     if prediction is not None:
         flows = prediction.flows.pivot(index="date", columns="basin_id", values="flow_mm")
         applicable = prediction.table["applicable"]
         held_out = prediction.held_out_draws
-    statistics = estimate_statistics(
-        result,
+    return estimate_statistics(
+        run,
+        method,
+        region,
         flows,
+        attributes=attributes,
         level=settings.level,
         route=settings.statistics_route,
         applicable=applicable,
         held_out=held_out,
     )
-    timings["statistics"] = time.perf_counter() - clock
-    return _with(result, statistics=statistics)
 
 
 def _stage(progress: Progress, name: str):

@@ -37,11 +37,11 @@ from regional.applicability import (
     local_bounds,
     transfer_skill,
 )
-from regional.bounds import ConformalErrorModel, check_level
+from regional.bounds import ConformalErrorModel
 from regional.crossval import FoldContext
 from regional.donation import fit_transfers, method_flows
 from regional.errors import InputError
-from regional.fitted import FittedRegion, fit_region
+from regional.fitted import FittedRegion, fit_result
 from regional.flowstats import to_m3s
 from regional.transfer import Donation
 
@@ -161,11 +161,7 @@ def predict_ungauged(result: RunResult, *, level: float | None = None) -> Predic
     InputError
         When the region has no ungauged basin, or the level is not in (0, 1).
     """
-    level = check_level(result.settings.prediction.level if level is None else level)
-    fitted = result.fitted
-    if fitted is None or fitted.level != level:
-        fitted = fit_region(result, level=level)
-    return predict_region(fitted, result.region)
+    return predict_region(fit_result(result, level=level), result.region)
 
 
 def predict_region(fitted: FittedRegion, region: Region) -> Prediction:

@@ -1,7 +1,8 @@
 """What a run produced: one :class:`ModelRun` per storage model and the :class:`RunResult`.
 
-Plain containers passed down the chain (prediction, screening, report, outputs read them); the
-pipeline fills them.
+Plain containers: the pipeline builds one :class:`RunResult` once, at the end of the chain
+(prediction, statistics and screening take the fitted region and the tables they read, never a
+run result); the report and :mod:`regional.outputs` read it.
 """
 
 from __future__ import annotations
@@ -78,7 +79,7 @@ class RunResult:
         with bounds at the ungauged basins.
     fitted : object or None
         :class:`regional.fitted.FittedRegion`: what prediction and screening used, stored
-        with the results for reuse; None when the region has no ungauged basin.
+        with the results for reuse.
     warnings : tuple of str
         Everything the user should read, for the report.
     stages : dict

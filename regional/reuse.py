@@ -19,7 +19,6 @@ from regional.config import Settings
 from regional.fitted import FOLDER, META, FittedRegion, from_files, stale_reason
 from regional.predict import Prediction, predict_sites
 from regional.region import Region
-from regional.screen import Screening, candidate_ids, screen_sites
 from regional.sites import Sites
 
 logger = logging.getLogger(__name__)
@@ -41,13 +40,6 @@ def stored_fit(settings: Settings, folder: str | Path) -> tuple[FittedRegion | N
         return None, reason
     logger.info("reusing the fitted region stored in %s: no calibration", Path(folder) / FOLDER)
     return from_files(meta, files), ""
-
-
-def screen_region(fitted: FittedRegion, region: Region) -> Screening:
-    """Candidate gauge sites ranked from a fitted region (no calibration)."""
-    chosen = candidate_ids(region, region.settings.screening.candidates)
-    attributes = region.attributes
-    return screen_sites(fitted, attributes.loc[chosen], attributes.loc[list(region.ungauged)])
 
 
 def predict_new_sites(fitted: FittedRegion, sites: Sites) -> Prediction:

@@ -36,7 +36,7 @@ import pandas as pd
 
 from regional.applicability import applicability
 from regional.errors import InputError, InputWarning
-from regional.fitted import FittedRegion, fit_region
+from regional.fitted import FittedRegion, fit_result
 from regional.transfer import RegressionTransfer, fit_transfer
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
@@ -157,13 +157,29 @@ def variance_reduction(
 
 
 def screen_candidates(result: RunResult, *, candidates: Sequence[str] | None = None) -> Screening:
-    """Rank candidate gauge sites by variance reduction and donor disagreement.
+    """Rank the candidate gauge sites of a finished run (see :func:`screen_region`).
 
     Parameters
     ----------
     result : RunResult
-        From :func:`regional.pipeline.run`; the chosen model's regression fit on every gauged
-        basin is used.
+        From :func:`regional.pipeline.run`; its fitted region is used.
+    candidates : sequence of str, optional
+        Ungauged basin ids; default ``[screening] candidates``, else every ungauged basin.
+    """
+    return screen_region(fit_result(result), result.region, candidates=candidates)
+
+
+def screen_region(
+    fitted: FittedRegion, region: Region, *, candidates: Sequence[str] | None = None
+) -> Screening:
+    """Rank candidate gauge sites by variance reduction and donor disagreement.
+
+    Parameters
+    ----------
+    fitted : FittedRegion
+        The fitted region (its regression fit on every gauged basin is used).
+    region : Region
+        The region: its ungauged basins and their attributes.
     candidates : sequence of str, optional
         Ungauged basin ids; default ``[screening] candidates``, else every ungauged basin.
 
@@ -177,11 +193,9 @@ def screen_candidates(result: RunResult, *, candidates: Sequence[str] | None = N
         For a candidate that is not a basin of the region or is already gauged, or a region
         without ungauged basins.
     """
-    region = result.region
     if candidates is None:
-        candidates = result.settings.screening.candidates
+        candidates = region.settings.screening.candidates
     chosen = candidate_ids(region, candidates)
-    fitted = result.fitted if result.fitted is not None else fit_region(result)
     attributes = region.attributes
     return screen_sites(fitted, attributes.loc[chosen], attributes.loc[list(region.ungauged)])
 

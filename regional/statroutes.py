@@ -52,7 +52,8 @@ from regional.errors import InputError
 from regional.transfer import great_circle_km, inverse_distance_weights, make_transfer
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
-    from regional.result import RunResult
+    from regional.region import Region
+    from regional.result import ModelRun
 
 MODEL = "model"
 REGRESSION = "direct_regression"
@@ -157,9 +158,12 @@ class FlowStatistics:
 
 
 def estimate_statistics(
-    result: RunResult,
+    run: ModelRun,
+    method: str,
+    region: Region,
     ungauged_flow: pd.DataFrame | None,
     *,
+    attributes: Sequence[str],
     level: float,
     route: str = "auto",
     applicable: pd.Series | None = None,
@@ -169,11 +173,17 @@ def estimate_statistics(
 
     Parameters
     ----------
-    result : RunResult
-        A run with calibration and leave-one-out done.
+    run : ModelRun
+        Calibration and leave-one-out of the chosen storage model.
+    method : str
+        The chosen transfer method (its leave-one-out flow is the model route's).
+    region : Region
+        The region (attributes and precipitation of the gauged and ungauged basins).
     ungauged_flow : DataFrame or None
         Dates x ungauged basins: the chosen (model, method)'s daily flow, mm/day (the model
         route's input); it is cut to the evaluation period. None: no ungauged basin.
+    attributes : sequence of str
+        Transfer attributes (the regression route's candidates).
     level : float
         Nominal level of the bounds, in (0, 1).
     route : {"auto", "model", "direct"}
@@ -195,10 +205,7 @@ def estimate_statistics(
             f"[prediction] statistics_route must be one of {', '.join(ROUTE_CHOICES)}; "
             f"got {route!r}"
         )
-    run = result.runs[result.chosen_model]
-    data = _GaugedData.of(
-        run.context, run.loo, result.chosen_method, result.attributes, result.region.attributes
-    )
+    data = _GaugedData.of(run.context, run.loo, method, attributes, region.attributes)
     estimates = {MODEL: data.model_loo}
     estimates.update(_direct_loo(data))
     errors = {name: _log_error(data.observed, est) for name, est in estimates.items()}
@@ -216,8 +223,8 @@ def estimate_statistics(
             level, route, data.observed, loo_table, summary, bounds, empty, empty, tuple(notes)
         )
     targets = [str(c) for c in ungauged_flow.columns]
-    at_targets = _ungauged_estimates(data, ungauged_flow, targets, result)
-    area = result.region.attributes.loc[targets, "area_km2"].astype(float)
+    at_targets = _ungauged_estimates(data, ungauged_flow, targets, region)
+    area = region.attributes.loc[targets, "area_km2"].astype(float)
     table = _ungauged_table(at_targets, bounds, area, applicable)
     return FlowStatistics(
         level=level,
@@ -909,12 +916,12 @@ def _held_out_routes(data: _GaugedData, draw, training, held, needed) -> dict:
 # Ungauged basins
 
 
-def _ungauged_estimates(data: _GaugedData, flow: pd.DataFrame, targets, result) -> dict:
+def _ungauged_estimates(data: _GaugedData, flow: pd.DataFrame, targets, region) -> dict:
     """Route -> DataFrame (targets x statistics) at the ungauged basins."""
     flow = flow.loc[flow.index.isin(data.dates)]
-    precip = result.region.precip_mm.loc[flow.index, targets]
+    precip = region.precip_mm.loc[flow.index, targets]
     out = {MODEL: flowstats.statistics_frame(flow[targets], precip_mm_day=precip)}
-    attributes = result.region.attributes.loc[targets]
+    attributes = region.attributes.loc[targets]
     if len(data.gauged) >= MIN_BASINS:
         z, logs = _standardised(data, data.gauged)
         estimate = 10.0 ** regression_log_estimates(

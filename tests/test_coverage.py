@@ -22,7 +22,7 @@ from regional.coverage import (
 def test_demo_coverage_of_nominal_90_percent_bounds(demo_result):
     # the conformal construction's promise (Vovk et al. 2005; Lei et al. 2018), checked on
     # basins each error model was not built from; the band 0.85-0.95 is set by issue 6
-    coverage = loo_coverage(demo_result, level=0.9)
+    coverage = loo_coverage(demo_result.runs, level=0.9)
     chosen = coverage[coverage["method"] == demo_result.chosen_method].iloc[0]
     assert 0.85 <= chosen["coverage"] <= 0.95
     transfers = coverage[coverage["method"] != "calibrated"]
@@ -40,7 +40,7 @@ def test_held_out_coverage_equals_rebuilding_without_each_basin(demo_result):
         seen = obs[basin].notna()
         inside = (obs[basin] >= low[basin]) & (obs[basin] <= high[basin])
         shares.append(inside[seen].mean())
-    coverage = loo_coverage(demo_result, level=0.9)
+    coverage = loo_coverage(demo_result.runs, level=0.9)
     row = coverage[coverage["method"] == demo_result.chosen_method].iloc[0]
     assert row["coverage"] == pytest.approx(np.mean(shares), abs=1e-12)
 

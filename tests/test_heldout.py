@@ -28,22 +28,15 @@ def test_held_out_basins_never_reach_the_fit(demo_result):
     # nothing in the repeat: not the training basins' flows (the error model's material) and
     # not the held-out basins' own flows (they are transferred from the training basins).
     import dataclasses
-    from types import SimpleNamespace
 
-    model, method = demo_result.chosen_model, "regression"
-    run = demo_result.runs[model]
-    (first,) = held_out_flows(demo_result, model=model, method=method, repeats=1, seed=3)
+    method = "regression"
+    run = demo_result.runs[demo_result.chosen_model]
+    (first,) = held_out_flows(run, method=method, repeats=1, level=0.9, seed=3)
     calibrated = run.context.calibrated.copy()
     calibrated.loc[list(first.held_out), "k_per_day"] = 1.4  # far from every demo basin
-    poisoned = SimpleNamespace(
-        runs={
-            model: SimpleNamespace(
-                context=dataclasses.replace(run.context, calibrated=calibrated), loo=run.loo
-            )
-        },
-        settings=demo_result.settings,
-    )
-    (again,) = held_out_flows(poisoned, model=model, method=method, repeats=1, seed=3)
+    context = dataclasses.replace(run.context, calibrated=calibrated)
+    poisoned = dataclasses.replace(run, context=context)
+    (again,) = held_out_flows(poisoned, method=method, repeats=1, level=0.9, seed=3)
     assert again.held_out == first.held_out
     pd.testing.assert_frame_equal(again.training_flow, first.training_flow)
     pd.testing.assert_frame_equal(again.held_out_flow, first.held_out_flow)
@@ -57,7 +50,7 @@ def test_held_out_flows_reuse_leave_one_out_only_where_the_fold_is_the_same(demo
     model = demo_result.chosen_model
     run = demo_result.runs[model]
     context = run.context
-    (draw,) = held_out_flows(demo_result, model=model, method="proximity", repeats=1, seed=4)
+    (draw,) = held_out_flows(run, method="proximity", repeats=1, level=0.9, seed=4)
     assert draw.n_reused > 0 and draw.n_simulated > 0
     training = list(draw.training_flow.columns)
     assert set(training).isdisjoint(draw.held_out)

@@ -134,9 +134,9 @@ def test_held_out_coverage_of_the_bounds_is_reported_and_near_nominal(real_resul
     # class fell short, lies within 0.05 of the nominal level (measured on these 59 basins:
     # 0.901 pooled, 0.905 lowest decile, 0.892 highest). The region has no ungauged basin, so
     # the fitted region is built directly.
-    from regional.fitted import fit_region
+    from regional.fitted import fit_result
 
-    fitted = fit_region(real_result)
+    fitted = fit_result(real_result)
     table = fitted.held_out.set_index("flow_class")["held_out_coverage_widened"]
     for row in ("all", "decile 1", "decile 10"):
         assert abs(table[row] - fitted.level) <= 0.05, (row, table[row])

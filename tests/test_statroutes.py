@@ -144,9 +144,22 @@ def test_donor_weights_equal_the_transfer_estimators(method):
     assert weights == pytest.approx(expected.fillna(0.0).to_numpy(), abs=1e-12)
 
 
+def _statistics(result, *, route="auto"):
+    """Statistics of a run's chosen (model, method), no ungauged flow, at level 0.9."""
+    return sr.estimate_statistics(
+        result.runs[result.chosen_model],
+        result.chosen_method,
+        result.region,
+        None,
+        attributes=result.attributes,
+        level=0.9,
+        route=route,
+    )
+
+
 def test_unknown_route_is_refused(demo_result):
     with pytest.raises(InputError, match="statistics_route must be one of"):
-        sr.estimate_statistics(demo_result, None, level=0.9, route="both")
+        _statistics(demo_result, route="both")
 
 
 # --------------------------------------------------------------------------------------------
@@ -209,8 +222,8 @@ def test_leave_one_out_never_uses_the_left_out_basins_flow(demo_result):
     changed = replace(
         demo_result, runs={**demo_result.runs, demo_result.chosen_model: changed_run}
     )
-    before = sr.estimate_statistics(demo_result, None, level=0.9).loo
-    after = sr.estimate_statistics(changed, None, level=0.9).loo
+    before = _statistics(demo_result).loo
+    after = _statistics(changed).loo
     key = ["basin_id", "statistic", "route"]
     merged = before.merge(after, on=key, suffixes=("_before", "_after"))
     own = merged[merged["basin_id"] == basin]
@@ -224,5 +237,5 @@ def test_leave_one_out_never_uses_the_left_out_basins_flow(demo_result):
     ("route", "allowed"), [("model", {"model"}), ("direct", set(sr.ROUTES[1:]))]
 )
 def test_a_route_can_be_forced(demo_result, route, allowed):
-    stats = sr.estimate_statistics(demo_result, None, level=0.9, route=route)
+    stats = _statistics(demo_result, route=route)
     assert set(stats.summary.loc[stats.summary["chosen"], "route"]) <= allowed
