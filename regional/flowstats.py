@@ -61,6 +61,8 @@ import numpy as np
 import pandas as pd
 from scipy import special, stats
 
+from regional.errors import InputError
+
 EXCEEDANCE_PERCENT = (1, 5, 10, 20, 30, 50, 70, 80, 90, 95, 99)
 """Exceedance percentages of the flow-duration points (Qx exceeded x % of the time)."""
 FLOOD_RETURN_YEARS = (2, 10, 100)
@@ -711,3 +713,71 @@ def _monthly_means(filled: np.ndarray, observed: np.ndarray, dates: np.ndarray) 
     counts = np.add.reduceat(observed.astype(float), starts, axis=0)
     indicator = (months[starts] % 12)[None, :] == np.arange(12)[:, None]
     return _ratio(indicator @ totals, indicator @ counts)
+
+
+# --------------------------------------------------------------------------------------------
+# The headline statistics of the prediction table
+
+SUMMARY_STATISTICS = ("mean_flow_mm", "mean_flow_m3s", "q5_mm", "q50_mm", "q95_mm", "min7_mean_mm")
+"""The headline statistics (mean flow, flow-duration points, 7-day minimum)."""
+STATISTIC_COLUMNS = (
+    *SUMMARY_STATISTICS,
+    *(f"flow_m{month:02d}_mm" for month in range(1, 13)),
+)
+"""Statistic columns of :attr:`regional.predict.Prediction.table` (``mean_flow_m3s`` needs
+the area)."""
+TABLE_STATISTICS = {
+    "mean_flow_mm": "mean_flow_mm_day",
+    "q5_mm": "q5_mm_day",
+    "q50_mm": "q50_mm_day",
+    "q95_mm": "q95_mm_day",
+    "min7_mean_mm": "min7_mean_mm_day",
+    **{f"flow_m{m:02d}_mm": f"flow_m{m:02d}_mm_day" for m in range(1, 13)},
+}
+"""Prediction table column -> the statistic of :data:`STATISTICS` it holds (mm/day)."""
+
+
+def headline_statistics(
+    flow_mm: pd.DataFrame, *, area_km2: pd.Series | None = None
+) -> pd.DataFrame:
+    """The headline statistics of the prediction table (:data:`TABLE_STATISTICS`).
+
+    Parameters
+    ----------
+    flow_mm : DataFrame
+        Daily flow, mm/day: a DatetimeIndex (daily) x basins; NaN = missing.
+    area_km2 : Series, optional
+        Basin areas, km2, indexed by basin id; adds ``mean_flow_m3s``.
+
+    Returns
+    -------
+    DataFrame
+        Indexed by ``basin_id``: the columns of :data:`TABLE_STATISTICS` (each the
+        :data:`STATISTICS` statistic named beside it: Weibull flow-duration points, mean
+        annual 7-day minimum over the usable years, monthly means; docs/statistics.md); with
+        ``area_km2``, ``mean_flow_m3s``. The bounded, validated statistics are those of
+        :mod:`regional.statroutes`.
+    """
+    _check_daily(flow_mm)
+    values = statistics_frame(flow_mm)
+    table = pd.DataFrame(
+        {column: values[name] for column, name in TABLE_STATISTICS.items()}, index=values.index
+    )
+    if area_km2 is not None:
+        area = pd.Series(area_km2).rename(index=str).reindex(table.index).to_numpy(dtype=float)
+        table.insert(1, "mean_flow_m3s", to_m3s(table["mean_flow_mm"].to_numpy(), area))
+    return table
+
+
+def _check_daily(flow_mm: pd.DataFrame) -> None:
+    if not isinstance(flow_mm, pd.DataFrame) or not isinstance(flow_mm.index, pd.DatetimeIndex):
+        raise InputError(
+            "flow statistics need a DataFrame of daily flow indexed by date (DatetimeIndex) with "
+            f"one column per basin; got {type(flow_mm).__name__}"
+            + (f" indexed by {type(flow_mm.index).__name__}" if hasattr(flow_mm, "index") else "")
+        )
+    if not flow_mm.index.is_monotonic_increasing or flow_mm.index.has_duplicates:
+        raise InputError(
+            "flow statistics: the dates must be increasing with no repeats; sort the series and "
+            "drop duplicate days"
+        )

@@ -17,7 +17,7 @@ import pandas as pd
 
 from regional import __version__, io
 from regional.crossval import CALIBRATED
-from regional.fitted import FOLDER, META, fitted_files
+from regional.fittedfiles import FOLDER, META, fitted_files
 from regional.predict import Prediction
 from regional.region import Region
 from regional.report import figure_drawers, render_report

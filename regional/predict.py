@@ -9,8 +9,8 @@
   (:mod:`regional.crossval`), in mm/day and m3/s, with bounds at a nominal level from the
   conformal error model of :mod:`regional.bounds`, checked on held-out basins
   (:mod:`regional.heldout`) and measured in leave-one-out (:mod:`regional.coverage`);
-- flow statistics (:func:`flow_statistics`) and the applicability checks of
-  :mod:`regional.applicability`.
+- flow statistics (:func:`regional.flowstats.headline_statistics`) and the applicability
+  checks of :mod:`regional.applicability`.
 
 See ``docs/prediction.md``.
 
@@ -49,22 +49,6 @@ if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below th
     from regional.region import Region
     from regional.result import RunResult
 
-SUMMARY_STATISTICS = ("mean_flow_mm", "mean_flow_m3s", "q5_mm", "q50_mm", "q95_mm", "min7_mean_mm")
-"""The headline statistics (mean flow, flow-duration points, 7-day minimum)."""
-STATISTIC_COLUMNS = (
-    *SUMMARY_STATISTICS,
-    *(f"flow_m{month:02d}_mm" for month in range(1, 13)),
-)
-"""Statistic columns of :attr:`Prediction.table` (``mean_flow_m3s`` needs the area)."""
-TABLE_STATISTICS = {
-    "mean_flow_mm": "mean_flow_mm_day",
-    "q5_mm": "q5_mm_day",
-    "q50_mm": "q50_mm_day",
-    "q95_mm": "q95_mm_day",
-    "min7_mean_mm": "min7_mean_mm_day",
-    **{f"flow_m{m:02d}_mm": f"flow_m{m:02d}_mm_day" for m in range(1, 13)},
-}
-"""Prediction table column -> the :mod:`regional.flowstats` statistic it holds (mm/day)."""
 FLOW_COLUMNS = (
     "basin_id",
     "date",
@@ -226,7 +210,7 @@ def predict_sites(
     error_model = fitted.error_model
     low, high = error_model.bounds(flow_mm)
     area = attributes["area_km2"].astype(float)
-    statistics = flow_statistics(flow_mm, area_km2=area)
+    statistics = flowstats.headline_statistics(flow_mm, area_km2=area)
     usable = applicability(context.attributes, attributes, fitted.attributes)
     skill = transfer_skill(
         context.attributes,
@@ -298,7 +282,7 @@ def _table(fitted, target_attributes, parameters: Mapping[str, pd.DataFrame], st
             picked[f"{name}{suffix}"] = chosen[f"{name}{suffix}"]
     parts += [
         picked,
-        statistics[list(STATISTIC_COLUMNS)],
+        statistics[list(flowstats.STATISTIC_COLUMNS)],
         usable[
             [
                 "applicable",
@@ -369,51 +353,3 @@ def _notes(fitted, error_model: ConformalErrorModel, coverage, usable) -> list[s
             "gauged basins or lower [prediction] level"
         )
     return notes
-
-
-# --------------------------------------------------------------------------------------------
-# Flow statistics
-
-
-def flow_statistics(flow_mm: pd.DataFrame, *, area_km2: pd.Series | None = None) -> pd.DataFrame:
-    """The headline statistics of the prediction table, from :mod:`regional.flowstats`.
-
-    Parameters
-    ----------
-    flow_mm : DataFrame
-        Daily flow, mm/day: a DatetimeIndex (daily) x basins; NaN = missing.
-    area_km2 : Series, optional
-        Basin areas, km2, indexed by basin id; adds ``mean_flow_m3s``.
-
-    Returns
-    -------
-    DataFrame
-        Indexed by ``basin_id``: the columns of :data:`TABLE_STATISTICS` (each the
-        :mod:`regional.flowstats` statistic named beside it: Weibull flow-duration points, mean
-        annual 7-day minimum over the usable years, monthly means; docs/statistics.md); with
-        ``area_km2``, ``mean_flow_m3s``. The bounded, validated statistics are those of
-        :mod:`regional.statroutes`.
-    """
-    _check_daily(flow_mm)
-    values = flowstats.statistics_frame(flow_mm)
-    table = pd.DataFrame(
-        {column: values[name] for column, name in TABLE_STATISTICS.items()}, index=values.index
-    )
-    if area_km2 is not None:
-        area = pd.Series(area_km2).rename(index=str).reindex(table.index).to_numpy(dtype=float)
-        table.insert(1, "mean_flow_m3s", to_m3s(table["mean_flow_mm"].to_numpy(), area))
-    return table
-
-
-def _check_daily(flow_mm: pd.DataFrame) -> None:
-    if not isinstance(flow_mm, pd.DataFrame) or not isinstance(flow_mm.index, pd.DatetimeIndex):
-        raise InputError(
-            "flow statistics need a DataFrame of daily flow indexed by date (DatetimeIndex) with "
-            f"one column per basin; got {type(flow_mm).__name__}"
-            + (f" indexed by {type(flow_mm.index).__name__}" if hasattr(flow_mm, "index") else "")
-        )
-    if not flow_mm.index.is_monotonic_increasing or flow_mm.index.has_duplicates:
-        raise InputError(
-            "flow statistics: the dates must be increasing with no repeats; sort the series and "
-            "drop duplicate days"
-        )

@@ -16,7 +16,8 @@ import pandas as pd
 
 from regional import __version__, io
 from regional.config import Settings
-from regional.fitted import FOLDER, META, FittedRegion, from_files, stale_reason
+from regional.fitted import FittedRegion
+from regional.fittedfiles import FOLDER, META, from_files, stale_reason
 from regional.predict import Prediction, predict_sites
 from regional.region import Region
 from regional.sites import Sites

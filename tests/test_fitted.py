@@ -10,7 +10,7 @@ import pytest
 
 from regional import io
 from regional.errors import InputError
-from regional.fitted import fitted_files, from_files, stale_reason
+from regional.fittedfiles import fitted_files, from_files, stale_reason
 from regional.predict import predict_sites
 
 

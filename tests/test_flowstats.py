@@ -13,6 +13,7 @@ from lmoments3 import distr
 from scipy import stats
 
 from regional import flowstats as fs
+from regional.errors import InputError
 
 START = np.datetime64("2001-01-01")
 
@@ -313,3 +314,42 @@ def test_m3s_through_the_area():
     # By hand: 1 mm/day over 86.4 km2 is 86,400 m3/day, i.e. 1 m3/s.
     assert fs.to_m3s(1.0, 86.4) == pytest.approx(1.0)
     assert fs.to_m3s(np.array([2.0, 0.5]), np.array([43.2, 172.8])) == pytest.approx([1.0, 1.0])
+
+
+def _daily_frame(values: np.ndarray, start: str = "2001-01-01", columns=("A",)) -> pd.DataFrame:
+    values = np.asarray(values, dtype=float)
+    if values.ndim == 1:
+        values = values[:, None]
+    dates = pd.date_range(start, periods=len(values), freq="D")
+    return pd.DataFrame(values, index=dates, columns=list(columns))
+
+
+def test_table_statistics_are_the_flowstats_statistics():
+    # Two names for the same numbers: the prediction table's columns and regional.flowstats
+    # (whose own checks against numpy, pandas, scipy and lmoments3 are above).
+    rng = np.random.default_rng(4)
+    values = rng.gamma(0.8, 2.0, size=(3 * 365, 3))
+    values[10:20, 1] = np.nan
+    flow = _daily_frame(values, columns=("A", "B", "C"))
+    table = fs.headline_statistics(flow)
+    reference = fs.statistics_frame(flow)
+    for column, name in fs.TABLE_STATISTICS.items():
+        np.testing.assert_allclose(table[column], reference[name], rtol=1e-12)
+    assert list(table.columns) == list(fs.TABLE_STATISTICS)
+
+
+def test_monthly_means_and_area_conversion():
+    dates = pd.date_range("2001-01-01", "2002-12-31", freq="D")
+    flow = pd.DataFrame({"A": dates.month.to_numpy(dtype=float)}, index=dates)
+    table = fs.headline_statistics(flow, area_km2=pd.Series({"A": 172.8}))
+    for month in range(1, 13):
+        assert table.loc["A", f"flow_m{month:02d}_mm"] == pytest.approx(month)
+    # 1 m3/s over 1 km2 is 86.4 mm/day (86 400 s x 1 m3/s / 1e6 m2 x 1000 mm/m; unit arithmetic)
+    assert table.loc["A", "mean_flow_m3s"] == pytest.approx(
+        table.loc["A", "mean_flow_mm"] * 172.8 / 86.4
+    )
+
+
+def test_headline_statistics_reject_a_table_without_dates():
+    with pytest.raises(InputError, match="indexed by date"):
+        fs.headline_statistics(pd.DataFrame({"A": [1.0, 2.0]}))

@@ -35,6 +35,7 @@ ORDER = (
     "heldout",
     "applicability",
     "fitted",
+    "fittedfiles",
     "predict",
     "statroutes",
     "screen",

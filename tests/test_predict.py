@@ -1,64 +1,18 @@
-"""Tests of regional.predict: flow statistics and the prediction at the ungauged basins."""
+"""Tests of regional.predict: the prediction at the ungauged basins."""
 
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
 
-from regional import flowstats
 from regional.errors import InputError
-from regional.predict import (
-    FLOW_COLUMNS,
-    STATISTIC_COLUMNS,
-    TABLE_STATISTICS,
-    flow_statistics,
-    predict_ungauged,
-)
+from regional.flowstats import STATISTIC_COLUMNS, headline_statistics
+from regional.predict import FLOW_COLUMNS, predict_ungauged
 
 
 @pytest.fixture(scope="module")
 def prediction(demo_result):
     return predict_ungauged(demo_result)
-
-
-def _daily(values: np.ndarray, start: str = "2001-01-01", columns=("A",)) -> pd.DataFrame:
-    values = np.asarray(values, dtype=float)
-    if values.ndim == 1:
-        values = values[:, None]
-    dates = pd.date_range(start, periods=len(values), freq="D")
-    return pd.DataFrame(values, index=dates, columns=list(columns))
-
-
-def test_table_statistics_are_the_flowstats_statistics():
-    # Two names for the same numbers: the prediction table's columns and regional.flowstats
-    # (whose own checks against numpy, pandas, scipy and lmoments3 are in test_flowstats.py).
-    rng = np.random.default_rng(4)
-    values = rng.gamma(0.8, 2.0, size=(3 * 365, 3))
-    values[10:20, 1] = np.nan
-    flow = _daily(values, columns=("A", "B", "C"))
-    table = flow_statistics(flow)
-    reference = flowstats.statistics_frame(flow)
-    for column, name in TABLE_STATISTICS.items():
-        np.testing.assert_allclose(table[column], reference[name], rtol=1e-12)
-    assert list(table.columns) == list(TABLE_STATISTICS)
-
-
-def test_monthly_means_and_area_conversion():
-    dates = pd.date_range("2001-01-01", "2002-12-31", freq="D")
-    flow = pd.DataFrame({"A": dates.month.to_numpy(dtype=float)}, index=dates)
-    table = flow_statistics(flow, area_km2=pd.Series({"A": 172.8}))
-    for month in range(1, 13):
-        assert table.loc["A", f"flow_m{month:02d}_mm"] == pytest.approx(month)
-    # 1 m3/s over 1 km2 is 86.4 mm/day (86 400 s x 1 m3/s / 1e6 m2 x 1000 mm/m; unit arithmetic)
-    assert table.loc["A", "mean_flow_m3s"] == pytest.approx(
-        table.loc["A", "mean_flow_mm"] * 172.8 / 86.4
-    )
-
-
-def test_flow_statistics_rejects_a_table_without_dates():
-    with pytest.raises(InputError, match="indexed by date"):
-        flow_statistics(pd.DataFrame({"A": [1.0, 2.0]}))
 
 
 def test_prediction_table_has_every_column(prediction, demo_result):
@@ -115,7 +69,7 @@ def test_mm_and_m3s_agree_through_the_area(prediction, demo_result):
 
 def test_statistics_are_those_of_the_reported_flows(prediction):
     wide = prediction.flows.pivot(index="date", columns="basin_id", values="flow_mm")
-    expected = flow_statistics(wide)
+    expected = headline_statistics(wide)
     table = prediction.table
     for column in ("mean_flow_mm", "q5_mm", "q95_mm", "min7_mean_mm", "flow_m07_mm"):
         np.testing.assert_allclose(table[column], expected.loc[table.index, column], rtol=1e-12)
