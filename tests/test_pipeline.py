@@ -281,6 +281,8 @@ def test_user_constants_without_flow_serve_as_donors_and_are_not_scored(tmp_path
     region, linear = result.region, result.runs["linear"]
     assert region.donor_only == tuple(donors)
     assert not set(donors) & (set(region.gauged) | set(region.ungauged))
+    status = region.summary().records["status"]  # what 'regional check' prints
+    assert (status[donors] == "donor (user parameters, no flow)").all()
     n_gauged = sum(v["gauged"] for v in truth.values()) - len(donors)
     assert len(region.gauged) == n_gauged
     # donors: training rows of the regression on all basins and of the fitted region
