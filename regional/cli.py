@@ -99,7 +99,7 @@ def format_summary(summary: RegionSummary) -> str:
     lines = [
         f"region: {summary.name}",
         f"basins: {summary.n_basins} {summary.geometry} ({summary.n_gauged} gauged, "
-        f"{summary.n_ungauged} ungauged)",
+        f"{summary.n_ungauged} ungauged{_donors(summary.n_donor_only)})",
         f"forcing: {period} ({n_days} days, common to all basins)",
         f"calibration: {_span(summary.calibration)}; validation: {validation}",
         "",
@@ -325,6 +325,11 @@ def _run_with_progress(args: argparse.Namespace, settings: Settings):
             bar.close()
 
 
+def _donors(count: int) -> str:
+    """ ", N donors only (user parameters, no flow)" when there are such basins, else ""."""
+    return f", {count} donors only (user parameters, no flow)" if count else ""
+
+
 def format_run_summary(result) -> str:
     """The table ``regional run`` prints: leave-one-out skill per model and method."""
     from regional.outputs import loo_summary
@@ -345,7 +350,8 @@ def format_run_summary(result) -> str:
     columns += [c for c in ("coverage",) if c in table.columns]
     lines = [
         f"region: {result.settings.region.name}",
-        f"basins: {len(result.region.gauged)} gauged, {len(result.region.ungauged)} ungauged",
+        f"basins: {len(result.region.gauged)} gauged, {len(result.region.ungauged)} ungauged"
+        + _donors(len(result.region.donor_only)),
         "",
         "leave-one-out skill (each gauged basin predicted from the others; evaluation period):",
         table[columns].to_string(index=False, float_format=lambda v: f"{v:.3f}"),

@@ -136,6 +136,8 @@ class RegionSummary:
         ``[region] name``.
     n_basins, n_gauged, n_ungauged : int
         Basin counts.
+    n_donor_only : int
+        Basins with the user's parameters and no observed flow (donors only).
     geometry : str
         ``"polygons"`` or ``"points"``.
     period : (Timestamp, Timestamp)
@@ -164,6 +166,7 @@ class RegionSummary:
     attribute_ranges: pd.DataFrame
     notes: tuple[str, ...]
     warnings: tuple[str, ...]
+    n_donor_only: int = 0
 
 
 def load_region(path: str | Path | Settings) -> Region:
@@ -238,6 +241,7 @@ def describe_region(region: Region) -> RegionSummary:
         attribute_ranges=_attribute_ranges(region.attributes),
         notes=region.notes,
         warnings=region.warnings,
+        n_donor_only=len(region.donor_only),
     )
 
 

@@ -260,6 +260,7 @@ def test_user_constants_without_flow_serve_as_donors_and_are_not_scored(tmp_path
     # in the user's table: they become donors only (issue 15 item 1) - regression rows and
     # donor neighbours in every fold and in prediction - but are never scored, never a
     # leave-one-out target, not in the error model and not estimated.
+    from regional.cli import format_run_summary
     from regional.donation import fit_transfers
     from regional.outputs import run_manifest, write_outputs
     from regional.pipeline import run
@@ -303,6 +304,7 @@ def test_user_constants_without_flow_serve_as_donors_and_are_not_scored(tmp_path
     assert rows["score_calibration"].isna().all()
     assert run_manifest(result)["user_parameters"]["donor_only"] == donors
     assert any("serve as donors of parameter transfer" in note for note in result.warnings)
+    assert "2 donors only (user parameters, no flow)" in format_run_summary(result)
     folder = write_outputs(result, tmp_path / "out")
     written = pd.read_csv(folder / "calibration.csv", dtype={"basin_id": str})
     written = written.set_index("basin_id").loc[donors]
