@@ -10,8 +10,9 @@ Models with several free parameters (GR4J; any model with the snow store, whose 
 calibrated with the model's) use one of two searches in the transformed space
 (:mod:`regional.search`): ``fast`` (default), a seeded Sobol screening followed by Nelder-Mead
 descents from three distinct screened points and a restart from the best, within a budget of
-model runs (compiled whole for GR4J, :mod:`regional.compiled_search`); or ``thorough``, differential evolution with the whole population simulated as
-columns of one call per generation, then a compass-search polish. The model runs spent are
+model runs (compiled whole for GR4J, :mod:`regional.compiled_search`); or ``thorough``,
+differential evolution with the whole population simulated as columns of one call per
+generation, then a compass-search polish. The model runs spent are
 recorded per basin (``n_runs``). docs/calibration.md compares the two.
 
 References

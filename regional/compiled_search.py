@@ -270,7 +270,7 @@ def _parameters(point, constant, free, log, lower, upper, out):  # pragma: no co
 @numba.njit(cache=True, nogil=True)
 def _energy(point, basin, buffers, problem):  # pragma: no cover - compiled
     """Minus the objective of one basin for one point of the box."""
-    (params, x, s0, r0, pack0, liquid, pack, melt, flow, aet, storage, exchange, skip) = buffers
+    (params, x, s0, r0, pack0, liquid, pack, melt, flow, skip) = buffers
     (precip, pet, temp, obs_a, obs_b, ss_a, ss_b, mean_obs, offset, first, objective) = problem[
         :11
     ]
@@ -311,9 +311,9 @@ def _energy(point, basin, buffers, problem):  # pragma: no cover - compiled
         s0,
         r0,
         flow,
-        aet,
-        storage,
-        exchange,
+        skip,
+        skip,
+        skip,
         skip,
         skip,
     )
@@ -332,7 +332,8 @@ def _energy(point, basin, buffers, problem):  # pragma: no cover - compiled
 
 @numba.njit(cache=True, nogil=True)
 def _buffers(n_steps):  # pragma: no cover - compiled
-    """Work arrays of one energy (reused for every run of a basin)."""
+    """Work arrays of one energy (reused for every run of a basin): the flow only, as the
+    kernel skips the outputs given as (0, 0) arrays."""
     column = (n_steps, 1)
     return (
         np.empty(7),
@@ -340,9 +341,6 @@ def _buffers(n_steps):  # pragma: no cover - compiled
         np.empty(1),
         np.empty(1),
         np.empty(1),
-        np.empty(column),
-        np.empty(column),
-        np.empty(column),
         np.empty(column),
         np.empty(column),
         np.empty(column),
