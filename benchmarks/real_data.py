@@ -15,6 +15,7 @@ Run:  python benchmarks/real_data.py [--workers 2] [--parts 01 03] [--objective 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import tempfile
 import time
@@ -64,7 +65,9 @@ def main() -> None:
     summary = result.summary.copy()
     print(
         f"{len(result.region.gauged)} gauged basins, objective {args.objective}, "
-        f"{seconds:.0f} s ({args.workers or 'in-process'} workers)"
+        f"{seconds:.0f} s ({args.workers or 'in-process'} workers; load average at the end "
+        + ", ".join(f"{v:.2f}" for v in os.getloadavg())
+        + ")"
     )
     print(summary.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
     counts = donor_counts(result)

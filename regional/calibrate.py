@@ -8,10 +8,11 @@ vectorised call brackets the optimum, then Brent's method (Brent 1973, as in
 ``scipy.optimize.minimize_scalar(method="bounded")``) refines it in the transformed space.
 Models with several free parameters (GR4J; any model with the snow store, whose parameters are
 calibrated with the model's) use one of two searches in the transformed space
-(:mod:`regional.search`): ``fast`` (default), a seeded Sobol screening of every basin in one
-vectorised call followed by Nelder-Mead descents of all basins in lockstep within a budget of
-model runs; or ``thorough``, differential evolution with the whole population simulated as
-columns of one call per generation, then a compass-search polish. The model runs spent are
+(:mod:`regional.search`): ``fast`` (default), a seeded Sobol screening followed by Nelder-Mead
+descents from three distinct screened points and a restart from the best, within a budget of
+model runs (compiled whole for GR4J, :mod:`regional.compiled_search`); or ``thorough``,
+differential evolution with the whole population simulated as columns of one call per
+generation, then a compass-search polish. The model runs spent are
 recorded per basin (``n_runs``). docs/calibration.md compares the two.
 
 References
@@ -31,6 +32,7 @@ import pandas as pd
 from scipy.optimize import minimize_scalar
 
 from regional import metrics
+from regional.compiled_search import FAILED_SCORE, ColumnProblem, column_problem
 from regional.errors import InputError
 from regional.models import Simulator, get_model, parameter_table, snow_parameters
 from regional.search import SearchResult, evolve_and_polish, screen_and_descend
@@ -43,16 +45,17 @@ SEARCHES = ("fast", "thorough")
 """Searches for models with several free parameters (see :mod:`regional.search`)."""
 DEFAULT_SEARCH = "fast"
 """Default multi-parameter search."""
-DEFAULT_MAX_RUNS = 370
-"""Default budget of the fast search: model runs after the Sobol screening."""
+RUNS_PER_PARAMETER = 60
+"""Default budget of the fast search: model runs after the Sobol screening, per free parameter
+(240 for GR4J, 360 with the snow store calibrated), and at least :data:`MIN_MAX_RUNS`."""
+MIN_MAX_RUNS = 240
+"""Least default budget of the fast search (models with two or three free parameters)."""
 DEFAULT_BUDGET = 60
 """Default maximum generations of differential evolution (the thorough search)."""
 DEFAULT_POPSIZE = 8
 """Default population of differential evolution, per free parameter (scipy's ``popsize``)."""
 DEFAULT_SEED = 20240
 """Default seed of both searches: the same data give the same parameters."""
-FAILED_SCORE = 1e10
-"""Energy given to a parameter set whose score is undefined (NaN), so the search avoids it."""
 
 Period = tuple[str | pd.Timestamp, str | pd.Timestamp]
 
@@ -153,7 +156,7 @@ def calibrate(
     popsize: int = DEFAULT_POPSIZE,
     seed: int = DEFAULT_SEED,
     search: str = DEFAULT_SEARCH,
-    max_runs: int = DEFAULT_MAX_RUNS,
+    max_runs: int | None = None,
 ) -> pd.DataFrame:
     """Calibrate ``model`` at every gauged basin and score it on a validation period.
 
@@ -194,10 +197,11 @@ def calibrate(
     search : {"fast", "thorough"}, default "fast"
         Multi-parameter models only: Sobol screening then Nelder-Mead descents (``fast``), or
         differential evolution then a compass polish (``thorough``); see docs/calibration.md.
-    max_runs : int, default 370
+    max_runs : int, optional
         Fast search only: model runs allowed after the screening (16 Sobol points per free
-        parameter, rounded up to a power of two: 64 for GR4J); descents stop earlier once
-        converged.
+        parameter, rounded up to a power of two: 64 for GR4J); default 60 per free parameter
+        and at least 240 (240 for GR4J, 360 with the snow store calibrated). Descents stop
+        earlier once converged.
 
     Returns
     -------
@@ -249,7 +253,7 @@ class _SearchSettings:
     budget: int
     popsize: int
     seed: int
-    max_runs: int
+    max_runs: int | None
 
 
 def _search_settings(name, budget, popsize, seed, max_runs) -> _SearchSettings:
@@ -261,13 +265,14 @@ def _search_settings(name, budget, popsize, seed, max_runs) -> _SearchSettings:
         ("budget", budget, 1),
         ("popsize", popsize, 2),
         ("seed", seed, 0),
-        ("max_runs", max_runs, 0),
+        ("max_runs", 0 if max_runs is None else max_runs, 0),
     ):
         if isinstance(value, bool) or not isinstance(value, int | np.integer) or value < least:
             raise InputError(
                 f"calibration setting {key} must be a whole number >= {least}: got {value!r}"
             )
-    return _SearchSettings(name, int(budget), int(popsize), int(seed), int(max_runs))
+    max_runs = None if max_runs is None else int(max_runs)
+    return _SearchSettings(name, int(budget), int(popsize), int(seed), max_runs)
 
 
 def _basins_to_calibrate(flow_mm: pd.DataFrame, window: Window, basins) -> list[str]:
@@ -311,6 +316,12 @@ class _Problem:
         }
         for parameter in self.free:
             self.constant.pop(parameter.name)
+        self.column = None
+        start = simulator.initial_storage
+        if chosen.name == "gr4j" and (start is None or np.ndim(start) == 0):
+            self.column = column_problem(
+                simulator, scored[self.first :], objective, self.constant, self.free, self.first
+            )
 
     def sets(self, points: np.ndarray) -> dict[str, np.ndarray]:
         points = np.asarray(points, dtype=float).reshape(len(self.free), -1)
@@ -360,14 +371,16 @@ def _search_all(problem: _Problem, search: _SearchSettings, n_basins: int):
     upper = np.array([p.forward(p.upper) for p in free])
     start = np.clip([p.forward(p.initial) for p in free], lower, upper)
     if len(free) >= 2 and search.name == "fast":
+        column: ColumnProblem | None = problem.column
         found = screen_and_descend(
-            problem.energy,
+            problem.energy if column is None else column.energy,
             lower,
             upper,
             n_problems=n_basins,
             seed=search.seed,
-            max_runs=search.max_runs,
+            max_runs=_default_runs(len(free)) if search.max_runs is None else search.max_runs,
             start=start,
+            descend=None if column is None else column.descend,
         )
     else:
         found = [
@@ -381,6 +394,11 @@ def _search_all(problem: _Problem, search: _SearchSettings, n_basins: int):
             values[parameter.name] = float(np.clip(value, parameter.lower, parameter.upper))
         best.append({name: values[name] for name in problem.names})
     return best, np.array([result.n_runs for result in found])
+
+
+def _default_runs(n_free: int) -> int:
+    """Default budget of the fast search after the screening, model runs per basin."""
+    return max(RUNS_PER_PARAMETER * n_free, MIN_MAX_RUNS)
 
 
 def _search_one(problem: _Problem, column: int, lower, upper, start, search) -> SearchResult:

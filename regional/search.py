@@ -7,15 +7,18 @@ with the number of runs spent:
 - :func:`screen_and_descend` (the ``fast`` search): a scrambled, seeded Sobol sequence (Sobol
   1967; Owen 1998 scrambling, ``scipy.stats.qmc.Sobol``) screens the box in one call, then the
   Nelder-Mead simplex (Nelder and Mead 1965; points clipped to the box) descends from the best
-  few distinct screened points at once, one point per simplex in each call, within a budget of
-  runs. Screening a fixed spread of points
-  before a local search is common practice for rainfall-runoff models with four to seven
-  parameters (a coarse screening before a local descent; common practice, no source);
+  three distinct screened points, each descent stopped early, and restarts from the best point
+  found, within a budget of runs. The descents of many problems move in lockstep (one call
+  per step) or, given a compiled energy, run in a compiled loop per problem
+  (:mod:`regional.compiled_search`): Nelder-Mead is written as a compiled state machine
+  (:func:`begin_descent`, :func:`tell_descent`) whose caller scores the pending points.
+  Screening a fixed spread of points before a local search is common practice for
+  rainfall-runoff models with four to seven parameters (common practice, no source);
 - :func:`evolve_and_polish` (the ``thorough`` search): differential evolution (Storn and Price
   1997, ``scipy.optimize.differential_evolution``), the population scored in one call per
   generation, then a compass search (Kolda, Lewis and Torczon 2003) polishes the best member.
 
-Pure numpy and scipy; nothing here knows of models or files. All searches are deterministic
+Numpy, numba and scipy; nothing here knows of models or files. All searches are deterministic
 for a given seed.
 
 References
@@ -35,12 +38,14 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 from scipy.optimize import differential_evolution
 from scipy.stats import qmc
 
 Energy = Callable[[np.ndarray], np.ndarray]
 ManyEnergy = Callable[[np.ndarray, np.ndarray], np.ndarray]
+Descend = Callable[[np.ndarray, np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray]]
 
 MAX_POINTS_PER_CALL = 256
 """Points scored in one call at most (one model run each: bounds the memory of a call)."""
@@ -48,6 +53,11 @@ SCREEN_POINTS_PER_DIMENSION = 16
 """Sobol points per searched dimension, rounded up to a power of two (4 dimensions: 64)."""
 MIN_DESCENT = 50
 """A further descent starts only with at least this many runs of the budget left."""
+SCREENED_DESCENTS = 3
+"""Descents from distinct screened points before the restart from the best point found."""
+DESCENT_RUNS_PER_DIMENSION = 15
+"""Each descent from a screened point stops after this many runs per dimension (beyond its
+first simplex): enough to tell a promising valley, leaving the rest to the final restart."""
 START_SEPARATION = 0.25
 """Least distance between two descents' starts, as a share of the unit cube's diagonal."""
 SIMPLEX_STEP = 0.1
@@ -111,6 +121,13 @@ class _Counted:
                 self.best_energy[problem] = values[i]
         return values
 
+    def add(self, problems, best_x, best_energy, runs) -> None:
+        """Count runs made elsewhere and keep their best points (rows of ``best_x``)."""
+        self.n_runs[problems] += runs
+        better = best_energy < self.best_energy[problems]
+        self.best_x[problems[better]] = best_x[better]
+        self.best_energy[problems[better]] = best_energy[better]
+
     def results(self) -> list[SearchResult]:
         return [
             SearchResult(x, float(e), int(n))
@@ -139,11 +156,13 @@ def screen_and_descend(
     n_problems: int,
     seed: int,
     max_runs: int,
-    n_starts: int = 2,
+    n_starts: int = SCREENED_DESCENTS,
     start: np.ndarray | None = None,
+    descend: Descend | None = None,
 ) -> list[SearchResult]:
-    """Sobol screening of the box, then Nelder-Mead from the best screened points, for several
-    problems at once (e.g. one per basin: the same box, each its own energy).
+    """Sobol screening of the box, then Nelder-Mead from the best screened points and a restart
+    from the best point found, for several problems at once (e.g. one per basin: the same box,
+    each its own energy).
 
     Parameters
     ----------
@@ -158,14 +177,21 @@ def screen_and_descend(
         Seed of the Sobol scrambling (the only random element): every problem is screened with
         the same points.
     max_runs : int
-        Budget of points scored per problem after the screening, shared by its descents; each
-        descent stops earlier when its simplex has converged.
-    n_starts : int, default 2
-        Descents per problem, one after the other from its best screened points that lie apart
-        (see :func:`_distinct`), while at least :data:`MIN_DESCENT` runs of its budget are left;
-        the k-th descents of all problems run in lockstep, one point per simplex in each call.
+        Budget of points scored per problem after the screening, shared by its descents.
+    n_starts : int, default :data:`SCREENED_DESCENTS`
+        Descents from the best screened points that lie apart (see :func:`_distinct`), one
+        after the other, each stopped after :data:`DESCENT_RUNS_PER_DIMENSION` x n_dims runs
+        beyond its first simplex (or earlier, converged); then one descent restarts from the
+        best point found with a fresh simplex and the rest of the budget. A descent starts only
+        while at least :data:`MIN_DESCENT` runs of the budget are left.
     start : ndarray, optional
         A point scored with the screening (e.g. the model's default values).
+    descend : callable, optional
+        ``descend(problems, starts, start_energies, budgets)`` runs the descents of
+        :func:`begin_descent` and :func:`tell_descent` itself, one per problem (starts in the
+        unit cube, budgets of runs after the first simplex), e.g. compiled together with the
+        problem's energy; returns each one's best unit point, its energy and the runs spent.
+        Default: the descents of all problems in lockstep, one call of ``energy`` per step.
 
     Returns
     -------
@@ -181,35 +207,47 @@ def screen_and_descend(
     n_points = len(points)
     owner = np.repeat(np.arange(n_problems), n_points)
     values = counted((lower + np.tile(points, (n_problems, 1)) * span).T, owner)
-    ranked = []
-    for mine in values.reshape(n_problems, n_points):
-        order = np.argsort(mine, kind="stable")[: int(np.isfinite(mine).sum())]
-        ranked.append(_distinct(points[order], n_starts))
-    for k in range(n_starts):
-        # the k-th descent of every problem that has a k-th start and budget left, in lockstep
+    ranked = [_distinct(points, mine, n_starts) for mine in values.reshape(n_problems, -1)]
+    cap = DESCENT_RUNS_PER_DIMENSION * len(lower)
+    for k in range(n_starts + 1):
+        # one descent of every problem with a start and budget left, in lockstep
         left = max_runs - (counted.n_runs - n_points)
-        owners = [p for p in range(n_problems) if len(ranked[p]) > k and left[p] > MIN_DESCENT]
-        if not owners:
-            break
-        starts = np.array([ranked[p][k] for p in owners])
-        budget = np.zeros(n_problems, dtype=np.int64)
-        budget[owners] = left[owners] - (len(lower) + 1)
-        _descend_together(counted, starts, np.array(owners), lower, span, budget)
+        owners = np.array([p for p in range(n_problems) if left[p] > MIN_DESCENT], dtype=int)
+        if k < n_starts:
+            owners = np.array([p for p in owners if len(ranked[p][0]) > k], dtype=int)
+            starts = np.array([ranked[p][0][k] for p in owners]).reshape(-1, len(lower))
+            energies = np.array([ranked[p][1][k] for p in owners])
+            budget = np.minimum(left[owners] - len(lower), cap)
+        else:
+            owners = owners[np.isfinite(counted.best_energy[owners])]
+            starts = np.clip((counted.best_x[owners] - lower) / span, 0.0, 1.0)
+            energies = counted.best_energy[owners]
+            budget = left[owners] - len(lower)
+        if owners.size == 0:
+            continue
+        if descend is None:
+            _descend_together(counted, starts, energies, owners, lower, span, budget)
+        else:
+            best, found, runs = descend(owners, starts, energies, budget)
+            counted.add(owners, lower + best * span, found, runs)
     return counted.results()
 
 
-def _distinct(ranked: np.ndarray, n: int) -> list[np.ndarray]:
-    """The first ``n`` of the ranked unit-cube points that lie apart from those taken before
-    (at least :data:`START_SEPARATION` of the cube's diagonal), so descents explore other basins
-    of attraction rather than the same one."""
-    taken: list[np.ndarray] = []
-    diagonal = np.sqrt(ranked.shape[1])
-    for point in ranked:
+def _distinct(points: np.ndarray, energies: np.ndarray, n: int):
+    """The ``n`` best of the unit-cube points (finite energies) that lie apart from better ones
+    taken before (at least :data:`START_SEPARATION` of the cube's diagonal), so descents explore
+    other basins of attraction rather than the same one; with their energies."""
+    order = np.argsort(energies, kind="stable")[: int(np.isfinite(energies).sum())]
+    taken: list[int] = []
+    diagonal = np.sqrt(points.shape[1])
+    for i in order:
         if len(taken) == n:
             break
-        if all(np.linalg.norm(point - other) >= START_SEPARATION * diagonal for other in taken):
-            taken.append(point)
-    return taken
+        if all(
+            np.linalg.norm(points[i] - points[j]) >= START_SEPARATION * diagonal for j in taken
+        ):
+            taken.append(i)
+    return points[taken], energies[taken]
 
 
 def _sobol_points(n_dims: int, seed: int) -> np.ndarray:
@@ -219,92 +257,193 @@ def _sobol_points(n_dims: int, seed: int) -> np.ndarray:
 
 
 def _descend_together(
-    counted: _Counted, starts: np.ndarray, owner: np.ndarray, lower, span, budget: np.ndarray
+    counted: _Counted, starts, start_energies, owner, lower, span, budget: np.ndarray
 ) -> None:
     """Nelder-Mead (1965) from every start at once, in the unit cube; ``counted`` keeps the best.
 
-    The simplices (of all problems) move in lockstep so each step scores one point per simplex
-    in one call: reflect; then expand, contract outside or contract inside; shrink when the
-    contraction fails (standard coefficients 1, 2, 1/2, 1/2; points clipped to the cube). A
-    simplex stops when it spans at most :data:`SIMPLEX_XATOL` of every range and its energies
-    agree to :data:`SIMPLEX_FATOL`; a problem's simplices stop before a step could take its
-    runs (beyond the first simplices) past ``budget[problem]``.
+    The descents (:func:`begin_descent`, :func:`tell_descent`; one per start, of the problems
+    ``owner``, starting from points of known energies) move in lockstep so each step scores
+    every pending point in one call. A descent stops before a step could take its runs (beyond
+    the first simplex) past its ``budget``.
     """
-    n_simplices, n_dims = starts.shape
-
-    def score(units: np.ndarray, rows: np.ndarray) -> np.ndarray:
-        return counted((lower + np.clip(units, 0.0, 1.0) * span).T, owner[rows])
-
-    toward_inside = np.where(starts < 0.5, 1.0, -1.0)
-    simplex = np.repeat(starts[:, None, :], n_dims + 1, axis=1)
-    simplex[:, 1:, :] += SIMPLEX_STEP * toward_inside[:, None, :] * np.eye(n_dims)
-    simplex = np.clip(simplex, 0.0, 1.0)
-    every = np.repeat(np.arange(n_simplices), n_dims + 1)
-    energies = score(simplex.reshape(-1, n_dims), every).reshape(n_simplices, n_dims + 1)
-    spent = np.zeros(len(budget), dtype=np.int64)
-    active = np.ones(n_simplices, dtype=bool)
-    while True:
-        order = np.argsort(energies, axis=1, kind="stable")
-        simplex = np.take_along_axis(simplex, order[:, :, None], axis=1)
-        energies = np.take_along_axis(energies, order, axis=1)
-        active &= ~_converged(simplex, energies)
-        # a step costs at most 2 + n_dims runs a simplex
-        worst_case = np.bincount(owner[active], minlength=len(budget)) * (2 + n_dims)
-        active &= (spent + worst_case <= budget)[owner]
-        rows = np.flatnonzero(active)
-        if rows.size == 0:
-            break
-        spent += _step(score, simplex, energies, rows, len(budget), owner)
+    n_dims = starts.shape[1]
+    states = [new_descent(n_dims) for _ in starts]
+    pending = np.array(
+        [
+            begin_descent(x, f, b, *s)
+            for x, f, b, s in zip(starts, start_energies, budget, states, strict=True)
+        ]
+    )
+    while (pending > 0).any():
+        rows = np.flatnonzero(pending)
+        units = np.concatenate([states[i][2][: pending[i]] for i in rows])
+        values = counted((lower + units * span).T, np.repeat(owner[rows], pending[rows]))
+        for i, mine in zip(rows, np.split(values, np.cumsum(pending[rows])[:-1]), strict=True):
+            pending[i] = tell_descent(mine, *states[i])
 
 
-def _converged(simplex: np.ndarray, energies: np.ndarray) -> np.ndarray:
-    size = np.abs(simplex[:, 1:, :] - simplex[:, :1, :]).max(axis=(1, 2))
-    spread = np.abs(energies[:, 1:] - energies[:, :1]).max(axis=1)
-    return (size <= SIMPLEX_XATOL) & (spread <= SIMPLEX_FATOL)
+# Nelder-Mead as a compiled state machine: the caller scores the pending points and tells their
+# energies back, so the same steps run in lockstep over many problems (one call of the energy
+# per step, :func:`_descend_together`) or in a compiled loop over one problem's own compiled
+# energy (no Python per step).
+_PHASE, _PENDING, _SPENT, _BUDGET, _KIND = range(5)
+"""Slots of a descent's integer state (spent: runs after the first simplex)."""
+_INIT, _REFLECT, _TRIAL, _SHRINK, _DONE = range(5)
+"""Phases: pending are the first simplex, a reflection, a trial, a shrink; or nothing."""
+_EXPAND, _OUTSIDE, _INSIDE = range(3)
+"""Trials after a reflection that is not kept as it is."""
 
 
-def _step(score, simplex, energies, rows, n_problems: int, owner) -> np.ndarray:
-    """One Nelder-Mead step of the simplices ``rows`` (sorted, best first), in place.
+@numba.njit(cache=True, nogil=True)
+def new_descent(n_dims):  # pragma: no cover - compiled
+    """Arrays of one descent's state: simplex (d + 1, d), energies (d + 1,), pending points
+    (d + 1, d), centroid and reflection (2, d), the reflection's energy (1,), integers (5,)."""
+    return (
+        np.zeros((n_dims + 1, n_dims)),
+        np.zeros(n_dims + 1),
+        np.zeros((n_dims + 1, n_dims)),
+        np.zeros((2, n_dims)),
+        np.zeros(1),
+        np.zeros(5, dtype=np.int64),
+    )
 
-    Returns the runs spent per problem.
+
+@numba.njit(cache=True, nogil=True)
+def begin_descent(
+    start, energy, budget, simplex, energies, pending, work, memo, state
+):  # pragma: no cover - compiled
+    """Start a descent at ``start`` (unit cube) of known ``energy``; returns the points pending
+    (d: the other vertices of the first simplex, edges :data:`SIMPLEX_STEP` along each axis
+    towards the cube's inside).
+
+    ``budget``: runs the steps may take after the first simplex; a step that could pass it
+    (2 + d runs at most) is not started. Then score ``pending[:n]`` and call
+    :func:`tell_descent` until it returns 0.
     """
-    centroid = simplex[rows, :-1, :].mean(axis=1)
-    worst = simplex[rows, -1, :]
-    reflected = np.clip(2.0 * centroid - worst, 0.0, 1.0)
-    f_reflected = score(reflected, rows)
-    best, second, last = energies[rows, 0], energies[rows, -2], energies[rows, -1]
-    expand = f_reflected < best
-    accept = ~expand & (f_reflected < second)
-    outside = ~expand & ~accept & (f_reflected < last)
-    inside = ~expand & ~accept & ~outside
-    trial = np.where(expand[:, None], centroid + 2.0 * (reflected - centroid), reflected)
-    trial = np.where(outside[:, None], centroid + 0.5 * (reflected - centroid), trial)
-    trial = np.where(inside[:, None], centroid + 0.5 * (worst - centroid), trial)
-    trial = np.clip(trial, 0.0, 1.0)
-    f_trial = np.full(len(rows), np.inf)
-    if (~accept).any():
-        f_trial[~accept] = score(trial[~accept], rows[~accept])
-    new, f_new = reflected.copy(), f_reflected.copy()
-    take_trial = (expand & (f_trial < f_reflected)) | (outside & (f_trial <= f_reflected))
-    take_trial |= inside & (f_trial < last)
-    new[take_trial], f_new[take_trial] = trial[take_trial], f_trial[take_trial]
-    shrink = (outside | inside) & ~take_trial
-    simplex[rows[~shrink], -1, :] = new[~shrink]
-    energies[rows[~shrink], -1] = f_new[~shrink]
-    runs = np.ones(len(rows), dtype=np.int64) + ~accept
-    if shrink.any():
-        _shrink(score, simplex, energies, rows[shrink])
-        runs[shrink] += simplex.shape[2]
-    return np.bincount(owner[rows], weights=runs, minlength=n_problems).astype(np.int64)
+    n_dims = start.shape[0]
+    for i in range(n_dims + 1):
+        for j in range(n_dims):
+            simplex[i, j] = start[j]
+    for j in range(n_dims):
+        toward = 1.0 if start[j] < 0.5 else -1.0
+        simplex[j + 1, j] = min(max(start[j] + SIMPLEX_STEP * toward, 0.0), 1.0)
+    pending[:n_dims, :] = simplex[1:]
+    energies[0] = energy
+    state[_PHASE] = _INIT
+    state[_SPENT] = 0
+    state[_BUDGET] = budget
+    state[_PENDING] = n_dims
+    return n_dims
 
 
-def _shrink(score, simplex: np.ndarray, energies: np.ndarray, rows: np.ndarray) -> None:
-    """Move every vertex but the best halfway towards it, and score them in one call."""
-    n_dims = simplex.shape[2]
-    best = simplex[rows, :1, :]
-    simplex[rows, 1:, :] = best + 0.5 * (simplex[rows, 1:, :] - best)
-    vertices = simplex[rows, 1:, :].reshape(-1, n_dims)
-    energies[rows, 1:] = score(vertices, np.repeat(rows, n_dims)).reshape(len(rows), -1)
+@numba.njit(cache=True, nogil=True)
+def tell_descent(values, simplex, energies, pending, work, memo, state):  # pragma: no cover
+    """Take the energies of the pending points and move the simplex; returns the points now
+    pending in ``pending`` (0: the descent has stopped, its best vertex is ``simplex[0]``).
+
+    One step (coefficients 1, 2, 1/2, 1/2; points clipped to the cube): reflect the worst
+    vertex through the centroid of the others; keep the reflection, or try an expansion, an
+    outside or an inside contraction; shrink every vertex halfway to the best when the
+    contraction fails. The descent stops when the simplex spans at most :data:`SIMPLEX_XATOL`
+    of every range and its energies agree to :data:`SIMPLEX_FATOL`, or at the budget.
+    """
+    n_dims = simplex.shape[1]
+    phase = state[_PHASE]
+    if phase == _INIT:
+        energies[1:] = values[:n_dims]
+    elif phase == _REFLECT:
+        if _after_reflection(values[0], simplex, energies, pending, work, memo, state):
+            return 1
+    elif phase == _TRIAL:
+        if _after_trial(values[0], simplex, energies, pending, work, memo, state):
+            return n_dims
+    elif phase == _SHRINK:
+        energies[1:] = values[:n_dims]
+        state[_SPENT] += n_dims
+    return _next_step(simplex, energies, pending, work, state)
+
+
+@numba.njit(cache=True, nogil=True)
+def _after_reflection(
+    f_reflected, simplex, energies, pending, work, memo, state
+):  # pragma: no cover
+    """Keep the reflection (returns False), or set the trial pending (returns True)."""
+    n_dims = simplex.shape[1]
+    centroid, reflected = work[0], work[1]
+    memo[0] = f_reflected
+    if f_reflected < energies[0]:
+        kind, base, factor = _EXPAND, reflected, 2.0
+    elif f_reflected < energies[n_dims - 1]:
+        simplex[n_dims, :] = reflected
+        energies[n_dims] = f_reflected
+        state[_SPENT] += 1
+        return False
+    elif f_reflected < energies[n_dims]:
+        kind, base, factor = _OUTSIDE, reflected, 0.5
+    else:
+        kind, base, factor = _INSIDE, simplex[n_dims], 0.5
+    for j in range(n_dims):
+        trial = centroid[j] + factor * (base[j] - centroid[j])
+        pending[0, j] = min(max(trial, 0.0), 1.0)
+    state[_KIND] = kind
+    state[_PHASE] = _TRIAL
+    state[_PENDING] = 1
+    return True
+
+
+@numba.njit(cache=True, nogil=True)
+def _after_trial(f_trial, simplex, energies, pending, work, memo, state):  # pragma: no cover
+    """Keep the trial or the reflection (returns False), or set the shrink pending (True)."""
+    n_dims = simplex.shape[1]
+    kind, f_reflected = state[_KIND], memo[0]
+    state[_SPENT] += 2
+    take = (
+        (kind == _EXPAND and f_trial < f_reflected)
+        or (kind == _OUTSIDE and f_trial <= f_reflected)
+        or (kind == _INSIDE and f_trial < energies[n_dims])
+    )
+    if take:
+        simplex[n_dims, :] = pending[0]
+        energies[n_dims] = f_trial
+        return False
+    if kind == _EXPAND:
+        simplex[n_dims, :] = work[1]
+        energies[n_dims] = f_reflected
+        return False
+    for i in range(1, n_dims + 1):
+        for j in range(n_dims):
+            simplex[i, j] = simplex[0, j] + 0.5 * (simplex[i, j] - simplex[0, j])
+            pending[i - 1, j] = simplex[i, j]
+    state[_PHASE] = _SHRINK
+    state[_PENDING] = n_dims
+    return True
+
+
+@numba.njit(cache=True, nogil=True)
+def _next_step(simplex, energies, pending, work, state):  # pragma: no cover
+    """Sort the simplex; stop, or set the reflection of its worst vertex pending."""
+    n_dims = simplex.shape[1]
+    order = np.argsort(energies, kind="mergesort")
+    simplex[:, :] = simplex[order]
+    energies[:] = energies[order]
+    size = np.abs(simplex[1:] - simplex[0]).max()
+    spread = np.abs(energies[1:] - energies[0]).max()
+    converged = size <= SIMPLEX_XATOL and spread <= SIMPLEX_FATOL
+    if converged or state[_SPENT] + 2 + n_dims > state[_BUDGET]:
+        state[_PHASE] = _DONE
+        state[_PENDING] = 0
+        return 0
+    centroid, reflected = work[0], work[1]
+    for j in range(n_dims):
+        total = 0.0
+        for i in range(n_dims):
+            total += simplex[i, j]
+        centroid[j] = total / n_dims
+        reflected[j] = min(max(2.0 * centroid[j] - simplex[n_dims, j], 0.0), 1.0)
+    pending[0, :] = reflected
+    state[_PHASE] = _REFLECT
+    state[_PENDING] = 1
+    return 1
 
 
 def evolve_and_polish(

@@ -16,6 +16,7 @@ ORDER = (
     "metrics",
     "flowstats",
     "search",
+    "compiled_search",
     "transfer",
     "config",
     "io",
