@@ -72,7 +72,7 @@ def make_region(folder: Path, n_basins: int, years: int, seed: int = 11) -> Path
     )
     basins.to_file(folder / "basins.gpkg", layer="basins", driver="GPKG")
     dates = pd.date_range("2001-01-01", periods=int(years * 365.25), freq="D")
-    season = np.sin(2 * np.pi * (dates.dayofyear.to_numpy() - 100) / 365.25)
+    season = np.sin(2 * np.pi * (dates.day_of_year.to_numpy() - 100) / 365.25)
     regional_storm = rng.gamma(0.5, 6.0, len(dates))
     with pyarrow.parquet.ParquetWriter(folder / "series.parquet", _SCHEMA) as writer:
         for first in range(0, n_basins, BUILD_CHUNK):
@@ -124,7 +124,9 @@ STAGES = (
     "_calibrate",
     "choose_donor_counts",
     "leave_one_out",
+    "fit_region",
     "predict_region",
+    "_statistics",
     "screen_region",
 )
 """Functions of ``regional.pipeline`` whose peak resident memory is recorded one by one."""

@@ -292,13 +292,145 @@ def pooled_bounds(values: np.ndarray, basins: np.ndarray, level: float) -> tuple
     days = len(values)
     if days == 0:
         return -np.inf, np.inf
-    codes, inverse, counts = np.unique(basins, return_inverse=True, return_counts=True)
-    cumulative = np.cumsum(1.0 / (len(codes) * counts[inverse]))
-    low_level = np.floor((days + 1) * (1.0 - level) / 2.0) / days
-    high_level = np.ceil((days + 1) * (1.0 + level) / 2.0) / days
+    cumulative = _basin_weights(basins)
+    low_level, high_level = _conformal_levels(days, level)
     return (
         _inverse_cdf(values, cumulative, low_level, -np.inf),
         _inverse_cdf(values, cumulative, high_level, np.inf),
+    )
+
+
+def _basin_weights(basins: np.ndarray) -> np.ndarray:
+    """Cumulative weight along sorted residuals, each basin weighing the same in total."""
+    codes, inverse, counts = np.unique(basins, return_inverse=True, return_counts=True)
+    return np.cumsum(1.0 / (len(codes) * counts[inverse]))
+
+
+def _conformal_levels(days: int, level: float) -> tuple[float, float]:
+    """Probabilities of the lower and upper split-conformal quantiles over ``days`` residuals."""
+    low_level = np.floor((days + 1) * (1.0 - level) / 2.0) / days
+    high_level = np.ceil((days + 1) * (1.0 + level) / 2.0) / days
+    return low_level, high_level
+
+
+@dataclass(frozen=True)
+class ResidualTails:
+    """The tails of an error model's sorted residuals: its quantiles at any level >= ``level``.
+
+    The lower quantile at a level L >= ``level`` lies at or below the lower quantile at
+    ``level``, and the upper one at or above the upper one, so keeping each class's sorted
+    residuals (with their cumulative basin weights) up to the first and from the second gives
+    exactly the error model of :func:`conformal_bounds` at every such level, in about
+    1 - ``level`` of the memory. The held-out check (:mod:`regional.heldout`) keeps these per
+    repeat instead of the training basins' daily flows, to rebuild a widened model.
+
+    Attributes
+    ----------
+    level : float
+        The lowest level the tails serve.
+    offset_fraction : float
+        As in :class:`ConformalErrorModel`.
+    days : ndarray (n_classes,)
+        Residual days per class.
+    n_basins : int
+        Basins with a residual.
+    low_values, low_weights, high_values, high_weights : tuple of ndarray
+        Per class: the kept sorted residuals of each tail and their cumulative weights.
+    """
+
+    level: float
+    offset_fraction: float
+    days: np.ndarray
+    n_basins: int
+    low_values: tuple[np.ndarray, ...]
+    low_weights: tuple[np.ndarray, ...]
+    high_values: tuple[np.ndarray, ...]
+    high_weights: tuple[np.ndarray, ...]
+
+    @classmethod
+    def of(
+        cls,
+        observed: pd.DataFrame,
+        simulated: pd.DataFrame,
+        *,
+        level: float,
+        n_classes: int,
+        offset_fraction: float = OFFSET_FRACTION,
+    ) -> ResidualTails:
+        """Tails of the error model :func:`conformal_bounds` builds from these flows."""
+        level = check_level(level)
+        obs, sim = aligned(observed, simulated)
+        residual, basin, klass = log_residuals(
+            obs, sim, flow_classes(sim, n_classes), offset_fraction
+        )
+        data = SortedResiduals.of(residual, basin, klass, n_classes)
+        parts: tuple[list, list, list, list] = ([], [], [], [])
+        for values, basins in zip(data.values, data.basins, strict=True):
+            for part, kept in zip(parts, _tails(values, basins, level), strict=True):
+                part.append(kept)
+        return cls(
+            level=level,
+            offset_fraction=offset_fraction,
+            days=np.array([len(v) for v in data.values], dtype=float),
+            n_basins=len(np.unique(basin)),
+            low_values=tuple(parts[0]),
+            low_weights=tuple(parts[1]),
+            high_values=tuple(parts[2]),
+            high_weights=tuple(parts[3]),
+        )
+
+    def error_model(self, class_levels: Sequence[float] | None = None) -> ConformalErrorModel:
+        """The error model at ``class_levels`` (each >= :attr:`level`; default :attr:`level`).
+
+        Equal to :func:`conformal_bounds` with the same ``class_levels`` on the flows the tails
+        were taken from.
+        """
+        k = len(self.days)
+        levels = _class_levels(class_levels, self.level, k)
+        if (levels < self.level).any():
+            raise ValueError(
+                f"the residual tails serve levels >= {self.level}; got {levels.tolist()}"
+            )
+        lower, upper = np.empty(k), np.empty(k)
+        for c in range(k):
+            days = int(self.days[c])
+            if days == 0:
+                lower[c], upper[c] = -np.inf, np.inf
+                continue
+            low_level, high_level = _conformal_levels(days, float(levels[c]))
+            lower[c] = _inverse_cdf(self.low_values[c], self.low_weights[c], low_level, -np.inf)
+            upper[c] = _inverse_cdf(self.high_values[c], self.high_weights[c], high_level, np.inf)
+        model = ConformalErrorModel(
+            level=float(levels[0]),
+            offset_fraction=self.offset_fraction,
+            edges=np.linspace(0.0, 1.0, k + 1),
+            lower_q=np.minimum(lower, 0.0),
+            upper_q=np.maximum(upper, 0.0),
+            n_days=self.days.copy(),
+            n_basins=self.n_basins,
+        )
+        if class_levels is None:
+            return model
+        return replace(model, level=self.level, class_levels=levels)
+
+
+def _tails(values: np.ndarray, basins: np.ndarray, level: float) -> tuple[np.ndarray, ...]:
+    """(low values, low weights, high values, high weights) of one class kept for levels >=
+    ``level``: up to the first position the lower probability reaches, from the position the
+    upper one reaches (at least the last residual, which :func:`_inverse_cdf` falls back on)."""
+    days = len(values)
+    if days == 0:
+        return values, values.astype(float), values, values.astype(float)
+    cumulative = _basin_weights(basins)
+    low_level, high_level = _conformal_levels(days, level)
+    tolerance = 1e-12
+    stop = int(np.searchsorted(cumulative, low_level - tolerance, side="left")) + 1
+    start = min(int(np.searchsorted(cumulative, high_level - tolerance, side="left")), days - 1)
+    return (
+        values[: min(stop, days)].copy(),
+        cumulative[: min(stop, days)].copy(),
+        values[start:].copy(),
+        cumulative[start:].copy(),
     )
 
 

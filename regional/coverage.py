@@ -18,6 +18,8 @@ import pandas as pd
 
 from regional.bounds import (
     OFFSET_FRACTION,
+    ConformalErrorModel,
+    ResidualTails,
     SortedResiduals,
     aligned,
     basin_offsets,
@@ -233,9 +235,81 @@ class HeldOutRepeat:
     n_reused: int
 
 
+@dataclass(frozen=True)
+class HeldOutSummary:
+    """What the held-out check keeps of one repeat: no training basin's daily flow.
+
+    Attributes
+    ----------
+    held_out : tuple of str
+        The gauged basins treated as ungauged in this repeat.
+    training : tuple of str
+        The other gauged basins.
+    tails : ResidualTails
+        The tails of the repeat's error model (built from the training basins' flows), enough
+        to rebuild it exactly at the nominal or any widened level.
+    held_out_flow : DataFrame
+        Evaluation days x held-out basins: flow transferred from the training basins, mm/day.
+    training_statistics, held_out_statistics : DataFrame or None
+        Flow statistics (:func:`regional.flowstats.statistics_frame`) of the training and
+        held-out basins' flows, for the statistics' own held-out check; None when not kept.
+    n_simulated, n_reused : int
+        As in :class:`HeldOutRepeat`.
+    """
+
+    held_out: tuple[str, ...]
+    training: tuple[str, ...]
+    tails: ResidualTails
+    held_out_flow: pd.DataFrame
+    training_statistics: pd.DataFrame | None
+    held_out_statistics: pd.DataFrame | None
+    n_simulated: int
+    n_reused: int
+
+
+def summarise_repeat(
+    observed: pd.DataFrame,
+    repeat: HeldOutRepeat,
+    *,
+    level: float,
+    n_classes: int | None = None,
+    statistics=None,
+) -> HeldOutSummary:
+    """The summary of a repeat that :func:`held_out_coverage` needs (its flows can be dropped).
+
+    Parameters
+    ----------
+    observed : DataFrame
+        Evaluation days x gauged basins, observed flow, mm/day.
+    repeat : HeldOutRepeat
+        From :func:`regional.heldout.held_out_flows`.
+    level : float
+        Nominal level: the tails serve this level and any wider one.
+    n_classes : int, optional
+        Flow classes (default: chosen from the training basins' records).
+    statistics : callable(flow DataFrame) -> DataFrame, optional
+        Flow statistics of a days x basins table, kept for the training and held-out basins.
+    """
+    training = list(repeat.training_flow.columns)
+    classes = n_classes or default_n_classes(observed[training].to_numpy(dtype=float))
+    tails = ResidualTails.of(
+        observed[training], repeat.training_flow, level=level, n_classes=classes
+    )
+    return HeldOutSummary(
+        held_out=tuple(repeat.held_out),
+        training=tuple(str(b) for b in training),
+        tails=tails,
+        held_out_flow=repeat.held_out_flow,
+        training_statistics=None if statistics is None else statistics(repeat.training_flow),
+        held_out_statistics=None if statistics is None else statistics(repeat.held_out_flow),
+        n_simulated=repeat.n_simulated,
+        n_reused=repeat.n_reused,
+    )
+
+
 def held_out_coverage(
     observed: pd.DataFrame,
-    repeats: Sequence[HeldOutRepeat],
+    repeats: Sequence[HeldOutRepeat | HeldOutSummary],
     *,
     level: float,
     n_classes: int | None = None,
@@ -253,8 +327,9 @@ def held_out_coverage(
     ----------
     observed : DataFrame
         Evaluation days x gauged basins, observed flow, mm/day (NaN = missing).
-    repeats : sequence of HeldOutRepeat
-        From :func:`regional.heldout.held_out_flows`.
+    repeats : sequence of HeldOutRepeat or HeldOutSummary
+        From :func:`regional.heldout.held_out_flows`, or their summaries
+        (:func:`summarise_repeat`, taken at ``level`` or below it).
     level : float
         Nominal level of the bounds.
     n_classes : int, optional
@@ -271,20 +346,12 @@ def held_out_coverage(
     level = check_level(level)
     shares: dict[str, list[float]] = {}
     for draw in repeats:
-        training = list(draw.training_flow.columns)
-        classes = n_classes or default_n_classes(observed[training].to_numpy(dtype=float))
-        model = conformal_bounds(
-            observed[training],
-            draw.training_flow,
-            level=level,
-            n_classes=classes,
-            class_levels=class_levels,
-        )
+        model = _repeat_model(observed, draw, level, n_classes, class_levels)
         low, high = model.bounds(draw.held_out_flow)
         held = list(draw.held_out_flow.columns)
         obs = observed[held].to_numpy(dtype=float)
         sim = draw.held_out_flow.to_numpy(dtype=float)
-        per_group = _coverage_shares(obs, sim, low.to_numpy(), high.to_numpy(), classes)
+        per_group = _coverage_shares(obs, sim, low.to_numpy(), high.to_numpy(), model.n_classes)
         for name, values in per_group.items():
             shares.setdefault(name, []).extend(values[np.isfinite(values)].tolist())
     rows = [
@@ -297,6 +364,23 @@ def held_out_coverage(
     ]
     return pd.DataFrame(rows, columns=["flow_class", "coverage", "n_pairs"]).set_index(
         "flow_class"
+    )
+
+
+def _repeat_model(observed, draw, level, n_classes, class_levels) -> ConformalErrorModel:
+    """The repeat's error model: from its training flows, or rebuilt from its tails."""
+    if isinstance(draw, HeldOutSummary):
+        if class_levels is None:
+            class_levels = np.full(len(draw.tails.days), level)
+        return draw.tails.error_model(class_levels)
+    training = list(draw.training_flow.columns)
+    classes = n_classes or default_n_classes(observed[training].to_numpy(dtype=float))
+    return conformal_bounds(
+        observed[training],
+        draw.training_flow,
+        level=level,
+        n_classes=classes,
+        class_levels=class_levels,
     )
 
 

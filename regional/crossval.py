@@ -228,7 +228,7 @@ def _one_fold(target: str, context: FoldContext) -> dict:
     names = list(transforms)
     forcing = _target_forcing(target, context)
     obs = context.flow_mm[target].to_numpy(dtype=float)[context.evaluation]
-    train = _training_ids(target, context)
+    train = _fold_training(target, context)
     fold = {"basin_id": target, "methods": {}, "warnings": []}
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -246,6 +246,12 @@ def _training_ids(target: str, context: FoldContext) -> pd.Index:
     drop = [target, *context.excluded.get(target, ())]
     ids = context.calibrated.index
     return ids[~ids.isin(drop)]
+
+
+def _fold_training(target: str, context: FoldContext) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The fold's training attributes and parameters, taken once for all its methods."""
+    train = _training_ids(target, context)
+    return context.attributes.loc[train], context.calibrated.loc[train, list(context.transforms)]
 
 
 def _target_forcing(target: str, context: FoldContext) -> dict[str, np.ndarray | None]:
@@ -270,7 +276,7 @@ def _simulate_set(context: FoldContext, forcing, params: Mapping[str, float]) ->
 
 
 def _transfer_flow(method, target, train, context, forcing, transforms):
-    n_donors = min(context.options.donors_for(method), len(train))
+    n_donors = min(context.options.donors_for(method), len(train[0]))
     donation = _fold_donation(method, target, train, context, transforms, n_donors)
     names = list(transforms)
     estimate = weighted_estimate(donation.sets, names, transforms).iloc[0].to_dict()
@@ -304,12 +310,14 @@ def donation_flow(
 
 
 def _fold_donation(method, target, train, context, transforms, n_donors):
-    """Fit ``method`` on the fold's training basins and donate to the target."""
+    """Fit ``method`` on the fold's training basins (their attributes and parameters,
+    :func:`_fold_training`) and donate to the target."""
     options = context.options
+    attributes, parameters = train
     estimator = fit_transfer(
         method,
-        context.attributes.loc[train],
-        context.calibrated.loc[train, list(transforms)],
+        attributes,
+        parameters,
         transforms=transforms,
         attributes=list(options.attributes) if options.attributes else None,
         n_donors=n_donors,
@@ -560,8 +568,8 @@ def _count_fold(target: str, context: FoldContext) -> list[dict]:
     transforms = context.transforms
     forcing = _target_forcing(target, context)
     obs = context.flow_mm[target].to_numpy(dtype=float)[context.evaluation]
-    train = _training_ids(target, context)
-    counts = sorted({min(n, len(train)) for n in context.options.donor_choices})
+    train = _fold_training(target, context)
+    counts = sorted({min(n, len(train[0])) for n in context.options.donor_choices})
     rows = []
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the same warnings reach the user from leave_one_out

@@ -186,6 +186,8 @@ def fit_region(
     basins: gpd.GeoDataFrame,
     level: float | None = None,
     inputs: dict[str, str] | None = None,
+    executor=None,
+    reader=None,
 ) -> FittedRegion:
     """Gather the fitted region from the per-model calibration and leave-one-out runs.
 
@@ -211,6 +213,9 @@ def fit_region(
         Nominal level; default ``[prediction] level``.
     inputs : dict, optional
         Input file -> SHA-256, stored to tell later whether the inputs changed.
+    executor, reader : optional
+        A Dask executor and series store reader for the held-out check's repeats
+        (:func:`regional.heldout.held_out_check`); default in this process.
 
     Returns
     -------
@@ -227,6 +232,8 @@ def fit_region(
         level=level,
         repeats=settings.prediction.held_out_repeats,
         fit_level=settings.prediction.level,
+        executor=executor,
+        reader=reader,
     )
     coverage = with_held_out(loo_coverage(runs, level=level), held_out, model=model, method=method)
     dates = context.precip_mm.index

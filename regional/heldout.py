@@ -8,22 +8,28 @@ flow classes that fall short. See ``docs/prediction.md``.
 
 from __future__ import annotations
 
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 
+from regional import flowstats
 from regional.bounds import ConformalErrorModel, conformal_bounds
+from regional.compute import chunk_size, chunked
 from regional.coverage import (
     REPORTED_DECILES,
     WIDEN_TOLERANCE,
     HeldOutRepeat,
+    HeldOutSummary,
     held_out_coverage,
+    summarise_repeat,
     widened_levels,
 )
 from regional.crossval import FoldContext
 from regional.donation import fit_transfers, method_flows
 from regional.errors import InputError
+from regional.series import StoreReader, shipped
 from regional.transfer import Donation
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
@@ -31,6 +37,8 @@ if TYPE_CHECKING:  # pragma: no cover - annotations only
 
 HELD_OUT_FRACTION = 0.1
 """Share of the gauged basins held out of the whole fit in each repeat of the held-out check."""
+HELD_OUT_CHUNK = 16
+"""Target basins per task when a repeat runs on a cluster."""
 HELD_OUT_SEED = 20_241_202
 """Seed of the random draws of held-out basins (the check is reproducible)."""
 MIN_HELD_OUT_BASINS = 10
@@ -80,6 +88,25 @@ def held_out_flows(
     -------
     list of HeldOutRepeat
     """
+    return list(_repeats(run, method, repeats=repeats, level=level, fraction=fraction, seed=seed))
+
+
+def _repeats(
+    run: ModelRun,
+    method: str,
+    *,
+    repeats,
+    level: float,
+    fraction,
+    seed,
+    executor=None,
+    chunk_basins: int = HELD_OUT_CHUNK,
+    reader: StoreReader | None = None,
+):
+    """The repeats of :func:`held_out_flows` one at a time (each can be summarised and dropped
+    before the next is simulated). With an ``executor`` (a Dask cluster) each repeat's target
+    basins run as tasks of ``chunk_basins``, reading their series with ``reader`` when given;
+    the flows are the same."""
     if int(repeats) != repeats or repeats < 1:
         raise ValueError(f"repeats must be a whole number >= 1: got {repeats!r}")
     if not 0.0 < fraction < 1.0:
@@ -91,12 +118,75 @@ def held_out_flows(
             f"the held-out check needs at least {size + 3} gauged basins to hold out {size}; "
             f"found {len(gauged)}"
         )
-    folds = _HeldOutFolds(run.context, run.loo, method, level=level)
-    draws = []
+    folds = _HeldOutFolds(run.context, method, level=level)
+    loo_flow = run.loo.simulated[method]
     for held in _held_out_draws(gauged, size, int(repeats), seed):
-        training = [b for b in gauged if b not in held]
-        draws.append(folds.repeat(held, training))
-    return draws
+        held_set = set(held)
+        training = [b for b in gauged if b not in held_set]
+        pool = sorted([*training, *run.context.donor_only])  # donor-only basins always donate
+        if executor is None:
+            flows = folds.flows(training, pool=pool) | folds.flows(list(held), pool=pool)
+        else:
+            job = _RepeatJob.of(run.context, method, level, tuple(pool))
+            chunks = chunked([*training, *held], chunk_basins)
+            task, shared = shipped(_repeat_chunk, job, reader)
+            flows = {k: v for part in executor.map(task, chunks, shared) for k, v in part.items()}
+        yield _assembled(held, training, flows, loo_flow)
+
+
+def _assembled(held, training, flows: dict, loo_flow: pd.DataFrame) -> HeldOutRepeat:
+    """A repeat from its basins' flows (None: the leave-one-out flow is reused)."""
+
+    def frame(targets: list[str]) -> pd.DataFrame:
+        columns = [
+            loo_flow[t].to_numpy(dtype=float) if flows[t] is None else flows[t] for t in targets
+        ]
+        return pd.DataFrame(
+            np.column_stack(columns),
+            index=loo_flow.index,
+            columns=pd.Index(targets, name="basin_id"),
+        )
+
+    reused = sum(flows[t] is None for t in [*training, *held])
+    return HeldOutRepeat(
+        held_out=held,
+        training_flow=frame(list(training)),
+        held_out_flow=frame(list(held)),
+        n_simulated=len(training) + len(held) - reused,
+        n_reused=reused,
+    )
+
+
+@dataclass(frozen=True)
+class _RepeatJob:
+    """What a task of one repeat needs: the fold context (its daily tables travel in the four
+    table fields, whole in process or the task's basins read from the store), the method and
+    the repeat's pool of donors (training and donor-only basins)."""
+
+    context: FoldContext
+    method: str
+    level: float
+    pool: tuple[str, ...]
+    precip_mm: pd.DataFrame | None
+    pet_mm: pd.DataFrame | None
+    flow_mm: pd.DataFrame | None
+    temp_c: pd.DataFrame | None
+
+    @classmethod
+    def of(cls, context: FoldContext, method: str, level: float, pool) -> _RepeatJob:
+        tables = {name: getattr(context, name) for name in _TABLES}
+        bare = replace(context, **dict.fromkeys(_TABLES))
+        return cls(bare, method, level, tuple(pool), **tables)
+
+
+_TABLES = ("precip_mm", "pet_mm", "flow_mm", "temp_c")
+
+
+def _repeat_chunk(targets, job: _RepeatJob) -> dict[str, np.ndarray | None]:
+    """Flows of some target basins of one repeat (one task)."""
+    tables = {name: getattr(job, name) for name in _TABLES}
+    folds = _HeldOutFolds(replace(job.context, **tables), job.method, level=job.level)
+    return folds.flows(list(targets), pool=list(job.pool))
 
 
 def _held_out_draws(gauged: list[str], size: int, repeats: int, seed: int) -> list[tuple]:
@@ -120,39 +210,22 @@ def _held_out_draws(gauged: list[str], size: int, repeats: int, seed: int) -> li
 class _HeldOutFolds:
     """Folds of the held-out check for one (model, method); caches leave-one-out donations."""
 
-    def __init__(self, context: FoldContext, loo, method: str, *, level: float) -> None:
-        self.context, self.loo, self.method, self.level = context, loo, method, level
+    def __init__(self, context: FoldContext, method: str, *, level: float) -> None:
+        self.context, self.method, self.level = context, method, level
         self._loo_donations: dict[str, Donation] = {}
-        self.simulated = self.reused = 0
 
-    def repeat(self, held: tuple[str, ...], training: list[str]) -> HeldOutRepeat:
-        start_simulated, start_reused = self.simulated, self.reused
-        pool = sorted([*training, *self.context.donor_only])  # donor-only basins always donate
-        training_flow = self._flows(training, pool=pool)
-        held_flow = self._flows(list(held), pool=pool)
-        return HeldOutRepeat(
-            held_out=held,
-            training_flow=training_flow,
-            held_out_flow=held_flow,
-            n_simulated=self.simulated - start_simulated,
-            n_reused=self.reused - start_reused,
-        )
+    def flows(self, targets: list[str], *, pool: list[str]) -> dict[str, np.ndarray | None]:
+        """Each target's flow over the evaluation days from a fit on ``pool`` (without the
+        target); None where the donation equals the leave-one-out one (its flow is reused)."""
+        shared: dict[str, object] = {}
+        return {target: self._flow(target, pool, shared) for target in targets}
 
-    def _flows(self, targets: list[str], *, pool: list[str]) -> pd.DataFrame:
-        columns = [self._flow(target, pool) for target in targets]
-        index = self.loo.observed.index
-        return pd.DataFrame(
-            np.column_stack(columns), index=index, columns=pd.Index(targets, name="basin_id")
-        )
-
-    def _flow(self, target: str, pool: list[str]) -> np.ndarray:
-        donation = self._donation(target, pool)
+    def _flow(self, target: str, pool: list[str], shared: dict) -> np.ndarray | None:
+        donation = self._donation(target, pool, shared)
         if self.method in REUSABLE_METHODS and _same_donation(
             donation, self._loo_donation(target)
         ):
-            self.reused += 1
-            return self.loo.simulated[self.method][target].to_numpy(dtype=float)
-        self.simulated += 1
+            return None
         return method_flows(self.context, donation, [target])[self.context.evaluation, 0]
 
     def _loo_donation(self, target: str) -> Donation:
@@ -161,13 +234,26 @@ class _HeldOutFolds:
             self._loo_donations[target] = self._donation(target, everyone)
         return self._loo_donations[target]
 
-    def _donation(self, target: str, pool: list[str]) -> Donation:
+    def _donation(self, target: str, pool: list[str], shared: dict | None = None) -> Donation:
+        """The target's donation from a fit on ``pool`` without it and its overlapping basins.
+
+        When none of those lies in the pool (a held-out basin), the fit is the fit on the whole
+        pool: it is made once and kept in ``shared`` for the other such targets of the pool, so
+        a repeat fits its held-out basins' transfer once, not once per basin.
+        """
         drop = {target, *self.context.excluded.get(target, ())}
         train = [b for b in pool if b not in drop]
-        estimators, _ = fit_transfers(
-            self.context, level=self.level, train=train, methods=[self.method]
-        )
-        return estimators[self.method].donate(self.context.attributes.loc[[target]])
+        whole = len(train) == len(pool)
+        if whole and shared is not None and "fit" in shared:
+            estimator = shared["fit"]
+        else:
+            estimators, _ = fit_transfers(
+                self.context, level=self.level, train=train, methods=[self.method]
+            )
+            estimator = estimators[self.method]
+            if whole and shared is not None:
+                shared["fit"] = estimator
+        return estimator.donate(self.context.attributes.loc[[target]])
 
 
 def _same_donation(first: Donation, second: Donation) -> bool:
@@ -194,7 +280,9 @@ def held_out_check(
     level: float,
     repeats: int,
     fit_level: float,
-) -> tuple[pd.DataFrame | None, ConformalErrorModel, list[str], tuple[HeldOutRepeat, ...]]:
+    executor=None,
+    reader: StoreReader | None = None,
+) -> tuple[pd.DataFrame | None, ConformalErrorModel, list[str], tuple[HeldOutSummary, ...]]:
     """Held-out coverage of the chosen bounds; classes short by > tolerance are widened.
 
     Parameters
@@ -211,14 +299,22 @@ def held_out_check(
         Repeats of the check (``[prediction] held_out_repeats``; 0: no check).
     fit_level : float
         Interval level the transfers are fit with (``[prediction] level``).
+    executor : optional
+        A Dask executor (:mod:`regional.compute`): each repeat's basins run as its tasks
+        (reading their series with ``reader`` when given); default in this process. The
+        results are the same.
+    reader : StoreReader, optional
+        Reads a task's basins from the series store.
 
     Returns
     -------
     (table or None, error model, notes, repeats)
         The held-out table (see :attr:`regional.predict.Prediction.held_out`; None when the
         check does not run), the error model to use (widened where classes fell short), the
-        notes saying what was done, and the repeats' flows (empty when the check does not run;
-        the flow statistics reuse them for their own held-out check).
+        notes saying what was done, and the repeats' summaries (:class:`HeldOutSummary`: the
+        held-out basins' flows, the tails of each repeat's error model and the flow statistics,
+        no training basin's daily flow; empty when the check does not run; the flow statistics
+        reuse them for their own held-out check).
     """
     n_gauged = run.loo.observed.shape[1]
     if repeats == 0:
@@ -238,9 +334,23 @@ def held_out_check(
             ],
             (),
         )
-    draws = held_out_flows(run, method=method, repeats=repeats, level=fit_level)
     observed, simulated = run.loo.observed, run.loo.simulated[method]
     k = error_model.n_classes
+    statistics = _statistics_of(run.context.precip_mm, observed.index)
+    draws = [
+        summarise_repeat(observed, draw, level=level, n_classes=k, statistics=statistics)
+        for draw in _repeats(
+            run,
+            method,
+            repeats=repeats,
+            level=fit_level,
+            fraction=HELD_OUT_FRACTION,
+            seed=HELD_OUT_SEED,
+            executor=executor,
+            chunk_basins=chunk_size(n_gauged, HELD_OUT_CHUNK, n_workers=_workers(executor)),
+            reader=reader,
+        )
+    ]
     table = held_out_coverage(observed, draws, level=level, n_classes=k)
     table = table.rename(columns={"coverage": "held_out_coverage"})
     measured = [table.loc[f"class {c + 1}", "held_out_coverage"] for c in range(k)]
@@ -266,6 +376,21 @@ def held_out_check(
         widened={c + 1: (level, float(levels[c])) for c in np.flatnonzero(widen)},
     )
     return table, error_model, _held_out_notes(table, level, n_gauged), tuple(draws)
+
+
+def _workers(executor) -> int:
+    return 1 if executor is None else getattr(executor, "n_workers", 1)
+
+
+def _statistics_of(precip_mm: pd.DataFrame, dates: pd.DatetimeIndex):
+    """Flow statistics of a (``dates`` x basins) flow table with the basins' precipitation."""
+
+    def statistics(flow: pd.DataFrame) -> pd.DataFrame:
+        columns = list(flow.columns)
+        precip = precip_mm.loc[dates, columns]
+        return flowstats.statistics_frame(flow[columns], precip_mm_day=precip)
+
+    return statistics
 
 
 def _held_out_notes(table: pd.DataFrame, level: float, n_gauged: int) -> list[str]:

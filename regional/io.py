@@ -17,7 +17,7 @@ import signal
 import stat
 import tempfile
 import threading
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from io import BytesIO
@@ -898,7 +898,7 @@ def _looks_foreign(target: Path) -> bool:
 def write_run_folder(
     folder: str | Path,
     *,
-    tables: Mapping[str, pd.DataFrame],
+    tables: Mapping[str, pd.DataFrame | TableParts],
     layers: Mapping[str, gpd.GeoDataFrame],
     crs: object,
     figures: Mapping[str, bytes],
@@ -921,7 +921,7 @@ def write_run_folder(
     folder : str or Path
         The results folder.
     tables : mapping
-        File name (``*.csv``) -> table; written without the RangeIndex.
+        File name (``*.csv``) -> table (or :class:`TableParts`); written without the RangeIndex.
     layers : mapping
         Layer name -> GeoDataFrame for ``results.gpkg``.
     crs : pyproj.CRS or str
@@ -1110,10 +1110,31 @@ def _write_failure(target: Path, error: OSError) -> RunError:
     )
 
 
+@dataclass(frozen=True)
+class TableParts:
+    """A table written as one CSV part by part, so that its rows are never all in memory.
+
+    ``parts()`` yields DataFrames with the same columns and a RangeIndex (at least one, maybe
+    empty); the file is their concatenation: the header once, then every part's rows, the
+    same bytes as the whole table written at once.
+    """
+
+    parts: Callable[[], Iterator[pd.DataFrame]]
+
+
+def _table_to_csv(table: pd.DataFrame | TableParts, stream) -> None:
+    """Write a table (or its parts) as CSV, without the index when it is a RangeIndex."""
+    if isinstance(table, TableParts):
+        for number, part in enumerate(table.parts()):
+            part.to_csv(stream, index=False, header=number == 0)
+        return
+    table.to_csv(stream, index=not isinstance(table.index, pd.RangeIndex))
+
+
 def _fill_run_folder(staging, tables, layers, crs, figures, report, manifest) -> None:
     for name, table in tables.items():
-        keep_index = not isinstance(table.index, pd.RangeIndex)
-        table.to_csv(staging / name, index=keep_index)
+        with open(staging / name, "w", newline="", encoding="utf-8") as stream:
+            _table_to_csv(table, stream)
     for name, layer in layers.items():
         frame = layer if layer.crs is not None else layer.set_crs(crs)
         frame.to_file(
@@ -1192,7 +1213,7 @@ def _put_back(aside: list[Path], target: Path) -> None:
 def update_run_folder(
     folder: str | Path,
     *,
-    tables: Mapping[str, pd.DataFrame],
+    tables: Mapping[str, pd.DataFrame | TableParts],
     layers: Mapping[str, gpd.GeoDataFrame],
     crs: object,
     figures: Mapping[str, bytes],
@@ -1264,10 +1285,7 @@ def read_figures(folder: str | Path) -> dict[str, bytes]:
 
 def _update_files(target, tables, layers, crs, figures, report) -> None:
     for name, table in tables.items():
-        keep_index = not isinstance(table.index, pd.RangeIndex)
-        _write_atomically(
-            target / name, lambda stream, t=table, i=keep_index: t.to_csv(stream, index=i)
-        )
+        _write_atomically(target / name, lambda stream, t=table: _table_to_csv(t, stream))
     if figures:
         (target / "figures").mkdir(mode=_dir_mode(), exist_ok=True)
     for name, png in figures.items():

@@ -18,7 +18,7 @@ import pandas as pd
 from regional import __version__, io
 from regional.crossval import CALIBRATED
 from regional.fittedfiles import FOLDER, META, fitted_files
-from regional.predict import Prediction
+from regional.predict import Prediction, flow_parts
 from regional.region import Region
 from regional.report import figure_drawers, render_report
 from regional.report import figures as plots
@@ -234,7 +234,7 @@ def donor_counts(result: RunResult) -> pd.DataFrame | None:
 def prediction_tables(prediction: Prediction, region: Region) -> dict[str, pd.DataFrame]:
     """``flows_ungauged.csv``, ``parameters_ungauged.csv`` and ``coverage.csv``."""
     return {
-        "flows_ungauged.csv": prediction.flows.assign(level=prediction.level),
+        "flows_ungauged.csv": flow_parts(prediction),
         "parameters_ungauged.csv": with_basin_columns(
             with_level(prediction.table, prediction.level), region
         ).reset_index(),

@@ -14,6 +14,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from regional import io
@@ -157,6 +158,7 @@ def _chain(settings, region, executor, progress, timings) -> dict:
         settings=settings,
         basins=region.basins,
         inputs=io.file_checksums(settings.input_paths()),
+        **_held_out_compute(runs[model], region, settings, executor),
     )
     timings["fitted_region"] = time.perf_counter() - clock
     prediction = screening = None
@@ -230,6 +232,17 @@ def _model_runs(settings, region, attributes, executor, progress, timings) -> di
     return runs
 
 
+def _held_out_compute(run: ModelRun, region: Region, settings: Settings, executor) -> dict:
+    """On a cluster the held-out check's repeats run as tasks (reading the series store when
+    the series come from one); in process they run here."""
+    if executor.name != "dask":
+        return {}
+    window = run.context.window
+    part = region.dates[window.start : window.stop]
+    reader = _store_reader(region, settings, executor, part)
+    return {"executor": executor, "reader": reader}
+
+
 def _chunk_basins(settings: Settings, default: int, *, n_basins: int, executor) -> int:
     """Basins per task: ``[compute] chunk_basins`` when set, else the stage's default, made
     smaller on a cluster so that every worker gets several tasks (:func:`chunk_size`)."""
@@ -243,7 +256,7 @@ def _statistics(run: ModelRun, method: str, region: Region, attributes, predicti
     settings = region.settings.prediction
     flows, applicable, held_out = None, None, ()
     if prediction is not None:
-        flows = prediction.flows.pivot(index="date", columns="basin_id", values="flow_mm")
+        flows = _flows_by_basin(prediction.daily.flow_mm)
         applicable = prediction.table["applicable"]
         held_out = prediction.held_out_draws
     return estimate_statistics(
@@ -256,6 +269,17 @@ def _statistics(run: ModelRun, method: str, region: Region, attributes, predicti
         route=settings.statistics_route,
         applicable=applicable,
         held_out=held_out,
+    )
+
+
+def _flows_by_basin(flow_mm: pd.DataFrame) -> pd.DataFrame:
+    """Days x basins in basin order (the order the statistics' tables follow), laid out day
+    by day in memory as the statistics have always received it, so that their sums add in
+    the same order."""
+    flows = flow_mm[sorted(flow_mm.columns)]
+    values = np.ascontiguousarray(flows.to_numpy(dtype=float))
+    return pd.DataFrame(
+        values, index=flows.index.rename("date"), columns=flows.columns, copy=False
     )
 
 

@@ -22,14 +22,14 @@ Hyndman, R. J., Fan, Y. (1996): Sample quantiles in statistical packages. Am. St
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 
-from regional import flowstats
+from regional import flowstats, io
 from regional.applicability import (
     FAILED_NSE,
     applicability,
@@ -60,6 +60,49 @@ FLOW_COLUMNS = (
     "flow_high_m3s",
 )
 """Columns of :attr:`Prediction.flows`."""
+FLOW_PART_BASINS = 64
+"""Basins per part when the long table of daily flows is built part by part for writing."""
+
+
+@dataclass(frozen=True)
+class DailyFlows:
+    """Daily flow of target basins with its bounds, held as grids (days x basins, mm/day).
+
+    The long table of :attr:`Prediction.flows` (one row per basin and day) takes about three
+    times the memory; it is built from these grids when read, or part by part
+    (:meth:`parts`) when written.
+
+    Attributes
+    ----------
+    flow_mm, low_mm, high_mm : DataFrame
+        Days x basins (``basin_id``): flow and its lower and upper bounds, mm/day.
+    area_km2 : Series
+        Basin area, km2, by basin (for the flows in m3/s).
+    """
+
+    flow_mm: pd.DataFrame
+    low_mm: pd.DataFrame
+    high_mm: pd.DataFrame
+    area_km2: pd.Series
+
+    def long(self, basins: Sequence[str] | None = None) -> pd.DataFrame:
+        """The long table (:data:`FLOW_COLUMNS`) of ``basins`` (default all), basin by basin."""
+        basins = list(self.flow_mm.columns if basins is None else basins)
+        return _long_flows(
+            self.flow_mm[basins],
+            self.low_mm[basins],
+            self.high_mm[basins],
+            self.area_km2[basins],
+        )
+
+    def parts(self, basins_per_part: int = FLOW_PART_BASINS) -> Iterator[pd.DataFrame]:
+        """The long table in consecutive parts of ``basins_per_part`` basins (at least one part,
+        empty when there is no basin); their concatenation is :meth:`long`."""
+        basins = [str(b) for b in self.flow_mm.columns]
+        if not basins:
+            yield self.long([])
+        for first in range(0, len(basins), basins_per_part):
+            yield self.long(basins[first : first + basins_per_part])
 
 
 @dataclass(frozen=True)
@@ -81,7 +124,10 @@ class Prediction:
     flows : DataFrame
         Long: ``basin_id``, ``date``, ``flow_mm``, ``flow_m3s``, ``flow_low_mm``,
         ``flow_high_mm``, ``flow_low_m3s``, ``flow_high_m3s``, every simulated day after the
-        warm-up.
+        warm-up (a property, built from ``daily`` when read).
+    daily : DailyFlows
+        The same daily flows held as grids (days x basins); :meth:`DailyFlows.parts` gives
+        the long table part by part.
     coverage : DataFrame
         Per (model, method) of leave-one-out: ``model``, ``method``, ``level``, ``coverage``
         (mean over basins of the share of observed days inside the bounds built without the
@@ -117,12 +163,25 @@ class Prediction:
     method: str
     level: float
     table: pd.DataFrame
-    flows: pd.DataFrame
+    daily: DailyFlows = field(repr=False)
     coverage: pd.DataFrame
     error_model: pd.DataFrame
     notes: tuple[str, ...]
     held_out: pd.DataFrame | None = None
     held_out_draws: tuple = field(default=(), repr=False)
+
+    @property
+    def flows(self) -> pd.DataFrame:
+        """The long table of daily flows (see the class docstring), built from :attr:`daily`
+        when read."""
+        return self.daily.long()
+
+
+def flow_parts(prediction: Prediction) -> io.TableParts:
+    """The long table of daily flows with the bounds' level, to be written part by part (the
+    whole table is never held: it takes about three times the memory of the grids)."""
+    level = prediction.level
+    return io.TableParts(lambda: (part.assign(level=level) for part in prediction.daily.parts()))
 
 
 def predict_ungauged(result: RunResult, *, level: float | None = None) -> Prediction:
@@ -236,7 +295,7 @@ def predict_sites(
         method=fitted.method,
         level=level,
         table=table,
-        flows=_long_flows(flow_mm, low, high, area),
+        daily=DailyFlows(flow_mm, low, high, area),
         coverage=coverage,
         error_model=error_model.table,
         notes=tuple(notes + _notes(fitted, error_model, coverage, usable) + list(fitted.notes)),

@@ -18,7 +18,7 @@ from regional import __version__, io
 from regional.config import Settings
 from regional.fitted import FittedRegion
 from regional.fittedfiles import FOLDER, META, from_files, stale_reason
-from regional.predict import Prediction, predict_sites
+from regional.predict import Prediction, flow_parts, predict_sites
 from regional.region import Region
 from regional.sites import Sites
 
@@ -80,7 +80,7 @@ def write_site_outputs(
         "parameters_sites.csv": with_basin_columns(
             with_level(prediction.table, prediction.level), sites
         ).reset_index(),
-        "flows_sites.csv": prediction.flows.assign(level=prediction.level),
+        "flows_sites.csv": flow_parts(prediction),
     }
     layer = with_basin_columns(with_level(prediction.table, prediction.level), sites)
     manifest = {

@@ -47,6 +47,7 @@ from threadpoolctl import threadpool_limits
 
 from regional import flowstats
 from regional.config import STATISTICS_ROUTES
+from regional.coverage import HeldOutSummary
 from regional.crossval import FoldContext
 from regional.errors import InputError
 from regional.transfer import great_circle_km, inverse_distance_weights, make_transfer
@@ -865,7 +866,7 @@ def _with_held_out(summary, data: _GaugedData, repeats, level) -> pd.DataFrame:
     hits: dict[tuple[str, str], list[float]] = {}
     for draw in repeats:
         held = [str(b) for b in draw.held_out]
-        training = [str(b) for b in draw.training_flow.columns]
+        training = _training_basins(draw)
         routes = _held_out_routes(data, draw, training, held, needed)
         for route, (train_est, held_est) in routes.items():
             train_err = _log_error(data.observed.loc[training, needed[route]], train_est)
@@ -883,16 +884,30 @@ def _with_held_out(summary, data: _GaugedData, repeats, level) -> pd.DataFrame:
     return summary
 
 
+def _training_basins(draw) -> list[str]:
+    """Training basins of a repeat (:class:`~regional.coverage.HeldOutRepeat` or its summary)."""
+    if isinstance(draw, HeldOutSummary):
+        return list(draw.training)
+    return [str(b) for b in draw.training_flow.columns]
+
+
+def _model_statistics(data: _GaugedData, draw, training, held) -> tuple:
+    """Flow statistics of the repeat's training and held-out flows (kept in a summary)."""
+    if isinstance(draw, HeldOutSummary) and draw.training_statistics is not None:
+        return draw.training_statistics.loc[training], draw.held_out_statistics.loc[held]
+    precip_train, precip_held = data.precip(training), data.precip(held)
+    return (
+        flowstats.statistics_frame(draw.training_flow[training], precip_mm_day=precip_train),
+        flowstats.statistics_frame(draw.held_out_flow[held], precip_mm_day=precip_held),
+    )
+
+
 def _held_out_routes(data: _GaugedData, draw, training, held, needed) -> dict:
     """Route -> (leave-one-out estimates over the training basins, estimates at the held-out
     basins), both fit on the training basins only, for the routes and statistics needed."""
     out = {}
     if MODEL in needed:
-        precip_train, precip_held = data.precip(training), data.precip(held)
-        out[MODEL] = (
-            flowstats.statistics_frame(draw.training_flow[training], precip_mm_day=precip_train),
-            flowstats.statistics_frame(draw.held_out_flow[held], precip_mm_day=precip_held),
-        )
+        out[MODEL] = _model_statistics(data, draw, training, held)
     if REGRESSION in needed and len(training) >= MIN_BASINS + 1:
         columns = needed[REGRESSION]
         picked = [data.observed.columns.get_loc(c) for c in columns]

@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from regional.bounds import OFFSET_FRACTION, conformal_bounds
+from regional.bounds import OFFSET_FRACTION, ResidualTails, conformal_bounds
 from regional.errors import InputError
 
 
@@ -67,3 +67,27 @@ def test_level_outside_zero_one_is_refused():
     obs, sim = _series_pair({"A": np.zeros(3)})
     with pytest.raises(InputError, match="strictly between 0 and 1"):
         conformal_bounds(obs, sim, level=90)
+
+
+@pytest.mark.parametrize("n_basins", [3, 12, 40])
+def test_residual_tails_rebuild_the_error_model_exactly_at_wider_levels(n_basins):
+    # Two routes to the same model: conformal_bounds on the whole flows, and the tails kept at
+    # the nominal level rebuilt at the nominal and at widened levels (bit for bit).
+    rng = np.random.default_rng(n_basins)
+    days = 400
+    sim = pd.DataFrame(rng.gamma(2.0, 1.0, (days, n_basins)))
+    obs = sim * np.exp(rng.normal(0.0, 0.4, (days, n_basins)))
+    obs = obs.mask(rng.random((days, n_basins)) < 0.2)  # missing days: unequal record lengths
+    classes = 5 if n_basins >= 10 else 1
+    tails = ResidualTails.of(obs, sim, level=0.9, n_classes=classes)
+    for levels in (None, [0.9] * classes, np.linspace(0.9, 0.995, classes)):
+        whole = conformal_bounds(obs, sim, level=0.9, n_classes=classes, class_levels=levels)
+        kept = tails.error_model(levels)
+        np.testing.assert_array_equal(kept.lower_q, whole.lower_q)
+        np.testing.assert_array_equal(kept.upper_q, whole.upper_q)
+        np.testing.assert_array_equal(kept.levels, whole.levels)
+        assert (kept.n_basins, kept.level) == (whole.n_basins, whole.level)
+    kept_values = sum(len(v) for v in (*tails.low_values, *tails.high_values))
+    assert kept_values < 0.2 * np.isfinite(obs.to_numpy()).sum()
+    with pytest.raises(ValueError, match="levels >= 0.9"):
+        tails.error_model([0.8] * classes)

@@ -114,7 +114,8 @@ def test_cluster_reading_a_series_store_gives_the_in_process_tables(tmp_path, re
     here, there = tmp_path / "in_process", tmp_path / "cluster"
     assert main(["run", str(folder), "--out", str(here), "--quiet"]) == 0
     assert main(["run", str(from_store), "--out", str(there), "--quiet", "--workers", "2"]) == 0
-    for name in ("loo_scores.csv", "calibration.csv", "parameters_ungauged.csv"):
+    names = ["loo_scores.csv", "calibration.csv", "parameters_ungauged.csv", "coverage.csv"]
+    for name in [*names, "flows_ungauged.csv", "statistics_summary.csv"]:
         assert (here / name).read_text() == (there / name).read_text(), name
 
 

@@ -15,6 +15,7 @@ from regional.coverage import (
     HeldOutRepeat,
     held_out_coverage,
     loo_coverage,
+    summarise_repeat,
     widened_levels,
 )
 
@@ -128,3 +129,16 @@ def test_widened_levels_rule():
     levels = widened_levels([0.90, 0.88, 0.84, np.nan, 0.5], level=0.9)
     np.testing.assert_allclose(levels, [0.9, 0.9, 0.96, 0.9, MAX_CLASS_LEVEL])
     assert 0.02 <= WIDEN_TOLERANCE < 0.06
+
+
+def test_summaries_give_the_coverage_of_the_whole_repeats():
+    # The held-out check keeps a summary of each repeat (tails of its error model, the held-out
+    # flows), not the training basins' flows; coverage from summaries equals coverage from the
+    # whole repeats, at the nominal level and widened.
+    obs, repeats = _synthetic_repeats(held_noise=0.6)
+    summaries = [summarise_repeat(obs, r, level=0.9, n_classes=5) for r in repeats]
+    for levels in (None, [0.9, 0.93, 0.96, 0.99, MAX_CLASS_LEVEL]):
+        whole = held_out_coverage(obs, repeats, level=0.9, n_classes=5, class_levels=levels)
+        kept = held_out_coverage(obs, summaries, level=0.9, n_classes=5, class_levels=levels)
+        pd.testing.assert_frame_equal(kept, whole)
+    assert not hasattr(summaries[0], "training_flow")

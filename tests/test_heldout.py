@@ -86,3 +86,84 @@ def test_classes_short_of_the_level_are_widened_in_the_bounds(demo_result, monke
     assert any("bounds widened" in note for note in prediction.notes)
     chosen = prediction.coverage[prediction.coverage["method"] == prediction.method].iloc[0]
     assert chosen["widened_classes"].startswith(tuple(str(c) for c in range(1, 6)))
+
+
+def test_held_out_check_keeps_summaries_with_the_coverage_of_the_whole_repeats(
+    demo_result, monkeypatch
+):
+    # The check keeps per repeat the tails of its error model, the held-out flows and the
+    # statistics, not the training basins' daily flows; its table (widened too) equals the one
+    # computed from the whole repeats.
+    from regional.bounds import conformal_bounds
+    from regional.coverage import HeldOutSummary, held_out_coverage
+    from regional.heldout import held_out_check
+
+    monkeypatch.setattr(coverage, "WIDEN_TOLERANCE", 0.0)
+    run = demo_result.runs[demo_result.chosen_model]
+    observed = run.loo.observed
+    simulated = run.loo.simulated[demo_result.chosen_method]
+    plain = conformal_bounds(observed, simulated, level=0.8)
+    level = demo_result.settings.prediction.level
+    method = demo_result.chosen_method
+    table, model, _, kept = held_out_check(
+        run,
+        method,
+        plain,
+        level=0.8,
+        repeats=demo_result.settings.prediction.held_out_repeats,
+        fit_level=level,
+    )
+    assert all(isinstance(k, HeldOutSummary) for k in kept)
+    whole = held_out_flows(run, method=method, repeats=len(kept), level=level)
+    assert [w.held_out for w in whole] == [k.held_out for k in kept]
+    k = plain.n_classes
+    expected = held_out_coverage(observed, whole, level=0.8, n_classes=k)
+    rows = table.set_index("flow_class")
+    np.testing.assert_array_equal(rows["held_out_coverage"], expected["coverage"])
+    widened = held_out_coverage(observed, whole, level=0.8, n_classes=k, class_levels=model.levels)
+    np.testing.assert_array_equal(rows["held_out_coverage_widened"], widened["coverage"])
+    for summary, draw in zip(kept, whole, strict=True):
+        pd.testing.assert_frame_equal(summary.held_out_flow, draw.held_out_flow)
+
+
+def test_repeats_run_as_tasks_give_the_same_flows(demo_result, tmp_path):
+    # On a cluster each repeat's basins run as tasks of a few basins (each task fits and
+    # simulates its own, reading its basins' series from the series store); run through an
+    # executor in this process, chunks of 3 basins give the repeats of the direct route
+    # exactly, reused flows included.
+    from dataclasses import replace
+
+    from regional.compute import InProcessExecutor
+    from regional.heldout import HELD_OUT_FRACTION, _repeats
+    from regional.region import convert_series
+    from regional.series import store_reader
+
+    model = demo_result.chosen_model
+    settings = demo_result.settings
+    convert_series(settings, tmp_path / "store.parquet")
+    settings = replace(settings, series=replace(settings.series, path=tmp_path / "store.parquet"))
+    context = demo_result.runs[model].context
+    dates = context.precip_mm.index
+    reader = store_reader(settings, dates, with_temp=context.temp_c is not None)
+    assert reader is not None
+    for method, read in (("regression", reader), ("proximity", None)):
+        run = demo_result.runs[model]
+        direct = held_out_flows(run, method=method, repeats=2, level=0.9, seed=5)
+        tasks = list(
+            _repeats(
+                run,
+                method,
+                repeats=2,
+                level=0.9,
+                fraction=HELD_OUT_FRACTION,
+                seed=5,
+                executor=InProcessExecutor(),
+                chunk_basins=3,
+                reader=read,
+            )
+        )
+        for one, two in zip(direct, tasks, strict=True):
+            assert one.held_out == two.held_out
+            pd.testing.assert_frame_equal(one.training_flow, two.training_flow, check_exact=True)
+            pd.testing.assert_frame_equal(one.held_out_flow, two.held_out_flow, check_exact=True)
+            assert (one.n_simulated, one.n_reused) == (two.n_simulated, two.n_reused)

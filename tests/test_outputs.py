@@ -32,3 +32,28 @@ def test_basins_layer_columns_reach_every_per_basin_table_and_layer(demo_result)
                 assert (frame[column].to_numpy() == expected).all(), (what, column)
     assert set(layers["gauged"]["basin_id"]) == set(demo_result.region.gauged)
     assert set(layers["ungauged"]["basin_id"]) == set(demo_result.region.ungauged)
+
+
+def test_daily_flows_written_part_by_part_are_the_whole_table(demo_result, tmp_path):
+    # flows_ungauged.csv is streamed from the prediction's grids a few basins at a time: the
+    # file is byte for byte the long table written at once, as before.
+    from dataclasses import replace
+
+    import pandas as pd
+
+    from regional import io
+    from regional.outputs import write_outputs
+
+    prediction = demo_result.prediction
+    daily = prediction.daily
+    parts = list(daily.parts(basins_per_part=3))
+    assert len(parts) == -(-daily.flow_mm.shape[1] // 3)
+    pd.testing.assert_frame_equal(pd.concat(parts, ignore_index=True), prediction.flows)
+    whole = prediction.flows.assign(level=prediction.level).to_csv(index=False)
+    folder = write_outputs(demo_result, tmp_path / "results", figures=False)
+    assert (folder / "flows_ungauged.csv").read_text() == whole
+    assert isinstance(result_tables(demo_result)["flows_ungauged.csv"], io.TableParts)
+    empty = replace(
+        daily, flow_mm=daily.flow_mm.iloc[:, :0], low_mm=daily.low_mm.iloc[:, :0]
+    ).long([])
+    assert list(empty.columns) == list(prediction.flows.columns) and empty.empty

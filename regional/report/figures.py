@@ -675,20 +675,18 @@ def _page_name(name: str, number: int) -> str:
 
 def _site_series(result: RunResult, basins: list[str]) -> dict[str, pd.DataFrame]:
     """Per basin: daily ``flow``, ``low``, ``high`` (date index) in the report's unit."""
-    flows = result.prediction.flows
+    daily = result.prediction.daily
     unit = _report_settings(result).flow_unit
     area = result.region.attributes["area_km2"].astype(float)
-    rows = flows.groupby("basin_id").indices
     out = {}
     for basin in basins:
-        part = flows.iloc[rows[basin]]
         frame = pd.DataFrame(
             {
-                "flow": part["flow_mm"].to_numpy(float),
-                "low": part["flow_low_mm"].to_numpy(float),
-                "high": part["flow_high_mm"].to_numpy(float),
+                "flow": daily.flow_mm[basin].to_numpy(float),
+                "low": daily.low_mm[basin].to_numpy(float),
+                "high": daily.high_mm[basin].to_numpy(float),
             },
-            index=pd.DatetimeIndex(pd.to_datetime(part["date"].to_numpy())),
+            index=pd.DatetimeIndex(pd.to_datetime(daily.flow_mm.index.to_numpy())),
         ).sort_index()
         out[basin] = flow_in_unit(frame, float(area[basin]), unit)
     return out

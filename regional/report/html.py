@@ -767,7 +767,7 @@ def _estimate_table(result: RunResult, unit: str) -> pd.DataFrame:
     prediction = result.prediction
     table = prediction.table
     mean_mm = table["mean_flow_mm"].astype(float)
-    low_mm, high_mm = _mean_daily_bounds(prediction.flows, table.index)
+    low_mm, high_mm = _mean_daily_bounds(prediction, table.index)
     estimate = _in_unit(result, mean_mm, unit)
     low, high = _in_unit(result, low_mm, unit), _in_unit(result, high_mm, unit)
     out = pd.DataFrame(index=table.index)
@@ -779,9 +779,13 @@ def _estimate_table(result: RunResult, unit: str) -> pd.DataFrame:
     return _with_names(result, out)
 
 
-def _mean_daily_bounds(flows: pd.DataFrame, basins: pd.Index) -> tuple[pd.Series, pd.Series]:
-    """Mean over the period of each basin's daily lower and upper bound, mm/day."""
-    means = flows.groupby("basin_id")[["flow_low_mm", "flow_high_mm"]].mean()
+def _mean_daily_bounds(prediction, basins: pd.Index) -> tuple[pd.Series, pd.Series]:
+    """Mean over the period of each basin's daily lower and upper bound, mm/day (the long
+    table of daily flows taken part by part)."""
+    columns = ["flow_low_mm", "flow_high_mm"]
+    means = pd.concat(
+        [part.groupby("basin_id")[columns].mean() for part in prediction.daily.parts()]
+    )
     means = means.reindex(basins)
     return means["flow_low_mm"], means["flow_high_mm"]
 

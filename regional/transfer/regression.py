@@ -174,6 +174,8 @@ class RegressionTransfer(BaseEstimator):
 
     def _fit_all(self, Z: pd.DataFrame, y: pd.DataFrame, max_terms: int | None) -> None:
         selected, fits, paths = {}, {}, []
+        values = Z.to_numpy(dtype=float)
+        position = {str(name): i for i, name in enumerate(Z.columns)}
         for name in self.parameters_:
             target = forward(y[name].to_numpy(), self.transforms_[name])
             if self.select:
@@ -181,12 +183,14 @@ class RegressionTransfer(BaseEstimator):
                 paths += [{"parameter": name, **step} for step in path]
             else:
                 terms = list(Z.columns)
-            _check_rank(Z, terms)
+            design = _design_of(values, [position[str(t)] for t in terms])
+            _check_rank(design, terms)
             selected[name] = tuple(terms)
-            fits[name] = _ols(_design(Z, terms), target)
+            fits[name] = _ols(design, target)
         self.selected_ = selected
         self.design_inverse_ = {name: fit["xtx_inv"] for name, fit in fits.items()}
-        self.coefficients_ = self._coefficient_table(fits)
+        self._fits = fits
+        self._coefficients = None  # built on first use (:attr:`coefficients_`)
         self.r2_ = pd.Series({n: f["r2"] for n, f in fits.items()}, name="r2")
         self.adj_r2_ = pd.Series({n: f["adj_r2"] for n, f in fits.items()}, name="adj_r2")
         self.rse_ = pd.Series({n: np.sqrt(f["sigma2"]) for n, f in fits.items()}, name="rse")
@@ -195,7 +199,20 @@ class RegressionTransfer(BaseEstimator):
         self.selection_path_ = pd.DataFrame(paths, columns=["parameter", "step", "term", "press"])
         self._beta = {name: fit["beta"] for name, fit in fits.items()}
         self._sigma2 = {name: fit["sigma2"] for name, fit in fits.items()}
-        self._warn_vif()
+        self._warn_vif(fits)
+
+    @property
+    def coefficients_(self) -> pd.DataFrame:
+        """The coefficient table (see the class docstring), built once when first read: the
+        held-out check and leave-one-out refit the regression thousands of times and read
+        only its predictions."""
+        if self._coefficients is None:
+            self._coefficients = self._coefficient_table(self._fits)
+        return self._coefficients
+
+    @coefficients_.setter
+    def coefficients_(self, table: pd.DataFrame) -> None:
+        self._coefficients = table
 
     def _coefficient_table(self, fits: Mapping[str, dict]) -> pd.DataFrame:
         frames = []
@@ -222,12 +239,15 @@ class RegressionTransfer(BaseEstimator):
             )
         return pd.concat(frames, ignore_index=True)
 
-    def _warn_vif(self) -> None:
-        high = self.coefficients_[self.coefficients_["vif_warning"]]
+    def _warn_vif(self, fits: Mapping[str, dict]) -> None:
+        high = [
+            (term, name, vif)
+            for name, fit in fits.items()
+            for term, vif in zip([INTERCEPT, *self.selected_[name]], fit["vif"], strict=True)
+            if vif > VIF_LIMIT
+        ]
         if len(high):
-            listed = ", ".join(
-                f"{row.term!r} ({row.parameter}: VIF {row.vif:.1f})" for row in high.itertuples()
-            )
+            listed = ", ".join(f"{term!r} ({name}: VIF {vif:.1f})" for term, name, vif in high)
             warnings.warn(
                 f"{METHOD} transfer: {len(high)} attribute(s) have a variance inflation factor "
                 f"above {VIF_LIMIT:g}: {listed}. Their coefficients are unstable; drop one of "
@@ -252,20 +272,36 @@ class RegressionTransfer(BaseEstimator):
             the selected attributes standardised with the training mean and standard deviation;
             with :attr:`design_inverse_` it gives the leverage x0' (X'X)^-1 x0.
         """
+        X, needed = self._checked_targets(X)
+        index = X.index.rename("target_id")
+        return {
+            name: pd.DataFrame(design, index=index, columns=[INTERCEPT, *self.selected_[name]])
+            for name, design in self._designs(X, needed).items()
+        }
+
+    def _checked_targets(self, X: pd.DataFrame) -> tuple[pd.DataFrame, list[str]]:
+        """Target attributes checked, and the attributes any selected regression needs."""
         check_is_fitted(self)
         X = check_table(X, method=METHOD, role="the target attributes X")
         needed = sorted({a for terms in self.selected_.values() for a in terms})
         if needed:
             select_attributes(X, needed, method=METHOD, role="the target attributes X")
             check_complete(X, needed, method=METHOD, role="the target attributes X")
-        rows = {}
+        return X, needed
+
+    def _designs(self, X: pd.DataFrame, needed: list[str]) -> dict[str, np.ndarray]:
+        """Parameter -> standardised design rows of ``X`` (intercept first), as arrays."""
+        values = X[needed].to_numpy(dtype=float) if needed else np.empty((len(X), 0))
+        column = {a: i for i, a in enumerate(needed)}
+        moment = {str(a): i for i, a in enumerate(self.mean_.index)}
+        mean, scale = self.mean_.to_numpy(dtype=float), self.scale_.to_numpy(dtype=float)
+        designs = {}
         for name in self.parameters_:
             terms = list(self.selected_[name])
-            Z = _standardise(X[terms], self.mean_[terms], self.scale_[terms])
-            table = pd.DataFrame(_design(Z, terms), index=X.index, columns=[INTERCEPT, *terms])
-            table.index.name = "target_id"
-            rows[name] = table
-        return rows
+            at = [moment[t] for t in terms]
+            z = (values[:, [column[t] for t in terms]] - mean[at]) / scale[at]
+            designs[name] = np.column_stack([np.ones(len(X)), z])
+        return designs
 
     def predict_transformed(self, X: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
         """Predicted transformed parameters and their observation prediction standard errors.
@@ -276,14 +312,13 @@ class RegressionTransfer(BaseEstimator):
             Indexed by ``target_id``, one column per parameter, in transformed units:
             x0' beta and sqrt(sigma^2 (1 + x0' (X'X)^-1 x0)).
         """
-        rows = self.design_rows(X)
+        X, needed = self._checked_targets(X)
         means, stds = {}, {}
-        for name, table in rows.items():
-            x0 = table.to_numpy()
+        for name, x0 in self._designs(X, needed).items():
             leverage = np.einsum("ij,jk,ik->i", x0, self.design_inverse_[name], x0)
             means[name] = x0 @ self._beta[name]
             stds[name] = np.sqrt(self._sigma2[name] * (1.0 + leverage))
-        index = next(iter(rows.values())).index
+        index = X.index.rename("target_id")
         return pd.DataFrame(means, index=index), pd.DataFrame(stds, index=index)
 
     def predict(self, X: pd.DataFrame) -> pd.DataFrame:
@@ -369,13 +404,12 @@ def _check_enough_basins(n_train: int, n_terms: int) -> None:
         )
 
 
-def _check_rank(Z: pd.DataFrame, terms: Sequence[str]) -> None:
-    design = _design(Z, terms)
+def _check_rank(design: np.ndarray, terms: Sequence[str]) -> None:
     rank = np.linalg.matrix_rank(design)
     if rank < design.shape[1]:
         raise InputError(
             f"{METHOD} transfer: the attributes {', '.join(map(repr, terms))} are exactly "
-            f"collinear over the {len(Z)} training basins (design rank {rank} < "
+            f"collinear over the {len(design)} training basins (design rank {rank} < "
             f"{design.shape[1]} terms); drop one of the collinear attributes."
         )
 
@@ -384,9 +418,10 @@ def _standardise(X: pd.DataFrame, mean: pd.Series, scale: pd.Series) -> pd.DataF
     return (X.astype(float) - mean) / scale
 
 
-def _design(Z: pd.DataFrame, terms: Sequence[str]) -> np.ndarray:
-    """Design matrix: a column of ones then the standardised attributes ``terms``."""
-    return np.column_stack([np.ones(len(Z)), Z[list(terms)].to_numpy(dtype=float)])
+def _design_of(values: np.ndarray, columns: Sequence[int]) -> np.ndarray:
+    """Design matrix: a column of ones then the standardised attribute ``columns`` of
+    ``values`` (basins x attributes)."""
+    return np.column_stack([np.ones(len(values)), values[:, list(columns)]])
 
 
 def press(design: np.ndarray, target: np.ndarray) -> float:

@@ -15,6 +15,7 @@ import pytest
 from tiny_region import make_parts, write_region
 
 from regional.models import get_model
+from regional.predict import DailyFlows
 
 matplotlib.use("Agg")
 
@@ -109,6 +110,7 @@ def fake_prediction(result, *, seed: int = 1):
         level=0.9,
         table=table,
         flows=flows,
+        daily=_daily(flows, result.region.attributes["area_km2"]),
         coverage=coverage,
         error_model=error_model,
         notes=("bounds from log-flow errors in 2 flow classes",),
@@ -130,3 +132,15 @@ def fake_screening(result, *, seed: int = 2):
     table.insert(0, "rank", np.arange(1, len(table) + 1))
     table["reason"] = "far from the gauged basins in attribute space"
     return types.SimpleNamespace(table=table, notes=("score = variance reduction + spread",))
+
+
+def _daily(flows: pd.DataFrame, area: pd.Series) -> DailyFlows:
+    """The fake long table as the prediction's grids (days x basins)."""
+
+    def grid(column: str) -> pd.DataFrame:
+        return flows.pivot(index="date", columns="basin_id", values=column)
+
+    basins = list(grid("flow_mm").columns)
+    return DailyFlows(
+        grid("flow_mm"), grid("flow_low_mm"), grid("flow_high_mm"), area.loc[basins].astype(float)
+    )
