@@ -164,7 +164,8 @@ def _gr4j_kernel(
 
     ``inflow`` and ``pet`` may have one column, then shared by all n columns. ``production``
     and ``routing`` are filled only when shaped like ``flow`` (pass (0, 0) arrays to skip);
-    so are ``aet``, ``storage`` and ``exchange`` (a search that needs the flow only skips them).
+    so are ``aet``, ``storage`` and ``exchange`` (a search that needs the flow only skips their
+    writes).
     """
     n_steps, n = flow.shape
     shared_in = inflow.shape[1] == 1
@@ -230,9 +231,11 @@ def _gr4j_kernel(
             q9 = held1[j, 0] + uh1[j, 0] * pr9
             for i in range(n1[j] - 1):
                 held1[j, i] = held1[j, i + 1] + uh1[j, i + 1] * pr9
+                transit += held1[j, i]
             q1 = held2[j, 0] + uh2[j, 0] * pr1
             for i in range(n2[j] - 1):
                 held2[j, i] = held2[j, i + 1] + uh2[j, i + 1] * pr1
+                transit += held2[j, i]
             # 5. groundwater exchange from the routing level at the start of the step
             level = r[j] * inv_x3[j]
             f = x2[j] * level * level * level * np.sqrt(level)
@@ -255,10 +258,6 @@ def _gr4j_kernel(
                 gained += f
             flow[t, j] = qr + qd
             if balance:
-                for i in range(n1[j] - 1):
-                    transit += held1[j, i]
-                for i in range(n2[j] - 1):
-                    transit += held2[j, i]
                 aet[t, j] = e_direct + es
                 exchange[t, j] = gained
                 storage[t, j] = s[j] + r[j] + transit
