@@ -9,11 +9,11 @@ a fresh child process, one after the other on this machine:
   from the series store (nothing daily is scattered).
 
 Printed: the whole-chain speed-up and, separately, the speed-up of the distributed stages
-(calibration + leave-one-out); the bytes the client scattered to the workers per stage and the
-bytes of results gathered back, per chunk. Before each run, the load average and how much more
-work two processes did than one in a short spin (about 2 on an idle 2-core machine, about 1
-when other work keeps the cores busy): no cluster can gain more than that, so read the ratios
-with it.
+(calibration, leave-one-out and the held-out check of the fitted region); the bytes the client
+scattered to the workers per stage and the bytes of results gathered back, per chunk. Before
+each run, the load average and how much more work two processes did than one in a short spin
+(about 2 on an idle 2-core machine, about 1 when other work keeps the cores busy): no cluster
+can gain more than that, so read the ratios with it.
 
 Run:  python benchmarks/cluster_speedup.py [--basins 60] [--years 10]
 Every value of the synthetic region is invented.
@@ -131,7 +131,7 @@ def main() -> None:
         build(folder, args.basins, args.years)
         local = measure(folder, 0)
         cluster = measure(folder, 2)
-    stages = ("calibration_gr4j", "leave_one_out_gr4j")
+    stages = ("calibration_gr4j", "leave_one_out_gr4j", "fitted_region")
     spread = [sum(row["timings"][s] for s in stages) for row in (local, cluster)]
     print(
         f"GR4J chain, {args.basins} basins x {args.years} years (invented), {os.cpu_count()} cores"
@@ -148,7 +148,8 @@ def main() -> None:
         "(target >= 1.6 on 2 cores)"
     )
     print(
-        f"distributed stages (calibration + leave-one-out): {spread[0]:.1f} s -> "
+        f"distributed stages (calibration, leave-one-out, the held-out check of the fitted "
+        f"region): {spread[0]:.1f} s -> "
         f"{spread[1]:.1f} s, {spread[0] / spread[1]:.2f} x"
     )
     for stage in cluster["shipping"]:

@@ -37,6 +37,8 @@ MIN_DAYS_PER_CLASS = 30
 """A basin needs this many observed days per class for classes to be used."""
 MIN_BASINS_FOR_CLASSES = 10
 """Fewer calibration basins than this: one class (no split by flow)."""
+BLOCK_BASINS = 256
+"""Basins whose ranks, classes and residuals are computed at a time (:func:`pooled_residuals`)."""
 
 
 @dataclass(frozen=True)
@@ -178,7 +180,7 @@ def conformal_bounds(
     obs, sim = aligned(observed, simulated)
     k = default_n_classes(obs) if n_classes is None else int(n_classes)
     levels = _class_levels(class_levels, level, k)
-    residual, basin, cls = log_residuals(obs, sim, flow_classes(sim, k), offset_fraction)
+    residual, basin, cls = pooled_residuals(obs, sim, k, fraction=offset_fraction)
     model = _fit(
         SortedResiduals.of(residual, basin, cls, k), levels=levels, fraction=offset_fraction
     )
@@ -240,9 +242,45 @@ def flow_classes(sim: np.ndarray, n_classes: int) -> np.ndarray:
     return np.minimum((share * n_classes).astype(int), n_classes - 1)
 
 
-def log_residuals(obs, sim, classes, fraction):
-    """Flattened residuals of the observed days with their basin (column) and class."""
-    offsets = basin_offsets(sim, fraction=fraction)
+def pooled_residuals(
+    obs: np.ndarray,
+    sim: np.ndarray,
+    n_classes: int,
+    *,
+    fraction: float = OFFSET_FRACTION,
+    block: int = BLOCK_BASINS,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`log_residuals` of the whole grid with its flow classes, ``block`` basins at a time.
+
+    Classes and offsets are within-basin, so each block's residuals are those of the whole
+    grid; they are put back in day-then-basin order (the order of the whole grid), so that
+    every later sort and sum is the same. Only the pooled residuals are held for the region,
+    not the grid-sized ranks, classes and temporaries.
+    """
+    n_columns = obs.shape[1]
+    offsets = basin_offsets(sim, fraction=fraction)  # on the whole grid: the same sums
+    parts = []
+    for start in range(0, n_columns, block):
+        part = slice(start, min(start + block, n_columns))
+        classes = flow_classes(sim[:, part], n_classes)
+        residual, basin, cls = log_residuals(
+            obs[:, part], sim[:, part], classes, fraction, offsets=offsets[part]
+        )
+        day = np.nonzero(np.isfinite(obs[:, part]))[0]
+        parts.append((residual, basin + start, cls, day))
+    if not parts:
+        empty = np.empty(0)
+        return empty, empty.astype(int), empty.astype(int)
+    residual, basin, cls, day = (np.concatenate(p) for p in zip(*parts, strict=True))
+    order = np.argsort(day * n_columns + basin, kind="stable")
+    return residual[order], basin[order], cls[order]
+
+
+def log_residuals(obs, sim, classes, fraction, *, offsets=None):
+    """Flattened residuals of the observed days with their basin (column) and class
+    (``offsets``: the basins' log offsets when already known)."""
+    if offsets is None:
+        offsets = basin_offsets(sim, fraction=fraction)
     day, basin = np.nonzero(np.isfinite(obs))
     c = offsets[basin]
     residual = np.log(obs[day, basin] + c) - np.log(sim[day, basin] + c)
@@ -360,9 +398,7 @@ class ResidualTails:
         """Tails of the error model :func:`conformal_bounds` builds from these flows."""
         level = check_level(level)
         obs, sim = aligned(observed, simulated)
-        residual, basin, klass = log_residuals(
-            obs, sim, flow_classes(sim, n_classes), offset_fraction
-        )
+        residual, basin, klass = pooled_residuals(obs, sim, n_classes, fraction=offset_fraction)
         data = SortedResiduals.of(residual, basin, klass, n_classes)
         parts: tuple[list, list, list, list] = ([], [], [], [])
         for values, basins in zip(data.values, data.basins, strict=True):

@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 
 from regional.bounds import (
-    OFFSET_FRACTION,
+    BLOCK_BASINS,
     ConformalErrorModel,
     ResidualTails,
     SortedResiduals,
@@ -27,8 +27,8 @@ from regional.bounds import (
     conformal_bounds,
     default_n_classes,
     flow_classes,
-    log_residuals,
     pooled_bounds,
+    pooled_residuals,
 )
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
@@ -42,30 +42,34 @@ REPORTED_DECILES = (1, 10)
 """Deciles of each basin's simulated flow whose coverage is reported (lowest and highest)."""
 
 
-def _held_out_coverage(observed: pd.DataFrame, simulated: pd.DataFrame, level: float) -> dict:
+def _held_out_coverage(
+    observed: pd.DataFrame, simulated: pd.DataFrame, level: float, *, block: int = BLOCK_BASINS
+) -> dict:
     """Coverage of each basin's observed days by bounds built from the OTHER basins only.
 
     Classes and offsets are within-basin functions of the simulated flow, so each residual is
     computed once; the quantiles without each basin come from :func:`_held_out_quantiles`, all
     basins at once. The number of classes depends on record lengths only and is set once.
+    Everything within a basin is computed ``block`` basins at a time (the same numbers: each
+    basin's arithmetic does not depend on the others; the pooled residuals are put back in
+    day-then-basin order before they are sorted).
     """
     obs, sim = aligned(observed, simulated)
     k = default_n_classes(obs)
-    classes = flow_classes(sim, k)
-    residual, basin, cls = log_residuals(obs, sim, classes, OFFSET_FRACTION)
-    data = SortedResiduals.of(residual, basin, cls, k)
     n_columns = obs.shape[1]
+    blocks = [slice(a, min(a + block, n_columns)) for a in range(0, n_columns, block)]
+    data = SortedResiduals.of(*pooled_residuals(obs, sim, k, block=block), k)
     lower = np.empty((k, n_columns))
     upper = np.empty((k, n_columns))
     for c, (values, basins) in enumerate(zip(data.values, data.basins, strict=True)):
         lower[c], upper[c] = _held_out_quantiles(values, basins, level, n_columns)
-    columns = np.broadcast_to(np.arange(n_columns), obs.shape)
+    shares: dict[str, list[np.ndarray]] = {}
     offsets = basin_offsets(sim)
-    with np.errstate(over="ignore"):
-        low = (sim + offsets) * np.exp(np.minimum(lower, 0.0)[classes, columns]) - offsets
-        high = (sim + offsets) * np.exp(np.maximum(upper, 0.0)[classes, columns]) - offsets
-    low, high = np.clip(np.minimum(low, sim), 0.0, None), np.maximum(high, sim)
-    shares = _coverage_shares(obs, sim, low, high, k)
+    for part in blocks:
+        bounds = (lower, upper, offsets[part])
+        for name, values in _block_shares(obs[:, part], sim[:, part], bounds, k, part):
+            shares.setdefault(name, []).append(values)
+    shares = {name: np.concatenate(values) for name, values in shares.items()}
     valid = np.isfinite(obs)
     return {
         "coverage": _mean_share(shares["all"]),
@@ -73,6 +77,18 @@ def _held_out_coverage(observed: pd.DataFrame, simulated: pd.DataFrame, level: f
         "n_days": int(valid.sum()),
         "n_basins": int(valid.any(axis=0).sum()),
     }
+
+
+def _block_shares(obs, sim, bounds, k: int, part: slice):
+    """Per group, each basin's share of observed days inside its bounds (one block)."""
+    lower, upper, offsets = bounds
+    classes = flow_classes(sim, k)
+    columns = np.broadcast_to(np.arange(part.start, part.stop), obs.shape)
+    with np.errstate(over="ignore"):
+        low = (sim + offsets) * np.exp(np.minimum(lower, 0.0)[classes, columns]) - offsets
+        high = (sim + offsets) * np.exp(np.maximum(upper, 0.0)[classes, columns]) - offsets
+    low, high = np.clip(np.minimum(low, sim), 0.0, None), np.maximum(high, sim)
+    return _coverage_shares(obs, sim, low, high, k).items()
 
 
 def _coverage_shares(obs, sim, low, high, n_classes: int) -> dict[str, np.ndarray]:

@@ -91,3 +91,18 @@ def test_residual_tails_rebuild_the_error_model_exactly_at_wider_levels(n_basins
     assert kept_values < 0.2 * np.isfinite(obs.to_numpy()).sum()
     with pytest.raises(ValueError, match="levels >= 0.9"):
         tails.error_model([0.8] * classes)
+
+
+def test_residuals_block_by_block_are_those_of_the_whole_grid():
+    # Two routes: log_residuals on the whole grid with its classes, and pooled_residuals a few
+    # basins at a time (classes and offsets are within-basin): the same arrays, same order.
+    from regional.bounds import flow_classes, log_residuals, pooled_residuals
+
+    rng = np.random.default_rng(4)
+    sim = rng.gamma(2.0, 1.0, (300, 11))
+    obs = sim * np.exp(rng.normal(0.0, 0.4, sim.shape))
+    obs[rng.random(sim.shape) < 0.2] = np.nan
+    whole = log_residuals(obs, sim, flow_classes(sim, 3), OFFSET_FRACTION)
+    for block in (1, 4, 11):
+        for got, expected in zip(pooled_residuals(obs, sim, 3, block=block), whole, strict=True):
+            np.testing.assert_array_equal(got, expected)

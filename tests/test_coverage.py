@@ -142,3 +142,13 @@ def test_summaries_give_the_coverage_of_the_whole_repeats():
         kept = held_out_coverage(obs, summaries, level=0.9, n_classes=5, class_levels=levels)
         pd.testing.assert_frame_equal(kept, whole)
     assert not hasattr(summaries[0], "training_flow")
+
+
+def test_leave_one_out_coverage_does_not_depend_on_the_block_of_basins():
+    # The within-basin work (classes, residuals, bounds, counts) runs a block of basins at a
+    # time; any block size gives the same numbers to the bit.
+    obs, repeats = _synthetic_repeats(n_basins=23)
+    sim = pd.concat([repeats[0].held_out_flow, repeats[0].training_flow], axis=1)
+    whole = coverage._held_out_coverage(obs[sim.columns], sim, 0.9, block=23)
+    for block in (1, 5):
+        assert coverage._held_out_coverage(obs[sim.columns], sim, 0.9, block=block) == whole
