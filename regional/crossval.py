@@ -37,11 +37,11 @@ from regional.models.base import forward, inverse
 from regional.series import StoreReader, shipped
 from regional.transfer import (
     DONOR_METHODS,
-    fit_transfer,
     inverse_distance_weights,
     simulate_donors,
 )
 from regional.transfer.base import weighted_estimate
+from regional.transfer.folds import FoldDonations, FoldSettings, fold_donations
 
 CALIBRATED = "calibrated"
 MEDIAN = "median"
@@ -220,38 +220,82 @@ def _check_context(context: FoldContext) -> None:
 
 def run_folds(targets: Sequence[str], context: FoldContext) -> list[dict]:
     """Run the folds of some target basins (one task of the executor)."""
-    return [_one_fold(target, context) for target in targets]
+    methods = method_order(context.options.methods)[1:]
+    donations = fold_donations_of(targets, context, methods)
+    return [_one_fold(target, context, donations) for target in targets]
 
 
-def _one_fold(target: str, context: FoldContext) -> dict:
+def fold_donations_of(
+    targets: Sequence[str],
+    context: FoldContext,
+    methods: Sequence[str],
+    *,
+    n_donors: int | None = None,
+) -> dict[str, FoldDonations]:
+    """Each method's donation to each target from a fit on the other gauged basins (minus the
+    basins sharing the target's area), for all the targets at once
+    (:func:`regional.transfer.folds.fold_donations`: the same donations as a refit per fold).
+
+    ``n_donors`` overrides the donor count of every method (default: the method's own).
+    """
+    transforms = context.transforms
+    X = context.attributes
+    y = context.calibrated[list(transforms)]
+    drops = [_drop_set(target, context) for target in targets]
+    return {
+        method: fold_donations(
+            method,
+            X,
+            y,
+            targets,
+            drops,
+            target_X=context.attributes,
+            settings=fold_settings(context, method, n_donors=n_donors),
+        )
+        for method in methods
+    }
+
+
+def fold_settings(
+    context: FoldContext, method: str, *, n_donors: int | None = None, level: float = 0.9
+) -> FoldSettings:
+    """The settings ``method`` is fit with in every fold of ``context``."""
+    options = context.options
+    return FoldSettings(
+        transforms=context.transforms,
+        attributes=tuple(options.attributes) if options.attributes else None,
+        n_donors=options.donors_for(method) if n_donors is None else n_donors,
+        power=options.power,
+        combine=options.combine,
+        level=level,
+    )
+
+
+def _drop_set(target: str, context: FoldContext) -> frozenset[str]:
+    """The basins left out of the target's fold: itself and those sharing its area."""
+    return frozenset([target, *context.excluded.get(target, ())])
+
+
+def _one_fold(target: str, context: FoldContext, donations: Mapping[str, FoldDonations]) -> dict:
     transforms = context.transforms
     names = list(transforms)
     forcing = _target_forcing(target, context)
     obs = context.flow_mm[target].to_numpy(dtype=float)[context.evaluation]
-    train = _fold_training(target, context)
     fold = {"basin_id": target, "methods": {}, "warnings": []}
+    raised: set[str] = set()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         own = {name: float(context.calibrated.loc[target, name]) for name in names}
         flow = _simulate_set(context, forcing, own)
         fold["methods"][CALIBRATED] = _outcome(obs, flow[context.evaluation], own)
         for method in method_order(context.options.methods)[1:]:
-            estimate, flow = _transfer_flow(method, target, train, context, forcing, transforms)
+            donation = donations[method].donations[target]
+            raised.update(donations[method].warnings[target])
+            estimate = weighted_estimate(donation.sets, names, transforms).iloc[0].to_dict()
+            flow = donation_flow(context, donation, target, forcing)
             fold["methods"][method] = _outcome(obs, flow[context.evaluation], estimate)
-    fold["warnings"] = sorted({str(w.message) for w in caught})
+    fold["warnings"] = sorted(raised | {str(w.message) for w in caught})
     return fold
-
-
-def _training_ids(target: str, context: FoldContext) -> pd.Index:
-    drop = [target, *context.excluded.get(target, ())]
-    ids = context.calibrated.index
-    return ids[~ids.isin(drop)]
-
-
-def _fold_training(target: str, context: FoldContext) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """The fold's training attributes and parameters, taken once for all its methods."""
-    train = _training_ids(target, context)
-    return context.attributes.loc[train], context.calibrated.loc[train, list(context.transforms)]
 
 
 def _target_forcing(target: str, context: FoldContext) -> dict[str, np.ndarray | None]:
@@ -273,14 +317,6 @@ def _simulate_set(context: FoldContext, forcing, params: Mapping[str, float]) ->
         warmup_days=context.window.warmup_days,
     )
     return result.flow[:, 0]
-
-
-def _transfer_flow(method, target, train, context, forcing, transforms):
-    n_donors = min(context.options.donors_for(method), len(train[0]))
-    donation = _fold_donation(method, target, train, context, transforms, n_donors)
-    names = list(transforms)
-    estimate = weighted_estimate(donation.sets, names, transforms).iloc[0].to_dict()
-    return estimate, donation_flow(context, donation, target, forcing)
 
 
 def donation_flow(
@@ -307,24 +343,6 @@ def donation_flow(
         simulate=donor_simulator(context.model, context.fixed_params),
     )
     return flows.flow
-
-
-def _fold_donation(method, target, train, context, transforms, n_donors):
-    """Fit ``method`` on the fold's training basins (their attributes and parameters,
-    :func:`_fold_training`) and donate to the target."""
-    options = context.options
-    attributes, parameters = train
-    estimator = fit_transfer(
-        method,
-        attributes,
-        parameters,
-        transforms=transforms,
-        attributes=list(options.attributes) if options.attributes else None,
-        n_donors=n_donors,
-        power=options.power,
-        combine=options.combine,
-    )
-    return estimator.donate(context.attributes.loc[[target]])
 
 
 def donor_simulator(model: str, fixed: Mapping[str, float]):
@@ -561,21 +579,26 @@ def _donor_methods(options: TransferOptions) -> list[str]:
 
 def run_count_folds(targets: Sequence[str], context: FoldContext) -> list[dict]:
     """Score every candidate donor count at some target basins (one task of the executor)."""
-    return [row for target in targets for row in _count_fold(target, context)]
+    methods = _donor_methods(context.options)
+    most = max(context.options.donor_choices)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the same warnings reach the user from leave_one_out
+        donations = fold_donations_of(targets, context, methods, n_donors=most)
+    return [row for target in targets for row in _count_fold(target, context, donations)]
 
 
-def _count_fold(target: str, context: FoldContext) -> list[dict]:
+def _count_fold(
+    target: str, context: FoldContext, donations: Mapping[str, FoldDonations]
+) -> list[dict]:
     transforms = context.transforms
     forcing = _target_forcing(target, context)
     obs = context.flow_mm[target].to_numpy(dtype=float)[context.evaluation]
-    train = _fold_training(target, context)
-    counts = sorted({min(n, len(train[0])) for n in context.options.donor_choices})
     rows = []
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the same warnings reach the user from leave_one_out
         for method in _donor_methods(context.options):
-            donation = _fold_donation(method, target, train, context, transforms, max(counts))
-            sets = donation.for_target(target)
+            sets = donations[method].donations[target].for_target(target)
+            counts = sorted({min(n, len(sets)) for n in context.options.donor_choices})
             flows = count_flows(
                 sets, counts, transforms=transforms, context=context, forcing=forcing
             )

@@ -26,11 +26,12 @@ from regional.coverage import (
     summarise_repeat,
     widened_levels,
 )
-from regional.crossval import FoldContext
-from regional.donation import fit_transfers, method_flows
+from regional.crossval import FoldContext, fold_settings
+from regional.donation import method_flows
 from regional.errors import InputError
 from regional.series import StoreReader, shipped
 from regional.transfer import Donation
+from regional.transfer.folds import fold_donations
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.result import ModelRun
@@ -43,6 +44,8 @@ HELD_OUT_SEED = 20_241_202
 """Seed of the random draws of held-out basins (the check is reproducible)."""
 MIN_HELD_OUT_BASINS = 10
 """Fewer gauged basins than this: no held-out check (a tenth would be no basin at all)."""
+DONATION_BLOCK = 256
+"""Targets whose donations are made and held at once (bounds the memory of a repeat)."""
 REUSABLE_METHODS = ("similarity", "proximity")
 """Donor methods whose fold may give the same donation without the held-out basins (then the
 leave-one-out flow is reused); regression and median refit on other basins always differ."""
@@ -64,9 +67,11 @@ def held_out_flows(
     held-out basins their flow; the training basins get their flow from the other training
     basins (leave-one-out within them), so that the error model of the repeat never sees a
     held-out basin, not even as a donor. Donors nested in or overlapping a target are left out
-    as in leave-one-out. Transfers are refit in every fold (cheap); a basin's flow is simulated
-    again only when its donation (donors, weights and parameter sets) differs from its
-    leave-one-out donation, else its leave-one-out flow is reused. Statistics of these flows
+    as in leave-one-out. Every fold's donation is that of a refit without its basins, made
+    for all the targets at once (:func:`regional.transfer.folds.fold_donations`, no refit per
+    basin); a basin's flow is simulated again only when its donation (donors, weights and
+    parameter sets) differs from its leave-one-out donation, else its leave-one-out flow is
+    reused. Statistics of these flows
     give held-out checks of statistic bounds too.
 
     Parameters
@@ -217,43 +222,45 @@ class _HeldOutFolds:
     def flows(self, targets: list[str], *, pool: list[str]) -> dict[str, np.ndarray | None]:
         """Each target's flow over the evaluation days from a fit on ``pool`` (without the
         target); None where the donation equals the leave-one-out one (its flow is reused)."""
-        shared: dict[str, object] = {}
-        return {target: self._flow(target, pool, shared) for target in targets}
+        flows: dict[str, np.ndarray | None] = {}
+        for part in chunked(list(targets), DONATION_BLOCK):
+            donations = self._donations(part, pool)
+            reusable = self.method in REUSABLE_METHODS
+            loo = self._loo(part) if reusable else {}
+            for target in part:
+                if reusable and _same_donation(donations[target], loo[target]):
+                    flows[target] = None
+                    continue
+                flow = method_flows(self.context, donations[target], [target])
+                flows[target] = flow[self.context.evaluation, 0]
+        return flows
 
-    def _flow(self, target: str, pool: list[str], shared: dict) -> np.ndarray | None:
-        donation = self._donation(target, pool, shared)
-        if self.method in REUSABLE_METHODS and _same_donation(
-            donation, self._loo_donation(target)
-        ):
-            return None
-        return method_flows(self.context, donation, [target])[self.context.evaluation, 0]
-
-    def _loo_donation(self, target: str) -> Donation:
-        if target not in self._loo_donations:
+    def _loo(self, targets: list[str]) -> dict[str, Donation]:
+        """The targets' leave-one-out donations (a fit on every gauged basin but the target
+        and its overlapping basins), made once per target."""
+        missing = [t for t in targets if t not in self._loo_donations]
+        if missing:
             everyone = [str(b) for b in self.context.calibrated.index]
-            self._loo_donations[target] = self._donation(target, everyone)
-        return self._loo_donations[target]
+            self._loo_donations.update(self._donations(missing, everyone))
+        return {t: self._loo_donations[t] for t in targets}
 
-    def _donation(self, target: str, pool: list[str], shared: dict | None = None) -> Donation:
-        """The target's donation from a fit on ``pool`` without it and its overlapping basins.
-
-        When none of those lies in the pool (a held-out basin), the fit is the fit on the whole
-        pool: it is made once and kept in ``shared`` for the other such targets of the pool, so
-        a repeat fits its held-out basins' transfer once, not once per basin.
-        """
-        drop = {target, *self.context.excluded.get(target, ())}
-        train = [b for b in pool if b not in drop]
-        whole = len(train) == len(pool)
-        if whole and shared is not None and "fit" in shared:
-            estimator = shared["fit"]
-        else:
-            estimators, _ = fit_transfers(
-                self.context, level=self.level, train=train, methods=[self.method]
-            )
-            estimator = estimators[self.method]
-            if whole and shared is not None:
-                shared["fit"] = estimator
-        return estimator.donate(self.context.attributes.loc[[target]])
+    def _donations(self, targets: list[str], pool: list[str]) -> dict[str, Donation]:
+        """Each target's donation from a fit on ``pool`` without it and its overlapping
+        basins, all targets at once (:func:`regional.transfer.folds.fold_donations`: the
+        donations of a refit per target; a target outside the pool gets the pool's fit)."""
+        context = self.context
+        names = list(context.transforms)
+        drops = [frozenset([t, *context.excluded.get(t, ())]) for t in targets]
+        result = fold_donations(
+            self.method,
+            context.attributes.loc[pool],
+            context.calibrated.loc[pool, names],
+            targets,
+            drops,
+            target_X=context.attributes,
+            settings=fold_settings(context, self.method, level=self.level),
+        )
+        return result.donations
 
 
 def _same_donation(first: Donation, second: Donation) -> bool:

@@ -173,3 +173,74 @@ def test_donor_sets_outside_the_bounds_are_simulated_at_the_bound():
         "linear", precip, pet, {"k_per_day": np.array([0.001, 1.5])}, initial_storage=10.0
     )
     np.testing.assert_array_equal(clipped.flow, at_bounds.flow)
+
+
+def _loo_both_routes(context, monkeypatch, **kwargs):
+    """Leave-one-out by the batched fold donations, then by a refit per fold (the route they
+    replace: tests/refit_route.py)."""
+    from refit_route import refit_every_fold
+
+    from regional import crossval
+
+    batched = leave_one_out(context, **kwargs)
+    with monkeypatch.context() as patch:
+        patch.setattr(crossval, "fold_donations", refit_every_fold)
+        refit = leave_one_out(context, **kwargs)
+    return batched, refit
+
+
+def _assert_same_loo(batched, refit):
+    pd.testing.assert_frame_equal(batched.scores, refit.scores, check_exact=False, rtol=1e-10)
+    pd.testing.assert_frame_equal(batched.params, refit.params, check_exact=False, rtol=1e-10)
+    assert batched.methods == refit.methods
+    assert batched.warnings == refit.warnings
+    assert batched.excluded == refit.excluded
+    for method in batched.methods:
+        pd.testing.assert_frame_equal(
+            batched.simulated[method], refit.simulated[method], check_exact=False, rtol=1e-10
+        )
+
+
+def test_batched_folds_equal_a_refit_per_fold_with_nested_basins(monkeypatch):
+    # Every method, nested basins left out of their neighbours' folds, chunks of 3 targets.
+    base = _context(methods=("regression", "similarity", "proximity", "blended"))
+    ids = list(base.calibrated.index)
+    excluded = {
+        ids[0]: frozenset(ids[1:3]),
+        ids[1]: frozenset({ids[0]}),
+        ids[5]: frozenset(ids[6:9]),
+    }
+    context = FoldContext(**{**base.__dict__, "excluded": excluded})
+    batched, refit = _loo_both_routes(context, monkeypatch, chunk_basins=3)
+    _assert_same_loo(batched, refit)
+
+
+def test_batched_folds_equal_a_refit_with_snow_parameters_and_donor_only_basins(
+    demo_result, monkeypatch
+):
+    # The demo region's nested basins, the snow store's parameters transferred with k (none
+    # fixed), three basins that only donate (user parameters, no flow), chunks of 3 targets.
+    from dataclasses import replace
+
+    from regional.models import parameter_transforms
+
+    context = demo_result.runs["linear"].context
+    names = list(parameter_transforms("linear", snow=True, fixed={}))
+    rng = np.random.default_rng(8)
+    calibrated = context.calibrated.copy()
+    n = len(calibrated)
+    calibrated["snow_threshold_c"] = rng.uniform(-0.5, 2.0, n)
+    calibrated["melt_threshold_c"] = rng.uniform(-1.0, 1.0, n)
+    calibrated["melt_factor_mm_per_degc_day"] = rng.uniform(1.5, 5.0, n)
+    assert set(names) <= set(calibrated.columns)
+    options = replace(
+        context.options, methods=("regression", "similarity", "proximity", "blended")
+    )
+    donor_only = frozenset(calibrated.index[[2, 9, 20]])
+    context = replace(
+        context, calibrated=calibrated, fixed_params={}, options=options, donor_only=donor_only
+    )
+    assert list(context.transforms) == names and context.excluded
+    batched, refit = _loo_both_routes(context, monkeypatch, chunk_basins=3)
+    assert donor_only.isdisjoint(batched.scores["basin_id"])
+    _assert_same_loo(batched, refit)

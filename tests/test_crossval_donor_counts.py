@@ -10,7 +10,6 @@ from test_crossval import N_BASINS, _context
 from regional.crossval import (
     _held_out_choice,
     _target_forcing,
-    _training_ids,
     choose_donor_counts,
     count_flows,
     donor_simulator,
@@ -44,7 +43,7 @@ def choice(context):
 def test_first_n_donors_match_a_donation_of_n(context, method, combine):
     context = _with_choices(context, combine=combine)
     target = "T03"
-    train = _training_ids(target, context)
+    train = context.calibrated.index.drop([target, *context.excluded.get(target, ())])
     forcing = _target_forcing(target, context)
     transforms = parameter_transforms(context.model)
     attributes = list(context.options.attributes)

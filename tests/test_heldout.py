@@ -167,3 +167,28 @@ def test_repeats_run_as_tasks_give_the_same_flows(demo_result, tmp_path):
             pd.testing.assert_frame_equal(one.training_flow, two.training_flow, check_exact=True)
             pd.testing.assert_frame_equal(one.held_out_flow, two.held_out_flow, check_exact=True)
             assert (one.n_simulated, one.n_reused) == (two.n_simulated, two.n_reused)
+
+
+def test_held_out_folds_equal_a_refit_per_fold(demo_result, monkeypatch):
+    # Training basins (leave-one-out within the pool, nested basins left out) and held-out
+    # basins (the pool's fit) get the flows of a refit per basin, reused flows included.
+    from refit_route import refit_every_fold
+
+    from regional import heldout
+
+    run = demo_result.runs[demo_result.chosen_model]
+    for method in ("regression", "similarity", "proximity", "median"):
+        batched = held_out_flows(run, method=method, repeats=2, level=0.9, seed=5)
+        with monkeypatch.context() as patch:
+            patch.setattr(heldout, "fold_donations", refit_every_fold)
+            refit = held_out_flows(run, method=method, repeats=2, level=0.9, seed=5)
+        for new, old in zip(batched, refit, strict=True):
+            assert (new.held_out, new.n_reused, new.n_simulated) == (
+                old.held_out,
+                old.n_reused,
+                old.n_simulated,
+            )
+            for frame in ("training_flow", "held_out_flow"):
+                pd.testing.assert_frame_equal(
+                    getattr(new, frame), getattr(old, frame), check_exact=False, rtol=1e-10
+                )
