@@ -12,7 +12,8 @@ from __future__ import annotations
 
 import ctypes
 import logging
-from collections.abc import Callable, Sequence
+from collections import deque
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from typing import Any
 
 from regional.errors import RunError
@@ -24,6 +25,11 @@ CONNECT_TIMEOUT_S = 10.0
 
 ChunkFn = Callable[[Sequence[str], Any], Any]
 Progress = Callable[[int, int], None] | None
+Batch = tuple[ChunkFn, Sequence[Sequence[str]], Any]
+"""One round of work: the function, its chunks and the context they share."""
+
+BATCHES_AHEAD = 3
+"""Batches :meth:`DaskExecutor.map_batches` keeps submitted beyond the one being gathered."""
 
 
 HEAP_PAD_BYTES = 256 * 2**20
@@ -124,6 +130,15 @@ class InProcessExecutor:
                 progress(done, total)
         return results
 
+    def map_batches(
+        self, batches: Iterable[Batch], *, ahead: int = BATCHES_AHEAD
+    ) -> Iterator[list[Any]]:
+        """:meth:`map` of each ``(function, chunks, context)`` batch, batch after batch,
+        lazily: a batch runs only when the one before it has been taken (``ahead`` is for the
+        cluster)."""
+        for function, chunks, context in batches:
+            yield self.map(function, chunks, context)
+
     def close(self) -> None:
         """Nothing to release."""
 
@@ -205,6 +220,43 @@ class DaskExecutor:
             if progress is not None:
                 progress(done, total)
         return self.client.gather(futures)
+
+    def map_batches(
+        self, batches: Iterable[Batch], *, ahead: int = BATCHES_AHEAD
+    ) -> Iterator[list[Any]]:
+        """:meth:`map` of each ``(function, chunks, context)`` batch without a barrier between
+        batches.
+
+        The tasks of the first ``ahead + 1`` batches are submitted at once; each batch's
+        results are gathered in chunk order and yielded in batch order, and as one is gathered
+        the next batch is submitted, so the workers go on with the next batches while the
+        caller uses the results. Memory stays bounded: the results of at most ``ahead + 1``
+        batches wait on the workers, and the client holds one batch's results at a time
+        (plus what the caller keeps).
+        """
+        if ahead < 0:
+            raise ValueError(f"ahead must be >= 0: got {ahead}")
+        pending: deque = deque()
+        remaining = iter(batches)
+
+        def submit_next() -> None:
+            batch = next(remaining, None)
+            if batch is not None:
+                function, chunks, context = batch
+                shared = self.client.scatter(context, broadcast=True, hash=False)
+                futures = [
+                    self.client.submit(function, list(c), shared, pure=False) for c in chunks
+                ]
+                pending.append((shared, futures))
+
+        for _ in range(ahead + 1):
+            submit_next()
+        while pending:
+            shared, futures = pending.popleft()
+            results = self.client.gather(futures)
+            del shared, futures  # released on the workers once gathered
+            submit_next()
+            yield results
 
     @property
     def n_workers(self) -> int:

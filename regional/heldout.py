@@ -8,6 +8,7 @@ flow classes that fall short. See ``docs/prediction.md``.
 
 from __future__ import annotations
 
+import uuid
 from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING
 
@@ -123,20 +124,60 @@ def _repeats(
             f"the held-out check needs at least {size + 3} gauged basins to hold out {size}; "
             f"found {len(gauged)}"
         )
-    folds = _HeldOutFolds(run.context, method, level=level)
     loo_flow = run.loo.simulated[method]
-    for held in _held_out_draws(gauged, size, int(repeats), seed):
+    draws = _held_out_draws(gauged, size, int(repeats), seed)
+    if executor is not None:
+        yield from _repeats_as_tasks(run, method, level, draws, executor, chunk_basins, reader)
+        return
+    folds = _HeldOutFolds(run.context, method, level=level)
+    for held in draws:
         held_set = set(held)
         training = [b for b in gauged if b not in held_set]
         pool = sorted([*training, *run.context.donor_only])  # donor-only basins always donate
-        if executor is None:
-            flows = folds.flows(training, pool=pool) | folds.flows(list(held), pool=pool)
-        else:
-            job = _RepeatJob.of(run.context, method, level, tuple(pool))
-            chunks = chunked([*training, *held], chunk_basins)
-            task, shared = shipped(_repeat_chunk, job, reader)
-            flows = {k: v for part in executor.map(task, chunks, shared) for k, v in part.items()}
+        flows = folds.flows(training, pool=pool) | folds.flows(list(held), pool=pool)
         yield _assembled(held, training, flows, loo_flow)
+
+
+def _repeats_as_tasks(run: ModelRun, method, level, draws, executor, chunk_basins, reader):
+    """The repeats run as tasks with no barrier between them: the tasks of the next repeats
+    are already submitted (:meth:`regional.compute.DaskExecutor.map_batches`) while the
+    caller summarises a repeat; repeats come back in draw order, each whole."""
+    gauged = [str(b) for b in run.loo.observed.columns]
+    basins = [_Draw.of(held, gauged, run.context.donor_only) for held in draws]
+    check = uuid.uuid4().hex  # the key of this check's leave-one-out donations on a worker
+    batches = (
+        _repeat_batch(run.context, method, level, draw, chunk_basins, reader, check)
+        for draw in basins
+    )
+    loo_flow = run.loo.simulated[method]
+    for draw, results in zip(basins, executor.map_batches(batches), strict=True):
+        flows = {k: v for part in results for k, v in part.items()}
+        yield _assembled(draw.held, draw.training, flows, loo_flow)
+
+
+@dataclass(frozen=True)
+class _Draw:
+    """One repeat's basins: held out, training (gauged order) and the pool of donors."""
+
+    held: tuple[str, ...]
+    training: list[str]
+    pool: list[str]
+
+    @classmethod
+    def of(cls, held, gauged: list[str], donor_only) -> _Draw:
+        held_set = set(held)
+        training = [b for b in gauged if b not in held_set]
+        pool = sorted([*training, *donor_only])  # donor-only basins always donate
+        return cls(tuple(held), training, pool)
+
+
+def _repeat_batch(context, method, level, draw: _Draw, chunk_basins: int, reader, check: str):
+    """A repeat's tasks for :meth:`regional.compute.DaskExecutor.map_batches`: the task
+    function, the chunks of its basins and the context they share."""
+    job = _RepeatJob.of(context, method, level, tuple(draw.pool), check=check)
+    chunks = chunked([*draw.training, *draw.held], chunk_basins)
+    task, shared = shipped(_repeat_chunk, job, reader)
+    return task, chunks, shared
 
 
 def _assembled(held, training, flows: dict, loo_flow: pd.DataFrame) -> HeldOutRepeat:
@@ -166,7 +207,8 @@ def _assembled(held, training, flows: dict, loo_flow: pd.DataFrame) -> HeldOutRe
 class _RepeatJob:
     """What a task of one repeat needs: the fold context (its daily tables travel in the four
     table fields, whole in process or the task's basins read from the store), the method and
-    the repeat's pool of donors (training and donor-only basins)."""
+    the repeat's pool of donors (training and donor-only basins); ``check`` names the held-out
+    check the repeat belongs to (its tasks share the leave-one-out donations of a worker)."""
 
     context: FoldContext
     method: str
@@ -176,12 +218,15 @@ class _RepeatJob:
     pet_mm: pd.DataFrame | None
     flow_mm: pd.DataFrame | None
     temp_c: pd.DataFrame | None
+    check: str = ""
 
     @classmethod
-    def of(cls, context: FoldContext, method: str, level: float, pool) -> _RepeatJob:
+    def of(
+        cls, context: FoldContext, method: str, level: float, pool, *, check: str = ""
+    ) -> _RepeatJob:
         tables = {name: getattr(context, name) for name in _TABLES}
         bare = replace(context, **dict.fromkeys(_TABLES))
-        return cls(bare, method, level, tuple(pool), **tables)
+        return cls(bare, method, level, tuple(pool), **tables, check=check)
 
 
 _TABLES = ("precip_mm", "pet_mm", "flow_mm", "temp_c")
@@ -191,7 +236,24 @@ def _repeat_chunk(targets, job: _RepeatJob) -> dict[str, np.ndarray | None]:
     """Flows of some target basins of one repeat (one task)."""
     tables = {name: getattr(job, name) for name in _TABLES}
     folds = _HeldOutFolds(replace(job.context, **tables), job.method, level=job.level)
+    folds._loo_donations = _worker_loo_donations(job.check)
     return folds.flows(list(targets), pool=list(job.pool))
+
+
+_LOO_DONATIONS: dict[str, dict[str, Donation]] = {}
+"""Per process (a worker): the leave-one-out donations of the latest held-out check, kept
+across its repeats' tasks (each target's is the same in every repeat)."""
+
+
+def _worker_loo_donations(check: str) -> dict[str, Donation]:
+    """This process's leave-one-out donations of ``check`` (those of older checks dropped);
+    a fresh, unshared dict when the job names no check."""
+    if not check:
+        return {}
+    if check not in _LOO_DONATIONS:
+        _LOO_DONATIONS.clear()
+        _LOO_DONATIONS[check] = {}
+    return _LOO_DONATIONS[check]
 
 
 def _held_out_draws(gauged: list[str], size: int, repeats: int, seed: int) -> list[tuple]:

@@ -33,6 +33,48 @@ def test_in_process_map_reports_progress_in_basins():
     assert seen == [(2, 3), (3, 3)]
 
 
+def _shifted_squares(chunk, offset: int):
+    return [offset + int(x) ** 2 for x in chunk]
+
+
+def _batches(drawn: list, count: int):
+    # the context is a plain number: Dask scatters a dict's values under its keys
+    for i in range(count):
+        drawn.append(i)
+        yield _shifted_squares, [[str(i)], [str(i + 1), str(i + 2)]], 100 * i
+
+
+def _expected(i: int) -> list:
+    return [[100 * i + i**2], [100 * i + (i + 1) ** 2, 100 * i + (i + 2) ** 2]]
+
+
+def test_in_process_map_batches_runs_one_batch_at_a_time():
+    drawn: list[int] = []
+    results = InProcessExecutor().map_batches(_batches(drawn, 3))
+    assert next(results) == _expected(0) and drawn == [0]  # lazily: the next batch not drawn
+    assert list(results) == [_expected(1), _expected(2)] and drawn == [0, 1, 2]
+
+
+def test_dask_map_batches_submits_ahead_and_keeps_batch_order():
+    # Two worker processes (distributed.LocalCluster): while the first batch is gathered, the
+    # next `ahead` batches are already submitted (no barrier between batches); results come
+    # back batch by batch in order, each in chunk order, as in process.
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    from regional.compute import DaskExecutor
+
+    executor = DaskExecutor(workers=2)
+    try:
+        drawn: list[int] = []
+        results = executor.map_batches(_batches(drawn, 5), ahead=2)
+        assert next(results) == _expected(0)
+        assert drawn == [0, 1, 2, 3]  # batches 1 and 2 were in flight; 3 sent as 0 came back
+        assert list(results) == [_expected(i) for i in range(1, 5)]
+        with pytest.raises(ValueError, match="ahead must be >= 0"):
+            next(executor.map_batches(_batches([], 1), ahead=-1))
+    finally:
+        executor.close()
+
+
 def test_default_executor_is_in_process():
     assert make_executor().name == "in-process"
 

@@ -192,3 +192,36 @@ def test_held_out_folds_equal_a_refit_per_fold(demo_result, monkeypatch):
                 pd.testing.assert_frame_equal(
                     getattr(new, frame), getattr(old, frame), check_exact=False, rtol=1e-10
                 )
+
+
+def test_held_out_check_on_a_cluster_without_a_barrier_equals_the_in_process_check(demo_result):
+    # On a 2-worker local cluster (distributed.LocalCluster) the tasks of the next repeats are
+    # submitted while the client summarises one (DaskExecutor.map_batches, no barrier per
+    # repeat); the table, the error model and every repeat's summary equal the in-process ones.
+    import pytest
+
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    from regional.compute import DaskExecutor
+    from regional.heldout import held_out_check
+
+    run = demo_result.runs[demo_result.chosen_model]
+    method = demo_result.chosen_method
+    plain = conformal_bounds(run.loo.observed, run.loo.simulated[method], level=0.8)
+    options = {"level": 0.8, "repeats": 4, "fit_level": demo_result.settings.prediction.level}
+    here = held_out_check(run, method, plain, **options)
+    executor = DaskExecutor(workers=2)
+    try:
+        there = held_out_check(run, method, plain, executor=executor, **options)
+    finally:
+        executor.close()
+    pd.testing.assert_frame_equal(here[0], there[0], check_exact=True)
+    assert here[0].attrs == there[0].attrs and here[2] == there[2]
+    pd.testing.assert_frame_equal(here[1].table, there[1].table, check_exact=True)
+    assert len(here[3]) == len(there[3]) == 4
+    for one, two in zip(here[3], there[3], strict=True):
+        assert (one.held_out, one.training) == (two.held_out, two.training)
+        pd.testing.assert_frame_equal(one.held_out_flow, two.held_out_flow, check_exact=True)
+        pd.testing.assert_frame_equal(
+            one.training_statistics, two.training_statistics, check_exact=True
+        )
+        assert (one.n_simulated, one.n_reused) == (two.n_simulated, two.n_reused)
