@@ -711,8 +711,21 @@ def _monthly_means(filled: np.ndarray, observed: np.ndarray, dates: np.ndarray) 
     starts = np.flatnonzero(np.r_[True, months[1:] != months[:-1]])
     totals = np.add.reduceat(filled, starts, axis=0)
     counts = np.add.reduceat(observed.astype(float), starts, axis=0)
-    indicator = (months[starts] % 12)[None, :] == np.arange(12)[:, None]
-    return _ratio(indicator @ totals, indicator @ counts)
+    return _ratio(
+        _by_calendar_month(totals, months[starts]), _by_calendar_month(counts, months[starts])
+    )
+
+
+def _by_calendar_month(values: np.ndarray, months: np.ndarray) -> np.ndarray:
+    """(12, basins) sums of the rows of ``values`` (one per month ``months``) by calendar
+    month, added in date order (a running sum), so that a basin's sum never depends on the
+    other basins beside it (a matrix product's blocking does)."""
+    out = np.zeros((12, values.shape[1]))
+    for month in range(12):
+        rows = values[months % 12 == month]
+        if len(rows):
+            out[month] = np.cumsum(rows, axis=0)[-1]
+    return out
 
 
 # --------------------------------------------------------------------------------------------

@@ -14,7 +14,6 @@ from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 
 from regional import io
@@ -35,7 +34,7 @@ from regional.errors import InputError, InputWarning
 from regional.fitted import fit_region
 from regional.models import get_model, parameter_transforms
 from regional.overlap import excluded_donors, overlap_shares
-from regional.predict import predict_region
+from regional.predict import PREDICTION_CHUNK, predict_region
 from regional.region import Region, load_region, transfer_attribute_names
 from regional.result import ModelRun, RunResult
 from regional.screen import screen_region
@@ -164,7 +163,15 @@ def _chain(settings, region, executor, progress, timings) -> dict:
     prediction = screening = None
     if region.ungauged:
         clock = time.perf_counter()
-        prediction = predict_region(fitted, region)
+        prediction = predict_region(
+            fitted,
+            region,
+            executor=executor,
+            reader=_prediction_reader(fitted, region, executor),
+            chunk_basins=_chunk_basins(
+                settings, PREDICTION_CHUNK, n_basins=len(region.ungauged), executor=executor
+            ),
+        )
         timings["prediction"] = time.perf_counter() - clock
     clock = time.perf_counter()
     statistics = _statistics(runs[model], method, region, attributes, prediction)
@@ -243,6 +250,13 @@ def _held_out_compute(run: ModelRun, region: Region, settings: Settings, executo
     return {"executor": executor, "reader": reader}
 
 
+def _prediction_reader(fitted, region: Region, executor) -> StoreReader | None:
+    """On a cluster with a series store, prediction tasks read their targets' forcing over the
+    fitted window from it."""
+    dates = region.dates[(region.dates >= fitted.first_day) & (region.dates <= fitted.last_day)]
+    return _store_reader(region, region.settings, executor, dates)
+
+
 def _chunk_basins(settings: Settings, default: int, *, n_basins: int, executor) -> int:
     """Basins per task: ``[compute] chunk_basins`` when set, else the stage's default, made
     smaller on a cluster so that every worker gets several tasks (:func:`chunk_size`)."""
@@ -254,32 +268,22 @@ def _chunk_basins(settings: Settings, default: int, *, n_basins: int, executor) 
 def _statistics(run: ModelRun, method: str, region: Region, attributes, prediction):
     """Flow statistics by every route in leave-one-out, bounded at the ungauged basins."""
     settings = region.settings.prediction
-    flows, applicable, held_out = None, None, ()
+    model, applicable, held_out = None, None, ()
     if prediction is not None:
-        flows = _flows_by_basin(prediction.daily.flow_mm)
+        model = prediction.model_statistics
         applicable = prediction.table["applicable"]
         held_out = prediction.held_out_draws
     return estimate_statistics(
         run,
         method,
         region,
-        flows,
+        None,
+        ungauged_model=model,
         attributes=attributes,
         level=settings.level,
         route=settings.statistics_route,
         applicable=applicable,
         held_out=held_out,
-    )
-
-
-def _flows_by_basin(flow_mm: pd.DataFrame) -> pd.DataFrame:
-    """Days x basins in basin order (the order the statistics' tables follow), laid out day
-    by day in memory as the statistics have always received it, so that their sums add in
-    the same order."""
-    flows = flow_mm[sorted(flow_mm.columns)]
-    values = np.ascontiguousarray(flows.to_numpy(dtype=float))
-    return pd.DataFrame(
-        values, index=flows.index.rename("date"), columns=flows.columns, copy=False
     )
 
 

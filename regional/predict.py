@@ -23,7 +23,7 @@ Hyndman, R. J., Fan, Y. (1996): Sample quantiles in statistical packages. Am. St
 from __future__ import annotations
 
 from collections.abc import Iterator, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -38,11 +38,13 @@ from regional.applicability import (
     transfer_skill,
 )
 from regional.bounds import ConformalErrorModel
+from regional.compute import InProcessExecutor, chunk_size, chunked
 from regional.crossval import FoldContext
 from regional.donation import fit_transfers, method_flows
 from regional.errors import InputError
 from regional.fitted import FittedRegion, fit_result
 from regional.flowstats import to_m3s
+from regional.series import StoreReader, shipped
 from regional.transfer import Donation
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
@@ -62,6 +64,9 @@ FLOW_COLUMNS = (
 """Columns of :attr:`Prediction.flows`."""
 FLOW_PART_BASINS = 64
 """Basins per part when the long table of daily flows is built part by part for writing."""
+PREDICTION_CHUNK = 64
+"""Target basins per prediction task (simulated, bounded and summarised together; fewer on a
+cluster so that every worker gets several tasks)."""
 
 
 @dataclass(frozen=True)
@@ -157,6 +162,11 @@ class Prediction:
     held_out_draws : tuple of HeldOutRepeat
         The repeats' flows (:func:`regional.heldout.held_out_flows`), reused by the flow
         statistics' held-out check; empty when the check did not run.
+    model_statistics : DataFrame or None
+        Indexed by ``basin_id`` (sorted): the flow statistics
+        (:func:`regional.flowstats.statistics_frame`) of each target's daily flow over the
+        fitted region's evaluation days, with its precipitation: the model route of
+        :mod:`regional.statroutes`, computed beside the flows (by the same task on a cluster).
     """
 
     model: str
@@ -169,6 +179,7 @@ class Prediction:
     notes: tuple[str, ...]
     held_out: pd.DataFrame | None = None
     held_out_draws: tuple = field(default=(), repr=False)
+    model_statistics: pd.DataFrame | None = field(default=None, repr=False)
 
     @property
     def flows(self) -> pd.DataFrame:
@@ -207,8 +218,17 @@ def predict_ungauged(result: RunResult, *, level: float | None = None) -> Predic
     return predict_region(fit_result(result, level=level), result.region)
 
 
-def predict_region(fitted: FittedRegion, region: Region) -> Prediction:
+def predict_region(
+    fitted: FittedRegion,
+    region: Region,
+    *,
+    executor=None,
+    reader: StoreReader | None = None,
+    chunk_basins: int | None = None,
+) -> Prediction:
     """Estimates at the region's ungauged basins from a fitted region (no calibration).
+
+    ``executor``, ``reader`` and ``chunk_basins`` are as in :func:`predict_sites`.
 
     Raises
     ------
@@ -227,6 +247,9 @@ def predict_region(fitted: FittedRegion, region: Region) -> Prediction:
         precip_mm=region.precip_mm[targets],
         pet_mm=region.pet_mm[targets],
         temp_c=None if region.temp_c is None else region.temp_c[targets],
+        executor=executor,
+        reader=reader,
+        chunk_basins=chunk_basins,
     )
 
 
@@ -237,8 +260,14 @@ def predict_sites(
     precip_mm: pd.DataFrame,
     pet_mm: pd.DataFrame,
     temp_c: pd.DataFrame | None = None,
+    executor=None,
+    reader: StoreReader | None = None,
+    chunk_basins: int | None = None,
 ) -> Prediction:
     """Estimates at target sites from a fitted region alone (no calibration, no refit of it).
+
+    The transfers are fit once here; the targets are then simulated, bounded and summarised
+    a chunk at a time (:func:`_sites_chunk`), in this process or as tasks of ``executor``.
 
     Parameters
     ----------
@@ -251,6 +280,15 @@ def predict_sites(
         Days x targets, mm/day, covering the fitted window.
     temp_c : DataFrame, optional
         Days x targets, degC; needed when the fitted region runs the snow store.
+    executor : optional
+        An executor of :mod:`regional.compute` (a Dask cluster: the chunks run as its tasks);
+        default this process, chunk after chunk. The results are the same.
+    reader : StoreReader, optional
+        On a cluster, each task reads its targets' forcing over the fitted window from the
+        series store instead of receiving it.
+    chunk_basins : int, optional
+        Targets per chunk; default :data:`PREDICTION_CHUNK`, fewer on a cluster so that every
+        worker gets several tasks.
 
     Returns
     -------
@@ -265,11 +303,12 @@ def predict_sites(
             f"[prediction] method {fitted.method!r} is not a transfer method; choose one "
             f"of {', '.join(map(repr, donations))}"
         )
-    flow_mm = _chosen_flow(context, donations[fitted.method], targets)
     error_model = fitted.error_model
-    low, high = error_model.bounds(flow_mm)
     area = attributes["area_km2"].astype(float)
-    statistics = flowstats.headline_statistics(flow_mm, area_km2=area)
+    job = _SitesJob.of(context, donations[fitted.method], error_model, area, fitted)
+    flow_mm, low, high, statistics, model_statistics = _sites(
+        job, targets, executor=executor, reader=reader, chunk_basins=chunk_basins
+    )
     usable = applicability(context.attributes, attributes, fitted.attributes)
     skill = transfer_skill(
         context.attributes,
@@ -301,7 +340,97 @@ def predict_sites(
         notes=tuple(notes + _notes(fitted, error_model, coverage, usable) + list(fitted.notes)),
         held_out=fitted.held_out,
         held_out_draws=fitted.held_out_draws,
+        model_statistics=model_statistics,
     )
+
+
+@dataclass(frozen=True)
+class _SitesJob:
+    """What a prediction task needs: the fold context of the fitted window (its daily tables
+    travel in the four table fields: whole in process, or the task's targets read from the
+    store), the chosen donation, the error model, the targets' areas and the evaluation days
+    of the model route's statistics."""
+
+    context: FoldContext
+    donation: Donation
+    error_model: ConformalErrorModel
+    area_km2: pd.Series
+    evaluation: pd.DatetimeIndex
+    precip_mm: pd.DataFrame | None
+    pet_mm: pd.DataFrame | None
+    flow_mm: pd.DataFrame | None
+    temp_c: pd.DataFrame | None
+
+    @classmethod
+    def of(cls, context, donation, error_model, area_km2, fitted: FittedRegion) -> _SitesJob:
+        bare = replace(context, precip_mm=None, pet_mm=None, temp_c=None)
+        return cls(
+            bare,
+            donation,
+            error_model,
+            area_km2,
+            pd.DatetimeIndex(fitted.loo_observed.index),
+            context.precip_mm,
+            context.pet_mm,
+            None,
+            context.temp_c,
+        )
+
+
+@dataclass(frozen=True)
+class _SitesPart:
+    """A chunk's results: daily flow and regional bounds (days x targets, mm/day), headline
+    statistics and the model route's statistics (targets x statistics)."""
+
+    flow_mm: pd.DataFrame
+    low_mm: pd.DataFrame
+    high_mm: pd.DataFrame
+    statistics: pd.DataFrame
+    model_statistics: pd.DataFrame
+
+
+def _sites_chunk(targets, job: _SitesJob) -> _SitesPart:
+    """Simulate, bound and summarise some targets (one task)."""
+    targets = list(targets)
+    context = replace(job.context, precip_mm=job.precip_mm, pet_mm=job.pet_mm, temp_c=job.temp_c)
+    flow = _chosen_flow(context, job.donation, targets)
+    low, high = job.error_model.bounds(flow)
+    statistics = flowstats.headline_statistics(flow, area_km2=job.area_km2[targets])
+    part = flow.loc[flow.index.isin(job.evaluation)]
+    precip = context.precip_mm.loc[part.index, targets]
+    model = flowstats.statistics_frame(part, precip_mm_day=precip)
+    return _SitesPart(flow, low, high, statistics, model)
+
+
+def _sites(job: _SitesJob, targets, *, executor, reader, chunk_basins: int | None):
+    """Every target's flow, bounds and statistics, a chunk at a time (a task each on a
+    cluster): the grids and tables joined in target order."""
+    executor = executor or InProcessExecutor()
+    size = chunk_basins or chunk_size(len(targets), PREDICTION_CHUNK, n_workers=executor.n_workers)
+    task, shared = shipped(_sites_chunk, job, reader)
+    parts = executor.map(task, _no_lone_basin(chunked(targets, max(2, size))), shared)
+    grids = [
+        _joined([getattr(p, name) for p in parts]) for name in ("flow_mm", "low_mm", "high_mm")
+    ]
+    statistics = pd.concat([p.statistics for p in parts])
+    model = pd.concat([p.model_statistics for p in parts]).sort_index()
+    return (*grids, statistics, model)
+
+
+def _no_lone_basin(chunks: list[list[str]]) -> list[list[str]]:
+    """Chunks of at least two basins (unless there is one target in all): numpy sums a
+    one-column grid in another order than a wider one, so a lone basin's bounds and
+    statistics could differ in the last digit from those it gets beside others."""
+    if len(chunks) > 1 and len(chunks[-1]) == 1:
+        return [*chunks[:-2], chunks[-2] + chunks[-1]]
+    return chunks
+
+
+def _joined(frames: list[pd.DataFrame]) -> pd.DataFrame:
+    """Days x basins frames side by side, as one C-ordered grid (the layout of one chunk)."""
+    columns = pd.Index([c for f in frames for c in f.columns], name="basin_id")
+    values = np.hstack([f.to_numpy(dtype=float) for f in frames])
+    return pd.DataFrame(values, index=frames[0].index, columns=columns, copy=False)
 
 
 def _parameters_by_method(context, target_attributes, level):

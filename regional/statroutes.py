@@ -169,6 +169,7 @@ def estimate_statistics(
     route: str = "auto",
     applicable: pd.Series | None = None,
     held_out: Sequence | None = None,
+    ungauged_model: pd.DataFrame | None = None,
 ) -> FlowStatistics:
     """Statistics by every route in leave-one-out, the chosen route and its bounds.
 
@@ -196,6 +197,10 @@ def estimate_statistics(
         Repeats of the held-out check of the chosen (model, method)
         (:func:`regional.heldout.held_out_flows`); gives the held-out coverage of each
         statistic's chosen route.
+    ungauged_model : DataFrame, optional
+        The model route's statistics at the ungauged basins when already computed beside
+        their flows (:attr:`regional.predict.Prediction.model_statistics`: basins x
+        statistics over the evaluation days); then ``ungauged_flow`` is not needed.
 
     Returns
     -------
@@ -218,13 +223,18 @@ def estimate_statistics(
     bounds = _bounds(summary, errors, level)
     loo_table = _loo_table(data.observed, estimates)
     notes = _notes(summary, bounds, level, len(data.gauged))
-    if ungauged_flow is None or ungauged_flow.shape[1] == 0:
+    if ungauged_model is not None:
+        targets = [str(b) for b in ungauged_model.index]
+    else:
+        targets = [] if ungauged_flow is None else [str(c) for c in ungauged_flow.columns]
+    if not targets:
         empty = pd.DataFrame(columns=list(UNGAUGED_COLUMNS))
         return FlowStatistics(
             level, route, data.observed, loo_table, summary, bounds, empty, empty, tuple(notes)
         )
-    targets = [str(c) for c in ungauged_flow.columns]
-    at_targets = _ungauged_estimates(data, ungauged_flow, targets, region)
+    if ungauged_model is None:
+        ungauged_model = _model_route(data, ungauged_flow, targets, region)
+    at_targets = _ungauged_estimates(data, ungauged_model, targets, region)
     area = region.attributes.loc[targets, "area_km2"].astype(float)
     table = _ungauged_table(at_targets, bounds, area, applicable)
     return FlowStatistics(
@@ -931,11 +941,16 @@ def _held_out_routes(data: _GaugedData, draw, training, held, needed) -> dict:
 # Ungauged basins
 
 
-def _ungauged_estimates(data: _GaugedData, flow: pd.DataFrame, targets, region) -> dict:
-    """Route -> DataFrame (targets x statistics) at the ungauged basins."""
+def _model_route(data: _GaugedData, flow: pd.DataFrame, targets, region) -> pd.DataFrame:
+    """Statistics of the ungauged basins' flow over the evaluation days (the model route)."""
     flow = flow.loc[flow.index.isin(data.dates)]
     precip = region.precip_mm.loc[flow.index, targets]
-    out = {MODEL: flowstats.statistics_frame(flow[targets], precip_mm_day=precip)}
+    return flowstats.statistics_frame(flow[targets], precip_mm_day=precip)
+
+
+def _ungauged_estimates(data: _GaugedData, model: pd.DataFrame, targets, region) -> dict:
+    """Route -> DataFrame (targets x statistics) at the ungauged basins."""
+    out = {MODEL: model.loc[targets]}
     attributes = region.attributes.loc[targets]
     if len(data.gauged) >= MIN_BASINS:
         z, logs = _standardised(data, data.gauged)

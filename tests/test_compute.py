@@ -132,7 +132,9 @@ def test_an_address_that_answers_in_another_protocol_is_named_not_a_scheduler():
 
 def test_cluster_reading_a_series_store_gives_the_in_process_tables(tmp_path, region_parts):
     # `regional convert` writes the series store; a 2-worker local cluster whose tasks read
-    # their own basins from it must give the tables of the in-process run from the CSV file.
+    # their own basins from it (calibration, leave-one-out, the held-out check's repeats and
+    # the prediction's chunks of ungauged basins) must give the tables of the in-process run
+    # from the CSV file.
     pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
     from tiny_region import write_region
 
@@ -157,7 +159,12 @@ def test_cluster_reading_a_series_store_gives_the_in_process_tables(tmp_path, re
     assert main(["run", str(folder), "--out", str(here), "--quiet"]) == 0
     assert main(["run", str(from_store), "--out", str(there), "--quiet", "--workers", "2"]) == 0
     names = ["loo_scores.csv", "calibration.csv", "parameters_ungauged.csv", "coverage.csv"]
-    for name in [*names, "flows_ungauged.csv", "statistics_summary.csv"]:
+    for name in [
+        *names,
+        "flows_ungauged.csv",
+        "statistics_summary.csv",
+        "statistics_ungauged.csv",
+    ]:
         assert (here / name).read_text() == (there / name).read_text(), name
 
 

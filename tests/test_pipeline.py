@@ -162,21 +162,34 @@ def test_progress_names_the_stage_and_the_model(tmp_path, region_parts):
 
 
 def test_chunked_and_whole_region_runs_give_identical_tables(tmp_path, region_parts):
-    # Two routes to the same tables: tasks of 3 basins against one task holding every basin
-    # ([compute] chunk_basins); leave-one-out scores and the estimates must be identical.
+    # Routes to the same tables: tasks of 3 basins, and of 1 (the two ungauged basins then
+    # take two prediction tasks, each simulating, bounding and summarising its basin),
+    # against one task holding every basin ([compute] chunk_basins); leave-one-out scores
+    # and the estimates must be identical.
     from tiny_region import write_region
 
     from regional.cli import main
 
     outputs = {}
-    for chunk in (3, 1000):
+    for chunk in (1, 3, 1000):
         region_parts.config["compute"] = {"chunk_basins": chunk}
         folder = write_region(tmp_path / f"region_{chunk}", region_parts)
         outputs[chunk] = tmp_path / f"out_{chunk}"
         assert main(["run", str(folder), "--out", str(outputs[chunk]), "--quiet"]) == 0
-    tables = ("loo_scores.csv", "calibration.csv", "parameters_ungauged.csv", "flows_ungauged.csv")
+    tables = (
+        "loo_scores.csv",
+        "calibration.csv",
+        "parameters_ungauged.csv",
+        "flows_ungauged.csv",
+        "statistics_ungauged.csv",
+    )
+    assert (outputs[3] / "flows_ungauged.csv").read_text().count("\n") > 1
     for name in tables:
-        assert (outputs[3] / name).read_text() == (outputs[1000] / name).read_text(), name
+        for chunk in (1, 3):
+            assert (outputs[chunk] / name).read_text() == (outputs[1000] / name).read_text(), (
+                name,
+                chunk,
+            )
 
 
 def test_snow_parameters_are_calibrated_transferred_and_predicted(tmp_path, region_parts):

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from regional.errors import InputError
@@ -119,3 +120,26 @@ def test_demo_prediction_reports_the_held_out_check(prediction, demo_result):
     assert any("held-out check" in note and "10 repeats" in note for note in prediction.notes)
     others = prediction.coverage[prediction.coverage["method"] != demo_result.chosen_method]
     assert others["held_out_coverage"].isna().all()
+
+
+def test_prediction_in_chunks_equals_the_prediction_in_one_chunk(demo_result):
+    # The ungauged basins are simulated, bounded and summarised a chunk at a time (a task each
+    # on a cluster): chunks of 2 (and a last chunk of 3, never a lone basin) give the very
+    # flows, bounds, table and model-route statistics of one chunk holding every basin.
+    from regional.predict import _no_lone_basin, predict_region
+
+    fitted, region = demo_result.fitted, demo_result.region
+    assert len(region.ungauged) >= 5
+    whole = predict_region(fitted, region, chunk_basins=1000)
+    for size in (2, 3):
+        chunked = predict_region(fitted, region, chunk_basins=size)
+        for name in ("flow_mm", "low_mm", "high_mm"):
+            pd.testing.assert_frame_equal(
+                getattr(chunked.daily, name), getattr(whole.daily, name), check_exact=True
+            )
+        pd.testing.assert_frame_equal(chunked.table, whole.table, check_exact=True)
+        pd.testing.assert_frame_equal(
+            chunked.model_statistics, whole.model_statistics, check_exact=True
+        )
+    assert _no_lone_basin([["a", "b"], ["c", "d"], ["e"]]) == [["a", "b"], ["c", "d", "e"]]
+    assert _no_lone_basin([["a"]]) == [["a"]]
