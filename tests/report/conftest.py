@@ -116,6 +116,7 @@ def fake_prediction(result, *, seed: int = 1):
         notes=("bounds from log-flow errors in 2 flow classes",),
         held_out=None,
         held_out_draws=(),
+        model_statistics=None,
     )
 
 
