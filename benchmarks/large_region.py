@@ -13,6 +13,7 @@ its wall time and resident memory before, at the peak of, and after each stage. 
   peak memory of the client and of each worker.
 
 Run:  python benchmarks/large_region.py [--sizes 500 2000 10000] [--years 20] [--dask-size 500]
+(one size, e.g. ``--sizes 500 --dask-size 500``, skips the scaling ratios.)
 (``--dask-size 0`` skips the cluster run.)
 Every value of the synthetic region is invented.
 """
@@ -337,8 +338,6 @@ def main() -> None:
     if args.child:
         child(*args.child)
         return
-    if len(args.sizes) < 2:
-        parser.error("--sizes needs at least two region sizes")
     rows = [measure(n, args.years) for n in args.sizes]
     clustered = measure(args.dask_size, args.years, workers=2) if args.dask_size else None
     by_size = {row["n"]: row for row in rows}
@@ -353,6 +352,20 @@ def main() -> None:
             f"({row['seconds'] / row['n'] * 1000:.0f} ms/basin; peak {row['peak_mb']:.0f} MB)"
             f"  [{stages}]"
         )
+    if len(rows) > 1:
+        _print_scaling(rows)
+    if clustered is not None:
+        _print_cluster(args.dask_size, local, clustered)
+    print(
+        f"peak memory at N = {rows[-1]['n']}: {rows[-1]['peak_mb']:.0f} MB   (target <= 4096 MB "
+        "at 10,000 basins)"
+    )
+    if len(rows) > 1:
+        _print_stages(rows[0], rows[1])
+
+
+def _print_scaling(rows: list[dict]) -> None:
+    """Time ratios of the two first sizes and time per basin at the last over the first."""
     small, large = rows[0], rows[1]
     ratio = large["seconds"] / small["seconds"]
     print(
@@ -364,13 +377,6 @@ def main() -> None:
         f"time per basin at N = {rows[-1]['n']} / at N = {small['n']}: {per_basin:.2f}"
         "   (target <= 1.2 for 10,000 against 500)"
     )
-    if clustered is not None:
-        _print_cluster(args.dask_size, local, clustered)
-    print(
-        f"peak memory at N = {rows[-1]['n']}: {rows[-1]['peak_mb']:.0f} MB   (target <= 4096 MB "
-        "at 10,000 basins)"
-    )
-    _print_stages(small, large)
 
 
 if __name__ == "__main__":
