@@ -166,7 +166,8 @@ class Prediction:
         Indexed by ``basin_id`` (sorted): the flow statistics
         (:func:`regional.flowstats.statistics_frame`) of each target's daily flow over the
         fitted region's evaluation days, with its precipitation: the model route of
-        :mod:`regional.statroutes`, computed beside the flows (by the same task on a cluster).
+        :mod:`regional.statroutes`, computed beside the flows (by the same task on a cluster);
+        no column when the flows share no day with the evaluation days.
     """
 
     model: str
@@ -397,8 +398,10 @@ def _sites_chunk(targets, job: _SitesJob) -> _SitesPart:
     low, high = job.error_model.bounds(flow)
     statistics = flowstats.headline_statistics(flow, area_km2=job.area_km2[targets])
     part = flow.loc[flow.index.isin(job.evaluation)]
-    precip = context.precip_mm.loc[part.index, targets]
-    model = flowstats.statistics_frame(part, precip_mm_day=precip)
+    model = pd.DataFrame(index=pd.Index(targets, name="basin_id"))  # no evaluation day
+    if len(part):
+        precip = context.precip_mm.loc[part.index, targets]
+        model = flowstats.statistics_frame(part, precip_mm_day=precip)
     return _SitesPart(flow, low, high, statistics, model)
 
 

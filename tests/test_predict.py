@@ -143,3 +143,23 @@ def test_prediction_in_chunks_equals_the_prediction_in_one_chunk(demo_result):
         )
     assert _no_lone_basin([["a", "b"], ["c", "d"], ["e"]]) == [["a", "b"], ["c", "d", "e"]]
     assert _no_lone_basin([["a"]]) == [["a"]]
+
+
+def test_sites_whose_flows_share_no_evaluation_day_get_no_model_route_statistics(demo_result):
+    # The model route's statistics are taken over the fitted region's evaluation days; a
+    # fitted region whose evaluation days lie elsewhere still predicts (same flows), with no
+    # model-route column instead of an error.
+    from dataclasses import replace
+
+    from regional.predict import predict_region
+
+    fitted, region = demo_result.fitted, demo_result.region
+    observed = fitted.loo_observed
+    elsewhere = replace(
+        fitted, loo_observed=observed.set_axis(observed.index + pd.DateOffset(years=200))
+    )
+    shifted = predict_region(elsewhere, region)
+    assert shifted.model_statistics.shape == (len(region.ungauged), 0)
+    pd.testing.assert_frame_equal(
+        shifted.daily.flow_mm, demo_result.prediction.daily.flow_mm, check_exact=True
+    )
