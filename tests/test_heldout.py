@@ -225,3 +225,14 @@ def test_held_out_check_on_a_cluster_without_a_barrier_equals_the_in_process_che
             one.training_statistics, two.training_statistics, check_exact=True
         )
         assert (one.n_simulated, one.n_reused) == (two.n_simulated, two.n_reused)
+
+
+def test_held_out_tasks_are_few_and_large_with_the_next_repeats_in_flight():
+    # 4 repeats in flight (3 ahead of the one summarised) x 2 tasks = 4 tasks per worker on 2
+    # workers; more workers, more tasks per repeat; never more than HELD_OUT_CHUNK basins.
+    from regional.heldout import HELD_OUT_CHUNK, held_out_chunk
+
+    assert held_out_chunk(74, n_workers=2) == 37
+    assert held_out_chunk(150, n_workers=2) == HELD_OUT_CHUNK == 64
+    assert held_out_chunk(74, n_workers=16) == 5  # 16 tasks per repeat
+    assert held_out_chunk(3, n_workers=1) == 3 and held_out_chunk(1, n_workers=64) == 1
