@@ -11,7 +11,9 @@ a fresh child process, one after the other on this machine:
 Printed: the whole-chain speed-up and, separately, the speed-up of the distributed stages
 (calibration, leave-one-out, the held-out check of the fitted region and prediction); the time
 of every stage, of writing the outputs and outside the stages (starting and closing the
-cluster); the bytes the client scattered to the workers per stage (per repeat of the held-out
+cluster); the CPU time of the in-process run and of the cluster's client and workers (the
+work each route does: a loaded machine changes it far less than wall time); the bytes the
+client scattered to the workers per stage (per repeat of the held-out
 check) and the bytes of results gathered back, per chunk. Before
 each run, the load average and how much more work two processes did than one in a short spin
 (about 2 on an idle 2-core machine, about 1 when other work keeps the cores busy): no cluster
@@ -68,6 +70,27 @@ def _measure_shipping(record: list) -> None:
     compute.DaskExecutor.map_batches = counted_batches
 
 
+def _cpu_seconds() -> float:
+    """User + system CPU time of this process, s."""
+    import resource
+
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    return usage.ru_utime + usage.ru_stime
+
+
+def _measure_worker_cpu(record: dict) -> None:
+    """Wrap DaskExecutor.close to add up the workers' CPU seconds before they stop."""
+    from regional import compute
+
+    original = compute.DaskExecutor.close
+
+    def close(self):
+        record["workers_cpu_s"] = sum(self.client.run(_cpu_seconds).values())
+        original(self)
+
+    compute.DaskExecutor.close = close
+
+
 def child(folder: str, workers: int) -> None:
     """Run the chain on the region in ``folder``; print one JSON line."""
     import warnings
@@ -80,7 +103,10 @@ def child(folder: str, workers: int) -> None:
     keep_freed_memory()
     shipping: list[dict] = []
     _measure_shipping(shipping)
+    cpu = {"workers_cpu_s": 0.0}
+    _measure_worker_cpu(cpu)
     out = Path(folder) / f"results_{workers}"
+    cpu_start = _cpu_seconds()
     start = time.perf_counter()
     result = run(folder, workers=workers or None)
     ran = time.perf_counter()
@@ -89,7 +115,8 @@ def child(folder: str, workers: int) -> None:
     timings = dict(result.timings)
     timings["outside the stages (cluster start and close)"] = (ran - start) - sum(timings.values())
     timings["outputs"] = seconds - (ran - start)
-    print(json.dumps({"seconds": seconds, "timings": timings, "shipping": shipping}))
+    cpu["client_cpu_s"] = _cpu_seconds() - cpu_start
+    print(json.dumps({"seconds": seconds, "timings": timings, "shipping": shipping, **cpu}))
 
 
 def _spin(_: int = 0) -> float:
@@ -161,6 +188,13 @@ def main() -> None:
             f"{row['load_before']:.1f}, two processes did {row['capacity']:.2f} x the work of "
             f"one)  [{parts}]"
         )
+    work = cluster["client_cpu_s"] + cluster["workers_cpu_s"]
+    print(
+        f"work (CPU seconds, which the load changes far less than wall time): in process "
+        f"{local['client_cpu_s']:.1f} s; cluster {work:.1f} s (client "
+        f"{cluster['client_cpu_s']:.1f} s, workers {cluster['workers_cpu_s']:.1f} s), "
+        f"{work / local['client_cpu_s']:.2f} x the work"
+    )
     print(
         f"whole chain speed-up: {local['seconds'] / cluster['seconds']:.2f} x   "
         "(target >= 1.6 on 2 cores)"
