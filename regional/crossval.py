@@ -21,7 +21,8 @@ Hydrol. Earth Syst. Sci. 17, 1783-1795.
 from __future__ import annotations
 
 import warnings
-from collections import Counter
+import weakref
+from collections import Counter, OrderedDict
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 
@@ -41,7 +42,7 @@ from regional.transfer import (
     simulate_donors,
 )
 from regional.transfer.base import weighted_estimate
-from regional.transfer.folds import FoldDonations, FoldSettings, fold_donations
+from regional.transfer.folds import FoldDonations, FoldSettings, PreparedPool
 
 CALIBRATED = "calibrated"
 MEDIAN = "median"
@@ -238,22 +239,53 @@ def fold_donations_of(
 
     ``n_donors`` overrides the donor count of every method (default: the method's own).
     """
-    transforms = context.transforms
-    X = context.attributes
-    y = context.calibrated[list(transforms)]
     drops = [_drop_set(target, context) for target in targets]
     return {
-        method: fold_donations(
-            method,
-            X,
-            y,
-            targets,
-            drops,
-            target_X=context.attributes,
-            settings=fold_settings(context, method, n_donors=n_donors),
+        method: prepared_pool(context, method, n_donors=n_donors).donations(
+            targets, drops, target_X=context.attributes
         )
         for method in methods
     }
+
+
+PREPARED_KEPT = 6
+"""Prepared pools kept per process (:func:`prepared_pool`): a stage's methods and pools."""
+_PREPARED: OrderedDict = OrderedDict()
+
+
+def prepared_pool(
+    context: FoldContext,
+    method: str,
+    *,
+    pool: Sequence[str] | None = None,
+    n_donors: int | None = None,
+    level: float = 0.9,
+) -> PreparedPool:
+    """``method`` prepared on ``pool`` (default: every basin of ``context.calibrated``), made
+    once per process and kept for the next tasks of the stage.
+
+    A stage cuts its targets into chunks of a few basins; preparing the pool (sorting,
+    checking, the sums and fits every fold starts from) costs O(pool), so preparing it per
+    chunk would cost O(pool^2 / chunk) in all. The last :data:`PREPARED_KEPT` pools are kept,
+    keyed by the very attribute and parameter tables of the context (a task of a cluster gets
+    the scattered context's, one copy per worker), the method, its settings and the pool.
+    """
+    settings = fold_settings(context, method, n_donors=n_donors, level=level)
+    members = None if pool is None else tuple(str(b) for b in pool)
+    key = (id(context.attributes), id(context.calibrated), method, repr(settings), members)
+    entry = _PREPARED.get(key)
+    if entry is not None and entry[0]() is context.attributes and entry[1]() is context.calibrated:
+        _PREPARED.move_to_end(key)
+        return entry[2]
+    names = list(context.transforms)
+    X, y = context.attributes, context.calibrated[names]
+    if members is not None:
+        X, y = X.loc[list(members)], y.loc[list(members)]
+    prepared = PreparedPool(method, X, y, settings)
+    _PREPARED[key] = (weakref.ref(context.attributes), weakref.ref(context.calibrated), prepared)
+    while len(_PREPARED) > PREPARED_KEPT:
+        _PREPARED.popitem(last=False)
+    return prepared
 
 
 def fold_settings(

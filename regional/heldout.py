@@ -27,12 +27,11 @@ from regional.coverage import (
     summarise_repeat,
     widened_levels,
 )
-from regional.crossval import FoldContext, fold_settings
+from regional.crossval import FoldContext, prepared_pool
 from regional.donation import method_flows
 from regional.errors import InputError
 from regional.series import StoreReader, shipped
 from regional.transfer import Donation
-from regional.transfer.folds import fold_donations
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.result import ModelRun
@@ -311,18 +310,9 @@ class _HeldOutFolds:
         basins, all targets at once (:func:`regional.transfer.folds.fold_donations`: the
         donations of a refit per target; a target outside the pool gets the pool's fit)."""
         context = self.context
-        names = list(context.transforms)
         drops = [frozenset([t, *context.excluded.get(t, ())]) for t in targets]
-        result = fold_donations(
-            self.method,
-            context.attributes.loc[pool],
-            context.calibrated.loc[pool, names],
-            targets,
-            drops,
-            target_X=context.attributes,
-            settings=fold_settings(context, self.method, level=self.level),
-        )
-        return result.donations
+        prepared = prepared_pool(context, self.method, pool=pool, level=self.level)
+        return prepared.donations(targets, drops, target_X=context.attributes).donations
 
 
 def _same_donation(first: Donation, second: Donation) -> bool:

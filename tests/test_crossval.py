@@ -178,13 +178,13 @@ def test_donor_sets_outside_the_bounds_are_simulated_at_the_bound():
 def _loo_both_routes(context, monkeypatch, **kwargs):
     """Leave-one-out by the batched fold donations, then by a refit per fold (the route they
     replace: tests/refit_route.py)."""
-    from refit_route import refit_every_fold
+    from refit_route import refit_pool
 
     from regional import crossval
 
     batched = leave_one_out(context, **kwargs)
     with monkeypatch.context() as patch:
-        patch.setattr(crossval, "fold_donations", refit_every_fold)
+        patch.setattr(crossval, "prepared_pool", refit_pool)
         refit = leave_one_out(context, **kwargs)
     return batched, refit
 

@@ -172,7 +172,7 @@ def test_repeats_run_as_tasks_give_the_same_flows(demo_result, tmp_path):
 def test_held_out_folds_equal_a_refit_per_fold(demo_result, monkeypatch):
     # Training basins (leave-one-out within the pool, nested basins left out) and held-out
     # basins (the pool's fit) get the flows of a refit per basin, reused flows included.
-    from refit_route import refit_every_fold
+    from refit_route import refit_pool
 
     from regional import heldout
 
@@ -180,7 +180,7 @@ def test_held_out_folds_equal_a_refit_per_fold(demo_result, monkeypatch):
     for method in ("regression", "similarity", "proximity", "median"):
         batched = held_out_flows(run, method=method, repeats=2, level=0.9, seed=5)
         with monkeypatch.context() as patch:
-            patch.setattr(heldout, "fold_donations", refit_every_fold)
+            patch.setattr(heldout, "prepared_pool", refit_pool)
             refit = held_out_flows(run, method=method, repeats=2, level=0.9, seed=5)
         for new, old in zip(batched, refit, strict=True):
             assert (new.held_out, new.n_reused, new.n_simulated) == (

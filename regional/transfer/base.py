@@ -86,6 +86,8 @@ class Donation:
         InputError
             When ``target_id`` received nothing in this donation.
         """
+        if len(self.intervals) == 1 and self.intervals.index[0] == target_id:
+            return self.sets.reset_index(drop=True)  # a donation to this target alone
         rows = self.sets[self.sets["target_id"] == target_id]
         if rows.empty:
             raise InputError(

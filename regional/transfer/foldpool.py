@@ -1,9 +1,10 @@
-"""The pool of a batch of folds: basins sorted by id, each fold's dropped rows, and what the
-batched fold donations (:mod:`regional.transfer.folds`) share between methods."""
+"""The pool of the batched fold donations (:mod:`regional.transfer.folds`): basins sorted by
+id, each fold's dropped rows, the shifted sums every fold's moments come from, and the layout
+of a one-set donation."""
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Collection, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -26,88 +27,103 @@ class FoldSettings:
 
 @dataclass(frozen=True)
 class FoldPool:
-    """The pool sorted by basin id (as every estimator sorts it), and each fold's dropped rows.
-
-    ``rows`` holds, per target, the positions in the sorted pool of its dropped basins
-    (``-1`` pads the rows of targets that drop fewer).
-    """
+    """The pool sorted by basin id (as every estimator sorts it), prepared once for any number
+    of folds (:meth:`rows` places each fold's dropped basins in it)."""
 
     X: pd.DataFrame
     y: pd.DataFrame
     ids: np.ndarray
-    targets: list[str]
-    drops: list[frozenset[str]]
-    rows: np.ndarray
+    where: Mapping[str, int]
 
     @classmethod
-    def of(cls, X: pd.DataFrame, y: pd.DataFrame, targets, drops) -> FoldPool:
+    def of(cls, X: pd.DataFrame, y: pd.DataFrame) -> FoldPool:
         X = X.copy()
         X.index = X.index.map(str)
-        y = y.loc[X.index] if y.index.equals(X.index) else y.copy()
+        y = y.copy()
         y.index = y.index.map(str)
         order = np.argsort(X.index.to_numpy(dtype=str), kind="stable")
-        X, y = X.iloc[order], y.loc[X.index[order]]
+        X = X.iloc[order]
+        y = y.reindex(X.index)
         ids = X.index.to_numpy(dtype=str)
-        where = {b: i for i, b in enumerate(ids)}
-        drops = [frozenset(str(b) for b in d) for d in drops]
-        positions = [sorted(where[b] for b in d if b in where) for d in drops]
-        width = max([len(p) for p in positions] + [1])
-        rows = np.full((len(targets), width), -1, dtype=np.int64)
-        for t, p in enumerate(positions):
-            rows[t, : len(p)] = p
-        return cls(X, y, ids, list(targets), drops, rows)
+        return cls(X, y, ids, {b: i for i, b in enumerate(ids)})
 
     @property
     def n(self) -> int:
         return len(self.ids)
 
-    def n_dropped(self) -> np.ndarray:
-        """Basins left out of each fold's pool, (targets,)."""
-        return (self.rows >= 0).sum(axis=1)
-
-    def dropped(self, t: int) -> frozenset[str]:
-        return self.drops[t]
-
-    def downdated(self, values: np.ndarray, rows: np.ndarray) -> np.ndarray:
-        """Per fold, the sum over the pool of ``values`` (n, ...) minus the dropped rows'."""
-        total = values.sum(axis=0)
-        padded = np.concatenate([values, np.zeros((1, *values.shape[1:]))])
-        return total - padded[rows].sum(axis=1)  # row -1 reads the zero pad
+    def rows(self, drops: Sequence[Collection[str]]) -> np.ndarray:
+        """Per fold, the positions in the sorted pool of its dropped basins, ascending, ``-1``
+        padding the folds that drop fewer (ids not in the pool are ignored)."""
+        positions = [sorted(self.where[str(b)] for b in d if str(b) in self.where) for d in drops]
+        width = max([len(p) for p in positions] + [1])
+        rows = np.full((len(positions), width), -1, dtype=np.int64)
+        for t, p in enumerate(positions):
+            rows[t, : len(p)] = p
+        return rows
 
 
-def fold_moments(values: np.ndarray, folds: FoldPool, rows: np.ndarray):
-    """Mean and standard deviation (ddof=1) of each column of ``values`` over every fold.
-
-    Shifted sums: with c the pool mean, s1 = sum (x - c) and s2 = sum (x - c)^2 over the fold
-    (the pool's sums less the dropped rows'), mean = c + s1 / m and var = (s2 - s1^2 / m) /
-    (m - 1), m the fold's count. Returns (mean, std, exact) where ``exact`` flags the folds
-    whose variance keeps at least 1e-6 of the pool's sum of squares (no cancellation).
-    """
-    centre = values.mean(axis=0)
-    shifted = values - centre
-    s1 = folds.downdated(shifted, rows)
-    s2 = folds.downdated(shifted**2, rows)
-    m = (folds.n - (rows >= 0).sum(axis=1)).astype(float)[:, None]
-    mean = centre + s1 / m
-    squares = s2 - s1**2 / m
-    with np.errstate(divide="ignore", invalid="ignore"):
-        std = np.sqrt(np.maximum(squares, 0.0) / (m - 1.0))
-    total = (shifted**2).sum(axis=0)
-    safe = (squares > 1e-6 * total).all(axis=1) & (m[:, 0] >= 2)
-    return mean, std, safe
+def fold_sizes(pool: FoldPool, rows: np.ndarray) -> np.ndarray:
+    """Basins left in each fold, (folds,)."""
+    return pool.n - (rows >= 0).sum(axis=1)
 
 
-def never_constant(values: np.ndarray, folds: FoldPool, rows: np.ndarray) -> np.ndarray:
-    """Folds where no column of ``values`` is constant once the dropped rows are left out."""
-    ok = np.ones(len(rows), dtype=bool)
-    width = (rows >= 0).sum(axis=1)
-    for column in values.T:
-        _, counts = np.unique(column, return_counts=True)
-        others = folds.n - counts.max()  # rows off the commonest value
-        for t in np.flatnonzero(others <= width):
-            kept = np.delete(column, rows[t][rows[t] >= 0])
-            ok[t] &= bool(np.ptp(kept) > 0) if len(kept) else False
-    return ok
+def downdated(total: np.ndarray, values: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """Per fold, ``total`` (the pool's sum of ``values`` (n, ...)) less the dropped rows'."""
+    padded = np.concatenate([values, np.zeros((1, *values.shape[1:]))])
+    return total - padded[rows].sum(axis=1)  # row -1 reads the zero pad
+
+
+@dataclass(frozen=True)
+class Moments:
+    """Shifted sums of the columns of ``values`` (n, k) over the pool, for every fold's mean and
+    standard deviation (:meth:`of_folds`) and its constant columns (:meth:`never_constant`)."""
+
+    values: np.ndarray
+    centre: np.ndarray
+    shifted: np.ndarray
+    s1: np.ndarray
+    s2: np.ndarray
+    commonest: np.ndarray
+
+    @classmethod
+    def of(cls, values: np.ndarray) -> Moments:
+        centre = values.mean(axis=0)
+        shifted = values - centre
+        commonest = np.array(
+            [np.unique(column, return_counts=True)[1].max() for column in values.T], dtype=int
+        )
+        return cls(
+            values, centre, shifted, shifted.sum(axis=0), (shifted**2).sum(axis=0), commonest
+        )
+
+    def of_folds(self, rows: np.ndarray):
+        """Mean and standard deviation (ddof=1) of each column over every fold.
+
+        With c the pool mean, s1 = sum (x - c) and s2 = sum (x - c)^2 over the fold (the pool's
+        sums less the dropped rows'), mean = c + s1 / m and var = (s2 - s1^2 / m) / (m - 1), m
+        the fold's count. Returns (mean, std, safe): ``safe`` flags the folds whose sum of
+        squares keeps at least 1e-6 of the pool's (no cancellation) and have 2 basins or more.
+        """
+        s1 = downdated(self.s1, self.shifted, rows)
+        s2 = downdated(self.s2, self.shifted**2, rows)
+        m = (len(self.values) - (rows >= 0).sum(axis=1)).astype(float)[:, None]
+        mean = self.centre + s1 / m
+        squares = s2 - s1**2 / m
+        with np.errstate(divide="ignore", invalid="ignore"):
+            std = np.sqrt(np.maximum(squares, 0.0) / (m - 1.0))
+        safe = (squares > 1e-6 * self.s2).all(axis=1) & (m[:, 0] >= 2)
+        return mean, std, safe
+
+    def never_constant(self, rows: np.ndarray) -> np.ndarray:
+        """Folds where no column is constant once the dropped rows are left out."""
+        ok = np.ones(len(rows), dtype=bool)
+        width = (rows >= 0).sum(axis=1)
+        for j, column in enumerate(self.values.T):
+            others = len(column) - self.commonest[j]  # rows off the commonest value
+            for t in np.flatnonzero(others <= width):
+                kept = np.delete(column, rows[t][rows[t] >= 0])
+                ok[t] &= bool(np.ptp(kept) > 0) if len(kept) else False
+        return ok
 
 
 def target_values(targets: pd.DataFrame, columns: Sequence[str]) -> np.ndarray:
@@ -127,23 +143,21 @@ def one_set_donation(
 ) -> Donation:
     """A donation of one synthetic set (regression, median) to one target, laid out as the
     estimators lay it out: ``values`` maps each parameter to (estimate, low, high)."""
-    sets = pd.DataFrame(
-        {
-            "target_id": np.array([target], dtype=object),
-            "donor_id": label,
-            "rank": 1,
-            "distance": np.nan,
-            "weight": 1.0,
-        }
-    )
+    columns = {
+        "target_id": np.array([target], dtype=object),
+        "donor_id": np.array([label], dtype=object),
+        "rank": np.ones(1, dtype=np.int64),
+        "distance": np.full(1, np.nan),
+        "weight": np.ones(1),
+    }
     intervals = {}
     for name, (estimate, low, high) in values.items():
-        sets[name] = [estimate]
-        intervals[f"{name}_low"] = [low]
-        intervals[f"{name}_high"] = [high]
+        columns[name] = np.array([estimate], dtype=float)
+        intervals[f"{name}_low"] = np.array([low], dtype=float)
+        intervals[f"{name}_high"] = np.array([high], dtype=float)
     return Donation(
         method=method,
-        sets=sets,
+        sets=pd.DataFrame(columns),
         intervals=pd.DataFrame(intervals, index=pd.Index([target], name="target_id")),
         parameters=tuple(values),
         transforms=dict(transforms),

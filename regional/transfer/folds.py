@@ -29,6 +29,7 @@ from __future__ import annotations
 import warnings
 from collections.abc import Collection, Sequence
 from dataclasses import dataclass
+from functools import partial
 
 import numpy as np
 import pandas as pd
@@ -39,7 +40,6 @@ from regional.transfer.base import Donation, forward, inverse
 from regional.transfer.blended import BlendedTransfer
 from regional.transfer.donors import (
     EARTH_RADIUS_KM,
-    _DonorTransfer,
     great_circle_km,
     inverse_distance_weights,
     lon_lat,
@@ -47,14 +47,15 @@ from regional.transfer.donors import (
 from regional.transfer.foldpool import (
     FoldPool,
     FoldSettings,
-    fold_moments,
-    never_constant,
+    Moments,
+    downdated,
+    fold_sizes,
     one_set_donation,
     target_values,
 )
 from regional.transfer.median import DONOR_LABEL as MEDIAN_LABEL
 from regional.transfer.median import MedianTransfer
-from regional.transfer.regression_folds import regression_folds
+from regional.transfer.regression_folds import RegressionFolds
 
 BLOCK_CELLS = 2_000_000
 """Target x pool distances held at once (16 MB of float64): the block of targets is cut so."""
@@ -117,34 +118,66 @@ def fold_donations(
         ...).donate(target_X.loc[[target]])`` to round-off (1e-12 relative in parameters,
         weights and distances; the same donors in the same order).
     """
-    targets = [str(t) for t in targets]
-    if len(drops) != len(targets):
-        raise ValueError("give one drop set per target")
-    folds = FoldPool.of(X, y, targets, drops)
-    fast: dict[str, Donation] = {}
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            warnings.simplefilter("error", InputWarning)  # the pool fit warns: refit them all
-            fast = _FAST[method](folds, target_X, settings) if method in _FAST else {}
-    except (InputError, InputWarning, ValueError, FloatingPointError):
-        fast = {}
-    donations, notes, refit = {}, {}, []
-    for t, target in enumerate(targets):
-        if target in fast:
-            donations[target], notes[target] = fast[target], ()
-            continue
-        donations[target], notes[target] = refit_donation(
-            method,
-            folds.X,
-            folds.y,
-            target,
-            folds.dropped(t),
-            target_X=target_X,
-            settings=settings,
-        )
-        refit.append(target)
-    return FoldDonations(donations=donations, warnings=notes, refit=tuple(refit))
+    prepared = PreparedPool(method, X, y, settings)
+    return prepared.donations(targets, drops, target_X=target_X)
+
+
+class PreparedPool:
+    """One method's pool prepared once (sorted, checked, its sums and fits made), for the
+    folds of any number of targets (:meth:`donations`); see :func:`fold_donations`.
+
+    Building it costs O(pool); each target then costs O(pool) flops in blocks, not a fit.
+    Callers that cut their targets into many small chunks keep one per pool and method.
+    """
+
+    def __init__(
+        self, method: str, X: pd.DataFrame, y: pd.DataFrame, settings: FoldSettings
+    ) -> None:
+        self.method, self.settings = method, settings
+        self.pool = FoldPool.of(X, y)
+        self.fast = None
+        if method not in _FAST:
+            return
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                warnings.simplefilter("error", InputWarning)  # the pool fit warns: refit all
+                self.fast = _FAST[method](self.pool, settings)
+        except (InputError, InputWarning, ValueError, FloatingPointError):
+            self.fast = None
+
+    def donations(
+        self, targets: Sequence[str], drops: Sequence[Collection[str]], *, target_X: pd.DataFrame
+    ) -> FoldDonations:
+        """Each target's donation from a fit on the pool minus its drop set."""
+        targets = [str(t) for t in targets]
+        if len(drops) != len(targets):
+            raise ValueError("give one drop set per target")
+        rows = self.pool.rows(drops)
+        fast: dict[str, Donation] = {}
+        if self.fast is not None and targets:
+            try:
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    fast = self.fast.donations(targets, rows, target_X)
+            except (InputError, ValueError, FloatingPointError):
+                fast = {}
+        donations, notes, refit = {}, {}, []
+        for target, drop in zip(targets, drops, strict=True):
+            if target in fast:
+                donations[target], notes[target] = fast[target], ()
+                continue
+            donations[target], notes[target] = refit_donation(
+                self.method,
+                self.pool.X,
+                self.pool.y,
+                target,
+                drop,
+                target_X=target_X,
+                settings=self.settings,
+            )
+            refit.append(target)
+        return FoldDonations(donations=donations, warnings=notes, refit=tuple(refit))
 
 
 def refit_donation(
@@ -161,7 +194,7 @@ def refit_donation(
 
     Returns the donation and the messages of the warnings raised (errors propagate).
     """
-    train = X.index[~X.index.isin(list(drop))]
+    train = X.index[~X.index.isin([str(b) for b in drop])]
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         estimator = _fit(method, X.loc[train], y.loc[train], settings)
@@ -213,95 +246,98 @@ def _k_nearest(distance: np.ndarray, k: int) -> np.ndarray:
 # Donor methods
 
 
-def _donor_folds(
-    folds: FoldPool, target_X: pd.DataFrame, settings: FoldSettings, method: str
-) -> dict[str, Donation]:
-    pool = _fit(method, folds.X, folds.y, settings)
-    geometry = _DonorGeometry.of(pool, folds, target_X)
-    parameters = pool.donor_parameters_.to_numpy(dtype=float)
-    out: dict[str, Donation] = {}
-    n_f = folds.n - folds.n_dropped()
-    for part in _blocks(len(folds.targets), folds.n):
-        ok = geometry.ok[part]
-        if not ok.any():
-            continue
-        index = np.arange(part.start, part.stop)[ok]
-        distance = geometry.distances(index)
-        rows = folds.rows[index]
-        flat = np.repeat(np.arange(len(index)), rows.shape[1])
-        keep = rows.ravel() >= 0
-        distance[flat[keep], rows.ravel()[keep]] = np.inf
-        ks = np.minimum(settings.n_donors, n_f[index])
-        order = _k_nearest(distance, int(ks.max()))
-        for k in np.unique(ks):
-            these = np.flatnonzero(ks == k)
-            chosen = order[these, :k]
-            near = np.take_along_axis(distance[these], chosen, axis=1)
-            weights = inverse_distance_weights(near, pool.power_)
-            for row, position in enumerate(these):
-                target = folds.targets[index[position]]
-                out[target] = _donor_donation(
-                    pool, target, chosen[row], near[row], weights[row], parameters
-                )
-    return out
+class _DonorFolds:
+    """Similarity, proximity or blended prepared on the pool: its fit on the whole pool (which
+    checks the pool and gives the attributes, power and layout) and the pool's sums."""
+
+    def __init__(self, pool: FoldPool, settings: FoldSettings, method: str) -> None:
+        self.pool, self.settings = pool, settings
+        self.fit = _fit(method, pool.X, pool.y, settings)
+        self.parameters = self.fit.donor_parameters_.to_numpy(dtype=float)
+        self.attributes = self.moments = self.points = self.units = None
+        if hasattr(self.fit, "attributes_"):
+            self.attributes = pool.X[list(self.fit.attributes_)].to_numpy(dtype=float)
+            self.moments = Moments.of(self.attributes)
+        if not hasattr(self.fit, "attributes_") or self._blended:
+            location = self.fit.location
+            self.points = lon_lat(pool.X, location, method=self.fit._method, role="the pool")
+        if self._blended:
+            self.units = _unit_vectors(self.points)
+            self.units_sum = self.units.sum(axis=0)
+
+    @property
+    def _blended(self) -> bool:
+        return isinstance(self.fit, BlendedTransfer)
+
+    def donations(self, targets: list[str], rows: np.ndarray, target_X: pd.DataFrame):
+        out: dict[str, Donation] = {}
+        n_f = fold_sizes(self.pool, rows)
+        for part in _blocks(len(targets), self.pool.n):
+            index = np.arange(part.start, part.stop)
+            distance, ok = self._distances(target_X.loc[targets[part]], rows[part])
+            if not ok.any():
+                continue
+            index, distance, block_rows = index[ok], distance[ok], rows[part][ok]
+            flat = np.repeat(np.arange(len(index)), block_rows.shape[1])
+            keep = block_rows.ravel() >= 0
+            distance[flat[keep], block_rows.ravel()[keep]] = np.inf
+            ks = np.minimum(self.settings.n_donors, n_f[index])
+            order = _k_nearest(distance, int(ks.max()))
+            for k in np.unique(ks):
+                these = np.flatnonzero(ks == k)
+                chosen = order[these, :k]
+                near = np.take_along_axis(distance[these], chosen, axis=1)
+                weights = inverse_distance_weights(near, self.fit.power_)
+                for row, position in enumerate(these):
+                    target = targets[index[position]]
+                    out[target] = _donor_donation(
+                        self.fit, target, chosen[row], near[row], weights[row], self.parameters
+                    )
+        return out
+
+    def _distances(self, targets: pd.DataFrame, rows: np.ndarray):
+        """(targets, pool) distances under each target's fold, and the folds the batched route
+        gives exactly (the others are refit)."""
+        ok = np.ones(len(targets), dtype=bool)
+        attribute = geographic = None
+        if self.attributes is not None:
+            values = target_values(targets, list(self.fit.attributes_))
+            mean, std, safe = self.moments.of_folds(rows)
+            ok &= safe & self.moments.never_constant(rows) & np.isfinite(values).all(axis=1)
+            attribute = _standardised_distance(values, self.attributes, mean, std)
+        if self.points is not None:
+            location = self.fit.location
+            points = target_values(targets, [f"{location}_lon", f"{location}_lat"])
+            ok &= _valid_points(points)
+            geographic = _geographic(points, self.points)
+        if attribute is None:
+            return geographic, ok
+        if not self._blended:
+            return attribute, ok
+        spread, fine = self._geographic_spreads(rows)
+        share = self.fit.attribute_share_
+        with np.errstate(divide="ignore", invalid="ignore"):
+            blended = (
+                share * attribute / self.fit.attribute_spread_
+                + (1.0 - share) * geographic / spread[:, None]
+            )
+        return blended, ok & fine
+
+    def _geographic_spreads(self, rows: np.ndarray):
+        """Each fold's RMS chord distance between donors, km
+        (:func:`regional.transfer.blended.geographic_spread_km`), from the pool's summed unit
+        vectors less the dropped ones; and the folds where it is positive with >= 2 donors."""
+        m = fold_sizes(self.pool, rows).astype(float)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            centre = downdated(self.units_sum, self.units, rows) / m[:, None]
+            mean_square = 2.0 * m / (m - 1.0) * np.maximum(1.0 - (centre**2).sum(axis=1), 0.0)
+            spread = EARTH_RADIUS_KM * np.sqrt(mean_square)
+        return spread, (m >= 2) & (spread > 0)
 
 
-@dataclass
-class _DonorGeometry:
-    """Distances of the folds' targets to the pool under each fold's fit (similarity,
-    proximity, blended), and which folds may skip the refit (``ok``)."""
-
-    pool: _DonorTransfer
-    attributes: np.ndarray | None  # pool's raw attributes, sorted (similarity, blended)
-    target_attributes: np.ndarray | None
-    points: np.ndarray | None  # pool lon/lat (proximity, blended)
-    target_points: np.ndarray | None
-    mean: np.ndarray | None
-    std: np.ndarray | None
-    geo_spread: np.ndarray | None
-    ok: np.ndarray
-
-    @classmethod
-    def of(cls, pool, folds: FoldPool, target_X: pd.DataFrame) -> _DonorGeometry:
-        targets = target_X.loc[folds.targets]
-        rows = folds.rows
-        ok = np.ones(len(folds.targets), dtype=bool)
-        attributes = target_attributes = points = target_points = None
-        mean = std = spread = None
-        if hasattr(pool, "attributes_"):
-            columns = list(pool.attributes_)
-            attributes = folds.X[columns].to_numpy(dtype=float)
-            target_attributes = target_values(targets, columns)
-            mean, std, safe = fold_moments(attributes, folds, rows)
-            ok &= safe & never_constant(attributes, folds, rows)
-            ok &= np.isfinite(target_attributes).all(axis=1)
-        if not hasattr(pool, "attributes_") or isinstance(pool, BlendedTransfer):
-            location = pool.location
-            points = lon_lat(folds.X, location, method=pool._method, role="the pool")
-            target_points = target_values(targets, [f"{location}_lon", f"{location}_lat"])
-            ok &= _valid_points(target_points)
-        if isinstance(pool, BlendedTransfer):
-            spread, fine = _geographic_spreads(points, folds, rows)
-            ok &= fine
-        return cls(
-            pool, attributes, target_attributes, points, target_points, mean, std, spread, ok
-        )
-
-    def distances(self, index: np.ndarray) -> np.ndarray:
-        """(len(index), pool) distances under each target's fold."""
-        if self.attributes is None:
-            return _geographic(self.target_points[index], self.points)
-        attribute = _standardised_distance(
-            self.target_attributes[index], self.attributes, self.mean[index], self.std[index]
-        )
-        if not isinstance(self.pool, BlendedTransfer):
-            return attribute
-        share = self.pool.attribute_share_
-        geographic = _geographic(self.target_points[index], self.points)
-        return (
-            share * attribute / self.pool.attribute_spread_
-            + (1.0 - share) * geographic / self.geo_spread[index][:, None]
-        )
+def _unit_vectors(points: np.ndarray) -> np.ndarray:
+    lon, lat = np.radians(points[:, 0]), np.radians(points[:, 1])
+    return np.column_stack([np.cos(lat) * np.cos(lon), np.cos(lat) * np.sin(lon), np.sin(lat)])
 
 
 def _valid_points(points: np.ndarray) -> np.ndarray:
@@ -334,45 +370,28 @@ def _standardised_distance(
     return np.sqrt(squares)
 
 
-def _geographic_spreads(points: np.ndarray, folds: FoldPool, rows: np.ndarray):
-    """Each fold's RMS chord distance between donors, km
-    (:func:`regional.transfer.blended.geographic_spread_km`), from the pool's summed unit
-    vectors less the dropped ones; and the folds where it is positive with >= 2 donors."""
-    lon, lat = np.radians(points[:, 0]), np.radians(points[:, 1])
-    unit = np.column_stack([np.cos(lat) * np.cos(lon), np.cos(lat) * np.sin(lon), np.sin(lat)])
-    m = (folds.n - (rows >= 0).sum(axis=1)).astype(float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        centre = folds.downdated(unit, rows) / m[:, None]
-        mean_square = 2.0 * m / (m - 1.0) * np.maximum(1.0 - (centre**2).sum(axis=1), 0.0)
-        spread = EARTH_RADIUS_KM * np.sqrt(mean_square)
-    return spread, (m >= 2) & (spread > 0)
-
-
 def _donor_donation(
     pool, target: str, chosen: np.ndarray, distance: np.ndarray, weights: np.ndarray, values
 ) -> Donation:
     """One target's donation, laid out as :meth:`_DonorTransfer.donate` lays it out."""
     k = len(chosen)
-    sets = pd.DataFrame(
-        {
-            "target_id": np.full(k, target, dtype=object),
-            "donor_id": pool.donor_ids_[chosen].astype(object),
-            "rank": np.arange(1, k + 1),
-            "distance": distance,
-            "weight": weights,
-        }
-    )
     params = values[chosen]
-    for j, name in enumerate(pool.parameters_):
-        sets[name] = params[:, j]
+    columns = {
+        "target_id": np.full(k, target, dtype=object),
+        "donor_id": pool.donor_ids_[chosen].astype(object),
+        "rank": np.arange(1, k + 1),
+        "distance": distance,
+        "weight": weights,
+    }
     used = params[weights > 0]
     ranges = {}
     for j, name in enumerate(pool.parameters_):
-        ranges[f"{name}_low"] = [used[:, j].min()]
-        ranges[f"{name}_high"] = [used[:, j].max()]
+        columns[name] = params[:, j]
+        ranges[f"{name}_low"] = used[:, j].min(keepdims=True)
+        ranges[f"{name}_high"] = used[:, j].max(keepdims=True)
     return Donation(
         method=pool._method,
-        sets=sets,
+        sets=pd.DataFrame(columns),
         intervals=pd.DataFrame(ranges, index=pd.Index([target], name="target_id")),
         parameters=pool.parameters_,
         transforms=dict(pool.transforms_),
@@ -386,45 +405,48 @@ def _donor_donation(
 # Median
 
 
-def _median_folds(
-    folds: FoldPool, target_X: pd.DataFrame, settings: FoldSettings
-) -> dict[str, Donation]:
-    pool = MedianTransfer(level=settings.level).fit(
-        folds.X, folds.y, transforms=settings.transforms
-    )
-    m = folds.n - folds.n_dropped()
-    ok = m >= 1
-    level = float(pool.level)
-    columns: dict[str, np.ndarray] = {}
-    for name in pool.parameters_:
-        values = folds.y[name].to_numpy(dtype=float)
-        order = np.argsort(values, kind="stable")
-        ranks = np.empty(folds.n, dtype=np.int64)
-        ranks[order] = np.arange(folds.n)
-        dropped = np.where(folds.rows >= 0, ranks[folds.rows], np.iinfo(np.int64).max)
-        dropped.sort(axis=1)
-        ordered = values[order]
-        transform = pool.transforms_[name]
-        columns[name] = _fold_median(ordered, dropped, m, transform)
-        low, high = (
-            inverse(_fold_quantile(forward(ordered, transform), dropped, m, q), transform)
-            for q in (0.5 - level / 2.0, 0.5 + level / 2.0)
+class _MedianFolds:
+    """The median prepared on the pool: its fit (checks, parameters, transforms) and each
+    parameter's sorted values with their ranks."""
+
+    def __init__(self, pool: FoldPool, settings: FoldSettings) -> None:
+        self.pool = pool
+        self.fit = MedianTransfer(level=settings.level).fit(
+            pool.X, pool.y, transforms=settings.transforms
         )
-        columns[f"{name}_low"], columns[f"{name}_high"] = low, high
-    return {
-        folds.targets[t]: one_set_donation(
-            "median",
-            MEDIAN_LABEL,
-            folds.targets[t],
-            {
-                name: (columns[name][t], columns[f"{name}_low"][t], columns[f"{name}_high"][t])
-                for name in pool.parameters_
-            },
-            transforms=pool.transforms_,
-            level=level,
-        )
-        for t in np.flatnonzero(ok)
-    }
+        self.sorted, self.ranks = {}, {}
+        for name in self.fit.parameters_:
+            values = pool.y[name].to_numpy(dtype=float)
+            order = np.argsort(values, kind="stable")
+            ranks = np.empty(pool.n, dtype=np.int64)
+            ranks[order] = np.arange(pool.n)
+            self.sorted[name], self.ranks[name] = values[order], ranks
+
+    def donations(self, targets: list[str], rows: np.ndarray, target_X: pd.DataFrame):
+        m = fold_sizes(self.pool, rows)
+        level = float(self.fit.level)
+        columns: dict[str, tuple[np.ndarray, ...]] = {}
+        for name in self.fit.parameters_:
+            ranks = self.ranks[name]
+            dropped = np.where(rows >= 0, ranks[rows], np.iinfo(np.int64).max)
+            dropped.sort(axis=1)
+            ordered, transform = self.sorted[name], self.fit.transforms_[name]
+            low, high = (
+                inverse(_fold_quantile(forward(ordered, transform), dropped, m, q), transform)
+                for q in (0.5 - level / 2.0, 0.5 + level / 2.0)
+            )
+            columns[name] = (_fold_median(ordered, dropped, m, transform), low, high)
+        return {
+            targets[t]: one_set_donation(
+                "median",
+                MEDIAN_LABEL,
+                targets[t],
+                {name: tuple(v[t] for v in values) for name, values in columns.items()},
+                transforms=self.fit.transforms_,
+                level=level,
+            )
+            for t in np.flatnonzero(m >= 1)
+        }
 
 
 def _kept(dropped: np.ndarray, position: np.ndarray) -> np.ndarray:
@@ -462,27 +484,11 @@ def _fold_quantile(ordered: np.ndarray, dropped: np.ndarray, m: np.ndarray, q: f
     return np.where(gamma >= 0.5, b - diff * (1 - gamma), lerp)
 
 
-def _similarity(folds, target_X, settings):
-    return _donor_folds(folds, target_X, settings, "similarity")
-
-
-def _proximity(folds, target_X, settings):
-    return _donor_folds(folds, target_X, settings, "proximity")
-
-
-def _blended(folds, target_X, settings):
-    return _donor_folds(folds, target_X, settings, "blended")
-
-
-def _regression(folds, target_X, settings):
-    return regression_folds(folds, target_X, settings)
-
-
 _FAST = {
-    "regression": _regression,
-    "similarity": _similarity,
-    "proximity": _proximity,
-    "blended": _blended,
-    "median": _median_folds,
+    "regression": RegressionFolds,
+    "similarity": partial(_DonorFolds, method="similarity"),
+    "proximity": partial(_DonorFolds, method="proximity"),
+    "blended": partial(_DonorFolds, method="blended"),
+    "median": _MedianFolds,
 }
 """Methods with a batched route; any other method is refit fold by fold."""

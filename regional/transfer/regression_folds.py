@@ -31,15 +31,12 @@ for the plain refit (:func:`regional.transfer.folds.fold_donations` does it).
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-
 import numba
 import numpy as np
 import pandas as pd
 from scipy import stats
 
 from regional.transfer.base import (
-    Donation,
     check_complete,
     check_parameters,
     check_table,
@@ -50,9 +47,10 @@ from regional.transfer.base import (
 from regional.transfer.foldpool import (
     FoldPool,
     FoldSettings,
-    fold_moments,
-    never_constant,
+    Moments,
+    fold_sizes,
     one_set_donation,
+    target_values,
 )
 from regional.transfer.regression import (
     DONOR_LABEL,
@@ -69,87 +67,105 @@ INFINITE = 0.5e-10
 between the two the fold is refit)."""
 
 
-def regression_folds(
-    folds: FoldPool, target_X: pd.DataFrame, settings: FoldSettings
-) -> dict[str, Donation]:
-    """Every fold's regression donation that the fast route gives exactly (the others are left
-    out of the result, to be refit)."""
-    X = check_table(folds.X, method="regression", role="the training attributes X")
-    candidates = select_attributes(
-        X,
-        list(settings.attributes) if settings.attributes else None,
-        method="regression",
-        role="the training attributes X",
-    )
-    y, transforms = check_parameters(folds.y, X.index, settings.transforms, method="regression")
-    check_complete(X, candidates, method="regression", role="the training attributes X")
-    raw = X[candidates].to_numpy(dtype=float)
-    if not (np.ptp(raw, axis=0) > 0).all():
-        return {}  # a constant attribute: every fold warns, every fold is refit
-    rows = folds.rows
-    m = folds.n - folds.n_dropped()
-    centre, scale = raw.mean(axis=0), raw.std(axis=0, ddof=1)
-    W = (raw - centre) / scale
-    _, fold_std, safe = fold_moments(W, folds, rows)
-    tss = (m[:, None] - 1.0) * fold_std**2
-    ok = safe & never_constant(raw, folds, rows) & (m >= MIN_RESIDUAL_DOF + 1)
-    targets = target_X.loc[folds.targets]
-    target_values = targets.reindex(columns=candidates).apply(pd.to_numeric, errors="coerce")
-    target_W = (target_values.to_numpy(dtype=float) - centre) / scale
-    ok &= np.isfinite(target_W).all(axis=1)
-    limit = m - MIN_RESIDUAL_DOF - 1
-    level = float(settings.level)
-    results = {}
-    for name in y.columns:
-        t = forward(y[name].to_numpy(dtype=float), transforms[name])
-        chosen, fine = _select(W, t, rows, limit, ok)
-        ok &= fine
-        mean, std, dof, vif_ok = _predict(W, t, rows, chosen, target_W, tss, ok)
-        ok &= vif_ok
-        quantile = stats.t.ppf(0.5 + level / 2.0, dof)
-        half = quantile * std
-        results[name] = (
-            inverse(mean, transforms[name]),
-            inverse(mean - half, transforms[name]),
-            inverse(mean + half, transforms[name]),
+class RegressionFolds:
+    """Regression prepared on the pool (checked attributes and parameters, the pool's
+    standardisation and sums, each candidate model's QR fit made once, :class:`ModelFits`)."""
+
+    def __init__(self, pool: FoldPool, settings: FoldSettings) -> None:
+        X = check_table(pool.X, method="regression", role="the training attributes X")
+        attributes = list(settings.attributes) if settings.attributes else None
+        role = "the training attributes X"
+        self.candidates = select_attributes(X, attributes, method="regression", role=role)
+        y, self.transforms = check_parameters(
+            pool.y, X.index, settings.transforms, method="regression"
         )
-    return {
-        folds.targets[f]: one_set_donation(
-            "regression",
-            DONOR_LABEL,
-            folds.targets[f],
-            {str(name): tuple(v[f] for v in results[name]) for name in y.columns},
-            transforms=transforms,
-            level=level,
-        )
-        for f in np.flatnonzero(ok)
-    }
+        check_complete(X, self.candidates, method="regression", role=role)
+        raw = X[self.candidates].to_numpy(dtype=float)
+        if not (np.ptp(raw, axis=0) > 0).all():
+            raise ValueError("a constant attribute: every fold warns and is refit")
+        self.pool, self.level = pool, float(settings.level)
+        self.centre, self.scale = raw.mean(axis=0), raw.std(axis=0, ddof=1)
+        W = (raw - self.centre) / self.scale
+        self.raw_moments, self.moments = Moments.of(raw), Moments.of(W)
+        self.fits = {
+            str(name): ModelFits(W, forward(y[name].to_numpy(dtype=float), self.transforms[name]))
+            for name in y.columns
+        }
+
+    def donations(self, targets: list[str], rows: np.ndarray, target_X: pd.DataFrame):
+        """Every fold's donation that the fast route gives exactly (the others are left out,
+        to be refit)."""
+        m = fold_sizes(self.pool, rows)
+        _, fold_std, safe = self.moments.of_folds(rows)
+        tss = (m[:, None] - 1.0) * fold_std**2
+        ok = safe & self.raw_moments.never_constant(rows) & (m >= MIN_RESIDUAL_DOF + 1)
+        values = target_values(target_X.loc[targets], self.candidates)
+        target_W = (values - self.centre) / self.scale
+        ok &= np.isfinite(target_W).all(axis=1)
+        limit = m - MIN_RESIDUAL_DOF - 1
+        results = {}
+        for name, fits in self.fits.items():
+            chosen, fine = _select(fits, rows, limit, ok)
+            ok &= fine
+            mean, std, dof, vif_ok = _predict(fits, rows, chosen, target_W, tss, ok)
+            ok &= vif_ok
+            half = stats.t.ppf(0.5 + self.level / 2.0, dof) * std
+            transform = self.transforms[name]
+            results[name] = tuple(inverse(v, transform) for v in (mean, mean - half, mean + half))
+        return {
+            targets[f]: one_set_donation(
+                "regression",
+                DONOR_LABEL,
+                targets[f],
+                {name: tuple(v[f] for v in values) for name, values in results.items()},
+                transforms=self.transforms,
+                level=self.level,
+            )
+            for f in np.flatnonzero(ok)
+        }
+
+
+class ModelFits:
+    """The pool's OLS fits of one transformed parameter ``t`` on [1, W[:, subset]], each
+    candidate subset fit once (QR) and kept: (design, Q, R, coefficients, residuals,
+    leverages), or None when the pool design is near singular."""
+
+    def __init__(self, W: np.ndarray, t: np.ndarray) -> None:
+        self.W, self.t = W, t
+        self._fits: dict[tuple[int, ...], tuple | None] = {}
+
+    @property
+    def n_candidates(self) -> int:
+        return self.W.shape[1]
+
+    def __call__(self, subset: tuple[int, ...]):
+        if subset not in self._fits:
+            self._fits[subset] = self._fit(subset)
+        return self._fits[subset]
+
+    def _fit(self, subset: tuple[int, ...]):
+        design = np.column_stack([np.ones(len(self.W)), self.W[:, list(subset)]])
+        q, r = np.linalg.qr(design)
+        diagonal = np.abs(np.diag(r))
+        if diagonal.min() <= 1e-8 * max(diagonal.max(), 1.0):
+            return None
+        beta = np.linalg.solve(r, q.T @ self.t)
+        residuals = self.t - design @ beta
+        return design, np.ascontiguousarray(q), r, beta, residuals, np.sum(q * q, axis=1)
 
 
 # --------------------------------------------------------------------------------------------
 # Forward selection per fold
 
 
-def _pool_fit(W: np.ndarray, subset: Sequence[int], t: np.ndarray):
-    """QR fit of [1, W[:, subset]] on the pool: (design, Q, R, residuals, leverages), or None
-    when the pool design is near singular."""
-    design = np.column_stack([np.ones(len(W)), W[:, list(subset)]])
-    q, r = np.linalg.qr(design)
-    diagonal = np.abs(np.diag(r))
-    if diagonal.min() <= 1e-8 * max(diagonal.max(), 1.0):
-        return None
-    beta = np.linalg.solve(r, q.T @ t)
-    return design, q, r, beta, t - design @ beta, np.sum(q * q, axis=1)
-
-
-def _select(W, t, rows, limit, ok):
+def _select(fits: ModelFits, rows, limit, ok):
     """Forward selection of every fold: (chosen subsets, folds decided clearly)."""
     n_folds = len(rows)
     fine = ok.copy()
     chosen: list[tuple[int, ...]] = [()] * n_folds
     best = np.full(n_folds, np.inf)
     everyone = np.flatnonzero(fine)
-    best[everyone], fine[everyone] = _press(W, (), t, rows[everyone], fine[everyone])
+    best[everyone], fine[everyone] = _press(fits, (), rows[everyone], fine[everyone])
     active = fine & (limit > 0)
     while active.any():
         groups: dict[tuple[int, ...], list[int]] = {}
@@ -157,14 +173,14 @@ def _select(W, t, rows, limit, ok):
             groups.setdefault(chosen[f], []).append(f)
         for subset, members in groups.items():
             members = np.asarray(members)
-            remaining = [a for a in range(W.shape[1]) if a not in subset]
+            remaining = [a for a in range(fits.n_candidates) if a not in subset]
             if not remaining:
                 active[members] = False
                 continue
             scores = np.empty((len(members), len(remaining)))
             clear = np.ones(len(members), dtype=bool)
             for c, a in enumerate(remaining):
-                scores[:, c], good = _press(W, (*subset, a), t, rows[members], clear)
+                scores[:, c], good = _press(fits, (*subset, a), rows[members], clear)
                 clear &= good
             pick = np.argmin(scores, axis=1)
             top = scores[np.arange(len(members)), pick]
@@ -182,18 +198,16 @@ def _select(W, t, rows, limit, ok):
     return chosen, fine
 
 
-def _press(W, subset, t, rows, wanted):
+def _press(fits: ModelFits, subset, rows, wanted):
     """Each fold's PRESS of the model [1, W[:, subset]] and whether it is decided clearly
     (:func:`regional.transfer.regression.press` gives inf where a leverage reaches
     1 - 1e-10; a fold whose leverage lies near that limit is not decided here)."""
     n_folds = len(rows)
-    fit = _pool_fit(W, subset, t)
+    fit = fits(subset)
     if fit is None or not wanted.any():
         return np.full(n_folds, np.inf), np.zeros(n_folds, dtype=bool)
     _, q, _, _, residuals, leverage = fit
-    press, clear = _fold_press(
-        np.ascontiguousarray(q), residuals, leverage, np.ascontiguousarray(rows)
-    )
+    press, clear = _fold_press(q, residuals, leverage, np.ascontiguousarray(rows))
     return press, wanted & clear
 
 
@@ -267,7 +281,7 @@ def _fold_press(q, e, h, rows):  # pragma: no cover - compiled
 # The fold's fit and its prediction at the target
 
 
-def _predict(W, t, rows, chosen, target_W, tss, ok):
+def _predict(fits: ModelFits, rows, chosen, target_W, tss, ok):
     """Per fold: predicted transformed parameter at its target, its prediction standard
     error, residual degrees of freedom, and whether the fit is safe with every VIF clear of
     the warning limit."""
@@ -280,7 +294,7 @@ def _predict(W, t, rows, chosen, target_W, tss, ok):
         groups.setdefault(chosen[f], []).append(f)
     for subset, members in groups.items():
         members = np.asarray(members)
-        fit = _pool_fit(W, subset, t)
+        fit = fits(subset)
         if fit is None:
             fine[members] = False
             continue
@@ -297,7 +311,7 @@ def _predict(W, t, rows, chosen, target_W, tss, ok):
             np.ascontiguousarray(at),
         )
         centre, leverage, rss, diagonal, margin = out
-        n_kept = len(W) - (rows[members] >= 0).sum(axis=1)
+        n_kept = len(fits.W) - (rows[members] >= 0).sum(axis=1)
         resid_dof = n_kept - design.shape[1]
         total_rss = float(residuals @ residuals)
         sigma2 = rss / resid_dof

@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 from refit_route import refit_every_fold
 
-from regional.transfer.foldpool import FoldPool, FoldSettings, fold_moments
+from regional.transfer.foldpool import FoldPool, FoldSettings, Moments
 from regional.transfer.folds import _k_nearest, fold_donations
 
 METHODS = ("regression", "similarity", "proximity", "blended", "median")
@@ -104,17 +104,17 @@ def test_regression_folds_with_collinear_attributes_warn_as_the_refit(make_regio
         assert got.warnings[target] == expected.warnings[target]
 
 
-def testfold_moments_from_downdated_sums_match_numpy(make_region):
+def test_fold_moments_from_downdated_sums_match_numpy(make_region):
     X, y, _ = _pool(make_region, n=40)
     X["area_km2"] += 1e6  # far from zero: the shifted sums keep their digits
-    values = X[["aridity", "area_km2", "slope_pct"]].to_numpy(dtype=float)
+    pool = FoldPool.of(X, y)
+    values = pool.X[["aridity", "area_km2", "slope_pct"]].to_numpy(dtype=float)
     ids = list(X.index)
-    targets = ids[:15]
-    folds = FoldPool.of(X, y, targets, _drops(ids, targets))
-    mean, std, safe = fold_moments(values, folds, folds.rows)
+    drops = _drops(ids, ids[:15])
+    mean, std, safe = Moments.of(values).of_folds(pool.rows(drops))
     assert safe.all()
-    for t, drop in enumerate(folds.drops):
-        kept = values[[b not in drop for b in folds.ids]]
+    for t, drop in enumerate(drops):
+        kept = values[[b not in drop for b in pool.ids]]
         np.testing.assert_allclose(mean[t], kept.mean(axis=0), rtol=1e-12)  # numpy: reference
         np.testing.assert_allclose(std[t], np.std(kept, axis=0, ddof=1), rtol=1e-12)
 
