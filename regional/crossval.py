@@ -20,6 +20,7 @@ Hydrol. Earth Syst. Sci. 17, 1783-1795.
 
 from __future__ import annotations
 
+import threading
 import warnings
 import weakref
 from collections import Counter, OrderedDict
@@ -251,6 +252,7 @@ def fold_donations_of(
 PREPARED_KEPT = 6
 """Prepared pools kept per process (:func:`prepared_pool`): a stage's methods and pools."""
 _PREPARED: OrderedDict = OrderedDict()
+_PREPARED_LOCK = threading.Lock()  # tasks of a multi-threaded worker share the kept pools
 
 
 def prepared_pool(
@@ -273,19 +275,33 @@ def prepared_pool(
     settings = fold_settings(context, method, n_donors=n_donors, level=level)
     members = None if pool is None else tuple(str(b) for b in pool)
     key = (id(context.attributes), id(context.calibrated), method, repr(settings), members)
-    entry = _PREPARED.get(key)
-    if entry is not None and entry[0]() is context.attributes and entry[1]() is context.calibrated:
-        _PREPARED.move_to_end(key)
-        return entry[2]
+    tables = (context.attributes, context.calibrated)
+    with _PREPARED_LOCK:
+        entry = _PREPARED.get(key)
+        if entry is not None and (entry[0](), entry[1]()) == (id(tables[0]), id(tables[1])):
+            _PREPARED.move_to_end(key)
+            return entry[2]
     names = list(context.transforms)
     X, y = context.attributes, context.calibrated[names]
     if members is not None:
         X, y = X.loc[list(members)], y.loc[list(members)]
     prepared = PreparedPool(method, X, y, settings)
-    _PREPARED[key] = (weakref.ref(context.attributes), weakref.ref(context.calibrated), prepared)
-    while len(_PREPARED) > PREPARED_KEPT:
-        _PREPARED.popitem(last=False)
+    with _PREPARED_LOCK:
+        _PREPARED[key] = (*(_alive_id(table) for table in tables), prepared)
+        while len(_PREPARED) > PREPARED_KEPT:
+            _PREPARED.popitem(last=False)
     return prepared
+
+
+def _alive_id(table: pd.DataFrame) -> Callable[[], int | None]:
+    """The id of ``table`` while it lives, None once it is gone (a new table may reuse an id)."""
+    ref = weakref.ref(table)
+
+    def alive() -> int | None:
+        obj = ref()
+        return None if obj is None else id(obj)
+
+    return alive
 
 
 def fold_settings(

@@ -244,3 +244,26 @@ def test_batched_folds_equal_a_refit_with_snow_parameters_and_donor_only_basins(
     batched, refit = _loo_both_routes(context, monkeypatch, chunk_basins=3)
     assert donor_only.isdisjoint(batched.scores["basin_id"])
     _assert_same_loo(batched, refit)
+
+
+def test_each_method_is_prepared_once_for_all_chunks(monkeypatch):
+    # Chunks of 3 targets share one prepared pool per method (not one per chunk), and a new
+    # table (another context) gets its own.
+    from regional import crossval
+    from regional.transfer.folds import PreparedPool
+
+    made = []
+
+    class Counted(PreparedPool):
+        def __init__(self, method, *args):
+            made.append(method)
+            super().__init__(method, *args)
+
+    monkeypatch.setattr(crossval, "PreparedPool", Counted)
+    monkeypatch.setattr(crossval, "_PREPARED", type(crossval._PREPARED)())
+    context = _context(methods=("regression", "similarity", "proximity"))
+    leave_one_out(context, chunk_basins=3)
+    assert sorted(made) == ["median", "proximity", "regression", "similarity"]
+    changed = FoldContext(**{**context.__dict__, "calibrated": context.calibrated.copy()})
+    leave_one_out(changed, chunk_basins=3)
+    assert len(made) == 8

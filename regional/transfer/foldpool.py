@@ -43,7 +43,8 @@ class FoldPool:
         y.index = y.index.map(str)
         order = np.argsort(X.index.to_numpy(dtype=str), kind="stable")
         X = X.iloc[order]
-        y = y.reindex(X.index)
+        if set(y.index) == set(X.index) and y.index.is_unique:
+            y = y.loc[X.index]  # else left as given: every fit then raises the refit's error
         ids = X.index.to_numpy(dtype=str)
         return cls(X, y, ids, {b: i for i, b in enumerate(ids)})
 

@@ -127,8 +127,8 @@ class RegressionFolds:
 
 class ModelFits:
     """The pool's OLS fits of one transformed parameter ``t`` on [1, W[:, subset]], each
-    candidate subset fit once (QR) and kept: (design, Q, R, coefficients, residuals,
-    leverages), or None when the pool design is near singular."""
+    candidate subset fit once (QR) and kept: (Q, R, coefficients, residuals, leverages), or
+    None when the pool design is near singular."""
 
     def __init__(self, W: np.ndarray, t: np.ndarray) -> None:
         self.W, self.t = W, t
@@ -151,7 +151,7 @@ class ModelFits:
             return None
         beta = np.linalg.solve(r, q.T @ self.t)
         residuals = self.t - design @ beta
-        return design, np.ascontiguousarray(q), r, beta, residuals, np.sum(q * q, axis=1)
+        return np.ascontiguousarray(q), r, beta, residuals, np.sum(q * q, axis=1)
 
 
 # --------------------------------------------------------------------------------------------
@@ -206,7 +206,7 @@ def _press(fits: ModelFits, subset, rows, wanted):
     fit = fits(subset)
     if fit is None or not wanted.any():
         return np.full(n_folds, np.inf), np.zeros(n_folds, dtype=bool)
-    _, q, _, _, residuals, leverage = fit
+    q, _, _, residuals, leverage = fit
     press, clear = _fold_press(q, residuals, leverage, np.ascontiguousarray(rows))
     return press, wanted & clear
 
@@ -298,12 +298,13 @@ def _predict(fits: ModelFits, rows, chosen, target_W, tss, ok):
         if fit is None:
             fine[members] = False
             continue
-        design, _, r, beta, residuals, _ = fit
+        q, r, beta, residuals, _ = fit
         r_inv = np.linalg.solve(r, np.eye(r.shape[0]))
         ginv = r_inv @ r_inv.T
         at = np.column_stack([np.ones(len(members)), target_W[members][:, list(subset)]])
         out = _fold_fit(
-            np.ascontiguousarray(design),
+            q,
+            np.ascontiguousarray(r),
             ginv,
             beta,
             residuals,
@@ -312,7 +313,7 @@ def _predict(fits: ModelFits, rows, chosen, target_W, tss, ok):
         )
         centre, leverage, rss, diagonal, margin = out
         n_kept = len(fits.W) - (rows[members] >= 0).sum(axis=1)
-        resid_dof = n_kept - design.shape[1]
+        resid_dof = n_kept - r.shape[0]
         total_rss = float(residuals @ residuals)
         sigma2 = rss / resid_dof
         vif = tss[members][:, list(subset)] * diagonal[:, 1:]
@@ -327,11 +328,11 @@ def _predict(fits: ModelFits, rows, chosen, target_W, tss, ok):
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _fold_fit(design, ginv, beta, e, rows, at):  # pragma: no cover - compiled
+def _fold_fit(q, r, ginv, beta, e, rows, at):  # pragma: no cover - compiled
     """Per fold (pool rows ``rows[f]`` left out): x_t' b^(D), x_t' (A'A)^-1(D) x_t, RSS^(D),
     the diagonal of (A'A)^-1(D), and the smallest eigenvalue of I - H_DD."""
     n_folds = rows.shape[0]
-    p = design.shape[1]
+    p = r.shape[0]
     centre = np.zeros(n_folds)
     leverage = np.zeros(n_folds)
     rss = np.full(n_folds, e @ e)
@@ -343,7 +344,7 @@ def _fold_fit(design, ginv, beta, e, rows, at):  # pragma: no cover - compiled
         b = beta.copy()
         g = ginv.copy()
         if d > 0:
-            ad = design[drop]  # (d, p)
+            ad = q[drop] @ r  # the dropped rows of the design, (d, p)
             bd = ad @ ginv  # (d, p)
             hdd = np.eye(d) - bd @ np.ascontiguousarray(ad.T)
             margin[f] = np.linalg.eigvalsh(hdd).min()
