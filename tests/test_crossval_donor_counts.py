@@ -136,3 +136,20 @@ def test_counts_above_the_training_basins_are_capped():
     context = _with_choices(_context(methods=("proximity",)), counts=(2, 50))
     choice = choose_donor_counts(context)
     assert set(choice.scores["n_donors"]) == {2, N_BASINS - 1}
+
+
+def test_count_folds_equal_a_refit_per_fold(context, monkeypatch):
+    # The donor-count folds take the batched donations (the largest count, nested basins
+    # left out); a refit per fold gives the same scores.
+    from refit_route import refit_pool
+
+    from regional import crossval
+
+    ids = list(context.calibrated.index)
+    nested = replace(context, excluded={ids[0]: frozenset(ids[1:3]), ids[4]: frozenset({ids[5]})})
+    batched = choose_donor_counts(nested, chunk_basins=3)
+    with monkeypatch.context() as patch:
+        patch.setattr(crossval, "prepared_pool", refit_pool)
+        refit = choose_donor_counts(nested, chunk_basins=3)
+    assert batched.chosen == refit.chosen
+    pd.testing.assert_frame_equal(batched.scores, refit.scores, check_exact=False, rtol=1e-10)
