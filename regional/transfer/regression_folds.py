@@ -246,7 +246,13 @@ def _fold_press(q, e, h, rows):  # pragma: no cover - compiled
                 clear[f] = False
                 continue
             m_inv = np.linalg.inv(hdd)
-        u = m_inv @ e[drop] if d > 0 else np.zeros(0)
+        u = np.zeros(d)
+        for a in range(d):
+            for b in range(d):
+                u[a] += m_inv[a, b] * e[drop[b]]
+        if d == 1:  # one dropped row: the scalar identities, the common case
+            press[f], clear[f] = _one_row_press(q, e, h, drop[0], u[0], m_inv[0, 0])
+            continue
         hjd = np.zeros(d)
         total = 0.0
         for j in range(n):
@@ -275,6 +281,28 @@ def _fold_press(q, e, h, rows):  # pragma: no cover - compiled
             total += (num / den) ** 2
         press[f] = total
     return press, clear
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _one_row_press(q, e, h, i, u, c):  # pragma: no cover - compiled
+    """PRESS of the fold without pool row i (c = 1 / (1 - h_ii), u = c e_i) and whether it is
+    clear of the leverage limit."""
+    n, p = q.shape
+    total = 0.0
+    clear = True
+    for j in range(n):
+        if j == i:
+            continue
+        s = 0.0
+        for k in range(p):
+            s += q[j, k] * q[i, k]
+        den = 1.0 - h[j] - s * s * c
+        if den <= INFINITE:
+            total = np.inf
+        elif den <= SINGULAR:
+            clear = False
+        total += ((e[j] + s * u) / den) ** 2
+    return total, clear
 
 
 # --------------------------------------------------------------------------------------------
