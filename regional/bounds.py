@@ -205,7 +205,7 @@ def _class_levels(class_levels, level: float, n_classes: int) -> np.ndarray:
 def basin_offsets(simulated: np.ndarray, *, fraction: float = OFFSET_FRACTION) -> np.ndarray:
     """Log offset c per basin (column), mm/day: ``fraction`` x mean simulated flow, floored."""
     return np.maximum(
-        fraction * np.mean(np.asarray(simulated, dtype=float), axis=0), MIN_OFFSET_MM
+        fraction * np.mean(np.asarray(simulated), axis=0, dtype=float), MIN_OFFSET_MM
     )
 
 
@@ -224,12 +224,13 @@ def aligned(observed: pd.DataFrame, simulated: pd.DataFrame) -> tuple[np.ndarray
             f"observed {observed.shape} and simulated {simulated.shape} flows must share days "
             "and basins"
         )
-    return _floats(observed), simulated.to_numpy(dtype=float)
+    return _floats(observed), _floats(simulated)
 
 
 def _floats(frame: pd.DataFrame) -> np.ndarray:
     """The values of a frame as floats, float32 kept as they are (not copied): every use
-    widens each value to float64 exactly where it meets a float64."""
+    widens each value to float64 exactly where it meets a float64, a block of basins at a
+    time."""
     values = frame.to_numpy()
     return values if values.dtype in (np.float32, np.float64) else values.astype(float)
 
