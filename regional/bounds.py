@@ -205,7 +205,7 @@ def _class_levels(class_levels, level: float, n_classes: int) -> np.ndarray:
 def basin_offsets(simulated: np.ndarray, *, fraction: float = OFFSET_FRACTION) -> np.ndarray:
     """Log offset c per basin (column), mm/day: ``fraction`` x mean simulated flow, floored."""
     return np.maximum(
-        fraction * np.mean(np.asarray(simulated, dtype=float), axis=0), MIN_OFFSET_MM
+        fraction * np.mean(np.asarray(simulated), axis=0, dtype=float), MIN_OFFSET_MM
     )
 
 
@@ -224,7 +224,15 @@ def aligned(observed: pd.DataFrame, simulated: pd.DataFrame) -> tuple[np.ndarray
             f"observed {observed.shape} and simulated {simulated.shape} flows must share days "
             "and basins"
         )
-    return observed.to_numpy(dtype=float), simulated.to_numpy(dtype=float)
+    return _floats(observed), _floats(simulated)
+
+
+def _floats(frame: pd.DataFrame) -> np.ndarray:
+    """The values of a frame as floats, float32 kept as they are (not copied): every use
+    widens each value to float64 exactly where it meets a float64, a block of basins at a
+    time."""
+    values = frame.to_numpy()
+    return values if values.dtype in (np.float32, np.float64) else values.astype(float)
 
 
 def default_n_classes(obs: np.ndarray) -> int:
@@ -253,27 +261,34 @@ def pooled_residuals(
     """:func:`log_residuals` of the whole grid with its flow classes, ``block`` basins at a time.
 
     Classes and offsets are within-basin, so each block's residuals are those of the whole
-    grid; they are put back in day-then-basin order (the order of the whole grid), so that
-    every later sort and sum is the same. Only the pooled residuals are held for the region,
-    not the grid-sized ranks, classes and temporaries.
+    grid; they are placed straight into day-then-basin order (the order of the whole grid), so
+    that every later sort and sum is the same. Only the pooled residuals are held for the
+    region (8 bytes each, with their basin as int32 and class as int8), not the grid-sized
+    ranks, classes and temporaries.
     """
     n_columns = obs.shape[1]
     offsets = basin_offsets(sim, fraction=fraction)  # on the whole grid: the same sums
-    parts = []
-    for start in range(0, n_columns, block):
-        part = slice(start, min(start + block, n_columns))
+    blocks = [slice(a, min(a + block, n_columns)) for a in range(0, n_columns, block)]
+    # observed days per (day, block): where each block's residuals of a day go in the whole
+    # grid's day-then-basin order
+    per_day = np.zeros((obs.shape[0], len(blocks)), dtype=np.int64)
+    for b, part in enumerate(blocks):
+        per_day[:, b] = np.isfinite(obs[:, part]).sum(axis=1)
+    first = (np.cumsum(per_day.ravel()) - per_day.ravel()).reshape(per_day.shape)
+    total = int(per_day.sum())
+    residual = np.empty(total)
+    basin = np.empty(total, dtype=np.int32 if n_columns < 2**31 else np.int64)
+    cls = np.empty(total, dtype=np.int8 if n_classes < 128 else np.int64)
+    for b, part in enumerate(blocks):
         classes = flow_classes(sim[:, part], n_classes)
-        residual, basin, cls = log_residuals(
+        values, columns, klass = log_residuals(
             obs[:, part], sim[:, part], classes, fraction, offsets=offsets[part]
         )
         day = np.nonzero(np.isfinite(obs[:, part]))[0]
-        parts.append((residual, basin + start, cls, day))
-    if not parts:
-        empty = np.empty(0)
-        return empty, empty.astype(int), empty.astype(int)
-    residual, basin, cls, day = (np.concatenate(p) for p in zip(*parts, strict=True))
-    order = np.argsort(day * n_columns + basin, kind="stable")
-    return residual[order], basin[order], cls[order]
+        day_start = np.cumsum(per_day[:, b]) - per_day[:, b]  # within the block, day by day
+        position = first[day, b] + (np.arange(len(day)) - day_start[day])
+        residual[position], basin[position], cls[position] = values, columns + part.start, klass
+    return residual, basin, cls
 
 
 def log_residuals(obs, sim, classes, fraction, *, offsets=None):
@@ -299,8 +314,9 @@ class SortedResiduals:
         values, basins = [], []
         for k in range(n_classes):
             inside = klass == k
-            order = np.argsort(residual[inside], kind="stable")
-            values.append(residual[inside][order])
+            kept = residual[inside]
+            order = np.argsort(kept, kind="stable")
+            values.append(kept[order])
             basins.append(basin[inside][order])
         return cls(tuple(values), tuple(basins))
 

@@ -48,6 +48,11 @@ from regional.transfer.folds import FoldDonations, FoldSettings, PreparedPool
 CALIBRATED = "calibrated"
 MEDIAN = "median"
 SCORE_COLUMNS = ("nse", "kge", "kge_r", "kge_alpha", "kge_beta", "log_nse", "pbias", "n_days")
+LOO_FLOW_DTYPE = np.float32
+"""Storage type of :attr:`LeaveOneOut.simulated`: each method's flow of each gauged basin over
+the evaluation period is held for the run (error model, coverage, statistics, figures), 4 bytes
+per day instead of 8. The scores are computed from the float64 flow before it is stored; what
+the stored flows feed changes in about the seventh digit (docs/scale.md, tested)."""
 CHUNK_BASINS = 8
 """Target basins per task handed to the executor."""
 
@@ -142,7 +147,8 @@ class LeaveOneOut:
     observed : DataFrame
         Evaluation days x basin_id, observed flow, mm/day (NaN = missing).
     simulated : dict
-        Method -> DataFrame (evaluation days x basin_id) of the flow each method gave, mm/day.
+        Method -> DataFrame (evaluation days x basin_id) of the flow each method gave, mm/day,
+        held as :data:`LOO_FLOW_DTYPE` (float32; the scores come from the float64 flow).
     excluded : dict
         Target -> donors left out of its folds for sharing area with it.
     warnings : tuple of str
@@ -478,9 +484,9 @@ def _assemble(folds: list[dict], context: FoldContext) -> LeaveOneOut:
 
 
 def _flow_columns(folds: list[dict], method: str, n_days: int) -> np.ndarray:
-    """One method's flows of every fold as (days, folds), each fold's copy dropped once placed
-    (the folds' flows are never held twice)."""
-    values = np.empty((len(folds), n_days))
+    """One method's flows of every fold as (days, folds) of :data:`LOO_FLOW_DTYPE`, each fold's
+    copy dropped once placed (the folds' flows are never held twice)."""
+    values = np.empty((len(folds), n_days), dtype=LOO_FLOW_DTYPE)
     for column, fold in enumerate(folds):
         values[column] = fold["methods"][method].pop("flow")
     return values.T

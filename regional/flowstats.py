@@ -88,6 +88,10 @@ BASEFLOW_PASSES = 3
 """Filter passes: forward, backward, forward (Ladson et al. 2013)."""
 BASEFLOW_REFLECT_DAYS = 30
 """Days reflected at each end of a run before filtering (Ladson et al. 2013)."""
+BLOCK_BASINS = 256
+"""Basins whose statistics :func:`statistics_frame` computes at a time: each basin's numbers
+do not depend on the others, so the float64 copies and temporaries grow with the block, not
+the region."""
 MM_DAY_PER_M3S_KM2 = 86.4
 """1 m3/s over 1 km2 is 86.4 mm/day."""
 
@@ -247,6 +251,7 @@ def statistics_frame(
     *,
     precip_mm_day: pd.DataFrame | None = None,
     year_start_month: int = 1,
+    block_basins: int = BLOCK_BASINS,
 ) -> pd.DataFrame:
     """:func:`flow_statistics` of a DataFrame, one row per basin.
 
@@ -256,9 +261,13 @@ def statistics_frame(
         Daily flow, mm/day: increasing DatetimeIndex (days absent from it count as missing) x
         basins; NaN = missing.
     precip_mm_day : DataFrame, optional
-        Daily precipitation, mm/day, same dates and columns (for ``runoff_ratio``).
+        Daily precipitation, mm/day, with at least the dates and columns of ``flow_mm_day``
+        (for ``runoff_ratio``; only those are read).
     year_start_month : int, default 1
         First month of the year of the annual statistics.
+    block_basins : int, default :data:`BLOCK_BASINS`
+        Basins computed at a time, at least 2 (:func:`column_blocks`; the float64 copies and
+        temporaries are a block's); the numbers do not depend on it (tested).
 
     Returns
     -------
@@ -274,18 +283,46 @@ def statistics_frame(
         )
     if flow_mm_day.index.has_duplicates or not flow_mm_day.index.is_monotonic_increasing:
         raise ValueError("flow statistics: the dates must be increasing with no repeats")
+    parts = [
+        _frame_block(flow_mm_day.iloc[:, part], precip_mm_day, year_start_month)
+        for part in column_blocks(flow_mm_day.shape[1], block_basins)
+    ]
+    values = {name: np.concatenate([part[name] for part in parts]) for name in STATISTIC_NAMES}
+    index = pd.Index(flow_mm_day.columns.astype(str), name="basin_id")
+    return pd.DataFrame(values, index=index)
+
+
+def column_blocks(n_columns: int, block: int) -> list[slice]:
+    """Consecutive column slices of about ``block`` columns, none of a single column unless
+    there is only one.
+
+    A block of one column of a frame laid out day by day would be summed over days in another
+    order than inside the whole (numpy sums a contiguous column pairwise, the columns of a
+    day-by-day grid one day after another): at least two columns keep each basin's sums those
+    of the whole grid.
+    """
+    size = max(2, int(block))
+    starts = list(range(0, n_columns, size)) or [0]
+    if len(starts) > 1 and n_columns - starts[-1] == 1:
+        starts.pop()
+    ends = [*starts[1:], n_columns]
+    return [slice(start, end) for start, end in zip(starts, ends, strict=True)]
+
+
+def _frame_block(
+    flow_mm_day: pd.DataFrame, precip_mm_day: pd.DataFrame | None, year_start_month: int
+) -> dict[str, np.ndarray]:
+    """:func:`flow_statistics` of some basins' columns (float64 copies of those only)."""
     flow = _daily(flow_mm_day)
     precip = None
     if precip_mm_day is not None:
         precip = _daily(precip_mm_day.reindex(columns=flow_mm_day.columns)).reindex(flow.index)
-    values = flow_statistics(
+    return flow_statistics(
         flow.to_numpy(dtype=float),
         flow.index.to_numpy(dtype="datetime64[D]"),
         precip_mm_day=None if precip is None else precip.to_numpy(dtype=float),
         year_start_month=year_start_month,
     )
-    index = pd.Index(flow_mm_day.columns.astype(str), name="basin_id")
-    return pd.DataFrame(values, index=index)
 
 
 def _daily(frame: pd.DataFrame) -> pd.DataFrame:

@@ -395,7 +395,7 @@ def held_out_check(
         )
     observed, simulated = run.loo.observed, run.loo.simulated[method]
     k = error_model.n_classes
-    statistics = _statistics_of(run.context.precip_mm, observed.index)
+    statistics = _statistics_of(run.context.precip_mm)
     draws = [
         summarise_repeat(observed, draw, level=level, n_classes=k, statistics=statistics)
         for draw in _repeats(
@@ -456,13 +456,14 @@ def _workers(executor) -> int:
     return 1 if executor is None else getattr(executor, "n_workers", 1)
 
 
-def _statistics_of(precip_mm: pd.DataFrame, dates: pd.DatetimeIndex):
-    """Flow statistics of a (``dates`` x basins) flow table with the basins' precipitation."""
+def _statistics_of(precip_mm: pd.DataFrame):
+    """Flow statistics of a (days x basins) flow table with the basins' precipitation (of
+    those days, read from ``precip_mm``)."""
 
     def statistics(flow: pd.DataFrame) -> pd.DataFrame:
-        columns = list(flow.columns)
-        precip = precip_mm.loc[dates, columns]
-        return flowstats.statistics_frame(flow[columns], precip_mm_day=precip)
+        # a block of basins at a time, each reading its own precipitation: no copy of the
+        # whole table
+        return flowstats.statistics_frame(flow, precip_mm_day=precip_mm)
 
     return statistics
 

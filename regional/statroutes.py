@@ -273,9 +273,9 @@ class _GaugedData:
     def of(cls, context: FoldContext, loo, method: str, attributes: Sequence[str], everywhere):
         gauged = [str(b) for b in loo.observed.columns]
         dates = loo.observed.index
-        precip = context.precip_mm.loc[dates, gauged]
-        observed = flowstats.statistics_frame(loo.observed[gauged], precip_mm_day=precip)
-        model = flowstats.statistics_frame(loo.simulated[method][gauged], precip_mm_day=precip)
+        precip = context.precip_mm  # each block of basins reads its own columns and days
+        observed = flowstats.statistics_frame(loo.observed, precip_mm_day=precip)
+        model = flowstats.statistics_frame(loo.simulated[method], precip_mm_day=precip)
         table = context.attributes.loc[gauged]
         columns = _varying([a for a in attributes if a in table.columns], table)
         donors = {

@@ -177,11 +177,13 @@ def test_donor_sets_outside_the_bounds_are_simulated_at_the_bound():
 
 def _loo_both_routes(context, monkeypatch, **kwargs):
     """Leave-one-out by the batched fold donations, then by a refit per fold (the route they
-    replace: tests/refit_route.py)."""
+    replace: tests/refit_route.py), the flows held as float64 so that they compare to 1e-10
+    (as float32 a difference of 1e-10 may round to the neighbouring float32)."""
     from refit_route import refit_pool
 
     from regional import crossval
 
+    monkeypatch.setattr(crossval, "LOO_FLOW_DTYPE", np.float64)
     batched = leave_one_out(context, **kwargs)
     with monkeypatch.context() as patch:
         patch.setattr(crossval, "prepared_pool", refit_pool)
@@ -267,3 +269,42 @@ def test_each_method_is_prepared_once_for_all_chunks(monkeypatch):
     changed = FoldContext(**{**context.__dict__, "calibrated": context.calibrated.copy()})
     leave_one_out(changed, chunk_basins=3)
     assert len(made) == 8
+
+
+def test_leave_one_out_flows_held_as_float32_change_what_they_feed_below_1e_5(
+    tmp_path, region_parts, monkeypatch
+):
+    # Two routes: the leave-one-out flows held as float32 (default) and as float64. The
+    # scores come from the float64 flow before it is stored, so they are identical; what the
+    # stored flows feed (the error model of the bounds, the bounds at the ungauged basins,
+    # the flow statistics of the model route) agrees to 1e-5 relative, the coverage to 1e-3
+    # (a day may cross a bound: docs/scale.md gives the largest differences seen).
+    from tiny_region import write_region
+
+    from regional import crossval
+    from regional.pipeline import run
+
+    folder = write_region(tmp_path / "r", region_parts)
+    compact = run(folder)
+    monkeypatch.setattr(crossval, "LOO_FLOW_DTYPE", np.float64)
+    wide = run(folder)
+    model = compact.chosen_model
+    assert (compact.runs[model].loo.simulated["median"].dtypes == np.float32).all()
+    assert (wide.runs[model].loo.simulated["median"].dtypes == np.float64).all()
+    pd.testing.assert_frame_equal(compact.scores, wide.scores)
+    for name in ("lower_q", "upper_q"):
+        got, expected = (getattr(r.fitted.error_model, name) for r in (compact, wide))
+        np.testing.assert_allclose(got, expected, rtol=1e-5)
+    for part in ("low_mm", "high_mm"):
+        got, expected = (getattr(r.prediction.daily, part) for r in (compact, wide))
+        np.testing.assert_allclose(got.to_numpy(), expected.to_numpy(), rtol=1e-5, atol=1e-9)
+    shares = ["coverage", "coverage_decile_1", "coverage_decile_10"]
+    got, expected = (r.fitted.coverage[shares].to_numpy(dtype=float) for r in (compact, wide))
+    np.testing.assert_allclose(got, expected, atol=1e-3)
+    numbers = compact.statistics.loo.select_dtypes("number").columns
+    np.testing.assert_allclose(
+        compact.statistics.loo[numbers].to_numpy(dtype=float),
+        wide.statistics.loo[numbers].to_numpy(dtype=float),
+        rtol=1e-5,
+        atol=1e-9,
+    )

@@ -9,7 +9,8 @@ from regional.donation import fit_transfers, method_flows
 
 def test_flows_follow_the_leave_one_out_path(demo_result):
     # two routes to one number: the prediction path fit on the same training basins gives the
-    # leave-one-out flow of a gauged basin exactly
+    # leave-one-out flow of a gauged basin (held as float32, crossval.LOO_FLOW_DTYPE: the
+    # nearest float32, within 6e-8 relative)
     run = demo_result.runs[demo_result.chosen_model]
     context, loo = run.context, run.loo
     target = str(context.calibrated.index[3])
@@ -19,4 +20,4 @@ def test_flows_follow_the_leave_one_out_path(demo_result):
     for method, estimator in estimators.items():
         donation = estimator.donate(context.attributes.loc[[target]])
         flow = method_flows(context, donation, [target])[context.evaluation, 0]
-        np.testing.assert_allclose(flow, loo.simulated[method][target].to_numpy(), rtol=1e-12)
+        np.testing.assert_allclose(flow, loo.simulated[method][target].to_numpy(), rtol=1e-7)

@@ -298,6 +298,34 @@ def test_statistics_frame_fills_absent_days_and_keeps_basin_ids():
         np.testing.assert_allclose(table[name].to_numpy(), expected[name], rtol=1e-12)
 
 
+def test_statistics_frame_does_not_depend_on_the_block_of_basins():
+    # Each basin's statistics are its own: computed a few basins at a time they are the same
+    # to the bit as all at once, whatever the memory layout of the frame (days or basins
+    # contiguous) and with precipitation over more days and basins than the flow.
+    dates, flow = _series(n_basins=11, gaps=0.02)
+    flow[:400, 3] = np.nan  # a basin with a shorter record
+    index = pd.DatetimeIndex(dates)
+    rng = np.random.default_rng(5)
+    wide = pd.date_range(index[0] - pd.Timedelta(days=30), index[-1], freq="D")
+    precip = pd.DataFrame(
+        rng.gamma(0.6, 4.0, (len(wide), 13)).astype(np.float32),
+        index=wide,
+        columns=[f"b{j}" for j in range(13)],
+    )
+    columns = [f"b{j}" for j in range(11)][::-1]
+    for values in (np.ascontiguousarray(flow), np.asfortranarray(flow)):
+        frame = pd.DataFrame(values, index=index, columns=columns, copy=False)
+        whole = fs.statistics_frame(
+            frame, precip_mm_day=precip.loc[index, columns], block_basins=11
+        )
+        for block in (1, 2, 4, 5):
+            blocks = fs.statistics_frame(frame, precip_mm_day=precip, block_basins=block)
+            pd.testing.assert_frame_equal(blocks, whole, check_exact=True)
+    assert whole["runoff_ratio"].notna().all()
+    sizes = [[s.stop - s.start for s in fs.column_blocks(n, 5)] for n in (1, 10, 11, 12)]
+    assert sizes == [[1], [5, 5], [5, 6], [5, 5, 2]]
+
+
 def test_bad_input_is_refused_with_a_reason():
     dates, flow = _series(n_years=1, n_basins=1)
     with pytest.raises(ValueError, match="consecutive days"):

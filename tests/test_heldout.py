@@ -46,7 +46,8 @@ def test_held_out_basins_never_reach_the_fit(demo_result):
 def test_held_out_flows_reuse_leave_one_out_only_where_the_fold_is_the_same(demo_result):
     # Proximity donors that include no held-out basin give the leave-one-out donation again:
     # those flows are reused; every flow, reused or not, equals a fresh fit on the training
-    # basins simulated along the leave-one-out path.
+    # basins simulated along the leave-one-out path (a reused one as the nearest float32, the
+    # leave-one-out flows' storage type: within 6e-8 relative).
     model = demo_result.chosen_model
     run = demo_result.runs[model]
     context = run.context
@@ -61,7 +62,7 @@ def test_held_out_flows_reuse_leave_one_out_only_where_the_fold_is_the_same(demo
         assert set(donation.sets["donor_id"]).isdisjoint(draw.held_out)
         expected = method_flows(context, donation, [target])[context.evaluation, 0]
         frame = draw.held_out_flow if target in draw.held_out else draw.training_flow
-        np.testing.assert_allclose(frame[target].to_numpy(), expected, rtol=1e-12)
+        np.testing.assert_allclose(frame[target].to_numpy(), expected, rtol=1e-7)
 
 
 def test_classes_short_of_the_level_are_widened_in_the_bounds(demo_result, monkeypatch):

@@ -484,13 +484,19 @@ def _hydrograph_page_drawers(
     basins = sorted(table.index, key=lambda b: (bool(table.loc[b, "applicable"]), str(b)))
     per_figure = per_figure or _report_settings(result).sites_per_figure
     pages = _pages(basins, per_figure)
-    series = _site_series(result, basins)
     return {
         _page_name("ungauged_hydrographs", number): partial(
-            _hydrograph_page, result, series, page, window=None, log=log, page=(number, len(pages))
+            _page_of_sites, result, page, log=log, page=(number, len(pages))
         )
         for number, page in enumerate(pages, start=1)
     }
+
+
+def _page_of_sites(result: RunResult, basins: list[str], *, log: bool, page) -> Figure:
+    """One page of site hydrographs, its basins' daily series built for it alone (the series
+    of every ungauged basin are never held at once)."""
+    series = _site_series(result, basins)
+    return _hydrograph_page(result, series, basins, window=None, log=log, page=page)
 
 
 def ungauged_hydrographs(

@@ -273,6 +273,30 @@ def test_make_figures_draws_every_page(full_run):
     assert len(pages) == len(full_run.region.ungauged)
 
 
+def test_site_pages_build_only_their_own_basins_series(full_run, monkeypatch):
+    # The drawers of the site pages hold no daily series; drawing a page builds its own
+    # basins' series alone, so the series of every ungauged basin are never held at once.
+    built = []
+    site_series = figures._site_series
+
+    def spy(result, basins):
+        built.append(list(basins))
+        return site_series(result, basins)
+
+    monkeypatch.setattr(figures, "_site_series", spy)
+    settings = replace(
+        full_run.settings, report=replace(full_run.settings.report, sites_per_figure=1)
+    )
+    result = replace(full_run, settings=settings)
+    drawers = figures.figure_drawers(result)
+    pages = [name for name in drawers if name.startswith("ungauged_hydrographs")]
+    assert built == [] and len(pages) == len(full_run.region.ungauged) > 1
+    for name in pages:
+        drawers[name]()
+    assert sorted(b for page in built for b in page) == sorted(full_run.region.ungauged)
+    assert all(len(page) == 1 for page in built)
+
+
 @pytest.mark.parametrize(
     ("count", "per_page", "sizes"), [(14, 6, [5, 5, 4]), (6, 6, [6]), (7, 6, [4, 3]), (1, 6, [1])]
 )
