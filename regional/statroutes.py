@@ -70,6 +70,11 @@ MIN_BASINS = 4
 MIN_RESIDUAL_DOF = 2
 """A regression keeps at least this many residual degrees of freedom (as for parameters)."""
 
+FOLD_BLOCK_CELLS = 2_000_000
+"""Target x donor distances held at once by the donor routes' folds (16 MB of float64)."""
+CONSTANT_SHARE = 1e-12
+"""A fold's attribute variance below this share of the largest squared deviation of the pool
+is round-off of a constant attribute (skipped, as a zero standard deviation is)."""
 LOO_COLUMNS = ("basin_id", "statistic", "route", "observed", "estimated")
 SUMMARY_COLUMNS = (
     "statistic",
@@ -627,12 +632,26 @@ def press_columns(design: np.ndarray, target: np.ndarray) -> np.ndarray:
 
 
 def _donor_loo(data: _GaugedData, method: str, pool: Sequence[str]) -> pd.DataFrame:
-    """Each basin of ``pool`` estimated from its donors among the rest of ``pool``."""
-    rows = [
-        _donor_estimate(data, method, data.training(target, pool), [target]).iloc[0]
-        for target in pool
-    ]
-    return pd.DataFrame(rows, index=pd.Index(list(pool), name="basin_id"))
+    """Each basin of ``pool`` estimated from its donors among the rest of ``pool`` (less the
+    basins sharing its area), a block of targets at a time (:func:`fold_donor_weights`)."""
+    pool = [str(b) for b in pool]
+    train = sorted(pool)  # ties broken by basin id, as the transfer does
+    values = data.observed.loc[train].to_numpy(dtype=float)
+    known = np.isfinite(values)
+    filled = np.where(known, values, 0.0)
+    mean = np.empty((len(pool), values.shape[1]))
+    position = {basin: i for i, basin in enumerate(train)}
+    block = max(1, FOLD_BLOCK_CELLS // max(len(train), 1))
+    for start in range(0, len(pool), block):
+        targets = pool[start : start + block]
+        dropped = np.zeros((len(targets), len(train)), dtype=bool)
+        for row, target in enumerate(targets):
+            drop = {target, *data.context.excluded.get(target, ())}
+            dropped[row, [position[b] for b in drop if b in position]] = True
+        weights = fold_donor_weights(data.donors[method], train, targets, dropped)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean[start : start + block] = (weights @ filled) / (weights @ known)
+    return pd.DataFrame(mean, index=pd.Index(pool, name="basin_id"), columns=data.observed.columns)
 
 
 def _donor_estimate(
@@ -713,6 +732,58 @@ def donor_weights(space: DonorSpace, train: Sequence[str], targets: Sequence[str
     weights = np.zeros_like(distance)
     np.put_along_axis(weights, order, inverse_distance_weights(nearest, space.power), axis=1)
     return weights
+
+
+def fold_donor_weights(
+    space: DonorSpace, train: Sequence[str], targets: Sequence[str], dropped: np.ndarray
+) -> np.ndarray:
+    """(targets, train) weights of :func:`donor_weights` with each target's own training set:
+    ``train`` less the basins ``dropped`` in its row (the target and those sharing its area).
+
+    The same weights as ``donor_weights(space, kept, [target])`` row by row, to round-off:
+    similarity standardises each row with its fold's mean and standard deviation, obtained by
+    downdating the shifted sums of ``train`` (no refit per target); the dropped basins get no
+    weight. ``train`` must be sorted by basin id. Rows whose fold keeps fewer basins than the
+    donor count are computed the plain way.
+    """
+    donors = space.values.loc[list(train)].to_numpy(dtype=float)
+    points = space.values.loc[list(targets)].to_numpy(dtype=float)
+    if space.method == "proximity":
+        distance = great_circle_km(
+            points[:, None, 0], points[:, None, 1], donors[None, :, 0], donors[None, :, 1]
+        )
+    else:
+        distance = np.sqrt(_fold_squared_distance(donors, points, dropped))
+    distance = np.where(dropped, np.inf, distance)
+    k = min(space.n_donors, len(train))
+    order = np.argsort(distance, axis=1, kind="stable")[:, :k]
+    nearest = np.take_along_axis(distance, order, axis=1)
+    weights = np.zeros_like(distance)
+    np.put_along_axis(weights, order, inverse_distance_weights(nearest, space.power), axis=1)
+    for row in np.flatnonzero(len(train) - dropped.sum(axis=1) < k):
+        kept = [b for b, out in zip(train, dropped[row], strict=True) if not out]
+        weights[row] = 0.0
+        weights[row, ~dropped[row]] = donor_weights(space, kept, [targets[row]])[0]
+    return weights
+
+
+def _fold_squared_distance(donors: np.ndarray, points: np.ndarray, dropped: np.ndarray):
+    """Squared distances (targets, donors) in attributes standardised per target with the mean
+    and sample standard deviation of the donors it keeps (attributes constant there skipped)."""
+    shifted = donors - donors.mean(axis=0)
+    kept = (~dropped).astype(float)
+    count = kept.sum(axis=1, keepdims=True)
+    first = kept @ shifted
+    second = kept @ shifted**2
+    variance = (second - first**2 / count) / (count - 1.0)
+    spread = np.abs(shifted).max(axis=0) ** 2
+    varying = variance > CONSTANT_SHARE * np.maximum(spread, np.finfo(float).tiny)
+    squared = np.zeros(dropped.shape)
+    for column in range(donors.shape[1]):
+        scale = np.sqrt(np.where(varying[:, column], variance[:, column], 1.0))[:, None]
+        step = (points[:, None, column] - donors[None, :, column]) / scale
+        squared += np.where(varying[:, column, None], step**2, 0.0)
+    return squared
 
 
 # --------------------------------------------------------------------------------------------

@@ -144,6 +144,34 @@ def test_donor_weights_equal_the_transfer_estimators(method):
     assert weights == pytest.approx(expected.fillna(0.0).to_numpy(), abs=1e-12)
 
 
+@pytest.mark.parametrize("method", ["similarity", "proximity"])
+def test_fold_donor_weights_equal_one_fit_per_target(method):
+    # Two routes to the same folds: every target's weights in one blockwise pass (fold mean and
+    # standard deviation by downdated sums) and donor_weights on each fold's own basins. The
+    # drop sets hold the target and, for some, a neighbour sharing its area; one attribute is
+    # constant once its only differing basin is dropped.
+    table, _ = _donor_region()
+    table = table.assign(flat=0.0)
+    table.loc[table.index[3], "flat"] = 1.0
+    columns = (
+        ["aridity", "slope_mean", "flat"]
+        if method == "similarity"
+        else ["centroid_lon", "centroid_lat"]
+    )
+    space = sr.DonorSpace(method, table[columns], n_donors=4, power=2.0)
+    train = sorted(table.index)
+    targets = train[:8]
+    dropped = np.zeros((len(targets), len(train)), dtype=bool)
+    for row in range(len(targets)):
+        dropped[row, [row, (row + 3) % len(train)]] = True
+    got = sr.fold_donor_weights(space, train, targets, dropped)
+    for row, target in enumerate(targets):
+        kept = [b for b, out in zip(train, dropped[row], strict=True) if not out]
+        expected = np.zeros(len(train))
+        expected[~dropped[row]] = sr.donor_weights(space, kept, [target])[0]
+        assert got[row] == pytest.approx(expected, rel=1e-10, abs=1e-12)
+
+
 def _statistics(result, *, route="auto"):
     """Statistics of a run's chosen (model, method), no ungauged flow, at level 0.9."""
     return sr.estimate_statistics(
