@@ -713,12 +713,9 @@ def donor_weights(space: DonorSpace, train: Sequence[str], targets: Sequence[str
 
     ``train`` must be sorted by basin id (a stable sort on distance then breaks ties by id).
     """
-    donors = space.values.loc[list(train)].to_numpy(dtype=float)
-    points = space.values.loc[list(targets)].to_numpy(dtype=float)
+    donors, points = _coordinates(space, train, targets)
     if space.method == "proximity":
-        distance = great_circle_km(
-            points[:, None, 0], points[:, None, 1], donors[None, :, 0], donors[None, :, 1]
-        )
+        distance = _great_circle(donors, points)
     else:
         mean, scale = donors.mean(axis=0), donors.std(axis=0, ddof=1)
         varying = scale > 0
@@ -726,11 +723,26 @@ def donor_weights(space: DonorSpace, train: Sequence[str], targets: Sequence[str
         z_points = (points[:, varying] - mean[varying]) / scale[varying]
         difference = z_points[:, None, :] - z_donors[None, :, :]
         distance = np.sqrt(np.einsum("tdk,tdk->td", difference, difference))
-    k = min(space.n_donors, len(train))
+    return _nearest_weights(distance, min(space.n_donors, len(train)), space.power)
+
+
+def _coordinates(space: DonorSpace, train, targets) -> tuple[np.ndarray, np.ndarray]:
+    donors = space.values.loc[list(train)].to_numpy(dtype=float)
+    return donors, space.values.loc[list(targets)].to_numpy(dtype=float)
+
+
+def _great_circle(donors: np.ndarray, points: np.ndarray) -> np.ndarray:
+    return great_circle_km(
+        points[:, None, 0], points[:, None, 1], donors[None, :, 0], donors[None, :, 1]
+    )
+
+
+def _nearest_weights(distance: np.ndarray, k: int, power: float) -> np.ndarray:
+    """Inverse-distance weights of the k nearest in each row (ties in column order)."""
     order = np.argsort(distance, axis=1, kind="stable")[:, :k]
     nearest = np.take_along_axis(distance, order, axis=1)
     weights = np.zeros_like(distance)
-    np.put_along_axis(weights, order, inverse_distance_weights(nearest, space.power), axis=1)
+    np.put_along_axis(weights, order, inverse_distance_weights(nearest, power), axis=1)
     return weights
 
 
@@ -746,20 +758,13 @@ def fold_donor_weights(
     weight. ``train`` must be sorted by basin id. Rows whose fold keeps fewer basins than the
     donor count are computed the plain way.
     """
-    donors = space.values.loc[list(train)].to_numpy(dtype=float)
-    points = space.values.loc[list(targets)].to_numpy(dtype=float)
+    donors, points = _coordinates(space, train, targets)
     if space.method == "proximity":
-        distance = great_circle_km(
-            points[:, None, 0], points[:, None, 1], donors[None, :, 0], donors[None, :, 1]
-        )
+        distance = _great_circle(donors, points)
     else:
         distance = np.sqrt(_fold_squared_distance(donors, points, dropped))
-    distance = np.where(dropped, np.inf, distance)
     k = min(space.n_donors, len(train))
-    order = np.argsort(distance, axis=1, kind="stable")[:, :k]
-    nearest = np.take_along_axis(distance, order, axis=1)
-    weights = np.zeros_like(distance)
-    np.put_along_axis(weights, order, inverse_distance_weights(nearest, space.power), axis=1)
+    weights = _nearest_weights(np.where(dropped, np.inf, distance), k, space.power)
     for row in np.flatnonzero(len(train) - dropped.sum(axis=1) < k):
         kept = [b for b, out in zip(train, dropped[row], strict=True) if not out]
         weights[row] = 0.0
