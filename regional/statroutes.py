@@ -293,8 +293,12 @@ class _GaugedData:
     def precip(self, basins: Sequence[str]) -> pd.DataFrame:
         return self.context.precip_mm.loc[self.dates, list(basins)]
 
+    def dropped(self, target: str) -> set[str]:
+        """The basins a fold of ``target`` leaves out: itself and those sharing its area."""
+        return {target, *self.context.excluded.get(target, ())}
+
     def training(self, target: str, pool: Sequence[str]) -> list[str]:
-        drop = {target, *self.context.excluded.get(target, ())}
+        drop = self.dropped(target)
         return [b for b in pool if b not in drop]
 
 
@@ -646,8 +650,7 @@ def _donor_loo(data: _GaugedData, method: str, pool: Sequence[str]) -> pd.DataFr
         targets = pool[start : start + block]
         dropped = np.zeros((len(targets), len(train)), dtype=bool)
         for row, target in enumerate(targets):
-            drop = {target, *data.context.excluded.get(target, ())}
-            dropped[row, [position[b] for b in drop if b in position]] = True
+            dropped[row, [position[b] for b in data.dropped(target) if b in position]] = True
         weights = fold_donor_weights(data.donors[method], train, targets, dropped)
         with np.errstate(invalid="ignore", divide="ignore"):
             mean[start : start + block] = (weights @ filled) / (weights @ known)
