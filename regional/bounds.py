@@ -82,7 +82,7 @@ class ConformalErrorModel:
 
     @property
     def table(self) -> pd.DataFrame:
-        """One row per class (see :attr:`regional.predict.Prediction.error_model`)."""
+        """One row per class (see :attr:`regional.predicted.Prediction.error_model`)."""
         return pd.DataFrame(
             {
                 "class": np.arange(1, self.n_classes + 1),

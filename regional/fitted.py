@@ -69,7 +69,7 @@ class FittedRegion:
     error_model : ConformalErrorModel
         The bounds of the chosen (model, method), widened where the held-out check said so.
     coverage : DataFrame
-        Leave-one-out and held-out coverage (see :attr:`regional.predict.Prediction.coverage`).
+        Leave-one-out and held-out coverage (see :attr:`regional.predicted.Prediction.coverage`).
     held_out : DataFrame or None
         The held-out check table (its ``attrs`` kept), None when it did not run.
     notes : tuple of str

@@ -774,7 +774,7 @@ STATISTIC_COLUMNS = (
     *SUMMARY_STATISTICS,
     *(f"flow_m{month:02d}_mm" for month in range(1, 13)),
 )
-"""Statistic columns of :attr:`regional.predict.Prediction.table` (``mean_flow_m3s`` needs
+"""Statistic columns of :attr:`regional.predicted.Prediction.table` (``mean_flow_m3s`` needs
 the area)."""
 TABLE_STATISTICS = {
     "mean_flow_mm": "mean_flow_mm_day",

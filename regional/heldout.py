@@ -368,7 +368,7 @@ def held_out_check(
     Returns
     -------
     (table or None, error model, notes, repeats)
-        The held-out table (see :attr:`regional.predict.Prediction.held_out`; None when the
+        The held-out table (see :attr:`regional.predicted.Prediction.held_out`; None when the
         check does not run), the error model to use (widened where classes fell short), the
         notes saying what was done, and the repeats' summaries (:class:`HeldOutSummary`: the
         held-out basins' flows, the tails of each repeat's error model and the flow statistics,

@@ -18,7 +18,7 @@ import pandas as pd
 from regional import __version__, io
 from regional.crossval import CALIBRATED
 from regional.fittedfiles import FOLDER, META, fitted_files
-from regional.predict import Prediction, flow_parts
+from regional.predicted import Prediction, flow_parts
 from regional.region import Region
 from regional.report import figure_drawers, render_report
 from regional.report import figures as plots

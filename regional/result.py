@@ -71,7 +71,7 @@ class RunResult:
     chosen_model, chosen_method : str
         What prediction uses: the config's choice or the best median leave-one-out NSE.
     prediction : object or None
-        :class:`regional.predict.Prediction` when the region has ungauged basins.
+        :class:`regional.predicted.Prediction` when the region has ungauged basins.
     screening : object or None
         :class:`regional.screen.Screening` when candidates were screened.
     statistics : object or None

@@ -18,7 +18,8 @@ from regional import __version__, io
 from regional.config import Settings
 from regional.fitted import FittedRegion
 from regional.fittedfiles import FOLDER, META, from_files, stale_reason
-from regional.predict import Prediction, flow_parts, predict_sites
+from regional.predict import predict_sites
+from regional.predicted import Prediction, flow_parts
 from regional.region import Region
 from regional.sites import Sites
 

@@ -204,7 +204,7 @@ def estimate_statistics(
         statistic's chosen route.
     ungauged_model : DataFrame, optional
         The model route's statistics at the ungauged basins when already computed beside
-        their flows (:attr:`regional.predict.Prediction.model_statistics`: basins x
+        their flows (:attr:`regional.predicted.Prediction.model_statistics`: basins x
         statistics over the evaluation days); then ``ungauged_flow`` is not needed.
 
     Returns

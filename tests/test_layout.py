@@ -37,6 +37,7 @@ ORDER = (
     "applicability",
     "fitted",
     "fittedfiles",
+    "predicted",
     "predict",
     "statroutes",
     "screen",

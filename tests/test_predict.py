@@ -8,7 +8,8 @@ import pytest
 
 from regional.errors import InputError
 from regional.flowstats import STATISTIC_COLUMNS, headline_statistics
-from regional.predict import FLOW_COLUMNS, predict_ungauged
+from regional.predict import predict_ungauged
+from regional.predicted import FLOW_COLUMNS
 
 
 @pytest.fixture(scope="module")

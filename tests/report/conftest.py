@@ -15,7 +15,7 @@ import pytest
 from tiny_region import make_parts, write_region
 
 from regional.models import get_model
-from regional.predict import DailyFlows
+from regional.predicted import DailyFlows
 
 matplotlib.use("Agg")
 
