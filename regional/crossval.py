@@ -34,19 +34,21 @@ from regional import metrics
 from regional.calibrate import Window
 from regional.compute import InProcessExecutor, chunked
 from regional.errors import InputError
-from regional.models import parameter_table, parameter_transforms, simulate
+from regional.models import parameter_transforms, simulate
 from regional.models.base import forward, inverse
 from regional.series import StoreReader, shipped
-from regional.transfer import (
-    DONOR_METHODS,
-    inverse_distance_weights,
-    simulate_donors,
-)
+from regional.transfer import DONOR_METHODS, Donation, inverse_distance_weights
 from regional.transfer.base import weighted_estimate
 from regional.transfer.folds import FoldDonations, FoldSettings, PreparedPool
+from regional.transfer.step import (
+    CALIBRATED,
+    MEDIAN,
+    DonationSimulation,
+    TransferOptions,
+    donor_simulator,
+    method_order,
+)
 
-CALIBRATED = "calibrated"
-MEDIAN = "median"
 SCORE_COLUMNS = ("nse", "kge", "kge_r", "kge_alpha", "kge_beta", "log_nse", "pbias", "n_days")
 LOO_FLOW_DTYPE = np.float32
 """Storage type of :attr:`LeaveOneOut.simulated`: each method's flow of each gauged basin over
@@ -55,42 +57,6 @@ per day instead of 8. The scores are computed from the float64 flow before it is
 the stored flows feed changes in about the seventh digit (docs/scale.md, tested)."""
 CHUNK_BASINS = 8
 """Target basins per task handed to the executor."""
-
-
-@dataclass(frozen=True)
-class TransferOptions:
-    """How the transfer methods are built in every fold.
-
-    Attributes
-    ----------
-    methods : tuple of str
-        Methods to validate (``regression``, ``similarity``, ``proximity``, ``median``).
-    attributes : tuple of str or None
-        Attribute columns for regression and similarity (None: every numeric column given).
-    n_donors : int
-        Donors per target for the donor methods (similarity, proximity, blended) unless
-        ``chosen_donors`` names the method.
-    power : float
-        Inverse-distance weighting power.
-    combine : {"output", "parameter"}
-        Donor combination into flow.
-    donor_choices : tuple of int
-        Candidate donor counts for :func:`choose_donor_counts` (empty: ``n_donors`` is used).
-    chosen_donors : mapping
-        Method -> donor count picked in leave-one-out (see :func:`with_donor_counts`).
-    """
-
-    methods: tuple[str, ...] = ("regression", "similarity", "proximity")
-    attributes: tuple[str, ...] | None = None
-    n_donors: int = 5
-    power: float = 1.0
-    combine: str = "output"
-    donor_choices: tuple[int, ...] = ()
-    chosen_donors: Mapping[str, int] = field(default_factory=dict)
-
-    def donors_for(self, method: str) -> int:
-        """Donors per target for ``method``: the count chosen for it, else ``n_donors``."""
-        return int(self.chosen_donors.get(method, self.n_donors))
 
 
 @dataclass(frozen=True)
@@ -123,6 +89,30 @@ class FoldContext:
         """The basins scored in leave-one-out: every basin of ``calibrated`` with observed
         flow (not in ``donor_only``), in its order."""
         return [str(b) for b in self.calibrated.index if b not in self.donor_only]
+
+    @property
+    def simulation(self) -> DonationSimulation:
+        """How a donation becomes a target's flow over this window (model, fixed parameters,
+        warm-up, initial storage)."""
+        return DonationSimulation(
+            self.model,
+            self.window.warmup_days,
+            fixed_params=self.fixed_params,
+            initial_storage=self.initial_storage,
+        )
+
+    def donation_flows(self, donation: Donation, targets: Sequence[str]) -> np.ndarray:
+        """Each target's flow from its donated sets over this window: :attr:`simulation` on
+        the targets' own forcing. Days x targets, mm/day, warm-up days included."""
+        columns = list(targets)
+        temp = None if self.temp_c is None else self.temp_c[columns].to_numpy(dtype=float)
+        return self.simulation.flows(
+            donation,
+            columns,
+            precip=self.precip_mm[columns].to_numpy(dtype=float),
+            pet=self.pet_mm[columns].to_numpy(dtype=float),
+            temp=temp,
+        )
 
     @property
     def transforms(self) -> dict[str, str]:
@@ -202,13 +192,6 @@ def leave_one_out(
     results = executor.map(task, chunks, shared, progress=progress)
     folds = [fold for chunk in results for fold in chunk]
     return _assemble(folds, context)
-
-
-def method_order(methods: Sequence[str]) -> tuple[str, ...]:
-    """Calibrated and median first, then the configured methods (each once)."""
-    ordered = [CALIBRATED, MEDIAN]
-    ordered += [m for m in methods if m not in ordered]
-    return tuple(ordered)
 
 
 def _check_context(context: FoldContext) -> None:
@@ -337,6 +320,7 @@ def _one_fold(target: str, context: FoldContext, donations: Mapping[str, FoldDon
     obs = context.flow_mm[target].to_numpy(dtype=float)[context.evaluation]
     fold = {"basin_id": target, "methods": {}, "warnings": []}
     raised: set[str] = set()
+    simulation = context.simulation
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         own = {name: float(context.calibrated.loc[target, name]) for name in names}
@@ -346,7 +330,13 @@ def _one_fold(target: str, context: FoldContext, donations: Mapping[str, FoldDon
             donation = donations[method].donations[target]
             raised.update(donations[method].warnings[target])
             estimate = weighted_estimate(donation.sets, names, transforms).iloc[0].to_dict()
-            flow = donation_flow(context, donation, target, forcing)
+            flow = simulation.flow(
+                donation,
+                target,
+                precip=forcing["precip"],
+                pet=forcing["pet"],
+                temp=forcing["temp"],
+            )
             fold["methods"][method] = _outcome(obs, flow[context.evaluation], estimate)
     fold["warnings"] = sorted(raised | {str(w.message) for w in caught})
     return fold
@@ -371,64 +361,6 @@ def _simulate_set(context: FoldContext, forcing, params: Mapping[str, float]) ->
         warmup_days=context.window.warmup_days,
     )
     return result.flow[:, 0]
-
-
-def donation_flow(
-    context: FoldContext, donation, target: str, forcing: Mapping | None = None
-) -> np.ndarray:
-    """Flow of one target from its donated sets: the one simulation step that leave-one-out,
-    the held-out check and prediction share.
-
-    The target's own forcing over the window of ``context`` (or ``forcing``, its arrays), the
-    fixed snow parameters, the same warm-up and initial storage; donors combined by
-    :func:`regional.transfer.simulate_donors`. Returns mm/day over the window, warm-up
-    included.
-    """
-    forcing = _target_forcing(target, context) if forcing is None else forcing
-    flows = simulate_donors(
-        donation,
-        target,
-        precip=forcing["precip"],
-        pet=forcing["pet"],
-        temp=forcing["temp"],
-        model=context.model,
-        warmup_days=context.window.warmup_days,
-        initial_storage=context.initial_storage,
-        simulate=donor_simulator(context.model, context.fixed_params),
-    )
-    return flows.flow
-
-
-def donor_simulator(model: str, fixed: Mapping[str, float]):
-    """A ``simulate`` for donor sets: fixed (snow) parameters added, values clipped to bounds.
-
-    A transfer may give a parameter outside the model's bounds (a regression extrapolating in
-    log space, say); the set is then simulated at the nearest bound, as calibration would have
-    found it.
-    """
-    table = parameter_table(model, snow=True)
-
-    def simulate_sets(
-        model_name, precip, pet, params, *, temp=None, initial_storage=None, warmup_days=0
-    ):
-        n = len(next(iter(params.values())))
-        sets = {name: np.full(n, value) for name, value in fixed.items()}
-        for parameter in table:
-            if parameter.name not in params:  # snow parameters without the snow store
-                continue
-            values = np.asarray(params[parameter.name], dtype=float)
-            sets[parameter.name] = np.clip(values, parameter.lower, parameter.upper)
-        return simulate(
-            model_name,
-            precip,
-            pet,
-            sets,
-            temp=temp,
-            initial_storage=initial_storage,
-            warmup_days=warmup_days,
-        )
-
-    return simulate_sets
 
 
 def _outcome(obs: np.ndarray, flow: np.ndarray, params: Mapping[str, float]) -> dict:

@@ -24,11 +24,12 @@ from regional.bounds import ConformalErrorModel, check_level, conformal_bounds
 from regional.calibrate import Window
 from regional.config import Settings
 from regional.coverage import loo_coverage
-from regional.crossval import FoldContext, TransferOptions
+from regional.crossval import FoldContext
 from regional.errors import InputError, InputWarning
 from regional.heldout import held_out_check, with_held_out
 from regional.models import parameter_transforms
 from regional.transfer import RegressionTransfer, fit_transfer
+from regional.transfer.step import TransferOptions
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     import geopandas as gpd

@@ -15,8 +15,8 @@ import pandas as pd
 
 from regional.bounds import ConformalErrorModel
 from regional.config import Settings
-from regional.crossval import TransferOptions
 from regional.fitted import FittedRegion, fit_settings, plain
+from regional.transfer.step import TransferOptions
 
 FORMAT = 1
 """Version of the stored layout (grows when it changes)."""

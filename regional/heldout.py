@@ -28,7 +28,6 @@ from regional.coverage import (
     widened_levels,
 )
 from regional.crossval import FoldContext, prepared_pool
-from regional.donation import method_flows
 from regional.errors import InputError
 from regional.series import StoreReader, shipped
 from regional.transfer import Donation
@@ -292,7 +291,7 @@ class _HeldOutFolds:
                 if reusable and _same_donation(donations[target], loo[target]):
                     flows[target] = None
                     continue
-                flow = method_flows(self.context, donations[target], [target])
+                flow = self.context.donation_flows(donations[target], [target])
                 flows[target] = flow[self.context.evaluation, 0]
         return flows
 

@@ -40,12 +40,12 @@ from regional.applicability import (
 from regional.bounds import ConformalErrorModel
 from regional.compute import InProcessExecutor, chunk_size, chunked
 from regional.crossval import FoldContext
-from regional.donation import fit_transfers, method_flows
 from regional.errors import InputError
 from regional.fitted import FittedRegion, fit_result
 from regional.predicted import DailyFlows, Prediction
 from regional.series import StoreReader, shipped
 from regional.transfer import Donation
+from regional.transfer.step import fit_methods
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
     from regional.region import Region
@@ -296,8 +296,17 @@ def _joined(frames: list[pd.DataFrame]) -> pd.DataFrame:
     return pd.DataFrame(values, index=frames[0].index, columns=columns, copy=False)
 
 
-def _parameters_by_method(context, target_attributes, level):
-    estimators, notes = fit_transfers(context, level=level)
+def _parameters_by_method(context: FoldContext, target_attributes, level):
+    """Every method fit on the gauged basins, its donation to the targets and the targets'
+    parameters with their intervals (method -> table)."""
+    transforms = context.transforms
+    estimators, notes = fit_methods(
+        context.attributes,
+        context.calibrated[list(transforms)],
+        transforms=transforms,
+        options=context.options,
+        level=level,
+    )
     donations, parameters = {}, {}
     for method, estimator in estimators.items():
         donation = estimator.donate(target_attributes)
@@ -308,7 +317,7 @@ def _parameters_by_method(context, target_attributes, level):
 
 
 def _chosen_flow(context: FoldContext, donation: Donation, targets) -> pd.DataFrame:
-    flow = method_flows(context, donation, targets)
+    flow = context.donation_flows(donation, targets)
     warmup = context.window.warmup_days
     dates = context.precip_mm.index[warmup:]
     return pd.DataFrame(flow[warmup:], index=dates, columns=pd.Index(targets, name="basin_id"))

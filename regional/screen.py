@@ -26,18 +26,18 @@ in one element of a given matrix. Ann. Math. Stat. 21(1), 124-127.
 from __future__ import annotations
 
 import difflib
-import warnings
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
 
 from regional.applicability import applicability
-from regional.errors import InputError, InputWarning
+from regional.errors import InputError
 from regional.fitted import FittedRegion, fit_result
-from regional.transfer import RegressionTransfer, fit_transfer
+from regional.transfer import RegressionTransfer
+from regional.transfer.step import fit_methods
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
     from regional.region import Region
@@ -262,17 +262,15 @@ def _donor_spread(fitted: FittedRegion, sites: pd.DataFrame) -> pd.DataFrame:
     names = list(transforms)
     calibrated = fitted.training[names]
     n_donors = min(fitted.options.donors_for("similarity"), len(calibrated))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", InputWarning)  # already reported by leave-one-out
-        similarity = fit_transfer(
-            "similarity",
-            fitted.training[fitted.training_columns],
-            calibrated,
-            transforms=transforms,
-            attributes=list(fitted.attributes),
-            n_donors=n_donors,
-        )
-    sets = similarity.donate(sites).sets
+    estimators, _ = fit_methods(  # its warnings were reported by leave-one-out
+        fitted.training[fitted.training_columns],
+        calibrated,
+        transforms=transforms,
+        options=replace(fitted.options, attributes=tuple(fitted.attributes)),
+        level=fitted.level,
+        methods=["similarity"],
+    )
+    sets = estimators["similarity"].donate(sites).sets
     index = pd.Index(sites.index.astype(str), name="basin_id")
     table = pd.DataFrame(index=index)
     parts = []

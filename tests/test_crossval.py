@@ -162,19 +162,6 @@ def test_too_few_gauged_basins_is_an_input_error():
         leave_one_out(small)
 
 
-def test_donor_sets_outside_the_bounds_are_simulated_at_the_bound():
-    from regional.crossval import donor_simulator
-
-    precip, pet = np.full(50, 3.0), np.full(50, 1.0)
-    clipped = donor_simulator("linear", {})(
-        "linear", precip, pet, {"k_per_day": np.array([1e-5, 9.0])}, initial_storage=10.0
-    )
-    at_bounds = regional.simulate(
-        "linear", precip, pet, {"k_per_day": np.array([0.001, 1.5])}, initial_storage=10.0
-    )
-    np.testing.assert_array_equal(clipped.flow, at_bounds.flow)
-
-
 def _loo_both_routes(context, monkeypatch, **kwargs):
     """Leave-one-out by the batched fold donations, then by a refit per fold (the route they
     replace: tests/refit_route.py), the flows held as float64 so that they compare to 1e-10

@@ -12,12 +12,12 @@ from regional.crossval import (
     _target_forcing,
     choose_donor_counts,
     count_flows,
-    donor_simulator,
     leave_one_out,
     with_donor_counts,
 )
 from regional.models import parameter_transforms
 from regional.transfer import make_transfer, simulate_donors
+from regional.transfer.step import donor_simulator
 
 COUNTS = (1, 2, 4, 7)
 METHODS = ("regression", "similarity", "proximity", "blended")

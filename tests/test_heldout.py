@@ -7,9 +7,9 @@ import pandas as pd
 
 from regional import coverage
 from regional.bounds import conformal_bounds
-from regional.donation import fit_transfers, method_flows
 from regional.heldout import _held_out_draws, held_out_flows
 from regional.predict import predict_ungauged
+from regional.transfer.step import fit_methods
 
 
 def test_held_out_draws_hold_every_basin_out_evenly():
@@ -57,10 +57,17 @@ def test_held_out_flows_reuse_leave_one_out_only_where_the_fold_is_the_same(demo
     assert set(training).isdisjoint(draw.held_out)
     for target in [*training[:4], *draw.held_out]:
         pool = [b for b in training if b != target and b not in context.excluded.get(target, ())]
-        estimators, _ = fit_transfers(context, level=0.9, train=pool, methods=["proximity"])
+        estimators, _ = fit_methods(
+            context.attributes.loc[pool],
+            context.calibrated.loc[pool, list(context.transforms)],
+            transforms=context.transforms,
+            options=context.options,
+            level=0.9,
+            methods=["proximity"],
+        )
         donation = estimators["proximity"].donate(context.attributes.loc[[target]])
         assert set(donation.sets["donor_id"]).isdisjoint(draw.held_out)
-        expected = method_flows(context, donation, [target])[context.evaluation, 0]
+        expected = context.donation_flows(donation, [target])[context.evaluation, 0]
         frame = draw.held_out_flow if target in draw.held_out else draw.training_flow
         np.testing.assert_allclose(frame[target].to_numpy(), expected, rtol=1e-7)
 

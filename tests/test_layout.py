@@ -29,7 +29,6 @@ ORDER = (
     "compute",
     "calibrate",
     "crossval",
-    "donation",
     "result",
     "bounds",
     "coverage",

@@ -95,7 +95,6 @@ def test_prediction_method_that_was_not_validated_is_an_input_error(tmp_path):
 
 
 def test_donor_count_chosen_in_leave_one_out_reaches_prediction_and_outputs(tmp_path):
-    from regional.donation import fit_transfers
     from regional.outputs import write_outputs
     from regional.pipeline import run
     from regional.report.html import render_report
@@ -115,7 +114,7 @@ def test_donor_count_chosen_in_leave_one_out_reaches_prediction_and_outputs(tmp_
     assert set(table["n_donors"]) == {1, 3, 6}
     chosen = table[table["chosen"]].set_index("method")["n_donors"].to_dict()
     assert dict(model_run.context.options.chosen_donors) == chosen
-    estimators, _ = fit_transfers(model_run.context, level=0.9)
+    estimators = _fit_on_every_basin(model_run.context)
     assert {m: estimators[m].n_donors_ for m in chosen} == chosen
     folder = write_outputs(result, tmp_path / "out", figures=False)
     written = pd.read_csv(folder / "donor_counts.csv")
@@ -274,7 +273,6 @@ def test_user_constants_without_flow_serve_as_donors_and_are_not_scored(tmp_path
     # donor neighbours in every fold and in prediction - but are never scored, never a
     # leave-one-out target, not in the error model and not estimated.
     from regional.cli import format_run_summary
-    from regional.donation import fit_transfers
     from regional.outputs import run_manifest, write_outputs
     from regional.pipeline import run
 
@@ -303,7 +301,7 @@ def test_user_constants_without_flow_serve_as_donors_and_are_not_scored(tmp_path
     assert linear.regression.n_train_ == n_gauged + len(donors)
     assert set(donors) <= set(result.fitted.training.index)
     assert set(linear.context.targets) == set(region.gauged)
-    estimators, _ = fit_transfers(linear.context, level=0.9, methods=["proximity"])
+    estimators = _fit_on_every_basin(linear.context, methods=["proximity"])
     sets = estimators["proximity"].donate(linear.context.attributes.loc[list(region.gauged)])
     assert set(donors) <= set(sets.sets["donor_id"])
     # not scored, not targets, not in the error model, not estimated
@@ -323,3 +321,18 @@ def test_user_constants_without_flow_serve_as_donors_and_are_not_scored(tmp_path
     written = written.set_index("basin_id").loc[donors]
     assert (written["parameters_from"] == "user").all() and written["nse_calibration"].isna().all()
     assert "serve as donors of parameter transfer" in (folder / "report.html").read_text()
+
+
+def _fit_on_every_basin(context, *, methods=None) -> dict:
+    """The transfer methods as prediction fits them: on every basin of the fold context."""
+    from regional.transfer.step import fit_methods
+
+    estimators, _ = fit_methods(
+        context.attributes,
+        context.calibrated[list(context.transforms)],
+        transforms=context.transforms,
+        options=context.options,
+        level=0.9,
+        methods=methods,
+    )
+    return estimators

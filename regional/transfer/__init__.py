@@ -130,9 +130,8 @@ def fit_transfer(
     combine: str = "output",
     level: float = 0.9,
 ):
-    """Fit method ``name`` on these basins: the one step leave-one-out, the held-out check,
-    prediction and screening share (each then donates to its targets and simulates the
-    donation with :func:`simulate_donors`).
+    """Fit method ``name`` on these basins (the shared step of leave-one-out, the held-out
+    check, prediction and screening, :mod:`regional.transfer.step`, fits each method with it).
 
     Parameters
     ----------
