@@ -8,7 +8,9 @@ its wall time and resident memory before, at the peak of, and after each stage. 
 
 - time per basin at each N, the scaling ratio time(N_2) / time(N_1) (4.4 for 500 -> 2000 means
   close to linear: 4 x the basins) and time per basin at the largest N over the smallest;
-- peak memory at each N, per stage, and the marginal peak memory per extra basin (N_1 -> N_2);
+- peak memory at each N, and per stage the resident memory before, at the peak and after, at
+  every N (one N too); with two or more sizes the marginal peak memory per extra basin
+  (N_1 -> N_2, and N_1 -> the last N with three or more);
 - the speed-up of a local Dask cluster of 2 worker processes over the in-process run, and the
   peak memory of the client and of each worker.
 

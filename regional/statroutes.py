@@ -368,7 +368,8 @@ def regression_loo_logs(z, logs, *, extra_drop: Mapping[int, Sequence[int]] | No
     fold dropping row f, the leverages and residuals of the other rows follow from the full
     hat matrix H and residuals e by Sherman and Morrison's rank-one update,
     h_ii' = h_ii + H_if^2 / (1 - h_ff) and e_i' = e_i + H_if e_f / (1 - h_ff), which gives every
-    fold's PRESS of every candidate subset from three matrix products; the left-out row's
+    fold's PRESS of every candidate subset in one compiled pass over the folds, a row of H at a
+    time (:func:`_fold_press`, O(n^2) flops, O(n) memory); the left-out row's
     estimate is y_f - e_f / (1 - h_ff) (the PRESS residual). Folds that also drop other rows
     (donors sharing area with the target, ``extra_drop``) are refit directly.
 
