@@ -8,7 +8,9 @@ its wall time and resident memory before, at the peak of, and after each stage. 
 
 - time per basin at each N, the scaling ratio time(N_2) / time(N_1) (4.4 for 500 -> 2000 means
   close to linear: 4 x the basins) and time per basin at the largest N over the smallest;
-- peak memory at each N, per stage, and the marginal peak memory per extra basin (N_1 -> N_2);
+- peak memory at each N, and per stage the resident memory before, at the peak and after, at
+  every N (one N too); with two or more sizes the marginal peak memory per extra basin
+  (N_1 -> N_2, and N_1 -> the last N with three or more);
 - the speed-up of a local Dask cluster of 2 worker processes over the in-process run, and the
   peak memory of the client and of each worker.
 
@@ -308,20 +310,42 @@ def _print_cluster(size: int, local: dict, clustered: dict) -> None:
     )
 
 
-def _print_stages(small: dict, large: dict) -> None:
+def _print_stages(rows: list[dict]) -> None:
+    """Resident memory before, at the peak of and after each stage at every size; with two or
+    more sizes, the marginal peak per extra basin between the first two (the target's sizes)
+    and, with three or more, between the first and the last."""
     print("resident memory per stage, MB (before -> peak during -> after):")
-    for name in small["stages"]:
+    pairs = [(rows[0], rows[1])] if len(rows) > 1 else []
+    if len(rows) > 2:
+        pairs.append((rows[0], rows[-1]))
+    for name in rows[0]["stages"]:
         cells = [
             f"N = {row['n']}: {row['stages'][name]['before']:6.0f} -> "
             f"{row['stages'][name]['peak']:6.0f} -> {row['stages'][name]['after']:6.0f}"
-            for row in (small, large)
+            for row in rows
+            if name in row["stages"]
         ]
-        marginal = (large["stages"][name]["peak"] - small["stages"][name]["peak"]) / (
-            large["n"] - small["n"]
+        marginal = [
+            f"{_stage_marginal(name, small, large)} {small['n']} -> {large['n']}"
+            for small, large in pairs
+            if name in large["stages"]
+        ]
+        extra = f"   (MB per extra basin at peak: {'; '.join(marginal)})" if marginal else ""
+        print(f"  {name:20s} {'   '.join(cells)}{extra}")
+    for number, (small, large) in enumerate(pairs):
+        print(
+            f"marginal peak memory {small['n']} -> {large['n']}: "
+            f"{_marginal(small['peak_mb'], large['peak_mb'], small, large)} MB per extra basin"
+            + ("   (target <= 0.3 for 500 -> 2000)" if number == 0 else "")
         )
-        print(f"  {name:20s} {'   '.join(cells)}   ({marginal:.3f} MB per extra basin at peak)")
-    extra = (large["peak_mb"] - small["peak_mb"]) / (large["n"] - small["n"])
-    print(f"marginal peak memory: {extra:.3f} MB per extra basin   (target <= 0.3)")
+
+
+def _stage_marginal(name: str, small: dict, large: dict) -> str:
+    return _marginal(small["stages"][name]["peak"], large["stages"][name]["peak"], small, large)
+
+
+def _marginal(small_mb: float, large_mb: float, small: dict, large: dict) -> str:
+    return f"{(large_mb - small_mb) / (large['n'] - small['n']):.3f}"
 
 
 def main() -> None:
@@ -360,8 +384,7 @@ def main() -> None:
         f"peak memory at N = {rows[-1]['n']}: {rows[-1]['peak_mb']:.0f} MB   (target <= 4096 MB "
         "at 10,000 basins)"
     )
-    if len(rows) > 1:
-        _print_stages(rows[0], rows[1])
+    _print_stages(rows)
 
 
 def _print_scaling(rows: list[dict]) -> None:

@@ -35,6 +35,9 @@ FAILED_NSE = 0.0
 than the mean observed flow)."""
 CLIMATE_ATTRIBUTE = "aridity"
 """Attribute whose range of well-scored gauged basins bounds the climate transfer works in."""
+DISTANCE_BLOCK_CELLS = 4_000_000
+"""Attribute differences (rows x donors x attributes) held at once by the distance searches
+(32 MB of float64): the rows are taken a block at a time, never all targets x all donors."""
 
 
 def applicability(
@@ -161,10 +164,42 @@ def _distances(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.sqrt(np.maximum(((a[:, None, :] - b[None, :, :]) ** 2).sum(axis=2), 0.0))
 
 
-def _nearest_donor(z_donors, z_targets) -> tuple[np.ndarray, float]:
-    among = _distances(z_donors, z_donors)
-    np.fill_diagonal(among, np.inf)
-    return _distances(z_targets, z_donors).min(axis=1), float(among.min(axis=1).max())
+def _row_blocks(n_rows: int, n_donors: int, n_attributes: int, cells: int) -> list[slice]:
+    """Consecutive row slices whose (rows x donors x attributes) differences hold ``cells``.
+
+    Each row's distances are computed alone (a sum over its own attribute differences), so
+    they do not depend on the block.
+    """
+    size = max(1, cells // max(n_donors * n_attributes, 1))
+    return [slice(start, min(start + size, n_rows)) for start in range(0, n_rows, size)]
+
+
+def _nearest_donor(
+    z_donors, z_targets, *, cells: int = DISTANCE_BLOCK_CELLS
+) -> tuple[np.ndarray, float]:
+    """Each target's distance to its nearest donor, and the largest nearest-neighbour distance
+    among the donors themselves; a block of rows at a time."""
+    n, p = z_donors.shape
+    nearest = np.empty(len(z_targets))
+    for part in _row_blocks(len(z_targets), n, p, cells):
+        nearest[part] = _distances(z_targets[part], z_donors).min(axis=1)
+    among = np.empty(n)
+    for part in _row_blocks(n, n, p, cells):
+        block = _distances(z_donors[part], z_donors)
+        rows = np.arange(part.stop - part.start)
+        block[rows, rows + part.start] = np.inf  # not its own neighbour
+        among[part] = block.min(axis=1)
+    return nearest, float(among.max())
+
+
+def _nearest_order(z_targets, z_donors, k: int, *, cells: int = DISTANCE_BLOCK_CELLS):
+    """(targets, k) positions of each target's k nearest donors, nearest first (ties in donor
+    order); a block of targets at a time."""
+    order = np.empty((len(z_targets), k), dtype=np.intp)
+    for part in _row_blocks(len(z_targets), len(z_donors), z_donors.shape[1], cells):
+        distance = _distances(z_targets[part], z_donors)
+        order[part] = np.argsort(distance, axis=1, kind="stable")[:, :k]
+    return order
 
 
 def transfer_skill(
@@ -212,7 +247,7 @@ def transfer_skill(
     nse = loo_nse.reindex(attributes_gauged.index.astype(str)).to_numpy(dtype=float)
     z_donors, z_targets = _standardised(donors, targets)
     k = int(np.clip(n_nearest, 1, len(donors)))
-    order = np.argsort(_distances(z_targets, z_donors), axis=1, kind="stable")[:, :k]
+    order = _nearest_order(z_targets, z_donors, k)
     ids = attributes_gauged.index.astype(str).to_numpy()
     nearest_nse = np.array(
         [np.nanmedian(nse[row]) if np.isfinite(nse[row]).any() else np.nan for row in order]

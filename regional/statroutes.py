@@ -41,6 +41,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
+import numba
 import numpy as np
 import pandas as pd
 from threadpoolctl import threadpool_limits
@@ -51,6 +52,7 @@ from regional.coverage import HeldOutSummary
 from regional.crossval import FoldContext
 from regional.errors import InputError
 from regional.transfer import great_circle_km, inverse_distance_weights, make_transfer
+from regional.transfer.folds import k_nearest
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.region import Region
@@ -347,9 +349,8 @@ def _regression_loo(
     logs = logs[:, [data.observed.columns.get_loc(c) for c in columns]]
     position = {b: i for i, b in enumerate(pool)}
     extra = {}
-    for i, target in enumerate(pool):
-        train = set(data.training(target, pool))
-        dropped = [position[b] for b in pool if b not in train and b != target]
+    for i, target in enumerate(pool):  # the fold's other dropped basins, in pool order
+        dropped = sorted(position[b] for b in data.dropped(target) - {target} if b in position)
         if dropped:
             extra[i] = dropped
     return pd.DataFrame(
@@ -367,7 +368,8 @@ def regression_loo_logs(z, logs, *, extra_drop: Mapping[int, Sequence[int]] | No
     fold dropping row f, the leverages and residuals of the other rows follow from the full
     hat matrix H and residuals e by Sherman and Morrison's rank-one update,
     h_ii' = h_ii + H_if^2 / (1 - h_ff) and e_i' = e_i + H_if e_f / (1 - h_ff), which gives every
-    fold's PRESS of every candidate subset from three matrix products; the left-out row's
+    fold's PRESS of every candidate subset in one compiled pass over the folds, a row of H at a
+    time (:func:`_fold_press`, O(n^2) flops, O(n) memory); the left-out row's
     estimate is y_f - e_f / (1 - h_ff) (the PRESS residual). Folds that also drop other rows
     (donors sharing area with the target, ``extra_drop``) are refit directly.
 
@@ -412,9 +414,10 @@ def _regression_loo_logs(z, logs, extra_drop: dict) -> np.ndarray:
 class _FoldPress:
     """PRESS of every fold (one row left out) per attribute subset and column, cached.
 
-    :meth:`fill` computes the hat-matrix parts of each requested subset once (O(n^2)) and the
-    PRESS of only the columns asked for (one matrix-vector product each); only the results
-    (n values per subset and column) are kept.
+    :meth:`fill` computes each requested subset's QR fit once and every fold's PRESS of the
+    columns asked for in one compiled pass over the folds (:func:`_fold_press`: O(n^2) flops,
+    O(n) memory; the n x n hat matrix is never held); only the results (n values per subset
+    and column) are kept.
     """
 
     def __init__(self, design: np.ndarray, target: np.ndarray) -> None:
@@ -438,25 +441,10 @@ class _FoldPress:
                 self.press[subset, c] = np.full(n, np.inf)
                 self.estimate[subset, c] = np.full(n, np.nan)
             return
-        hat = q @ q.T
-        h = np.diag(hat).copy()
+        h = np.einsum("ik,ik->i", q, q)
         resid = target - q @ (q.T @ target)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            share = hat / (1.0 - h)[:, None]  # row f: H_fi / (1 - h_ff)
-            leverage = h[None, :] + hat * share  # fold f, row i
-            np.fill_diagonal(leverage, 0.0)  # the left-out row itself is not scored
-            weight = 1.0 / (1.0 - leverage)
-            weight *= weight
-        np.fill_diagonal(weight, 0.0)
-        bad = (~np.isfinite(weight) | (leverage >= 1.0 - 1e-10)).any(axis=1)
-        weight = np.where(np.isfinite(weight), weight, 0.0)
-        cross = weight * share
-        press = (
-            weight @ resid**2
-            + 2.0 * resid * (cross @ resid)
-            + resid**2 * (cross * share).sum(axis=1)[:, None]
-        )
-        press[bad] = np.inf
+        press = np.empty(target.shape)
+        _fold_press(np.ascontiguousarray(q), h, np.ascontiguousarray(resid), press)
         with np.errstate(divide="ignore", invalid="ignore"):
             estimate = target - resid / (1.0 - h)[:, None]
         for k, c in enumerate(columns):
@@ -469,6 +457,54 @@ class _FoldPress:
             where = columns == c
             out[where] = table[subset, int(c)][folds[where]]
         return out
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _fold_press(q, h, resid, press):  # pragma: no cover - compiled
+    """PRESS of each fold f (row f left out) of every column of ``resid``, into ``press``.
+
+    With the full fit's orthonormal basis ``q`` (n x k), leverages ``h`` and residuals ``resid``
+    (n x m), the fold's leverage and residual of row i follow by Sherman and Morrison's rank-one
+    update, h_i' = h_i + H_fi^2 / (1 - h_f) and e_i' = e_i + H_fi e_f / (1 - h_f), with
+    H_fi = q_f . q_i; PRESS_f = sum over i != f of (e_i' / (1 - h_i'))^2. A fold where some row
+    reaches leverage 1 (or a non-finite weight) gets an infinite PRESS. Each fold is computed
+    alone, one row of H at a time, in a fixed order.
+    """
+    n, k = q.shape
+    m = resid.shape[1]
+    squares = np.empty(m)
+    crossed = np.empty(m)
+    for f in range(n):
+        one = 1.0 - h[f]
+        bad = False
+        squares[:] = 0.0
+        crossed[:] = 0.0
+        shared = 0.0
+        for i in range(n):
+            if i == f:
+                continue
+            hat = 0.0
+            for c in range(k):
+                hat += q[f, c] * q[i, c]
+            share = hat / one  # H_fi / (1 - h_f)
+            leverage = h[i] + hat * share
+            weight = 1.0 / (1.0 - leverage)
+            weight *= weight
+            if not np.isfinite(weight) or leverage >= 1.0 - 1e-10:
+                bad = True
+                break
+            cross = weight * share
+            shared += cross * share
+            for c in range(m):
+                value = resid[i, c]
+                squares[c] += weight * value * value
+                crossed[c] += cross * value
+        for c in range(m):
+            if bad:
+                press[f, c] = np.inf
+            else:
+                own = resid[f, c]
+                press[f, c] = squares[c] + 2.0 * own * crossed[c] + own * own * shared
 
 
 def _loo_by_updates(z: np.ndarray, logs: np.ndarray) -> np.ndarray:
@@ -652,8 +688,7 @@ def _donor_loo(data: _GaugedData, method: str, pool: Sequence[str]) -> pd.DataFr
         for row, target in enumerate(targets):
             dropped[row, [position[b] for b in data.dropped(target) if b in position]] = True
         weights = fold_donor_weights(data.donors[method], train, targets, dropped)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean[start : start + block] = (weights @ filled) / (weights @ known)
+        mean[start : start + block] = _weighted_means(weights, filled, known)
     return pd.DataFrame(mean, index=pd.Index(pool, name="basin_id"), columns=data.observed.columns)
 
 
@@ -663,14 +698,36 @@ def _donor_estimate(
     """Inverse-distance weighted mean of the donors' observed statistics (weights renormalised
     over the donors that have the statistic)."""
     train = sorted(str(b) for b in train)  # ties broken by basin id, as the transfer does
-    weights = donor_weights(data.donors[method], train, list(targets))
+    targets = list(targets)
     values = data.observed.loc[train].to_numpy(dtype=float)
     known = np.isfinite(values)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = (weights @ np.where(known, values, 0.0)) / (weights @ known)
+    filled = np.where(known, values, 0.0)
+    mean = np.empty((len(targets), values.shape[1]))
+    block = max(1, FOLD_BLOCK_CELLS // max(len(train), 1))  # never all targets x all donors
+    for start in range(0, len(targets), block):
+        weights = donor_weights(data.donors[method], train, targets[start : start + block])
+        mean[start : start + block] = _weighted_means(weights, filled, known)
     return pd.DataFrame(
-        mean, index=pd.Index(list(targets), name="basin_id"), columns=data.observed.columns
+        mean, index=pd.Index(targets, name="basin_id"), columns=data.observed.columns
     )
+
+
+def _weighted_means(weights: np.ndarray, filled: np.ndarray, known: np.ndarray) -> np.ndarray:
+    """(rows, statistics) weighted means of the donors' ``filled`` values, the weights
+    renormalised over the donors where the statistic is ``known`` (NaN where none is).
+
+    Only each row's donors (its non-zero weights) are summed, one after another in column
+    order, so a row's value does not depend on the rows computed beside it.
+    """
+    rows, donors = np.nonzero(weights)
+    weight = weights[rows, donors]
+    out = np.empty((len(weights), filled.shape[1]))
+    for column in range(filled.shape[1]):
+        total = np.bincount(rows, weight * filled[donors, column], minlength=len(weights))
+        share = np.bincount(rows, weight * known[donors, column], minlength=len(weights))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out[:, column] = total / share
+    return out
 
 
 @dataclass(frozen=True)
@@ -742,7 +799,7 @@ def _great_circle(donors: np.ndarray, points: np.ndarray) -> np.ndarray:
 
 def _nearest_weights(distance: np.ndarray, k: int, power: float) -> np.ndarray:
     """Inverse-distance weights of the k nearest in each row (ties in column order)."""
-    order = np.argsort(distance, axis=1, kind="stable")[:, :k]
+    order = k_nearest(distance, k)
     nearest = np.take_along_axis(distance, order, axis=1)
     weights = np.zeros_like(distance)
     np.put_along_axis(weights, order, inverse_distance_weights(nearest, power), axis=1)
@@ -779,10 +836,10 @@ def _fold_squared_distance(donors: np.ndarray, points: np.ndarray, dropped: np.n
     """Squared distances (targets, donors) in attributes standardised per target with the mean
     and sample standard deviation of the donors it keeps (attributes constant there skipped)."""
     shifted = donors - donors.mean(axis=0)
-    kept = (~dropped).astype(float)
-    count = kept.sum(axis=1, keepdims=True)
-    first = kept @ shifted
-    second = kept @ shifted**2
+    count = (dropped.shape[1] - dropped.sum(axis=1, keepdims=True)).astype(float)
+    rows, out = np.nonzero(dropped)  # downdated: the sums over all less the dropped rows'
+    first = shifted.sum(axis=0) - _row_sums(rows, shifted[out], len(dropped))
+    second = (shifted**2).sum(axis=0) - _row_sums(rows, shifted[out] ** 2, len(dropped))
     variance = (second - first**2 / count) / (count - 1.0)
     spread = np.abs(shifted).max(axis=0) ** 2
     varying = variance > CONSTANT_SHARE * np.maximum(spread, np.finfo(float).tiny)
@@ -792,6 +849,14 @@ def _fold_squared_distance(donors: np.ndarray, points: np.ndarray, dropped: np.n
         step = (points[:, None, column] - donors[None, :, column]) / scale
         squared += np.where(varying[:, column, None], step**2, 0.0)
     return squared
+
+
+def _row_sums(rows: np.ndarray, values: np.ndarray, n_rows: int) -> np.ndarray:
+    """(n_rows, columns) sums of ``values`` grouped by ``rows``, in their order (a row's sum
+    does not depend on the other rows)."""
+    return np.column_stack(
+        [np.bincount(rows, values[:, c], minlength=n_rows) for c in range(values.shape[1])]
+    ).reshape(n_rows, values.shape[1])
 
 
 # --------------------------------------------------------------------------------------------

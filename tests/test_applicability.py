@@ -176,3 +176,19 @@ def test_failing_targets_get_the_nearest_basins_errors_in_their_bounds(demo_resu
     pd.testing.assert_series_equal(
         width["strict"].loc[list(others)], width["regional"].loc[list(others)]
     )
+
+
+@pytest.mark.parametrize("rows", [1, 3, 40])
+def test_distance_searches_do_not_depend_on_the_block_of_rows(cloud, rows):
+    z = ((cloud - cloud.mean()) / cloud.std(ddof=1)).to_numpy()
+    targets = z[:7] * 1.3 + 0.05
+    cells = rows * len(z) * z.shape[1]  # blocks of `rows` rows
+    whole = applicability_module._distances(targets, z)  # every target x donor at once
+    among = applicability_module._distances(z, z)
+    np.fill_diagonal(among, np.inf)
+    nearest, limit = applicability_module._nearest_donor(z, targets, cells=cells)
+    np.testing.assert_array_equal(nearest, whole.min(axis=1))
+    assert limit == among.min(axis=1).max()
+    order = applicability_module._nearest_order(targets, z, 5, cells=cells)
+    np.testing.assert_array_equal(order, np.argsort(whole, axis=1, kind="stable")[:, :5])
+    assert applicability_module._row_blocks(40, 40, 3, cells)[0] == slice(0, min(rows, 40))

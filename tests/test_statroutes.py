@@ -82,6 +82,48 @@ def test_fast_leave_one_out_equals_refitting_every_fold(seed):
     assert np.isnan(fast).sum() == 4
 
 
+def _whole_hat_press(design, target):
+    """Every fold's PRESS from the whole n x n hat matrix at once (the former route)."""
+    q, _ = np.linalg.qr(design)
+    hat = q @ q.T
+    h = np.diag(hat).copy()
+    resid = target - q @ (q.T @ target)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        share = hat / (1.0 - h)[:, None]
+        leverage = h[None, :] + hat * share
+        np.fill_diagonal(leverage, 0.0)
+        weight = 1.0 / (1.0 - leverage)
+        weight *= weight
+    np.fill_diagonal(weight, 0.0)
+    bad = (~np.isfinite(weight) | (leverage >= 1.0 - 1e-10)).any(axis=1)
+    weight = np.where(np.isfinite(weight), weight, 0.0)
+    cross = weight * share
+    press = weight @ resid**2 + 2.0 * resid * (cross @ resid)
+    press += resid**2 * (cross * share).sum(axis=1)[:, None]
+    press[bad] = np.inf
+    return press
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_compiled_fold_press_equals_the_whole_hat_matrix(seed):
+    # Two routes to every fold's PRESS: the compiled pass one fold at a time (no n x n
+    # matrix) against the whole hat matrix; the last two basins alone carry the third
+    # attribute, so leaving out one of them leaves the other at leverage 1 (infinite PRESS).
+    rng = np.random.default_rng(seed)
+    n = 30
+    design = np.column_stack([np.ones(n), rng.normal(size=(n, 2)), np.zeros(n)])
+    design[-2:, 3] = [1.0, 2.0]
+    target = rng.normal(size=(n, 5))
+    cache = sr._FoldPress(design, target)
+    cache.fill({(1, 2, 3): set(range(5)), (2,): {0, 3}})
+    expected = _whole_hat_press(design, target)
+    got = np.column_stack([cache.press[(1, 2, 3), c] for c in range(5)])
+    assert np.isinf(expected[-2:]).all() and np.isfinite(expected[:-2]).all()
+    np.testing.assert_allclose(got, expected, rtol=1e-12)
+    single = _whole_hat_press(design[:, [0, 2]], target)
+    np.testing.assert_allclose(cache.press[(2,), 3], single[:, 3], rtol=1e-12)
+
+
 def test_regression_route_skips_statistics_known_at_too_few_basins():
     z, logs = _planted(n=12)
     logs[3:, 1] = np.nan  # the second statistic known at 3 basins only
@@ -267,3 +309,38 @@ def test_leave_one_out_never_uses_the_left_out_basins_flow(demo_result):
 def test_a_route_can_be_forced(demo_result, route, allowed):
     stats = _statistics(demo_result, route=route)
     assert set(stats.summary.loc[stats.summary["chosen"], "route"]) <= allowed
+
+
+@pytest.mark.parametrize("method", ["similarity", "proximity"])
+def test_donor_routes_do_not_depend_on_the_block_of_targets(method, monkeypatch):
+    # The donor routes take their targets a block at a time (never all targets x all donors):
+    # blocks of 1 and 3 targets give the numbers of one block holding them all.
+    from types import SimpleNamespace
+
+    table, _ = _donor_region(n=15)
+    columns = (
+        ["aridity", "slope_mean"] if method == "similarity" else ["centroid_lon", "centroid_lat"]
+    )
+    space = sr.DonorSpace(method, table[columns], n_donors=4, power=2.0)
+    rng = np.random.default_rng(8)
+    observed = pd.DataFrame(
+        rng.lognormal(size=(15, 3)), index=table.index, columns=["mean_flow", "q95", "bfi"]
+    )
+    observed.iloc[2, 1] = np.nan  # a statistic unknown at one donor
+    data = SimpleNamespace(
+        observed=observed.iloc[:10],
+        donors={method: space},
+        dropped=lambda target: {target},
+    )
+    train, targets = list(table.index[:10]), list(table.index[10:])
+    runs = {}
+    for rows in (1, 3, 15):
+        monkeypatch.setattr(sr, "FOLD_BLOCK_CELLS", rows * len(train))
+        runs[rows] = (
+            sr._donor_estimate(data, method, train, targets),
+            sr._donor_loo(data, method, train),
+        )
+    for rows in (1, 3):
+        pd.testing.assert_frame_equal(runs[rows][0], runs[15][0], check_exact=True)
+        pd.testing.assert_frame_equal(runs[rows][1], runs[15][1], check_exact=True)
+    assert np.isfinite(runs[15][0].to_numpy()).all()

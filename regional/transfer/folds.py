@@ -226,7 +226,7 @@ def _blocks(n_targets: int, n_pool: int):
         yield slice(start, min(start + size, n_targets))
 
 
-def _k_nearest(distance: np.ndarray, k: int) -> np.ndarray:
+def k_nearest(distance: np.ndarray, k: int) -> np.ndarray:
     """Column indices of the k smallest of each row, ordered by (distance, column): the
     estimator's stable sort on distance over rows sorted by basin id."""
     if k >= distance.shape[1]:
@@ -282,7 +282,7 @@ class _DonorFolds:
             keep = block_rows.ravel() >= 0
             distance[flat[keep], block_rows.ravel()[keep]] = np.inf
             ks = np.minimum(self.settings.n_donors, n_f[index])
-            order = _k_nearest(distance, int(ks.max()))
+            order = k_nearest(distance, int(ks.max()))
             for k in np.unique(ks):
                 these = np.flatnonzero(ks == k)
                 chosen = order[these, :k]

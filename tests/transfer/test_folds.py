@@ -8,7 +8,7 @@ import pytest
 from refit_route import refit_every_fold
 
 from regional.transfer.foldpool import FoldPool, FoldSettings, Moments
-from regional.transfer.folds import _k_nearest, fold_donations
+from regional.transfer.folds import fold_donations, k_nearest
 
 METHODS = ("regression", "similarity", "proximity", "blended", "median")
 TRANSFORMS = {"k_per_day": "log", "melt_factor": "log", "threshold_c": "identity"}
@@ -125,7 +125,7 @@ def test_k_nearest_orders_ties_by_column_as_a_stable_sort():
     distance[::7, :] = 1.0  # whole rows tied
     for k in (1, 3, 10, 30):
         expected = np.argsort(distance, axis=1, kind="stable")[:, :k]
-        np.testing.assert_array_equal(_k_nearest(distance, k), expected)
+        np.testing.assert_array_equal(k_nearest(distance, k), expected)
 
 
 def test_median_folds_of_even_and_odd_size_equal_the_refit(make_region):
