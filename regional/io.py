@@ -1126,9 +1126,28 @@ def _table_to_csv(table: pd.DataFrame | TableParts, stream) -> None:
     """Write a table (or its parts) as CSV, without the index when it is a RangeIndex."""
     if isinstance(table, TableParts):
         for number, part in enumerate(table.parts()):
-            part.to_csv(stream, index=False, header=number == 0)
+            _float_text(part).to_csv(stream, index=False, header=number == 0)
         return
-    table.to_csv(stream, index=not isinstance(table.index, pd.RangeIndex))
+    _float_text(table).to_csv(stream, index=not isinstance(table.index, pd.RangeIndex))
+
+
+def _float_text(table: pd.DataFrame) -> pd.DataFrame:
+    """``table`` with each float64 column replaced by the text pandas would write for it.
+
+    pandas writes a float64 value as numpy's shortest round-trip text, the same as Python's
+    ``repr`` (and "" for NaN); Python's ``repr`` makes it about twice as fast, which is most
+    of the time of writing a table of daily flows. The file's bytes are the same (tested).
+    """
+    floats = [i for i, dtype in enumerate(table.dtypes) if dtype == np.float64]
+    if not floats:
+        return table
+    table = table.copy(deep=False)
+    for i in floats:
+        values = table.iloc[:, i].to_numpy()
+        text = np.array(list(map(repr, values.tolist())), dtype=object)
+        text[np.isnan(values)] = ""
+        table.isetitem(i, text)
+    return table
 
 
 def _fill_run_folder(staging, tables, layers, crs, figures, report, manifest) -> None:

@@ -275,6 +275,44 @@ def _write(folder, tag: str) -> None:
     )
 
 
+def test_run_folder_tables_are_the_bytes_pandas_writes(tmp_path):
+    # two routes to one file: the results folder's CSV writer (float64 columns formatted by
+    # Python's repr) and pandas' own to_csv, on values whose text is easy to get wrong
+    rng = np.random.default_rng(11)
+    tricky = [np.nan, np.inf, -np.inf, -0.0, 0.0, 1e-7, 1e-4, 1.5e17, 1e16, 0.1 + 0.2, 5e-324]
+    floats = np.concatenate([tricky, rng.lognormal(0.0, 3.0, 200), -rng.random(50)])
+    n = len(floats)
+    table = pd.DataFrame(
+        {
+            "basin_id": [f"b,{i}" if i % 7 == 0 else f"b{i}" for i in range(n)],
+            "date": pd.date_range("2001-01-01", periods=n, freq="D"),
+            "flow_mm": floats,
+            "flow_f32": floats.astype(np.float32),
+            "count": np.arange(n),
+            "flag": np.arange(n) % 3 == 0,
+            "level": 0.9,
+        }
+    )
+    indexed = table.set_index("basin_id")
+    parts = io.TableParts(
+        lambda: iter([table.iloc[:100], table.iloc[100:].reset_index(drop=True)])
+    )
+    io.write_run_folder(
+        tmp_path / "results",
+        tables={"whole.csv": table, "indexed.csv": indexed, "parts.csv": parts},
+        layers={},
+        crs="EPSG:4326",
+        figures={},
+        report=None,
+        manifest={"regional": "test"},
+    )
+    folder = tmp_path / "results"
+    assert (folder / "whole.csv").read_text() == table.to_csv(index=False)
+    assert (folder / "indexed.csv").read_text() == indexed.to_csv()
+    assert (folder / "parts.csv").read_text() == table.to_csv(index=False)
+    assert table["flow_mm"].dtype == np.float64  # the table given is not changed
+
+
 def _dead_pid() -> int:
     import subprocess
     import sys
