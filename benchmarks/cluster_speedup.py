@@ -42,6 +42,7 @@ def _shipping(chunks, context, results) -> dict:
     return {
         "chunks": len(chunks),
         "scattered_bytes": len(pickle.dumps(context)),
+        "sent_bytes": sum(len(pickle.dumps(list(c))) for c in chunks),
         "gathered_bytes": sum(len(pickle.dumps(r)) for r in results),
     }
 
@@ -66,8 +67,21 @@ def _measure_shipping(record: list) -> None:
             record.append(_shipping(chunks, context, results))
             yield results
 
+    started = compute.DaskExecutor.start_map
+
+    def counted_start(self, function, chunks, context):
+        wait = started(self, function, chunks, context)
+
+        def gather():
+            results = wait()
+            record.append(_shipping(chunks, context, results))
+            return results
+
+        return gather
+
     compute.DaskExecutor.map = counted
     compute.DaskExecutor.map_batches = counted_batches
+    compute.DaskExecutor.start_map = counted_start
 
 
 def _cpu_seconds() -> float:
@@ -91,13 +105,57 @@ def _measure_worker_cpu(record: dict) -> None:
     compute.DaskExecutor.close = close
 
 
+def _process_cpu_seconds() -> dict[str, float]:
+    """CPU seconds (user + system) of this process and of all its descendants (on a local
+    cluster: the nanny and worker processes), read without asking the cluster anything."""
+    import psutil
+
+    me = psutil.Process()
+    children = 0.0
+    for process in me.children(recursive=True):
+        try:
+            times = process.cpu_times()
+        except psutil.Error:
+            continue
+        children += times.user + times.system
+    return {"client": _cpu_seconds(), "children": children}
+
+
+class _StageClock:
+    """Stand-in for the pipeline's ``time`` module: every ``perf_counter()`` the pipeline
+    calls (one at the start and one at the end of each stage) also notes the CPU seconds of
+    this process and of its children, so each stage's work is split into client and workers."""
+
+    def __init__(self) -> None:
+        self.marks: list[tuple[float, dict[str, float]]] = []
+
+    def perf_counter(self) -> float:
+        now = time.perf_counter()
+        self.marks.append((now, _process_cpu_seconds()))
+        return now
+
+
+def _stage_cpu(timings: dict, marks: list) -> dict[str, dict[str, float]]:
+    """Per stage: CPU seconds of the client and of its children between its two marks."""
+    if len(marks) != 2 * len(timings):
+        return {}
+    out = {}
+    for number, stage in enumerate(timings):
+        (_, start), (_, end) = marks[2 * number], marks[2 * number + 1]
+        out[stage] = {part: end[part] - start[part] for part in start}
+    return out
+
+
 def child(folder: str, workers: int) -> None:
-    """Run the chain on the region in ``folder``; print one JSON line."""
+    """Run the chain on the region in ``folder`` and write its outputs, as ``regional run``
+    does (one executor for both: on the cluster the workers draw the figures); print one JSON
+    line."""
     import warnings
 
+    from regional import pipeline
     from regional.compute import keep_freed_memory
+    from regional.config import load_settings
     from regional.outputs import write_outputs
-    from regional.pipeline import run
 
     warnings.simplefilter("ignore")
     keep_freed_memory()
@@ -106,17 +164,35 @@ def child(folder: str, workers: int) -> None:
     cpu = {"workers_cpu_s": 0.0}
     _measure_worker_cpu(cpu)
     out = Path(folder) / f"results_{workers}"
+    clock = _StageClock()
+    pipeline.time = clock
     cpu_start = _cpu_seconds()
     start = time.perf_counter()
-    result = run(folder, workers=workers or None)
-    ran = time.perf_counter()
-    write_outputs(result, out)
+    settings = load_settings(folder)
+    executor = pipeline.open_executor(settings, workers=workers or None)
+    try:
+        result = pipeline.run(settings, executor=executor)
+        ran = time.perf_counter()
+        before_outputs = _process_cpu_seconds()
+        write_outputs(result, out, executor=executor)
+        written = time.perf_counter()
+        after = _process_cpu_seconds()
+        children = clock.marks[-1][1]["children"] if clock.marks else 0.0
+        children += after["children"] - before_outputs["children"]
+    finally:
+        executor.close()
     seconds = time.perf_counter() - start
     timings = dict(result.timings)
-    timings["outside the stages (cluster start and close)"] = (ran - start) - sum(timings.values())
-    timings["outputs"] = seconds - (ran - start)
+    stage_cpu = _stage_cpu(timings, clock.marks)
+    stage_cpu["outputs"] = {p: after[p] - before_outputs[p] for p in after}
+    timings["outside the stages (cluster start and close)"] = (
+        seconds - (written - ran) - sum(timings.values())
+    )
+    timings["outputs"] = written - ran
     cpu["client_cpu_s"] = _cpu_seconds() - cpu_start
-    print(json.dumps({"seconds": seconds, "timings": timings, "shipping": shipping, **cpu}))
+    row = {"seconds": seconds, "timings": timings, "stage_cpu": stage_cpu, "shipping": shipping}
+    row["children_cpu_s"] = children
+    print(json.dumps(row | cpu))
 
 
 def _spin(_: int = 0) -> float:
@@ -188,6 +264,21 @@ def main() -> None:
             f"{row['load_before']:.1f}, two processes did {row['capacity']:.2f} x the work of "
             f"one)  [{parts}]"
         )
+    print("CPU seconds per stage, in process -> cluster client + cluster worker processes:")
+    for stage, local_cpu in local["stage_cpu"].items():
+        remote = cluster["stage_cpu"].get(stage)
+        if remote is None:
+            continue
+        print(
+            f"  {stage:22s} {local_cpu['client']:6.1f} s -> {remote['client']:6.1f} s + "
+            f"{remote['children']:6.1f} s (wall {local['timings'][stage]:6.1f} s -> "
+            f"{cluster['timings'][stage]:6.1f} s)"
+        )
+    in_stages = sum(cpu["children"] for cpu in cluster["stage_cpu"].values())
+    print(
+        f"  worker processes outside the stages (start, imports, warm-up): "
+        f"{cluster['children_cpu_s'] - in_stages:.1f} s"
+    )
     work = cluster["client_cpu_s"] + cluster["workers_cpu_s"]
     print(
         f"work (CPU seconds, which the load changes far less than wall time): in process "
@@ -206,10 +297,11 @@ def main() -> None:
     )
     for stage in cluster["shipping"]:
         scattered = stage["scattered_bytes"] / 1e3
+        sent = stage["sent_bytes"] / stage["chunks"] / 1e3
         per_chunk = stage["gathered_bytes"] / stage["chunks"] / 1e3
         print(
             f"  stage of {stage['chunks']} chunks: scattered once {scattered:.0f} kB; "
-            f"gathered {per_chunk:.0f} kB per chunk"
+            f"sent {sent:.0f} kB and gathered {per_chunk:.0f} kB per chunk"
         )
 
 

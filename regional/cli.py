@@ -272,11 +272,17 @@ def _positive_int(text: str) -> int:
 
 def _run_all(args: argparse.Namespace) -> int:
     from regional.outputs import write_outputs
+    from regional.pipeline import open_executor
 
     settings = _settings(args.region)
     target = _checked_out_folder(args, settings, update=False)
-    result = _run_with_progress(args, settings)
-    folder = write_outputs(result, target)
+    # one executor for the chain and the figures: on a cluster the workers draw them too
+    executor = open_executor(settings, scheduler=args.scheduler, workers=args.workers)
+    try:
+        result = _run_with_progress(args, settings, executor=executor)
+        folder = write_outputs(result, target, executor=executor)
+    finally:
+        executor.close()
     print(format_run_summary(result))
     print(f"\nresults written to {folder}")
     print(CAUTION)
@@ -299,7 +305,7 @@ def _checked_out_folder(args: argparse.Namespace, settings: Settings, *, update:
     )
 
 
-def _run_with_progress(args: argparse.Namespace, settings: Settings):
+def _run_with_progress(args: argparse.Namespace, settings: Settings, *, executor=None):
     from regional.pipeline import run
 
     bars: dict[str, object] = {}
@@ -319,7 +325,13 @@ def _run_with_progress(args: argparse.Namespace, settings: Settings):
             bar.close()
 
     try:
-        return run(settings, scheduler=args.scheduler, workers=args.workers, progress=progress)
+        return run(
+            settings,
+            scheduler=args.scheduler,
+            workers=args.workers,
+            progress=progress,
+            executor=executor,
+        )
     finally:
         for bar in bars.values():
             bar.close()

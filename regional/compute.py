@@ -14,6 +14,7 @@ import ctypes
 import logging
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator, Sequence
+from functools import partial
 from typing import Any
 
 from regional.errors import RunError
@@ -69,11 +70,16 @@ WORKER_ENVIRONMENT = {
 (``distributed`` otherwise starts workers with a 64 KiB trim threshold)."""
 
 
-def warm_up() -> None:
-    """Set the allocator and load the compiled kernels (run on each new worker before any task)."""
+def warm_up(modules: Sequence[str] = ()) -> None:
+    """Set the allocator, import ``modules`` and load the compiled kernels (run on each new
+    worker as it starts, before its first task)."""
+    import importlib
+
     import numpy as np
 
     keep_freed_memory()
+    for name in modules:
+        importlib.import_module(name)
 
     from regional.models import model_names, simulate
     from regional.models.simulate import get_model
@@ -83,6 +89,11 @@ def warm_up() -> None:
         forcing = np.ones(3)
         simulate(name, forcing, forcing, params)
         simulate(name, forcing, forcing, params, temp=forcing)
+
+
+async def _warm_up_soon(modules: Sequence[str]) -> None:
+    """:func:`warm_up` as a coroutine, which a Dask worker runs without the client waiting."""
+    warm_up(modules)
 
 
 TASKS_PER_WORKER = 4
@@ -139,6 +150,13 @@ class InProcessExecutor:
         for function, chunks, context in batches:
             yield self.map(function, chunks, context)
 
+    def start_map(
+        self, function: ChunkFn, chunks: Sequence[Sequence[Any]], context: Any
+    ) -> Callable[[], list[Any]]:
+        """:meth:`map` to be waited for later: here the chunks run when the returned call is
+        made (on a cluster they run meanwhile)."""
+        return partial(self.map, function, chunks, context)
+
     def close(self) -> None:
         """Nothing to release."""
 
@@ -155,6 +173,9 @@ class DaskExecutor:
         Worker processes of the local cluster (default 2), one thread each.
     connect_timeout_s : float, default 10
         How long to wait for the scheduler to answer, in seconds.
+    worker_modules : sequence of str
+        Modules every worker imports as it starts (:func:`warm_up`, which runs without
+        blocking this process: the caller goes on while the workers import).
 
     Raises
     ------
@@ -170,6 +191,7 @@ class DaskExecutor:
         *,
         workers: int | None = None,
         connect_timeout_s: float = CONNECT_TIMEOUT_S,
+        worker_modules: Sequence[str] = (),
     ) -> None:
         try:
             from distributed import Client, LocalCluster
@@ -193,7 +215,7 @@ class DaskExecutor:
                     silence_logs=logging.ERROR,
                 )
             self.client = Client(self._cluster)
-        self.client.run(warm_up)
+        self.client.run(_warm_up_soon, tuple(worker_modules), wait=False)
         logger.info("dask client: %s", self.client)
 
     def map(
@@ -258,6 +280,22 @@ class DaskExecutor:
             submit_next()
             yield results
 
+    def start_map(
+        self, function: ChunkFn, chunks: Sequence[Sequence[Any]], context: Any
+    ) -> Callable[[], list[Any]]:
+        """Scatter ``context`` once and submit one task per chunk now; the returned call waits
+        for the results and gives them in chunk order (the caller works meanwhile)."""
+        shared = self.client.scatter(context, broadcast=True, hash=False)
+        futures = [self.client.submit(function, list(c), shared, pure=False) for c in chunks]
+
+        def gather() -> list[Any]:
+            del shared_held[:]  # the tasks hold the context now; the client lets it go
+            return self.client.gather(futures)
+
+        shared_held = [shared]
+
+        return gather
+
     @property
     def n_workers(self) -> int:
         """Workers connected to the scheduler now (at least 1)."""
@@ -293,8 +331,15 @@ def make_executor(
     *,
     workers: int | None = None,
     connect_timeout_s: float = CONNECT_TIMEOUT_S,
+    worker_modules: Sequence[str] = (),
 ):
-    """In-process unless a scheduler address or a worker count asks for Dask."""
+    """In-process unless a scheduler address or a worker count asks for Dask (whose workers
+    import ``worker_modules`` as they start)."""
     if scheduler or workers:
-        return DaskExecutor(scheduler, workers=workers, connect_timeout_s=connect_timeout_s)
+        return DaskExecutor(
+            scheduler,
+            workers=workers,
+            connect_timeout_s=connect_timeout_s,
+            worker_modules=worker_modules,
+        )
     return InProcessExecutor()

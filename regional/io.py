@@ -901,8 +901,8 @@ def write_run_folder(
     tables: Mapping[str, pd.DataFrame | TableParts],
     layers: Mapping[str, gpd.GeoDataFrame],
     crs: object,
-    figures: Mapping[str, bytes],
-    report: str | None,
+    figures: Mapping[str, bytes] | Callable[[], Mapping[str, bytes]],
+    report: str | None | Callable[[], str | None],
     manifest: Mapping[str, object],
     files: Mapping[str, bytes | pd.DataFrame] | None = None,
 ) -> Path:
@@ -926,10 +926,11 @@ def write_run_folder(
         Layer name -> GeoDataFrame for ``results.gpkg``.
     crs : pyproj.CRS or str
         CRS given to layers that carry none.
-    figures : mapping
-        Name -> PNG bytes, written to ``figures/<name>.png``.
-    report : str or None
-        HTML text for ``report.html``.
+    figures : mapping or callable
+        Name -> PNG bytes, written to ``figures/<name>.png``; or a call giving them, made
+        once the tables and layers are written (figures drawn elsewhere meanwhile).
+    report : str, None or callable
+        HTML text for ``report.html``; or a call giving it, made after the figures.
     manifest : mapping
         Written as ``run.json``, with ``tool`` and ``format`` added (the ownership marker).
     files : mapping, optional
@@ -1163,10 +1164,12 @@ def _fill_run_folder(staging, tables, layers, crs, figures, report, manifest) ->
             engine="pyogrio",
             dataset_options=GPKG_OPTIONS,
         )
+    figures = figures() if callable(figures) else figures
     if figures:
         (staging / "figures").mkdir()
         for name, png in figures.items():
             (staging / "figures" / f"{name}.png").write_bytes(png)
+    report = report() if callable(report) else report
     if report is not None:
         (staging / "report.html").write_text(report, encoding="utf-8")
     (staging / MANIFEST).write_bytes(_manifest_bytes(manifest))

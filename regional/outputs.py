@@ -8,7 +8,9 @@ interrupted run never touches the previous results.
 from __future__ import annotations
 
 import datetime as dt
+from collections.abc import Callable
 from dataclasses import fields, is_dataclass, replace
+from functools import cache, partial
 from pathlib import Path
 from typing import Any
 
@@ -16,12 +18,14 @@ import geopandas as gpd
 import pandas as pd
 
 from regional import __version__, io
+from regional.compute import InProcessExecutor
 from regional.crossval import CALIBRATED
 from regional.fittedfiles import FOLDER, META, fitted_files
 from regional.predicted import Prediction, flow_parts
 from regional.region import Region
-from regional.report import figure_drawers, render_report
+from regional.report import figure_jobs, render_report
 from regional.report import figures as plots
+from regional.report.jobs import draw_jobs, job_series, without_series
 from regional.result import RunResult, software_versions
 from regional.reuse import with_basin_columns, with_geometry, with_level
 from regional.screen import Screening
@@ -29,7 +33,9 @@ from regional.screen import Screening
 SCORE_NAMES = ("nse", "kge", "kge_r", "kge_alpha", "kge_beta", "log_nse", "pbias", "n_days")
 
 
-def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True) -> Path:
+def write_outputs(
+    result: RunResult, folder: str | Path, *, figures: bool = True, executor=None
+) -> Path:
     """Write every output of a run into ``folder`` (replaced only once complete).
 
     Parameters
@@ -42,6 +48,10 @@ def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True
         :func:`regional.io.check_output_folder`).
     figures : bool, default True
         Draw the figures and the report (False: tables and layers only).
+    executor : optional
+        Where the figures are drawn (:mod:`regional.compute`): default in this process, one
+        at a time; on a cluster each figure is a task (:func:`start_figures`) and the tables
+        and layers are built here meanwhile.
 
     Returns
     -------
@@ -51,25 +61,53 @@ def write_outputs(result: RunResult, folder: str | Path, *, figures: bool = True
     folder = _checked(result, folder, update=False)
     now = _now()
     result = replace(result, stages={stage: now for stage in _stages_present(result)})
-    tables = result_tables(result)
-    layers = result_layers(result)
-    images: dict[str, bytes] = {}
-    report = None
+    images = report = None
     if figures:
-        # one figure in memory at a time: drawn, rendered to PNG, dropped
-        images = {name: io.figure_png(draw()) for name, draw in figure_drawers(result).items()}
-        report = render_report(result, images)
-    manifest = run_manifest(result)
+        # started now, taken once the tables and layers are written: on a cluster the workers
+        # draw meanwhile; in process one figure at a time (drawn, rendered to PNG, dropped)
+        images = cache(start_figures(result, executor))
+        report = partial(_report, result, images)
     return io.write_run_folder(
         Path(folder),
-        tables=tables,
-        layers=layers,
+        tables=result_tables(result),
+        layers=result_layers(result),
         crs=result.region.basins.crs,
-        figures=images,
+        figures=images or {},
         report=report,
-        manifest=manifest,
+        manifest=run_manifest(result),
         files=fitted_region_files(result),
     )
+
+
+def _report(result: RunResult, images: Callable[[], dict[str, bytes]]) -> str:
+    return render_report(result, images())
+
+
+def start_figures(result: RunResult, executor=None) -> Callable[[], dict[str, bytes]]:
+    """Start drawing every figure of a run; the returned call waits for their PNG images
+    (figure name -> bytes, in report order).
+
+    In this process (no executor, or an in-process one) the figures are drawn when the call
+    is made, one at a time from the run itself (drawn, rendered, dropped: one figure in
+    memory). On a cluster every figure is a task: the run without its daily series is
+    scattered once and each task receives the daily series its figure reads
+    (:mod:`regional.report.jobs`), so the workers draw while the caller goes on.
+    """
+    executor = executor if executor is not None else InProcessExecutor()
+    jobs = figure_jobs(result)
+    names = [job.name for job in jobs]
+    if executor.name == "dask":
+        jobs = sorted(jobs, key=lambda job: -job.panels)  # the costliest first (stable)
+        chunks = [[(job, job_series(job, result))] for job in jobs]
+        wait = executor.start_map(draw_jobs, chunks, without_series(result))
+    else:
+        wait = executor.start_map(draw_jobs, [[(job, None)] for job in jobs], result)
+
+    def images() -> dict[str, bytes]:
+        drawn = {job.name: png for job, [png] in zip(jobs, wait(), strict=True)}
+        return {name: drawn[name] for name in names}
+
+    return images
 
 
 def fitted_region_files(result: RunResult) -> dict[str, bytes | pd.DataFrame]:

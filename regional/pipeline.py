@@ -52,12 +52,40 @@ LOO_CHUNK = 8
 Progress = Callable[[str, int, int], None] | None
 
 
+WORKER_MODULES = ("regional.pipeline", "regional.outputs")
+"""Imported by every worker of a cluster as it starts (the tasks' functions live there), so
+the first tasks do not pay the imports."""
+
+
+def open_executor(settings: Settings, *, scheduler: str | None = None, workers: int | None = None):
+    """The executor a run's settings ask for (:func:`regional.compute.make_executor`):
+    in-process, or a Dask cluster whose workers import the chain's modules as they start.
+
+    Parameters
+    ----------
+    settings : Settings
+        ``[compute]`` gives the scheduler, the worker count and the connection wait.
+    scheduler : str, optional
+        Dask scheduler address; overrides ``[compute] scheduler``.
+    workers : int, optional
+        Start a local Dask cluster of this many worker processes; overrides
+        ``[compute] workers``.
+    """
+    return make_executor(
+        scheduler or settings.compute.scheduler,
+        workers=workers or settings.compute.workers,
+        connect_timeout_s=settings.compute.connect_timeout_s,
+        worker_modules=WORKER_MODULES,
+    )
+
+
 def run(
     source: str | Path | Settings,
     *,
     scheduler: str | None = None,
     workers: int | None = None,
     progress: Progress = None,
+    executor=None,
 ) -> RunResult:
     """Run the whole chain on a region.
 
@@ -73,6 +101,10 @@ def run(
     progress : callable(stage, done, total), optional
         Called as basins complete in the stages ``calibration <model>`` and
         ``leave-one-out <model>``.
+    executor : optional
+        An executor opened by the caller (:func:`open_executor`), used instead of
+        ``scheduler`` and ``workers`` and left open (e.g. to draw the figures on the same
+        cluster with :func:`regional.outputs.write_outputs`); the caller closes it.
 
     Returns
     -------
@@ -80,20 +112,19 @@ def run(
     """
     settings = source if isinstance(source, Settings) else load_settings(source)
     timings: dict[str, float] = {}
-    clock = time.perf_counter()
-    region = load_region(settings)
-    timings["region"] = time.perf_counter() - clock
-    executor = make_executor(
-        scheduler or settings.compute.scheduler,
-        workers=workers or settings.compute.workers,
-        connect_timeout_s=settings.compute.connect_timeout_s,
-    )
+    own = executor is None
+    if own:
+        executor = open_executor(settings, scheduler=scheduler, workers=workers)
     try:
+        clock = time.perf_counter()
+        region = load_region(settings)
+        timings["region"] = time.perf_counter() - clock
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", InputWarning)
             stages = _chain(settings, region, executor, progress, timings)
     finally:
-        executor.close()
+        if own:
+            executor.close()
     messages = list(region.warnings) + [
         str(w.message) for w in caught if issubclass(w.category, InputWarning)
     ]

@@ -71,8 +71,24 @@ def test_dask_map_batches_submits_ahead_and_keeps_batch_order():
         assert list(results) == [_expected(i) for i in range(1, 5)]
         with pytest.raises(ValueError, match="ahead must be >= 0"):
             next(executor.map_batches(_batches([], 1), ahead=-1))
+        # started now, gathered later: the results in chunk order, as in process
+        chunks = [["3"], ["1", "2"], ["4"]]
+        wait = executor.start_map(_shifted_squares, chunks, 5)
+        assert wait() == InProcessExecutor().map(_shifted_squares, chunks, 5)
     finally:
         executor.close()
+
+
+def test_in_process_start_map_runs_when_its_results_are_asked_for():
+    ran = []
+
+    def note(chunk, context):
+        ran.append(list(chunk))
+        return len(chunk) + context
+
+    wait = InProcessExecutor().start_map(note, [["a"], ["b", "c"]], 10)
+    assert ran == []
+    assert wait() == [11, 12] and ran == [["a"], ["b", "c"]]
 
 
 def test_default_executor_is_in_process():
@@ -166,6 +182,12 @@ def test_cluster_reading_a_series_store_gives_the_in_process_tables(tmp_path, re
         "statistics_ungauged.csv",
     ]:
         assert (here / name).read_text() == (there / name).read_text(), name
+    # the figures were drawn by the workers (each from the run without its daily series and
+    # its own series): the same PNG bytes as drawn here
+    drawn = sorted(path.name for path in (here / "figures").glob("*.png"))
+    assert drawn and drawn == sorted(path.name for path in (there / "figures").glob("*.png"))
+    for name in drawn:
+        assert (here / "figures" / name).read_bytes() == (there / "figures" / name).read_bytes()
 
 
 def test_convert_refuses_a_target_that_is_not_parquet(tmp_path, region_parts, capsys):

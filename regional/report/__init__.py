@@ -3,7 +3,7 @@
 
 from __future__ import annotations
 
-from regional.report.figures import figure_drawers, make_figures
+from regional.report.figures import figure_drawers, figure_jobs, make_figures
 from regional.report.html import render_report
 
-__all__ = ["figure_drawers", "make_figures", "render_report"]
+__all__ = ["figure_drawers", "figure_jobs", "make_figures", "render_report"]

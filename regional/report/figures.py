@@ -46,8 +46,9 @@ from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
 
 from regional.crossval import CALIBRATED, MEDIAN
 from regional.models import parameter_table
+from regional.report.jobs import FigureJob
 from regional.report.labels import flow_in_unit
-from regional.report.statistics import statistics_drawers, statistics_figures
+from regional.report.statistics import statistics_figures, statistics_jobs
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.result import RunResult
@@ -110,23 +111,31 @@ def figure_drawers(result: RunResult) -> dict[str, Callable[[], Figure]]:
     """What :func:`make_figures` draws, as one call per figure (name -> draw it).
 
     Drawing, rendering and dropping one figure at a time keeps one figure in memory instead of
-    every page of site hydrographs at once (:func:`regional.outputs.write_outputs`).
+    every page of site hydrographs at once.
     """
-    drawers: dict[str, Callable[[], Figure]] = {
-        "loo_nse_map": lambda: loo_nse_map(result),
-        "parameters": lambda: parameter_scatter(result),
-        "nse_cdf": lambda: nse_cdf(result),
-        "hydrographs": lambda: hydrographs(result),
-    }
+    return {job.name: partial(job.draw, result) for job in figure_jobs(result)}
+
+
+def figure_jobs(result: RunResult) -> list[FigureJob]:
+    """Every figure of :func:`make_figures` as a job that names the daily series it reads, in
+    report order (:mod:`regional.report.jobs`: drawn in this process or on a cluster's workers
+    by :func:`regional.outputs.write_outputs`)."""
+    picks = hydrograph_basins(result)
+    jobs = [
+        FigureJob("loo_nse_map", loo_nse_map),
+        FigureJob("parameters", parameter_scatter, panels=_parameter_panels(result)),
+        FigureJob("nse_cdf", nse_cdf),
+        FigureJob("hydrographs", hydrographs, loo_basins=picks, panels=len(picks)),
+    ]
     if len(result.runs) > 1:
-        drawers["model_comparison"] = lambda: model_comparison(result)
+        jobs.append(FigureJob("model_comparison", model_comparison))
     if result.prediction is not None:
-        drawers["ungauged_mean_flow_map"] = lambda: ungauged_mean_flow_map(result)
-        drawers |= _hydrograph_page_drawers(result)
-    drawers |= statistics_drawers(result)
+        jobs.append(FigureJob("ungauged_mean_flow_map", ungauged_mean_flow_map))
+        jobs += _hydrograph_page_jobs(result)
+    jobs += statistics_jobs(result)
     if result.screening is not None:
-        drawers["screening"] = lambda: screening_bars(result)
-    return drawers
+        jobs.append(FigureJob("screening", screening_bars))
+    return jobs
 
 
 def prediction_figures(result: RunResult) -> dict[str, Figure]:
@@ -311,7 +320,7 @@ def hydrographs(
     """
     model, method = _model_method(result, model, method)
     loo = result.runs[model].loo
-    nse = _scores(result, model, method)["nse"].dropna().sort_values(ascending=False)
+    nse = _ranked_nse(result, model, method)
     picks = _best_median_worst(nse)
     window = _last_years(loo.observed.index, years)
     fig = Figure(figsize=(10.0, 2.6 * len(picks) + 0.6), layout="constrained")
@@ -352,6 +361,25 @@ def hydrographs(
     axes[-1].set_xlabel("Date")
     fig.suptitle(f"Daily flow in the evaluation period, leave-one-out ({model})")
     return fig
+
+
+def hydrograph_basins(
+    result: RunResult, *, model: str | None = None, method: str | None = None
+) -> tuple[str, ...]:
+    """The basins :func:`hydrographs` draws: best, median and worst leave-one-out NSE."""
+    model, method = _model_method(result, model, method)
+    return tuple(basin for _, basin in _best_median_worst(_ranked_nse(result, model, method)))
+
+
+def _parameter_panels(result: RunResult) -> int:
+    """Panels of :func:`parameter_scatter`: parameters x methods other than calibrated."""
+    loo = result.runs[result.chosen_model].loo
+    names = [p for p in parameter_table(result.chosen_model, snow=True) if p.name in loo.params]
+    return len(names) * sum(method != CALIBRATED for method in loo.methods)
+
+
+def _ranked_nse(result: RunResult, model: str, method: str) -> pd.Series:
+    return _scores(result, model, method)["nse"].dropna().sort_values(ascending=False)
 
 
 def model_comparison(result: RunResult) -> Figure:
@@ -473,26 +501,29 @@ def ungauged_hydrograph_pages(
     dict of str -> Figure
         ``ungauged_hydrographs``, then ``ungauged_hydrographs_2``, ``_3``, ...
     """
-    drawers = _hydrograph_page_drawers(result, per_figure=per_figure, log=log)
-    return {name: draw() for name, draw in drawers.items()}
+    jobs = _hydrograph_page_jobs(result, per_figure=per_figure, log=log)
+    return {job.name: job.draw(result) for job in jobs}
 
 
-def _hydrograph_page_drawers(
+def _hydrograph_page_jobs(
     result: RunResult, *, per_figure: int | None = None, log: bool = True
-) -> dict[str, Callable[[], Figure]]:
+) -> list[FigureJob]:
     table = _require(result.prediction, "prediction").table
     basins = sorted(table.index, key=lambda b: (bool(table.loc[b, "applicable"]), str(b)))
     per_figure = per_figure or _report_settings(result).sites_per_figure
     pages = _pages(basins, per_figure)
-    return {
-        _page_name("ungauged_hydrographs", number): partial(
-            _page_of_sites, result, page, log=log, page=(number, len(pages))
+    return [
+        FigureJob(
+            _page_name("ungauged_hydrographs", number),
+            partial(_page_of_sites, basins=page, log=log, page=(number, len(pages))),
+            site_basins=tuple(page),
+            panels=2 * len(page),
         )
         for number, page in enumerate(pages, start=1)
-    }
+    ]
 
 
-def _page_of_sites(result: RunResult, basins: list[str], *, log: bool, page) -> Figure:
+def _page_of_sites(result: RunResult, *, basins: list[str], log: bool, page) -> Figure:
     """One page of site hydrographs, its basins' daily series built for it alone (the series
     of every ungauged basin are never held at once)."""
     series = _site_series(result, basins)

@@ -16,7 +16,6 @@ name                         content
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -26,6 +25,7 @@ from matplotlib.ticker import FuncFormatter, NullFormatter
 from scipy import stats as scistats
 
 from regional import flowstats
+from regional.report.jobs import FigureJob
 from regional.report.labels import MM_DAY, flow_in_unit
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
@@ -162,17 +162,20 @@ def _plain(value) -> str:
 
 def statistics_figures(result: RunResult) -> dict[str, Figure]:
     """``statistics_loo`` always (with statistics); ``statistics_fdc`` with ungauged basins."""
-    return {name: draw() for name, draw in statistics_drawers(result).items()}
+    return {job.name: job.draw(result) for job in statistics_jobs(result)}
 
 
-def statistics_drawers(result: RunResult) -> dict[str, Callable[[], Figure]]:
-    """What :func:`statistics_figures` draws, as one call per figure (name -> draw it)."""
+def statistics_jobs(result: RunResult) -> list[FigureJob]:
+    """What :func:`statistics_figures` draws, as one job per figure
+    (:mod:`regional.report.jobs`); neither figure reads daily series."""
     if result.statistics is None:
-        return {}
-    drawers = {"statistics_loo": lambda: loo_scatter(result)}
-    if len(result.statistics.ungauged):
-        drawers["statistics_fdc"] = lambda: ungauged_duration_curves(result)
-    return drawers
+        return []
+    stats = result.statistics
+    jobs = [FigureJob("statistics_loo", loo_scatter, panels=len(HEADLINE))]
+    if len(stats.ungauged):
+        basins = min(MAX_FDC_BASINS, stats.ungauged["basin_id"].nunique())
+        jobs.append(FigureJob("statistics_fdc", ungauged_duration_curves, panels=basins))
+    return jobs
 
 
 def loo_scatter(result: RunResult, *, names=HEADLINE) -> Figure:

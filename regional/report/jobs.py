@@ -1,0 +1,164 @@
+"""A run's figures as independent jobs, each drawn from the small part of the run it reads.
+
+Figures are drawn where an executor runs them (:mod:`regional.compute`): in this process one
+after another, or as tasks on the workers of a Dask cluster, which share neither the client's
+memory nor its disk. What travels:
+
+- once per worker, the run without its daily series (:func:`without_series`): the region's
+  forcing and flow grids, the leave-one-out flows, the estimated daily flows at ungauged
+  basins and the held-out check's flows are left out, and so are the fitted region and the
+  folds' contexts, which no figure reads;
+- with each job, the daily series its own figure draws (:func:`job_series`): the
+  leave-one-out flows of the basins of the hydrograph figure, the daily estimates of the
+  ungauged basins of one page of site hydrographs.
+
+A task puts the two back together (:func:`with_series`), draws the figure and returns its PNG
+bytes (:func:`regional.io.figure_png`); the client writes them. The bytes do not depend on
+where a figure was drawn (tested against the in-process run). The in-process executor runs the
+very same task function, so both routes share every step.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, replace
+from typing import TYPE_CHECKING, Any
+
+import pandas as pd
+from matplotlib.figure import Figure
+
+from regional import io
+
+if TYPE_CHECKING:  # pragma: no cover - annotations only
+    from regional.result import RunResult
+
+
+@dataclass(frozen=True)
+class FigureJob:
+    """One figure of a run: its name, how to draw it and which daily series it reads.
+
+    Attributes
+    ----------
+    name : str
+        The figure's stable name (``figures/<name>.png``).
+    draw : callable(RunResult) -> Figure
+        A module-level function or a ``functools.partial`` of one (so that it pickles).
+    loo_basins : tuple of str
+        Gauged basins whose leave-one-out flows (observed and every method, each model) the
+        figure draws.
+    site_basins : tuple of str
+        Ungauged basins whose daily estimates and bounds the figure draws.
+    panels : int
+        Panels (axes) the figure draws, a rough measure of its drawing time: a cluster starts
+        the costliest figures first, so that no worker is left with a long one at the end.
+    """
+
+    name: str
+    draw: Callable[[RunResult], Figure]
+    loo_basins: tuple[str, ...] = ()
+    site_basins: tuple[str, ...] = ()
+    panels: int = 1
+
+
+@dataclass(frozen=True, eq=False)
+class JobSeries:
+    """The daily series of one job, cut from the whole run.
+
+    Attributes
+    ----------
+    loo : dict
+        Model -> (observed flow, method -> simulated flow), leave-one-out, evaluation days x
+        the job's ``loo_basins``, mm/day.
+    daily : object or None
+        The prediction's daily flows (:class:`regional.predict.DailyFlows`) of the job's
+        ``site_basins``; None when the job draws none.
+    """
+
+    loo: dict[str, tuple[pd.DataFrame, dict[str, pd.DataFrame]]]
+    daily: Any = None
+
+
+def without_series(result: RunResult) -> RunResult:
+    """The run without its daily series, fitted region and fold contexts (what every figure
+    job shares; a few hundred kB for a few hundred basins)."""
+    region = result.region
+    grids = {
+        name: None if getattr(region, name) is None else _no_columns(region.dates)
+        for name in _REGION_GRIDS
+    }
+    runs = {}
+    for model, run in result.runs.items():
+        days = run.loo.observed.index
+        loo = replace(
+            run.loo,
+            observed=_no_columns(days),
+            simulated={method: _no_columns(days) for method in run.loo.simulated},
+        )
+        runs[model] = replace(run, context=None, loo=loo)
+    prediction = result.prediction
+    if prediction is not None:
+        prediction = replace(prediction, daily=_daily_of(prediction.daily, []), held_out_draws=())
+    return replace(
+        result, region=replace(region, **grids), runs=runs, prediction=prediction, fitted=None
+    )
+
+
+def job_series(job: FigureJob, result: RunResult) -> JobSeries:
+    """The daily series ``job`` reads, cut from the whole run ``result``."""
+    loo = {}
+    if job.loo_basins:
+        basins = list(job.loo_basins)
+        for model, run in result.runs.items():
+            simulated = {m: flows[basins] for m, flows in run.loo.simulated.items()}
+            loo[model] = (run.loo.observed[basins], simulated)
+    daily = None
+    if job.site_basins:
+        daily = _daily_of(result.prediction.daily, list(job.site_basins))
+    return JobSeries(loo=loo, daily=daily)
+
+
+def with_series(shared: RunResult, series: JobSeries) -> RunResult:
+    """The shared run with one job's daily series put back."""
+    runs = dict(shared.runs)
+    for model, (observed, simulated) in series.loo.items():
+        loo = replace(runs[model].loo, observed=observed, simulated=simulated)
+        runs[model] = replace(runs[model], loo=loo)
+    prediction = shared.prediction
+    if series.daily is not None:
+        prediction = replace(prediction, daily=series.daily)
+    return replace(shared, runs=runs, prediction=prediction)
+
+
+def draw_jobs(
+    chunk: Sequence[tuple[FigureJob, JobSeries | None]], shared: RunResult
+) -> list[bytes]:
+    """The executor's task: each job's figure drawn and rendered to PNG bytes, in order.
+
+    ``shared`` is the whole run when a job comes without its series (in this process), else
+    the run without its daily series (:func:`without_series`), to which each job's own
+    series are put back.
+    """
+    return [io.figure_png(job.draw(_for_job(shared, series))) for job, series in chunk]
+
+
+def _for_job(shared: RunResult, series: JobSeries | None) -> RunResult:
+    return shared if series is None else with_series(shared, series)
+
+
+_REGION_GRIDS = ("precip_mm", "pet_mm", "temp_c", "flow_mm")
+
+
+def _no_columns(days: pd.Index) -> pd.DataFrame:
+    """A frame of ``days`` without columns (the index object shared, so pickled once)."""
+    return pd.DataFrame(index=days)
+
+
+def _daily_of(daily, basins: list[str]):
+    """The daily flows and bounds of ``basins`` only (same class, same dates)."""
+    return replace(
+        daily,
+        flow_mm=daily.flow_mm[basins],
+        low_mm=daily.low_mm[basins],
+        high_mm=daily.high_mm[basins],
+        area_km2=daily.area_km2.reindex(basins),
+    )
