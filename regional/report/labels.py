@@ -24,8 +24,6 @@ M3S = "m3/s"
 MM_DAY = "mm/day"
 FLOW_UNITS = (M3S, MM_DAY)
 """Units the report can show flows in."""
-FLOW_SUFFIX = {M3S: "m3s", MM_DAY: "mm"}
-"""Column-name ending of a flow in each unit (``mean_flow_m3s``, ``mean_flow_mm``)."""
 
 COLUMN_LABELS: dict[str, tuple[str, str]] = {
     # basins
