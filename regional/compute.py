@@ -100,13 +100,15 @@ TASKS_PER_WORKER = 4
 """Least number of tasks per worker a stage aims at, so that no worker idles at the end."""
 
 
-def chunk_size(n_items: int, default: int, *, n_workers: int) -> int:
-    """Items per task: ``default``, smaller when that leaves fewer than
-    :data:`TASKS_PER_WORKER` tasks per worker (a few expensive GR4J calibrations must not all
-    land on one worker while the other waits)."""
+def chunk_size(
+    n_items: int, default: int, *, n_workers: int, tasks_per_worker: int = TASKS_PER_WORKER
+) -> int:
+    """Items per task: ``default``, smaller when that leaves fewer than ``tasks_per_worker``
+    tasks per worker (a few expensive GR4J calibrations must not all land on one worker while
+    the other waits)."""
     if n_workers <= 1:
         return default
-    return max(1, min(default, -(-n_items // (TASKS_PER_WORKER * n_workers))))
+    return max(1, min(default, -(-n_items // (tasks_per_worker * n_workers))))
 
 
 def chunked(items: Sequence[str], size: int) -> list[list[str]]:
@@ -287,12 +289,12 @@ class DaskExecutor:
         for the results and gives them in chunk order (the caller works meanwhile)."""
         shared = self.client.scatter(context, broadcast=True, hash=False)
         futures = [self.client.submit(function, list(c), shared, pure=False) for c in chunks]
+        held = [shared, futures]
 
         def gather() -> list[Any]:
-            del shared_held[:]  # the tasks hold the context now; the client lets it go
-            return self.client.gather(futures)
-
-        shared_held = [shared]
+            results = self.client.gather(held[1])
+            held.clear()  # released on the workers once gathered
+            return results
 
         return gather
 

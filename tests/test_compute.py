@@ -22,6 +22,9 @@ def test_chunk_size_leaves_every_worker_several_tasks():
     assert size == 6 and len(chunked(list(range(45)), size)) >= 4 * 2
     assert chunk_size(1000, 16, n_workers=2) == 16
     assert chunk_size(1, 16, n_workers=8) == 1
+    # calibration asks for twice as many: 150 basins on 2 workers in tasks of 10, not 16
+    assert chunk_size(150, 16, n_workers=2) == 16
+    assert chunk_size(150, 16, n_workers=2, tasks_per_worker=8) == 10
 
 
 def test_in_process_map_reports_progress_in_basins():
