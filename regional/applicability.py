@@ -22,6 +22,7 @@ from scipy import stats
 
 from regional.bounds import ConformalErrorModel, conformal_bounds
 from regional.errors import InputError
+from regional.transfer.folds import k_nearest, row_blocks
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.crossval import LeaveOneOut
@@ -164,16 +165,6 @@ def _distances(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.sqrt(np.maximum(((a[:, None, :] - b[None, :, :]) ** 2).sum(axis=2), 0.0))
 
 
-def _row_blocks(n_rows: int, n_donors: int, n_attributes: int, cells: int) -> list[slice]:
-    """Consecutive row slices whose (rows x donors x attributes) differences hold ``cells``.
-
-    Each row's distances are computed alone (a sum over its own attribute differences), so
-    they do not depend on the block.
-    """
-    size = max(1, cells // max(n_donors * n_attributes, 1))
-    return [slice(start, min(start + size, n_rows)) for start in range(0, n_rows, size)]
-
-
 def _nearest_donor(
     z_donors, z_targets, *, cells: int = DISTANCE_BLOCK_CELLS
 ) -> tuple[np.ndarray, float]:
@@ -181,10 +172,10 @@ def _nearest_donor(
     among the donors themselves; a block of rows at a time."""
     n, p = z_donors.shape
     nearest = np.empty(len(z_targets))
-    for part in _row_blocks(len(z_targets), n, p, cells):
+    for part in row_blocks(len(z_targets), n * p, cells):
         nearest[part] = _distances(z_targets[part], z_donors).min(axis=1)
     among = np.empty(n)
-    for part in _row_blocks(n, n, p, cells):
+    for part in row_blocks(n, n * p, cells):
         block = _distances(z_donors[part], z_donors)
         rows = np.arange(part.stop - part.start)
         block[rows, rows + part.start] = np.inf  # not its own neighbour
@@ -196,9 +187,8 @@ def _nearest_order(z_targets, z_donors, k: int, *, cells: int = DISTANCE_BLOCK_C
     """(targets, k) positions of each target's k nearest donors, nearest first (ties in donor
     order); a block of targets at a time."""
     order = np.empty((len(z_targets), k), dtype=np.intp)
-    for part in _row_blocks(len(z_targets), len(z_donors), z_donors.shape[1], cells):
-        distance = _distances(z_targets[part], z_donors)
-        order[part] = np.argsort(distance, axis=1, kind="stable")[:, :k]
+    for part in row_blocks(len(z_targets), z_donors.size, cells):
+        order[part] = k_nearest(_distances(z_targets[part], z_donors), k)
     return order
 
 

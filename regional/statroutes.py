@@ -52,7 +52,7 @@ from regional.coverage import HeldOutSummary
 from regional.crossval import FoldContext
 from regional.errors import InputError
 from regional.transfer import great_circle_km, inverse_distance_weights, make_transfer
-from regional.transfer.folds import k_nearest
+from regional.transfer.folds import k_nearest, row_blocks
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.region import Region
@@ -681,14 +681,13 @@ def _donor_loo(data: _GaugedData, method: str, pool: Sequence[str]) -> pd.DataFr
     filled = np.where(known, values, 0.0)
     mean = np.empty((len(pool), values.shape[1]))
     position = {basin: i for i, basin in enumerate(train)}
-    block = max(1, FOLD_BLOCK_CELLS // max(len(train), 1))
-    for start in range(0, len(pool), block):
-        targets = pool[start : start + block]
+    for part in row_blocks(len(pool), len(train), FOLD_BLOCK_CELLS):
+        targets = pool[part]
         dropped = np.zeros((len(targets), len(train)), dtype=bool)
         for row, target in enumerate(targets):
             dropped[row, [position[b] for b in data.dropped(target) if b in position]] = True
         weights = fold_donor_weights(data.donors[method], train, targets, dropped)
-        mean[start : start + block] = _weighted_means(weights, filled, known)
+        mean[part] = _weighted_means(weights, filled, known)
     return pd.DataFrame(mean, index=pd.Index(pool, name="basin_id"), columns=data.observed.columns)
 
 
@@ -703,10 +702,9 @@ def _donor_estimate(
     known = np.isfinite(values)
     filled = np.where(known, values, 0.0)
     mean = np.empty((len(targets), values.shape[1]))
-    block = max(1, FOLD_BLOCK_CELLS // max(len(train), 1))  # never all targets x all donors
-    for start in range(0, len(targets), block):
-        weights = donor_weights(data.donors[method], train, targets[start : start + block])
-        mean[start : start + block] = _weighted_means(weights, filled, known)
+    for part in row_blocks(len(targets), len(train), FOLD_BLOCK_CELLS):
+        weights = donor_weights(data.donors[method], train, targets[part])
+        mean[part] = _weighted_means(weights, filled, known)
     return pd.DataFrame(
         mean, index=pd.Index(targets, name="basin_id"), columns=data.observed.columns
     )

@@ -191,4 +191,3 @@ def test_distance_searches_do_not_depend_on_the_block_of_rows(cloud, rows):
     assert limit == among.min(axis=1).max()
     order = applicability_module._nearest_order(targets, z, 5, cells=cells)
     np.testing.assert_array_equal(order, np.argsort(whole, axis=1, kind="stable")[:, :5])
-    assert applicability_module._row_blocks(40, 40, 3, cells)[0] == slice(0, min(rows, 40))

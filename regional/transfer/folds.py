@@ -220,10 +220,12 @@ def _fit(method: str, X: pd.DataFrame, y: pd.DataFrame, settings: FoldSettings):
 # The pool and its folds
 
 
-def _blocks(n_targets: int, n_pool: int):
-    size = max(1, BLOCK_CELLS // max(n_pool, 1))
-    for start in range(0, n_targets, size):
-        yield slice(start, min(start + size, n_targets))
+def row_blocks(n_rows: int, cells_per_row: int, cells: int) -> list[slice]:
+    """Consecutive slices of ``n_rows`` rows, each holding at most ``cells`` cells of
+    ``cells_per_row`` each (at least one row per slice): the blocks in which a search over
+    targets x donors is made, never all of it at once."""
+    size = max(1, cells // max(cells_per_row, 1))
+    return [slice(start, min(start + size, n_rows)) for start in range(0, n_rows, size)]
 
 
 def k_nearest(distance: np.ndarray, k: int) -> np.ndarray:
@@ -272,7 +274,7 @@ class _DonorFolds:
     def donations(self, targets: list[str], rows: np.ndarray, target_X: pd.DataFrame):
         out: dict[str, Donation] = {}
         n_f = fold_sizes(self.pool, rows)
-        for part in _blocks(len(targets), self.pool.n):
+        for part in row_blocks(len(targets), self.pool.n, BLOCK_CELLS):
             index = np.arange(part.start, part.stop)
             distance, ok = self._distances(target_X.loc[targets[part]], rows[part])
             if not ok.any():

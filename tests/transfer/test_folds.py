@@ -8,7 +8,7 @@ import pytest
 from refit_route import refit_every_fold
 
 from regional.transfer.foldpool import FoldPool, FoldSettings, Moments
-from regional.transfer.folds import fold_donations, k_nearest
+from regional.transfer.folds import fold_donations, k_nearest, row_blocks
 
 METHODS = ("regression", "similarity", "proximity", "blended", "median")
 TRANSFORMS = {"k_per_day": "log", "melt_factor": "log", "threshold_c": "identity"}
@@ -147,3 +147,15 @@ def test_median_folds_of_even_and_odd_size_equal_the_refit(make_region):
             pd.testing.assert_frame_equal(
                 got.donations[target].intervals, expected.donations[target].intervals
             )
+
+
+@pytest.mark.parametrize(
+    ("n_rows", "cells_per_row", "cells"), [(10, 4, 12), (7, 100, 5), (0, 3, 9)]
+)
+def test_row_blocks_cover_every_row_once_within_the_cells(n_rows, cells_per_row, cells):
+    blocks = row_blocks(n_rows, cells_per_row, cells)
+    covered = [i for part in blocks for i in range(n_rows)[part]]
+    assert covered == list(range(n_rows))
+    for part in blocks:
+        rows = part.stop - part.start
+        assert rows == 1 or rows * cells_per_row <= cells
