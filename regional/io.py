@@ -926,11 +926,15 @@ def write_run_folder(
         Layer name -> GeoDataFrame for ``results.gpkg``.
     crs : pyproj.CRS or str
         CRS given to layers that carry none.
-    figures : mapping or callable
-        Name -> PNG bytes, written to ``figures/<name>.png``; or a call giving them, made
-        once the tables and layers are written (figures drawn elsewhere meanwhile).
+    figures : mapping, iterable or callable
+        Name -> PNG bytes (or (name, bytes) pairs), written to ``figures/<name>.png`` one by
+        one as they come; or a call giving them, made once the tables and layers are written
+        (figures drawn elsewhere meanwhile).
     report : str, None or callable
-        HTML text for ``report.html``; or a call giving it, made after the figures.
+        HTML text for ``report.html``; or a call made after the figures are written, given
+        them as a mapping (:class:`FigureFiles`: name -> PNG bytes, read from the written
+        files when asked for) and giving the text, whole or as pieces written one after
+        another.
     manifest : mapping
         Written as ``run.json``, with ``tool`` and ``format`` added (the ownership marker).
     files : mapping, optional
@@ -1123,13 +1127,26 @@ class TableParts:
     parts: Callable[[], Iterator[pd.DataFrame]]
 
 
-def _table_to_csv(table: pd.DataFrame | TableParts, stream) -> None:
-    """Write a table (or its parts) as CSV, without the index when it is a RangeIndex."""
-    if isinstance(table, TableParts):
-        for number, part in enumerate(table.parts()):
-            _float_text(part).to_csv(stream, index=False, header=number == 0)
-        return
-    _float_text(table).to_csv(stream, index=not isinstance(table.index, pd.RangeIndex))
+CSV_ROWS = 32_768
+"""Rows of a table turned into text and written at a time (:func:`_table_to_csv`): the text
+of a float takes about 100 bytes while it is written, so a table's rows are never all text
+at once."""
+
+
+def _table_to_csv(
+    table: pd.DataFrame | TableParts, stream, *, rows_at_a_time: int = CSV_ROWS
+) -> None:
+    """Write a table (or its parts) as CSV, without the index when it is a RangeIndex, the
+    text of ``rows_at_a_time`` rows at a time (the same bytes as the whole at once)."""
+    whole = not isinstance(table, TableParts)
+    parts = iter([table]) if whole else table.parts()
+    header = True
+    for part in parts:
+        index = whole and not isinstance(part.index, pd.RangeIndex)
+        for first in range(0, max(len(part), 1), rows_at_a_time):
+            rows = part.iloc[first : first + rows_at_a_time]
+            _float_text(rows).to_csv(stream, index=index, header=header)
+            header = False
 
 
 def _float_text(table: pd.DataFrame) -> pd.DataFrame:
@@ -1165,14 +1182,40 @@ def _fill_run_folder(staging, tables, layers, crs, figures, report, manifest) ->
             dataset_options=GPKG_OPTIONS,
         )
     figures = figures() if callable(figures) else figures
-    if figures:
-        (staging / "figures").mkdir()
-        for name, png in figures.items():
-            (staging / "figures" / f"{name}.png").write_bytes(png)
-    report = report() if callable(report) else report
+    pairs = figures.items() if isinstance(figures, Mapping) else figures
+    written = FigureFiles(staging / "figures")
+    for name, png in pairs:  # each image written as it comes, none kept
+        written.path(name).parent.mkdir(exist_ok=True)
+        written.path(name).write_bytes(png)
+        written.names.append(name)
+    report = report(written) if callable(report) else report
     if report is not None:
-        (staging / "report.html").write_text(report, encoding="utf-8")
+        with open(staging / "report.html", "w", encoding="utf-8") as stream:
+            stream.writelines([report] if isinstance(report, str) else report)
     (staging / MANIFEST).write_bytes(_manifest_bytes(manifest))
+
+
+class FigureFiles(Mapping):
+    """The PNG images written into a results folder, by name in the order written; each read
+    from its file when asked for (so a report built from them holds one image at a time)."""
+
+    def __init__(self, folder: Path) -> None:
+        self.folder = folder
+        self.names: list[str] = []
+
+    def path(self, name: str) -> Path:
+        return self.folder / f"{name}.png"
+
+    def __getitem__(self, name: str) -> bytes:
+        if name not in self.names:
+            raise KeyError(name)
+        return self.path(name).read_bytes()
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self.names)
+
+    def __len__(self) -> int:
+        return len(self.names)
 
 
 def _manifest_bytes(manifest: Mapping[str, object]) -> bytes:

@@ -8,9 +8,9 @@ interrupted run never touches the previous results.
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import fields, is_dataclass, replace
-from functools import cache, partial
+from functools import partial
 from pathlib import Path
 from typing import Any
 
@@ -25,6 +25,7 @@ from regional.predicted import Prediction, flow_parts
 from regional.region import Region
 from regional.report import figure_jobs, render_report
 from regional.report import figures as plots
+from regional.report.html import report_pieces
 from regional.report.jobs import draw_jobs, job_series, without_series
 from regional.result import RunResult, software_versions
 from regional.reuse import with_basin_columns, with_geometry, with_level
@@ -64,9 +65,10 @@ def write_outputs(
     images = report = None
     if figures:
         # started now, taken once the tables and layers are written: on a cluster the workers
-        # draw meanwhile; in process one figure at a time (drawn, rendered to PNG, dropped)
-        images = cache(start_figures(result, executor))
-        report = partial(_report, result, images)
+        # draw meanwhile; in process one figure at a time (drawn, rendered to PNG, written,
+        # dropped); the report then embeds them one at a time from their files
+        images = start_figures(result, executor)
+        report = partial(report_pieces, result)
     return io.write_run_folder(
         Path(folder),
         tables=result_tables(result),
@@ -79,35 +81,36 @@ def write_outputs(
     )
 
 
-def _report(result: RunResult, images: Callable[[], dict[str, bytes]]) -> str:
-    return render_report(result, images())
+def start_figures(result: RunResult, executor=None) -> Callable[[], Iterator[tuple[str, bytes]]]:
+    """Start drawing every figure of a run; the returned call gives their PNG images as
+    (figure name, bytes) pairs, in report order.
 
-
-def start_figures(result: RunResult, executor=None) -> Callable[[], dict[str, bytes]]:
-    """Start drawing every figure of a run; the returned call waits for their PNG images
-    (figure name -> bytes, in report order).
-
-    In this process (no executor, or an in-process one) the figures are drawn when the call
-    is made, one at a time from the run itself (drawn, rendered, dropped: one figure in
-    memory). On a cluster every figure is a task: the run without its daily series is
-    scattered once and each task receives the daily series its figure reads
-    (:mod:`regional.report.jobs`), so the workers draw while the caller goes on.
+    In this process (no executor, or an in-process one) each figure is drawn as its pair is
+    taken, from the run itself (drawn, rendered, handed on: one figure in memory). On a
+    cluster every figure is a task: the run without its daily series is scattered once and
+    each task receives the daily series its figure reads (:mod:`regional.report.jobs`), so
+    the workers draw while the caller goes on; the call waits for them.
     """
     executor = executor if executor is not None else InProcessExecutor()
     jobs = figure_jobs(result)
+    if executor.name != "dask":
+        return partial(_drawn_here, jobs, result)
     names = [job.name for job in jobs]
-    if executor.name == "dask":
-        jobs = sorted(jobs, key=lambda job: -job.panels)  # the costliest first (stable)
-        chunks = [[(job, job_series(job, result))] for job in jobs]
-        wait = executor.start_map(draw_jobs, chunks, without_series(result))
-    else:
-        wait = executor.start_map(draw_jobs, [[(job, None)] for job in jobs], result)
+    jobs = sorted(jobs, key=lambda job: -job.panels)  # the costliest first (stable)
+    chunks = [[(job, job_series(job, result))] for job in jobs]
+    wait = executor.start_map(draw_jobs, chunks, without_series(result))
 
-    def images() -> dict[str, bytes]:
+    def images() -> Iterator[tuple[str, bytes]]:
         drawn = {job.name: png for job, [png] in zip(jobs, wait(), strict=True)}
-        return {name: drawn[name] for name in names}
+        return ((name, drawn.pop(name)) for name in names)
 
     return images
+
+
+def _drawn_here(jobs: list, result: RunResult) -> Iterator[tuple[str, bytes]]:
+    for job in jobs:
+        [png] = draw_jobs([(job, None)], result)
+        yield job.name, png
 
 
 def fitted_region_files(result: RunResult) -> dict[str, bytes | pd.DataFrame]:

@@ -27,7 +27,7 @@ FLOW_COLUMNS = (
     "flow_high_m3s",
 )
 """Columns of :attr:`Prediction.flows`."""
-FLOW_PART_BASINS = 64
+FLOW_PART_BASINS = 16
 """Basins per part when the long table of daily flows is built part by part for writing."""
 
 

@@ -313,6 +313,35 @@ def test_run_folder_tables_are_the_bytes_pandas_writes(tmp_path):
     assert table["flow_mm"].dtype == np.float64  # the table given is not changed
 
 
+def test_tables_written_a_few_rows_at_a_time_are_the_same_bytes():
+    # the CSV writer turns rows into text a block at a time: blocks of 1, 3 and all rows, of a
+    # whole table, of an indexed one and of parts, give the bytes pandas writes at once
+    import io as stdio
+
+    rng = np.random.default_rng(3)
+    n = 40
+    table = pd.DataFrame(
+        {
+            "basin_id": [f"b{i // 7}" for i in range(n)],
+            "date": pd.date_range("2001-01-01", periods=n, freq="D"),
+            "flow_mm": np.where(np.arange(n) % 9 == 0, np.nan, rng.lognormal(0.0, 3.0, n)),
+            "count": np.arange(n),
+        }
+    )
+    indexed = table.set_index("basin_id")
+    parts = io.TableParts(lambda: iter([table.iloc[:13], table.iloc[13:].reset_index(drop=True)]))
+    expected = {"whole": table.to_csv(index=False), "indexed": indexed.to_csv()}
+    expected["parts"] = expected["whole"]
+    for rows in (1, 3, n, 10 * n):
+        for name, content in (("whole", table), ("indexed", indexed), ("parts", parts)):
+            stream = stdio.StringIO()
+            io._table_to_csv(content, stream, rows_at_a_time=rows)
+            assert stream.getvalue() == expected[name], (name, rows)
+    stream = stdio.StringIO()
+    io._table_to_csv(table.iloc[:0], stream, rows_at_a_time=3)
+    assert stream.getvalue() == table.iloc[:0].to_csv(index=False)  # the header alone
+
+
 def _dead_pid() -> int:
     import subprocess
     import sys
@@ -444,3 +473,33 @@ def test_write_csv_disk_full_is_a_run_error_and_leaves_nothing(tmp_path, monkeyp
         io.write_csv(Full({"x": [1]}), path)
     assert path.read_text() == "old\n"
     assert [p.name for p in tmp_path.iterdir()] == ["out.csv"]
+
+
+def test_figures_written_as_they_come_and_read_back_for_the_report(tmp_path):
+    # figures given as (name, bytes) pairs are written one by one; the report call gets them
+    # as a mapping that reads each file when asked for, and its pieces are written in order
+    drawn = []
+
+    def images():
+        for name in ("b", "a"):
+            drawn.append(name)
+            yield name, f"png {name}".encode()
+
+    seen = {}
+
+    def report(figures):
+        seen.update(names=list(figures), a=figures["a"], drawn=list(drawn))
+        return iter(["<p>", figures["b"].decode(), "</p>"])
+
+    folder = io.write_run_folder(
+        tmp_path / "results",
+        tables={},
+        layers={},
+        crs="EPSG:4326",
+        figures=images,
+        report=report,
+        manifest={"regional": "test"},
+    )
+    assert (folder / "figures" / "a.png").read_bytes() == b"png a"
+    assert seen == {"names": ["b", "a"], "a": b"png a", "drawn": ["b", "a"]}
+    assert (folder / "report.html").read_text() == "<p>png b</p>"

@@ -57,3 +57,30 @@ def test_daily_flows_written_part_by_part_are_the_whole_table(demo_result, tmp_p
         daily, flow_mm=daily.flow_mm.iloc[:, :0], low_mm=daily.low_mm.iloc[:, :0]
     ).long([])
     assert list(empty.columns) == list(prediction.flows.columns) and empty.empty
+
+
+def test_report_written_piece_by_piece_from_the_figure_files_is_the_whole_page(
+    demo_result, tmp_path, monkeypatch
+):
+    # two routes to report.html: written piece by piece, each figure read back from its file
+    # as it is embedded (images drawn one at a time and never all held), and the page built
+    # whole in memory from the same images: the same text
+    from dataclasses import replace
+
+    from regional import io, outputs
+    from regional.report.html import render_report
+
+    jobs = outputs.figure_jobs(demo_result)
+    kept = [job for job in jobs if job.name in ("nse_cdf", "loo_nse_map")]
+    kept += [job for job in jobs if job.site_basins][:2]
+    assert len(kept) == 4
+    monkeypatch.setattr(outputs, "figure_jobs", lambda result: kept)
+    folder = outputs.write_outputs(demo_result, tmp_path / "results")
+    images = io.read_figures(folder)
+    assert sorted(images) == sorted(job.name for job in kept)
+    stages = io.read_manifest(folder)["stages"]
+    whole = render_report(
+        replace(demo_result, stages=stages), {j.name: images[j.name] for j in kept}
+    )
+    assert (folder / "report.html").read_text(encoding="utf-8") == whole
+    assert whole.count("data:image/png;base64,") == 4

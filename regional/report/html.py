@@ -1,7 +1,9 @@
 """The run's report: one self-contained HTML page (figures embedded, no external resource).
 
 :func:`render_report` builds the page as a string from a run result and the PNG bytes of its
-figures; :mod:`regional.io` writes it. Every text that comes from the inputs or the run (names,
+figures; :func:`report_pieces` gives the same text piece by piece, each figure encoded only when
+its piece is taken, so that :mod:`regional.io` writes the page without holding it (or more than
+one encoded figure) whole. Every text that comes from the inputs or the run (names,
 messages, table cells) is escaped. The page carries its own modest style sheet and loads nothing
 from anywhere, so it opens offline and can be mailed as one file.
 """
@@ -13,7 +15,8 @@ import calendar
 import html
 import math
 import numbers
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -165,7 +168,17 @@ def render_report(result: RunResult, figures: Mapping[str, bytes]) -> str:
     Returns
     -------
     str
-        The HTML document (UTF-8 text).
+        The HTML document (UTF-8 text): the concatenation of :func:`report_pieces`.
+    """
+    return "".join(report_pieces(result, figures))
+
+
+def report_pieces(result: RunResult, figures: Mapping[str, bytes]) -> Iterator[str]:
+    """The text of :func:`render_report` in pieces, to be written one after another.
+
+    The tables and text are built first (a few MB at most); each figure is read from
+    ``figures`` and encoded only when its piece is taken, so a mapping that reads the PNG files
+    on access keeps one image in memory at a time.
     """
     placed = _place_figures(figures)
     sections = {
@@ -183,8 +196,14 @@ def render_report(result: RunResult, figures: Mapping[str, bytes]) -> str:
         "methods": _methods(result),
         "run": _run_information(result),
     }
-    body = "\n".join(_section(key, title, sections[key]) for key, title in SECTIONS)
-    return _page(result.settings.region.name, body)
+    yield _page_head(result.settings.region.name)
+    for number, (key, title) in enumerate(SECTIONS):
+        yield ("\n" if number else "") + f'<section id="{key}">\n<h2>{_esc(title)}</h2>\n'
+        for position, part in enumerate(sections[key]):
+            yield "\n" if position else ""
+            yield _figure(part.name, figures[part.name]) if isinstance(part, _Figure) else part
+        yield "\n</section>"
+    yield "\n</main>\n</body>\n</html>\n"
 
 
 # --------------------------------------------------------------------------------------------
@@ -192,7 +211,8 @@ def render_report(result: RunResult, figures: Mapping[str, bytes]) -> str:
 # --------------------------------------------------------------------------------------------
 
 
-def _page(name: str, body: str) -> str:
+def _page_head(name: str) -> str:
+    """The page up to the first section."""
     title = f"regional report: {name}"
     navigation = "".join(f'<a href="#{key}">{_esc(text)}</a>' for key, text in SECTIONS)
     return (
@@ -202,12 +222,8 @@ def _page(name: str, body: str) -> str:
         f"<title>{_esc(title)}</title>\n<style>{STYLE}</style>\n</head>\n<body>\n"
         f"<header><h1>{_esc(name)}</h1><p>Flows at ungauged basins by parameter transfer, with "
         "leave-one-out skill. Report of one run of regional.</p></header>\n"
-        f"<nav>{navigation}</nav>\n<main>\n{body}\n</main>\n</body>\n</html>\n"
+        f"<nav>{navigation}</nav>\n<main>\n"
     )
-
-
-def _section(key: str, title: str, parts: Sequence[str]) -> str:
-    return f'<section id="{key}">\n<h2>{_esc(title)}</h2>\n' + "\n".join(parts) + "\n</section>"
 
 
 def _esc(value: object) -> str:
@@ -356,15 +372,22 @@ def _median_nse(result: RunResult, model: str, method: str) -> float:
 # --------------------------------------------------------------------------------------------
 
 
-def _place_figures(figures: Mapping[str, bytes]) -> dict[str, list[str]]:
-    placed: dict[str, list[str]] = {
+@dataclass(frozen=True)
+class _Figure:
+    """Where a figure goes among a section's parts (encoded when written)."""
+
+    name: str
+
+
+def _place_figures(figures: Mapping[str, bytes]) -> dict[str, list[str | _Figure]]:
+    placed: dict[str, list[str | _Figure]] = {
         "figures": [],
         "ungauged": [],
         "statistics": [],
         "screening": [],
     }
-    for name, png in figures.items():
-        placed[FIGURE_SECTIONS.get(_figure_kind(name), "figures")].append(_figure(name, png))
+    for name in figures:
+        placed[FIGURE_SECTIONS.get(_figure_kind(name), "figures")].append(_Figure(name))
     return placed
 
 
@@ -383,7 +406,7 @@ def _figure(name: str, png: bytes) -> str:
     )
 
 
-def _figures_section(figures: list[str]) -> list[str]:
+def _figures_section(figures: list[str | _Figure]) -> list[str | _Figure]:
     if not figures:
         return [_p("No figures were drawn for this run.")]
     return figures
