@@ -38,7 +38,7 @@ MIN_DAYS_PER_CLASS = 30
 MIN_BASINS_FOR_CLASSES = 10
 """Fewer calibration basins than this: one class (no split by flow)."""
 BLOCK_BASINS = 256
-"""Basins whose ranks, classes and residuals are computed at a time (:func:`pooled_residuals`)."""
+"""Basins whose ranks, classes and residuals are computed at a time (:func:`class_residuals`)."""
 
 
 @dataclass(frozen=True)
@@ -180,10 +180,8 @@ def conformal_bounds(
     obs, sim = aligned(observed, simulated)
     k = default_n_classes(obs) if n_classes is None else int(n_classes)
     levels = _class_levels(class_levels, level, k)
-    residual, basin, cls = pooled_residuals(obs, sim, k, fraction=offset_fraction)
-    model = _fit(
-        SortedResiduals.of(residual, basin, cls, k), levels=levels, fraction=offset_fraction
-    )
+    data = class_residuals(obs, sim, k, fraction=offset_fraction)
+    model = _fit(data, levels=levels, fraction=offset_fraction)
     if class_levels is None:
         return model
     return replace(model, level=level, class_levels=levels)
@@ -250,45 +248,68 @@ def flow_classes(sim: np.ndarray, n_classes: int) -> np.ndarray:
     return np.minimum((share * n_classes).astype(int), n_classes - 1)
 
 
-def pooled_residuals(
+def class_residuals(
     obs: np.ndarray,
     sim: np.ndarray,
     n_classes: int,
     *,
     fraction: float = OFFSET_FRACTION,
     block: int = BLOCK_BASINS,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """:func:`log_residuals` of the whole grid with its flow classes, ``block`` basins at a time.
+) -> SortedResiduals:
+    """:func:`log_residuals` of the whole grid, each flow class's sorted with its basins,
+    computed ``block`` basins at a time.
 
     Classes and offsets are within-basin, so each block's residuals are those of the whole
-    grid; they are placed straight into day-then-basin order (the order of the whole grid), so
-    that every later sort and sum is the same. Only the pooled residuals are held for the
-    region (8 bytes each, with their basin as int32 and class as int8), not the grid-sized
-    ranks, classes and temporaries.
+    grid. Each block's residuals go straight into their class's array at their place in the
+    whole grid's day-then-basin order, and each class is then sorted stably: the same arrays
+    as :meth:`SortedResiduals.of` on the whole grid's residuals, without holding the pooled
+    residuals beside the sorted ones. Held for the region: 12 bytes per observed day (float64
+    residual, int32 basin) and the flow class of every day (int8), plus one class's sort.
     """
-    n_columns = obs.shape[1]
+    n_days, n_columns = obs.shape
     offsets = basin_offsets(sim, fraction=fraction)  # on the whole grid: the same sums
     blocks = [slice(a, min(a + block, n_columns)) for a in range(0, n_columns, block)]
-    # observed days per (day, block): where each block's residuals of a day go in the whole
-    # grid's day-then-basin order
-    per_day = np.zeros((obs.shape[0], len(blocks)), dtype=np.int64)
+    classes = np.empty(obs.shape, dtype=np.int8 if n_classes < 128 else np.int64)
+    # observed days per (class, day, block): where each block's residuals of a day go in
+    # their class's day-then-basin order
+    counts = np.zeros((n_classes, n_days, len(blocks)), dtype=np.int64)
     for b, part in enumerate(blocks):
-        per_day[:, b] = np.isfinite(obs[:, part]).sum(axis=1)
-    first = (np.cumsum(per_day.ravel()) - per_day.ravel()).reshape(per_day.shape)
-    total = int(per_day.sum())
-    residual = np.empty(total)
-    basin = np.empty(total, dtype=np.int32 if n_columns < 2**31 else np.int64)
-    cls = np.empty(total, dtype=np.int8 if n_classes < 128 else np.int64)
+        classes[:, part] = flow_classes(sim[:, part], n_classes)
+        valid = np.isfinite(obs[:, part])
+        for k in range(n_classes):
+            counts[k, :, b] = (valid & (classes[:, part] == k)).sum(axis=1)
+    flat = counts.reshape(n_classes, -1)
+    first = (np.cumsum(flat, axis=1) - flat).reshape(counts.shape)
+    totals = flat.sum(axis=1)
+    basin_type = np.int32 if n_columns < 2**31 else np.int64
+    values = [np.empty(int(total)) for total in totals]
+    basins = [np.empty(int(total), dtype=basin_type) for total in totals]
     for b, part in enumerate(blocks):
-        classes = flow_classes(sim[:, part], n_classes)
-        values, columns, klass = log_residuals(
-            obs[:, part], sim[:, part], classes, fraction, offsets=offsets[part]
+        residual, columns, klass = log_residuals(
+            obs[:, part], sim[:, part], classes[:, part], fraction, offsets=offsets[part]
         )
         day = np.nonzero(np.isfinite(obs[:, part]))[0]
-        day_start = np.cumsum(per_day[:, b]) - per_day[:, b]  # within the block, day by day
-        position = first[day, b] + (np.arange(len(day)) - day_start[day])
-        residual[position], basin[position], cls[position] = values, columns + part.start, klass
-    return residual, basin, cls
+        for k in range(n_classes):
+            inside = klass == k
+            in_day = day[inside]
+            day_start = np.cumsum(counts[k, :, b]) - counts[k, :, b]
+            position = first[k, in_day, b] + (np.arange(len(in_day)) - day_start[in_day])
+            values[k][position] = residual[inside]
+            basins[k][position] = columns[inside] + part.start
+    del classes
+    for k in range(n_classes):
+        order = np.argsort(values[k], kind="stable")
+        values[k] = values[k][order]
+        basins[k] = basins[k][order]
+    return SortedResiduals(tuple(values), tuple(basins))
+
+
+def observed_basins(obs: np.ndarray, *, block: int = BLOCK_BASINS) -> int:
+    """Basins (columns) with at least one observed day."""
+    return sum(
+        int(np.isfinite(obs[:, a : a + block]).any(axis=0).sum())
+        for a in range(0, obs.shape[1], block)
+    )
 
 
 def log_residuals(obs, sim, classes, fraction, *, offsets=None):
@@ -414,8 +435,7 @@ class ResidualTails:
         """Tails of the error model :func:`conformal_bounds` builds from these flows."""
         level = check_level(level)
         obs, sim = aligned(observed, simulated)
-        residual, basin, klass = pooled_residuals(obs, sim, n_classes, fraction=offset_fraction)
-        data = SortedResiduals.of(residual, basin, klass, n_classes)
+        data = class_residuals(obs, sim, n_classes, fraction=offset_fraction)
         parts: tuple[list, list, list, list] = ([], [], [], [])
         for values, basins in zip(data.values, data.basins, strict=True):
             for part, kept in zip(parts, _tails(values, basins, level), strict=True):
@@ -424,7 +444,7 @@ class ResidualTails:
             level=level,
             offset_fraction=offset_fraction,
             days=np.array([len(v) for v in data.values], dtype=float),
-            n_basins=len(np.unique(basin)),
+            n_basins=observed_basins(obs),
             low_values=tuple(parts[0]),
             low_weights=tuple(parts[1]),
             high_values=tuple(parts[2]),

@@ -20,15 +20,14 @@ from regional.bounds import (
     BLOCK_BASINS,
     ConformalErrorModel,
     ResidualTails,
-    SortedResiduals,
     aligned,
     basin_offsets,
     check_level,
+    class_residuals,
     conformal_bounds,
     default_n_classes,
     flow_classes,
     pooled_bounds,
-    pooled_residuals,
 )
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
@@ -58,7 +57,7 @@ def _held_out_coverage(
     k = default_n_classes(obs)
     n_columns = obs.shape[1]
     blocks = [slice(a, min(a + block, n_columns)) for a in range(0, n_columns, block)]
-    data = SortedResiduals.of(*pooled_residuals(obs, sim, k, block=block), k)
+    data = class_residuals(obs, sim, k, block=block)
     lower = np.empty((k, n_columns))
     upper = np.empty((k, n_columns))
     for c, (values, basins) in enumerate(zip(data.values, data.basins, strict=True)):

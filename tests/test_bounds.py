@@ -94,15 +94,26 @@ def test_residual_tails_rebuild_the_error_model_exactly_at_wider_levels(n_basins
 
 
 def test_residuals_block_by_block_are_those_of_the_whole_grid():
-    # Two routes: log_residuals on the whole grid with its classes, and pooled_residuals a few
-    # basins at a time (classes and offsets are within-basin): the same arrays, same order.
-    from regional.bounds import flow_classes, log_residuals, pooled_residuals
+    # Two routes: log_residuals on the whole grid with its classes, sorted by class
+    # (SortedResiduals.of), and class_residuals a few basins at a time (classes and offsets
+    # are within-basin): the same arrays, same order; ties kept in day-then-basin order.
+    from regional.bounds import (
+        SortedResiduals,
+        class_residuals,
+        flow_classes,
+        log_residuals,
+        observed_basins,
+    )
 
     rng = np.random.default_rng(4)
     sim = rng.gamma(2.0, 1.0, (300, 11))
     obs = sim * np.exp(rng.normal(0.0, 0.4, sim.shape))
     obs[rng.random(sim.shape) < 0.2] = np.nan
-    whole = log_residuals(obs, sim, flow_classes(sim, 3), OFFSET_FRACTION)
+    obs[::7] = np.round(obs[::7], 1)  # tied residuals
+    obs[:, 5] = np.nan  # a basin without an observed day
+    whole = SortedResiduals.of(*log_residuals(obs, sim, flow_classes(sim, 3), OFFSET_FRACTION), 3)
     for block in (1, 4, 11):
-        for got, expected in zip(pooled_residuals(obs, sim, 3, block=block), whole, strict=True):
-            np.testing.assert_array_equal(got, expected)
+        got = class_residuals(obs, sim, 3, block=block)
+        for ours, theirs in zip(got.values + got.basins, whole.values + whole.basins, strict=True):
+            np.testing.assert_array_equal(ours, theirs)
+        assert observed_basins(obs, block=block) == 10
