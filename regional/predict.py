@@ -272,11 +272,12 @@ def _sites(job: _SitesJob, targets, *, executor, reader, chunk_basins: int | Non
     size = chunk_basins or chunk_size(len(targets), PREDICTION_CHUNK, n_workers=executor.n_workers)
     task, shared = shipped(_sites_chunk, job, reader)
     parts = executor.map(task, _no_lone_basin(chunked(targets, max(2, size))), shared)
-    grids = [
-        _joined([getattr(p, name) for p in parts]) for name in ("flow_mm", "low_mm", "high_mm")
-    ]
     statistics = pd.concat([p.statistics for p in parts])
     model = pd.concat([p.model_statistics for p in parts]).sort_index()
+    names = ("flow_mm", "low_mm", "high_mm")
+    pieces = {name: [getattr(p, name) for p in parts] for name in names}
+    del parts  # each grid's chunks are dropped once joined: one grid is held twice, not three
+    grids = [_joined(pieces.pop(name)) for name in names]
     return (*grids, statistics, model)
 
 
