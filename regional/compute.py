@@ -284,12 +284,13 @@ class DaskExecutor:
         """:meth:`map` of each ``(function, chunks, context)`` batch without a barrier between
         batches.
 
-        The tasks of the first ``ahead + 1`` batches are submitted at once; each batch's
-        results are gathered in chunk order and yielded in batch order, and as one is gathered
-        the next batch is submitted, so the workers go on with the next batches while the
-        caller uses the results. Memory stays bounded: the results of at most ``ahead + 1``
-        batches wait on the workers, and the client holds one batch's results at a time
-        (plus what the caller keeps).
+        The tasks of the first ``ahead + 1`` batches are submitted at once, by this call (the
+        caller may do other work before taking the first results); each batch's results are
+        gathered in chunk order and yielded in batch order, and as one is gathered the next
+        batch is submitted, so the workers go on with the next batches while the caller uses
+        the results. Memory stays bounded: the results of at most ``ahead + 1`` batches wait
+        on the workers, and the client holds one batch's results at a time (plus what the
+        caller keeps).
         """
         if ahead < 0:
             raise ValueError(f"ahead must be >= 0: got {ahead}")
@@ -306,14 +307,17 @@ class DaskExecutor:
                 ]
                 pending.append((shared, futures))
 
+        def gathered() -> Iterator[list[Any]]:
+            while pending:
+                shared, futures = pending.popleft()
+                results = self.client.gather(futures)
+                del shared, futures  # released on the workers once gathered
+                submit_next()
+                yield results
+
         for _ in range(ahead + 1):
             submit_next()
-        while pending:
-            shared, futures = pending.popleft()
-            results = self.client.gather(futures)
-            del shared, futures  # released on the workers once gathered
-            submit_next()
-            yield results
+        return gathered()
 
     def start_map(
         self, function: ChunkFn, chunks: Sequence[Sequence[Any]], context: Any

@@ -78,6 +78,7 @@ def test_dask_map_batches_submits_ahead_and_keeps_batch_order():
     try:
         drawn: list[int] = []
         results = executor.map_batches(_batches(drawn, 5), ahead=2)
+        assert drawn == [0, 1, 2]  # submitted by the call, before any result is taken
         assert next(results) == _expected(0)
         assert drawn == [0, 1, 2, 3]  # batches 1 and 2 were in flight; 3 sent as 0 came back
         assert list(results) == [_expected(i) for i in range(1, 5)]
