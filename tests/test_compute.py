@@ -99,12 +99,16 @@ def test_local_workers_are_forked_on_linux_when_dask_is_left_at_spawn():
     assert worker_start_method("forkserver", platform="linux") == "forkserver"
 
 
-def _client_mark() -> object:
-    return getattr(compute, "CLIENT_MARK", None)
+def _client_mark() -> tuple:
+    import dask
+
+    return getattr(compute, "CLIENT_MARK", None), dask.config.get(
+        "distributed.worker.profile.enabled"
+    )
 
 
 @pytest.mark.skipif(sys.platform != "linux", reason="local workers are forked on Linux only")
-def test_local_workers_start_as_copies_of_the_client_with_its_modules(monkeypatch):
+def test_local_workers_start_as_copies_of_the_client_with_its_modules_unprofiled(monkeypatch):
     # A forked worker sees a value set in this process before the cluster started (a spawned
     # one would import regional.compute afresh, without it), and the modules it was asked to
     # import are imported here first, so it starts with them.
@@ -116,7 +120,8 @@ def test_local_workers_start_as_copies_of_the_client_with_its_modules(monkeypatc
         executor = compute.DaskExecutor(workers=1, worker_modules=("regional.pipeline",))
     try:
         assert "regional.pipeline" in sys.modules
-        assert list(executor.client.run(_client_mark).values()) == ["set in the client"]
+        # and no statistical profile is sampled on a local worker (no dashboard shows it)
+        assert list(executor.client.run(_client_mark).values()) == [("set in the client", False)]
     finally:
         executor.close()
 
