@@ -26,7 +26,7 @@ from regional.config import Settings
 from regional.coverage import loo_coverage
 from regional.crossval import FoldContext
 from regional.errors import InputError, InputWarning
-from regional.heldout import held_out_check, with_held_out
+from regional.heldout import start_held_out_check, with_held_out
 from regional.models import parameter_transforms
 from regional.transfer import RegressionTransfer, fit_transfer
 from regional.transfer.step import TransferOptions
@@ -194,7 +194,8 @@ def fit_region(
 
     The error model of the chosen (model, method) is built from the leave-one-out residuals
     (:func:`regional.bounds.conformal_bounds`), checked on basins held out of the whole fit and
-    widened where they fall short (:func:`regional.heldout.held_out_check`); the coverage of
+    widened where they fall short (:func:`regional.heldout.held_out_check`, whose repeats start
+    first, :func:`regional.heldout.start_held_out_check`); the coverage of
     every (model, method) is measured (:func:`regional.coverage.loo_coverage`).
 
     Parameters
@@ -225,18 +226,21 @@ def fit_region(
     level = check_level(settings.prediction.level if level is None else level)
     run = runs[model]
     context, loo = run.context, run.loo
-    error_model = conformal_bounds(loo.observed, loo.simulated[method], level=level)
-    held_out, error_model, notes, draws = held_out_check(
+    # the check's first repeats start first: on a cluster the workers simulate them while
+    # this process builds the error model and the leave-one-out coverage
+    finish_check = start_held_out_check(
         run,
         method,
-        error_model,
         level=level,
         repeats=settings.prediction.held_out_repeats,
         fit_level=settings.prediction.level,
         executor=executor,
         reader=reader,
     )
-    coverage = with_held_out(loo_coverage(runs, level=level), held_out, model=model, method=method)
+    error_model = conformal_bounds(loo.observed, loo.simulated[method], level=level)
+    coverage = loo_coverage(runs, level=level)
+    held_out, error_model, notes, draws = finish_check(error_model)
+    coverage = with_held_out(coverage, held_out, model=model, method=method)
     dates = context.precip_mm.index
     return FittedRegion(
         model=model,

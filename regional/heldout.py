@@ -9,7 +9,9 @@ flow classes that fall short. See ``docs/prediction.md``.
 from __future__ import annotations
 
 import uuid
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, replace
+from functools import partial
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -106,11 +108,12 @@ def _repeats(
     executor=None,
     chunk_basins: int = HELD_OUT_CHUNK,
     reader: StoreReader | None = None,
-):
+) -> Iterator[HeldOutRepeat]:
     """The repeats of :func:`held_out_flows` one at a time (each can be summarised and dropped
     before the next is simulated). With an ``executor`` (a Dask cluster) each repeat's target
-    basins run as tasks of ``chunk_basins``, reading their series with ``reader`` when given;
-    the flows are the same."""
+    basins run as tasks of ``chunk_basins``, reading their series with ``reader`` when given,
+    and the first repeats' tasks are submitted by this call (the caller may work before it
+    takes them); the flows are the same."""
     if int(repeats) != repeats or repeats < 1:
         raise ValueError(f"repeats must be a whole number >= 1: got {repeats!r}")
     if not 0.0 < fraction < 1.0:
@@ -122,11 +125,16 @@ def _repeats(
             f"the held-out check needs at least {size + 3} gauged basins to hold out {size}; "
             f"found {len(gauged)}"
         )
-    loo_flow = run.loo.simulated[method]
     draws = _held_out_draws(gauged, size, int(repeats), seed)
     if executor is not None:
-        yield from _repeats_as_tasks(run, method, level, draws, executor, chunk_basins, reader)
-        return
+        return _repeats_as_tasks(run, method, level, draws, executor, chunk_basins, reader)
+    return _repeats_here(run, method, level, draws)
+
+
+def _repeats_here(run: ModelRun, method: str, level: float, draws) -> Iterator[HeldOutRepeat]:
+    """The repeats in this process, each simulated when it is taken."""
+    gauged = [str(b) for b in run.loo.observed.columns]
+    loo_flow = run.loo.simulated[method]
     folds = _HeldOutFolds(run.context, method, level=level)
     for held in draws:
         held_set = set(held)
@@ -136,10 +144,13 @@ def _repeats(
         yield _assembled(held, training, flows, loo_flow)
 
 
-def _repeats_as_tasks(run: ModelRun, method, level, draws, executor, chunk_basins, reader):
-    """The repeats run as tasks with no barrier between them: the tasks of the next repeats
-    are already submitted (:meth:`regional.compute.DaskExecutor.map_batches`) while the
-    caller summarises a repeat; repeats come back in draw order, each whole."""
+def _repeats_as_tasks(
+    run: ModelRun, method, level, draws, executor, chunk_basins, reader
+) -> Iterator[HeldOutRepeat]:
+    """The repeats run as tasks with no barrier between them: the tasks of the first repeats
+    are submitted now, those of the next ones while the caller summarises a repeat
+    (:meth:`regional.compute.DaskExecutor.map_batches`); repeats come back in draw order,
+    each whole."""
     gauged = [str(b) for b in run.loo.observed.columns]
     basins = [_Draw.of(held, gauged, run.context.donor_only) for held in draws]
     check = uuid.uuid4().hex  # the key of this check's leave-one-out donations on a worker
@@ -148,9 +159,13 @@ def _repeats_as_tasks(run: ModelRun, method, level, draws, executor, chunk_basin
         for draw in basins
     )
     loo_flow = run.loo.simulated[method]
-    for draw, results in zip(basins, executor.map_batches(batches), strict=True):
-        flows = {k: v for part in results for k, v in part.items()}
-        yield _assembled(draw.held, draw.training, flows, loo_flow)
+    results = executor.map_batches(batches)
+    return (
+        _assembled(
+            draw.held, draw.training, {k: v for part in parts for k, v in part.items()}, loo_flow
+        )
+        for draw, parts in zip(basins, results, strict=True)
+    )
 
 
 @dataclass(frozen=True)
@@ -330,6 +345,12 @@ def _same_donation(first: Donation, second: Donation) -> bool:
     )
 
 
+CheckResult = tuple[
+    pd.DataFrame | None, ConformalErrorModel, list[str], tuple[HeldOutSummary, ...]
+]
+"""What :func:`held_out_check` returns: table or None, error model, notes, repeats."""
+
+
 def held_out_check(
     run: ModelRun,
     method: str,
@@ -340,7 +361,7 @@ def held_out_check(
     fit_level: float,
     executor=None,
     reader: StoreReader | None = None,
-) -> tuple[pd.DataFrame | None, ConformalErrorModel, list[str], tuple[HeldOutSummary, ...]]:
+) -> CheckResult:
     """Held-out coverage of the chosen bounds; classes short by > tolerance are widened.
 
     Parameters
@@ -374,40 +395,81 @@ def held_out_check(
         no training basin's daily flow; empty when the check does not run; the flow statistics
         reuse them for their own held-out check).
     """
+    finish = start_held_out_check(
+        run,
+        method,
+        level=level,
+        repeats=repeats,
+        fit_level=fit_level,
+        executor=executor,
+        reader=reader,
+    )
+    return finish(error_model)
+
+
+def start_held_out_check(
+    run: ModelRun,
+    method: str,
+    *,
+    level: float,
+    repeats: int,
+    fit_level: float,
+    executor=None,
+    reader: StoreReader | None = None,
+) -> Callable[[ConformalErrorModel], CheckResult]:
+    """:func:`held_out_check` in two steps: start the repeats now (on a cluster the tasks of
+    the first repeats are submitted by this call), then finish with the error model.
+
+    The caller builds the error model, and may do other work, while the workers simulate
+    the first repeats; the returned call takes the error model, summarises the repeats as
+    they come back and gives what :func:`held_out_check` gives (the same numbers: the
+    repeats do not depend on the error model). Parameters as :func:`held_out_check`.
+    """
     n_gauged = run.loo.observed.shape[1]
     if repeats == 0:
-        return (
-            None,
-            error_model,
-            ["no held-out check of the bounds ([prediction] held_out_repeats = 0)"],
-            (),
+        return partial(
+            _unchecked, "no held-out check of the bounds ([prediction] held_out_repeats = 0)"
         )
     if n_gauged < MIN_HELD_OUT_BASINS:
-        return (
-            None,
-            error_model,
-            [
-                f"no held-out check of the bounds: {n_gauged} gauged basins, fewer than "
-                f"{MIN_HELD_OUT_BASINS}"
-            ],
-            (),
+        return partial(
+            _unchecked,
+            f"no held-out check of the bounds: {n_gauged} gauged basins, fewer than "
+            f"{MIN_HELD_OUT_BASINS}",
         )
+    started = _repeats(
+        run,
+        method,
+        repeats=repeats,
+        level=fit_level,
+        fraction=HELD_OUT_FRACTION,
+        seed=HELD_OUT_SEED,
+        executor=executor,
+        chunk_basins=held_out_chunk(n_gauged, n_workers=_workers(executor)),
+        reader=reader,
+    )
+    return partial(_finished_check, run, method, started, level=level)
+
+
+def _unchecked(note: str, error_model: ConformalErrorModel) -> CheckResult:
+    return None, error_model, [note], ()
+
+
+def _finished_check(
+    run: ModelRun,
+    method: str,
+    started: Iterator[HeldOutRepeat],
+    error_model: ConformalErrorModel,
+    *,
+    level: float,
+) -> CheckResult:
+    """The coverage of the repeats ``started``, and the error model widened where short."""
+    n_gauged = run.loo.observed.shape[1]
     observed, simulated = run.loo.observed, run.loo.simulated[method]
     k = error_model.n_classes
     statistics = _statistics_of(run.context.precip_mm)
     draws = [
         summarise_repeat(observed, draw, level=level, n_classes=k, statistics=statistics)
-        for draw in _repeats(
-            run,
-            method,
-            repeats=repeats,
-            level=fit_level,
-            fraction=HELD_OUT_FRACTION,
-            seed=HELD_OUT_SEED,
-            executor=executor,
-            chunk_basins=held_out_chunk(n_gauged, n_workers=_workers(executor)),
-            reader=reader,
-        )
+        for draw in started
     ]
     table = held_out_coverage(observed, draws, level=level, n_classes=k)
     table = table.rename(columns={"coverage": "held_out_coverage"})

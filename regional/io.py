@@ -462,16 +462,23 @@ def series_store_basins(path: str | Path) -> tuple[str, ...] | None:
 
 def read_store_groups(
     path: str | Path, groups: Sequence[int], columns: Sequence[str]
-) -> list[pd.DataFrame]:
-    """Read only the given row groups (one basin each) of a series store, only ``columns``."""
+) -> tuple[pd.DataFrame, np.ndarray]:
+    """Read only the given row groups (one basin each) of a series store, only ``columns``.
+
+    Returns
+    -------
+    (DataFrame, ndarray of int)
+        The groups' rows one after another, in the order of ``groups`` (one read of all of
+        them: no frame per group), and the rows of each group.
+    """
     import pyarrow
     import pyarrow.parquet
 
     try:
         with pyarrow.parquet.ParquetFile(path) as source:
-            return [
-                source.read_row_group(group, columns=list(columns)).to_pandas() for group in groups
-            ]
+            rows = np.array([source.metadata.row_group(g).num_rows for g in groups], dtype=int)
+            table = source.read_row_groups(list(groups), columns=list(columns))
+            return table.to_pandas(), rows
     except (pyarrow.ArrowException, OSError) as error:
         raise RunError(
             f"cannot read the series store {path} ({error}). Fix: make the file readable "

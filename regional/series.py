@@ -318,18 +318,18 @@ class StoreReader:
         where = {basin: group for group, basin in enumerate(self.basins)}
         groups = [where[str(basin)] for basin in basins]
         wanted = [self.date_column, *self.columns.values()]
-        frames = io.read_store_groups(self.path, groups, wanted)
+        frame, counts = io.read_store_groups(self.path, groups, wanted)
         tables = {
             name: np.full((len(basins), len(self.dates)), np.nan, SERIES_DTYPE)
             for name in self.columns
         }
-        rows = 0
-        for column, frame in enumerate(frames):
-            day = self.dates.get_indexer(pd.DatetimeIndex(frame[self.date_column]))
-            inside = day >= 0
-            for name, source in self.columns.items():
-                tables[name][column, day[inside]] = frame[source].to_numpy()[inside]
-            rows += len(frame)
+        day = self.dates.get_indexer(pd.DatetimeIndex(frame[self.date_column]))
+        column = np.repeat(np.arange(len(basins)), counts)
+        inside = day >= 0
+        place = (column[inside], day[inside])
+        for name, source in self.columns.items():
+            tables[name][place] = frame[source].to_numpy()[inside]
+        rows = len(frame)
         ids = pd.Index([str(b) for b in basins], name="basin_id")
         out = {
             name: pd.DataFrame(grid.T, index=self.dates, columns=ids, copy=False)

@@ -1,8 +1,17 @@
 """Executors give the same results in the same order."""
 
+import sys
+
 import pytest
 
-from regional.compute import InProcessExecutor, chunk_size, chunked, make_executor
+from regional import compute
+from regional.compute import (
+    InProcessExecutor,
+    chunk_size,
+    chunked,
+    make_executor,
+    worker_start_method,
+)
 
 
 def _square_all(chunk, context):
@@ -69,6 +78,7 @@ def test_dask_map_batches_submits_ahead_and_keeps_batch_order():
     try:
         drawn: list[int] = []
         results = executor.map_batches(_batches(drawn, 5), ahead=2)
+        assert drawn == [0, 1, 2]  # submitted by the call, before any result is taken
         assert next(results) == _expected(0)
         assert drawn == [0, 1, 2, 3]  # batches 1 and 2 were in flight; 3 sent as 0 came back
         assert list(results) == [_expected(i) for i in range(1, 5)]
@@ -78,6 +88,40 @@ def test_dask_map_batches_submits_ahead_and_keeps_batch_order():
         chunks = [["3"], ["1", "2"], ["4"]]
         wait = executor.start_map(_shifted_squares, chunks, 5)
         assert wait() == InProcessExecutor().map(_shifted_squares, chunks, 5)
+    finally:
+        executor.close()
+
+
+def test_local_workers_are_forked_on_linux_when_dask_is_left_at_spawn():
+    assert worker_start_method("spawn", platform="linux") == "fork"
+    assert worker_start_method("spawn", platform="darwin") == "spawn"
+    assert worker_start_method("spawn", platform="win32") == "spawn"
+    assert worker_start_method("forkserver", platform="linux") == "forkserver"
+
+
+def _client_mark() -> tuple:
+    import dask
+
+    return getattr(compute, "CLIENT_MARK", None), dask.config.get(
+        "distributed.worker.profile.enabled"
+    )
+
+
+@pytest.mark.skipif(sys.platform != "linux", reason="local workers are forked on Linux only")
+def test_local_workers_start_as_copies_of_the_client_with_its_modules_unprofiled(monkeypatch):
+    # A forked worker sees a value set in this process before the cluster started (a spawned
+    # one would import regional.compute afresh, without it), and the modules it was asked to
+    # import are imported here first, so it starts with them.
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    import dask
+
+    monkeypatch.setattr(compute, "CLIENT_MARK", "set in the client", raising=False)
+    with dask.config.set({"distributed.worker.multiprocessing-method": "spawn"}):
+        executor = compute.DaskExecutor(workers=1, worker_modules=("regional.pipeline",))
+    try:
+        assert "regional.pipeline" in sys.modules
+        # and no statistical profile is sampled on a local worker (no dashboard shows it)
+        assert list(executor.client.run(_client_mark).values()) == [("set in the client", False)]
     finally:
         executor.close()
 

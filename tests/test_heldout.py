@@ -244,3 +244,30 @@ def test_held_out_tasks_are_few_and_large_with_the_next_repeats_in_flight():
     assert held_out_chunk(150, n_workers=2) == HELD_OUT_CHUNK == 64
     assert held_out_chunk(74, n_workers=16) == 5  # 16 tasks per repeat
     assert held_out_chunk(3, n_workers=1) == 3 and held_out_chunk(1, n_workers=64) == 1
+
+
+def test_the_check_starts_its_repeats_before_it_is_given_the_error_model(demo_result):
+    # start_held_out_check hands the repeats to the executor at once (on a cluster the workers
+    # simulate them while the caller builds the error model); finished with the error model
+    # it gives what held_out_check gives in process.
+    from regional.compute import InProcessExecutor
+    from regional.heldout import held_out_check, start_held_out_check
+
+    calls: list[str] = []
+
+    class Recording(InProcessExecutor):
+        def map_batches(self, batches, *, ahead=3):
+            calls.append("repeats handed over")
+            return super().map_batches(batches, ahead=ahead)
+
+    run = demo_result.runs[demo_result.chosen_model]
+    method = demo_result.chosen_method
+    options = {"level": 0.8, "repeats": 3, "fit_level": demo_result.settings.prediction.level}
+    finish = start_held_out_check(run, method, executor=Recording(), **options)
+    assert calls == ["repeats handed over"]
+    plain = conformal_bounds(run.loo.observed, run.loo.simulated[method], level=0.8)
+    started, here = finish(plain), held_out_check(run, method, plain, **options)
+    pd.testing.assert_frame_equal(started[0], here[0], check_exact=True)
+    assert started[0].attrs == here[0].attrs and started[2] == here[2]
+    pd.testing.assert_frame_equal(started[1].table, here[1].table, check_exact=True)
+    assert [s.held_out for s in started[3]] == [s.held_out for s in here[3]]

@@ -131,6 +131,12 @@ def test_a_task_reads_only_its_own_basins_rows(tmp_path, region_parts):
     for name, table in read.tables.items():
         assert list(table.columns) == chunk
         pd.testing.assert_frame_equal(table, getattr(region, name)[chunk])
+    # basins out of the store's order, read at once over a part of the dates
+    part = region.dates[10:-10]
+    reader = series.store_reader(load_settings(from_store), part, with_temp=True)
+    chunk = ["B05", "B01", "B03"]
+    for name, table in reader.read(chunk).tables.items():
+        pd.testing.assert_frame_equal(table, getattr(region, name).loc[part, chunk])
 
 
 def test_a_plain_parquet_file_is_not_a_store(tmp_path, region_parts):
