@@ -315,11 +315,17 @@ class StoreReader:
 
     def read(self, basins: Sequence[str]) -> StoreChunk:
         """Read the row groups of ``basins`` only and place them on :attr:`dates`."""
+        grids, rows = self.read_grids(basins)
+        return StoreChunk(tables=self.frames(grids, basins), rows_read=rows)
+
+    def read_grids(self, basins: Sequence[str]) -> tuple[dict[str, np.ndarray], int]:
+        """Each table's values as read (basins x :attr:`dates`, NaN where a basin has no
+        record; flow in the store's unit), and the rows read from the file."""
         where = {basin: group for group, basin in enumerate(self.basins)}
         groups = [where[str(basin)] for basin in basins]
         wanted = [self.date_column, *self.columns.values()]
         frame, counts = io.read_store_groups(self.path, groups, wanted)
-        tables = {
+        grids = {
             name: np.full((len(basins), len(self.dates)), np.nan, SERIES_DTYPE)
             for name in self.columns
         }
@@ -328,17 +334,21 @@ class StoreReader:
         inside = day >= 0
         place = (column[inside], day[inside])
         for name, source in self.columns.items():
-            tables[name][place] = frame[source].to_numpy()[inside]
-        rows = len(frame)
+            grids[name][place] = frame[source].to_numpy()[inside]
+        return grids, len(frame)
+
+    def frames(self, grids: dict[str, np.ndarray], basins: Sequence[str]) -> dict:
+        """The tables of :meth:`read` from grids of :meth:`read_grids` (C-ordered, basins
+        x dates): DataFrames (dates, basins), flow in mm/day."""
         ids = pd.Index([str(b) for b in basins], name="basin_id")
         out = {
             name: pd.DataFrame(grid.T, index=self.dates, columns=ids, copy=False)
-            for name, grid in tables.items()
+            for name, grid in grids.items()
         }
         if self.mm_per_m3s is not None:
             factor = self.mm_per_m3s.reindex(ids).to_numpy().astype(SERIES_DTYPE)
             out["flow_mm"] = out["flow_mm"] * factor
-        return StoreChunk(tables=out, rows_read=rows)
+        return out
 
 
 def store_reader(

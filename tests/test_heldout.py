@@ -271,3 +271,37 @@ def test_the_check_starts_its_repeats_before_it_is_given_the_error_model(demo_re
     assert started[0].attrs == here[0].attrs and started[2] == here[2]
     pd.testing.assert_frame_equal(started[1].table, here[1].table, check_exact=True)
     assert [s.held_out for s in started[3]] == [s.held_out for s in here[3]]
+
+
+def test_a_worker_keeps_the_tables_it_read_for_the_next_repeats(
+    tmp_path, demo_result, monkeypatch
+):
+    # The kept reader gives the tables of the store reader exactly (values, dtype, layout);
+    # basins read once are not read again within the same check, up to the byte budget.
+    from dataclasses import replace
+
+    from regional import heldout
+    from regional.region import convert_series
+    from regional.series import store_reader
+
+    settings = demo_result.settings
+    convert_series(settings, tmp_path / "store.parquet")
+    settings = replace(settings, series=replace(settings.series, path=tmp_path / "store.parquet"))
+    context = demo_result.runs[demo_result.chosen_model].context
+    reader = store_reader(settings, context.precip_mm.index, with_temp=context.temp_c is not None)
+    basins = [str(b) for b in context.calibrated.index]
+    first, second = basins[:5], [basins[4], basins[2], basins[0]]
+    kept = heldout._KeptReader(reader, check="one check")
+    assert kept.read(first).rows_read > 0
+    again = kept.read(second)
+    assert again.rows_read == 0  # all three were read before
+    for name, table in reader.read(second).tables.items():
+        pd.testing.assert_frame_equal(again.tables[name], table, check_exact=True)
+        assert (
+            again.tables[name].to_numpy().flags.f_contiguous == table.to_numpy().flags.f_contiguous
+        )
+    assert heldout._KeptReader(reader, check="another").read(second).rows_read > 0
+    monkeypatch.setattr(heldout, "KEPT_TABLE_BYTES", 0)
+    none_kept = heldout._KeptReader(reader, check="a third")
+    none_kept.read(first)
+    assert none_kept.read(first).rows_read > 0  # nothing kept within a budget of 0 bytes
