@@ -18,7 +18,7 @@ import pandas as pd
 
 from regional import io
 from regional.calibrate import Window, calibrate, scoring_window
-from regional.compute import TASKS_PER_WORKER, chunk_size, chunked, make_executor
+from regional.compute import TASKS_PER_WORKER, chunk_size, make_executor, tapered
 from regional.config import Settings, load_settings
 from regional.crossval import (
     CALIBRATED,
@@ -429,7 +429,9 @@ def _calibrate(model, region, settings, window: Window, executor, progress) -> p
             executor=executor,
             tasks_per_worker=CALIBRATION_TASKS_PER_WORKER,
         )
-        chunks = chunked(searched, size)
+        # the last tasks shorter on a cluster: GR4J basins differ in cost, and a long last
+        # task would keep one worker busy while the other waits
+        chunks = tapered(searched, size, n_workers=getattr(executor, "n_workers", 1))
         stage = _stage(progress, f"calibration {model}")
         reader = _store_reader(region, settings, executor, region.dates)
         task, shared = shipped(_calibrate_chunk, job, reader)

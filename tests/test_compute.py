@@ -10,6 +10,7 @@ from regional.compute import (
     chunk_size,
     chunked,
     make_executor,
+    tapered,
     worker_start_method,
 )
 
@@ -22,6 +23,22 @@ def test_chunked_keeps_order_and_sizes():
     assert chunked(list("abcde"), 2) == [["a", "b"], ["c", "d"], ["e"]]
     with pytest.raises(ValueError, match="chunk size must be >= 1"):
         chunked(["a"], 0)
+
+
+def test_tapered_chunks_shrink_towards_the_end_and_keep_the_order():
+    items = [f"B{i:03d}" for i in range(150)]
+    chunks = tapered(items, 10, n_workers=2)
+    assert [b for chunk in chunks for b in chunk] == items
+    sizes = [len(chunk) for chunk in chunks]
+    assert sizes == sorted(sizes, reverse=True) and max(sizes) == 10
+    assert sizes[-4:] == [1, 1, 1, 1]  # the last share of each worker is one item
+    # each chunk at most a quarter (2 workers) of what was left, rounded up
+    left = len(items)
+    for size in sizes:
+        assert size <= max(1, -(-left // 4))
+        left -= size
+    assert tapered(items, 10, n_workers=1) == chunked(items, 10)
+    assert tapered([], 10, n_workers=2) == []
 
 
 def test_chunk_size_leaves_every_worker_several_tasks():
