@@ -144,16 +144,21 @@ def tapered(items: Sequence[str], size: int, *, n_workers: int) -> list[list[str
     the end (order kept): each chunk holds at most a ``1 / (2 n_workers)`` share of the items
     not yet cut, so a stage's last tasks are short and no worker waits long for another's
     last one (after guided self-scheduling, which cuts a ``1 / n_workers`` share:
-    Polychronopoulos and Kuck 1987, IEEE Trans. Computers 36(12)). With one worker:
-    :func:`chunked`."""
+    Polychronopoulos and Kuck 1987, IEEE Trans. Computers 36(12)). No chunk holds a lone
+    item unless ``size`` is 1: a one-basin chunk's arrays are typed apart by numba (a column
+    is both C- and F-contiguous), which would compile the kernels again on every worker the
+    first time. With one worker: :func:`chunked`."""
     if size < 1:
         raise ValueError(f"chunk size must be >= 1: got {size}")
     if n_workers <= 1:
         return chunked(items, size)
+    least = min(2, size)
     chunks, start = [], 0
     while start < len(items):
         share = -(-(len(items) - start) // (2 * n_workers))
-        step = max(1, min(size, share))
+        step = max(least, min(size, share))
+        if len(items) - start - step == 1 and least > 1:
+            step += 1  # no lone item left for the last chunk
         chunks.append(list(items[start : start + step]))
         start += step
     return chunks

@@ -31,12 +31,14 @@ def test_tapered_chunks_shrink_towards_the_end_and_keep_the_order():
     assert [b for chunk in chunks for b in chunk] == items
     sizes = [len(chunk) for chunk in chunks]
     assert sizes == sorted(sizes, reverse=True) and max(sizes) == 10
-    assert sizes[-4:] == [1, 1, 1, 1]  # the last share of each worker is one item
-    # each chunk at most a quarter (2 workers) of what was left, rounded up
+    assert sizes[-3:] == [2, 2, 2]  # the last tasks are short, but no lone basin
+    # each chunk at most a quarter (2 workers) of what was left, rounded up, and 2 or more
     left = len(items)
     for size in sizes:
-        assert size <= max(1, -(-left // 4))
+        assert 2 <= size <= max(2, -(-left // 4))
         left -= size
+    assert [len(c) for c in tapered(items[:7], 10, n_workers=2)] == [2, 2, 3]
+    assert [len(c) for c in tapered(items[:3], 1, n_workers=2)] == [1, 1, 1]
     assert tapered(items, 10, n_workers=1) == chunked(items, 10)
     assert tapered([], 10, n_workers=2) == []
 
