@@ -39,6 +39,9 @@ UNEP_REFERENCE = "UNEP (1992) World Atlas of Desertification"
 #: Days with mean air temperature below this (deg C) count as snowfall days for ``snow_fraction``.
 SNOW_THRESHOLD_C = 0.0
 
+#: Basins whose series are widened to float64 and summed at a time (:func:`_column_sums`).
+SUM_BLOCK_BASINS = 256
+
 #: Share of a basin an overlay must cover before a partial-coverage note is written.
 _FULL_COVER = 0.999
 
@@ -445,14 +448,19 @@ def _masked_mean(values: np.ndarray, valid: np.ndarray) -> np.ndarray:
         return np.where(count > 0, total / count, np.nan)
 
 
-def _column_sums(values: np.ndarray) -> np.ndarray:
+def _column_sums(values: np.ndarray, *, block: int = SUM_BLOCK_BASINS) -> np.ndarray:
     """Sum of each column (basin), each summed on its own in contiguous memory.
 
     A basin's sum then does not depend on how many other basins share the array or on its
     memory layout, so a basin alone (a new site of a fitted region) gets the bits it had among
     the region's basins.
     """
-    return np.ascontiguousarray(np.asarray(values, dtype=float).T).sum(axis=1)
+    values = np.asarray(values)
+    sums = np.empty(values.shape[1])
+    for first in range(0, values.shape[1], block):  # float64 copies of a block only
+        part = slice(first, first + block)
+        sums[part] = np.ascontiguousarray(values[:, part].T, dtype=float).sum(axis=1)
+    return sums
 
 
 # ----------------------------------------------------------------------------- overlays

@@ -84,7 +84,8 @@ class FittedRegion:
         The region's equal-area CRS (PROJ text), in which new sites' attributes are computed.
     held_out_draws : tuple of HeldOutRepeat
         The repeats of the held-out check (their flows), for the held-out coverage of the flow
-        statistics in the same run; kept in memory only (not among the stored files).
+        statistics in the same run; kept in memory only (not among the stored files), and
+        dropped by :func:`regional.pipeline.run` once the statistics are computed.
     inputs : dict
         Input file -> SHA-256 when fitted (:func:`regional.fittedfiles.stale_reason`).
     settings : dict

@@ -199,13 +199,16 @@ def _assembled(held, training, flows: dict, loo_flow: pd.DataFrame) -> HeldOutRe
     """A repeat from its basins' flows (None: the leave-one-out flow is reused)."""
 
     def frame(targets: list[str]) -> pd.DataFrame:
-        columns = [
-            loo_flow[t].to_numpy(dtype=float) if flows[t] is None else flows[t] for t in targets
-        ]
+        # filled a basin at a time (never held twice, as a list of columns too), in the layout
+        # the frame had when built from stacked columns: each basin's days contiguous
+        by_basin = np.empty((len(targets), len(loo_flow.index)))
+        for row, target in enumerate(targets):
+            by_basin[row] = loo_flow[target].to_numpy() if flows[target] is None else flows[target]
         return pd.DataFrame(
-            np.column_stack(columns),
+            by_basin.T,
             index=loo_flow.index,
             columns=pd.Index(targets, name="basin_id"),
+            copy=False,
         )
 
     reused = sum(flows[t] is None for t in [*training, *held])

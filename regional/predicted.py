@@ -123,7 +123,8 @@ class Prediction:
         independent check). None when the check did not run.
     held_out_draws : tuple of HeldOutRepeat
         The repeats' flows (:func:`regional.heldout.held_out_flows`), reused by the flow
-        statistics' held-out check; empty when the check did not run.
+        statistics' held-out check; empty when the check did not run, and in the result of
+        :func:`regional.pipeline.run`, which drops them once the statistics are computed.
     model_statistics : DataFrame or None
         Indexed by ``basin_id`` (sorted): the flow statistics
         (:func:`regional.flowstats.statistics_frame`) of each target's daily flow over the

@@ -453,3 +453,15 @@ def test_same_field_in_two_overlays_is_an_error():
     second = io.Overlay(first.frame, ("sand_frac",), "geology.gpkg:units")
     with pytest.raises(InputError, match=r"field 'sand_frac' is listed by both soils.gpkg:soils"):
         _compute(basin, overlays=[first, second])
+
+
+def test_column_sums_a_block_of_basins_at_a_time_are_the_whole_arrays_sums():
+    # two routes: each basin's float32 series widened and summed a block of basins at a time,
+    # and the whole (days, basins) array widened at once and summed per basin: the same bits
+    from regional.attributes import _column_sums
+
+    rng = np.random.default_rng(7)
+    values = rng.gamma(0.6, 5.0, (3653, 11)).astype(np.float32)
+    whole = np.ascontiguousarray(np.asarray(values, dtype=float).T).sum(axis=1)
+    for block in (1, 3, 11, 256):
+        np.testing.assert_array_equal(_column_sums(values, block=block), whole)
