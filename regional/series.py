@@ -31,8 +31,9 @@ SERIES_DTYPE = np.float32
 rain gauges, PET formulas or flow ratings carry; the kernels and metrics compute in float64.
 Leave-one-out scores of a region read as float32 and as float64 agree to 1e-5 relative
 (tested)."""
-BATCH_ROWS = 1_000_000
-"""Rows of the series file read, checked and placed at a time."""
+BATCH_ROWS = 250_000
+"""Rows of the series file read, checked and placed at a time (250,000 rather than 1,000,000:
+the same time, and reading a 2,000-basin store peaked 170 MB lower)."""
 
 
 @dataclass(frozen=True, eq=False)
