@@ -157,7 +157,7 @@ def predict_sites(
     """
     level = fitted.level
     targets = list(attributes.index)
-    context = fitted.context(precip_mm[targets], pet_mm[targets], temp_c)
+    context = fitted.context(_of(precip_mm, targets), _of(pet_mm, targets), temp_c)
     donations, parameters, notes = _parameters_by_method(context, attributes, level)
     if fitted.method not in donations:
         raise InputError(
@@ -203,6 +203,11 @@ def predict_sites(
         held_out_draws=fitted.held_out_draws,
         model_statistics=model_statistics,
     )
+
+
+def _of(frame: pd.DataFrame, targets: list[str]) -> pd.DataFrame:
+    """The targets' columns of a days x sites table, not copied when it holds just those."""
+    return frame if list(frame.columns) == targets else frame[targets]
 
 
 @dataclass(frozen=True)
