@@ -10,7 +10,8 @@ from __future__ import annotations
 import logging
 import time
 import warnings
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -18,7 +19,13 @@ import pandas as pd
 
 from regional import io
 from regional.calibrate import Window, calibrate, scoring_window
-from regional.compute import TASKS_PER_WORKER, chunk_size, make_executor, tapered
+from regional.compute import (
+    TASKS_PER_WORKER,
+    chunk_size,
+    make_executor,
+    release_freed_memory,
+    tapered,
+)
 from regional.config import Settings, load_settings
 from regional.crossval import (
     CALIBRATED,
@@ -120,9 +127,8 @@ def run(
     if own:
         executor = open_executor(settings, scheduler=scheduler, workers=workers)
     try:
-        clock = time.perf_counter()
-        region = load_region(settings)
-        timings["region"] = time.perf_counter() - clock
+        with _timed(timings, "region"):
+            region = load_region(settings)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", InputWarning)
             stages = _chain(settings, region, executor, progress, timings)
@@ -169,6 +175,17 @@ def _user_parameter_notes(region: Region) -> list[str]:
     return notes
 
 
+@contextmanager
+def _timed(timings: dict[str, float], name: str) -> Iterator[None]:
+    """Time the block into ``timings[name]`` (s); then give the heap pages it freed back to
+    the system (:func:`regional.compute.release_freed_memory`), so that what one stage freed
+    is not resident through the next."""
+    clock = time.perf_counter()
+    yield
+    timings[name] = time.perf_counter() - clock
+    release_freed_memory()
+
+
 def _shown(basins: tuple[str, ...]) -> str:
     more = f" and {len(basins) - 10} more" if len(basins) > 10 else ""
     return ", ".join(basins[:10]) + more
@@ -183,39 +200,35 @@ def _chain(settings, region, executor, progress, timings) -> dict:
     ]
     summary = summarise(scores)
     model, method = _choose(summary, settings)
-    clock = time.perf_counter()
-    fitted = fit_region(
-        runs,
-        model=model,
-        method=method,
-        attributes=attributes,
-        settings=settings,
-        basins=region.basins,
-        inputs=io.file_checksums(settings.input_paths()),
-        **_held_out_compute(runs[model], region, settings, executor),
-    )
-    timings["fitted_region"] = time.perf_counter() - clock
+    with _timed(timings, "fitted_region"):
+        fitted = fit_region(
+            runs,
+            model=model,
+            method=method,
+            attributes=attributes,
+            settings=settings,
+            basins=region.basins,
+            inputs=io.file_checksums(settings.input_paths()),
+            **_held_out_compute(runs[model], region, settings, executor),
+        )
     prediction = screening = None
     if region.ungauged:
-        clock = time.perf_counter()
-        prediction = predict_region(
-            fitted,
-            region,
-            executor=executor,
-            reader=_prediction_reader(fitted, region, executor),
-            chunk_basins=_chunk_basins(
-                settings, PREDICTION_CHUNK, n_basins=len(region.ungauged), executor=executor
-            ),
-        )
-        timings["prediction"] = time.perf_counter() - clock
-    clock = time.perf_counter()
-    statistics = _statistics(runs[model], method, region, attributes, prediction)
-    timings["statistics"] = time.perf_counter() - clock
+        with _timed(timings, "prediction"):
+            prediction = predict_region(
+                fitted,
+                region,
+                executor=executor,
+                reader=_prediction_reader(fitted, region, executor),
+                chunk_basins=_chunk_basins(
+                    settings, PREDICTION_CHUNK, n_basins=len(region.ungauged), executor=executor
+                ),
+            )
+    with _timed(timings, "statistics"):
+        statistics = _statistics(runs[model], method, region, attributes, prediction)
     fitted, prediction = _without_draws(fitted), _without_draws(prediction)
     if region.ungauged:
-        clock = time.perf_counter()
-        screening = screen_region(fitted, region)
-        timings["screening"] = time.perf_counter() - clock
+        with _timed(timings, "screening"):
+            screening = screen_region(fitted, region)
     return {
         "attributes": attributes,
         "runs": runs,
@@ -248,9 +261,8 @@ def _model_runs(settings, region, attributes, executor, progress, timings) -> di
     excluded = _excluded(region, settings)
     runs = {}
     for model in settings.model.names:
-        clock = time.perf_counter()
-        calibration = _calibrate(model, region, settings, window, executor, progress)
-        timings[f"calibration_{model}"] = time.perf_counter() - clock
+        with _timed(timings, f"calibration_{model}"):
+            calibration = _calibrate(model, region, settings, window, executor, progress)
         clock = time.perf_counter()
         context = _fold_context(model, region, settings, window, calibration, attributes, excluded)
         chunk = _chunk_basins(settings, LOO_CHUNK, n_basins=len(calibration), executor=executor)
@@ -271,6 +283,7 @@ def _model_runs(settings, region, attributes, executor, progress, timings) -> di
         )
         regression = _regression_on_all(context, attributes)
         timings[f"leave_one_out_{model}"] = time.perf_counter() - clock
+        release_freed_memory()
         runs[model] = ModelRun(
             model,
             calibration,

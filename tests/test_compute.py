@@ -264,3 +264,15 @@ def test_convert_refuses_a_target_that_is_not_parquet(tmp_path, region_parts, ca
     folder = write_region(tmp_path / "region", region_parts)
     assert main(["convert", str(folder), "--out", str(tmp_path / "store.csv")]) == 2
     assert "a series store is a Parquet file" in capsys.readouterr().err
+
+
+def test_release_freed_memory_asks_glibc_on_linux_and_is_a_no_op_without_it(monkeypatch):
+    import ctypes
+
+    assert compute.release_freed_memory() is sys.platform.startswith("linux")
+
+    def no_libc(name):
+        raise OSError(f"{name}: cannot open shared object file")
+
+    monkeypatch.setattr(ctypes, "CDLL", no_libc)
+    assert compute.release_freed_memory() is False

@@ -346,3 +346,18 @@ def test_held_out_repeats_serve_the_statistics_then_are_dropped(demo_result):
     assert demo_result.prediction.held_out_draws == ()
     summary = demo_result.statistics.summary
     assert summary["held_out_coverage"].notna().any()  # the statistics had the repeats
+
+
+def test_each_stage_is_timed_and_returns_its_freed_memory(tmp_path, region_parts, monkeypatch):
+    from tiny_region import write_region
+
+    from regional import pipeline
+
+    released: list[int] = []
+    monkeypatch.setattr(pipeline, "release_freed_memory", lambda: released.append(1) or True)
+    result = pipeline.run(write_region(tmp_path / "region", region_parts))
+    stages = ["region", "calibration_linear", "leave_one_out_linear", "fitted_region"]
+    stages += ["prediction", "statistics", "screening"]
+    assert list(result.timings) == stages
+    assert all(seconds >= 0 for seconds in result.timings.values())
+    assert len(released) == len(stages)
