@@ -56,9 +56,8 @@ def keep_freed_memory() -> bool:
     bool
         Whether the allocator accepted the settings.
     """
-    try:
-        libc = ctypes.CDLL("libc.so.6")
-    except OSError:
+    libc = _glibc()
+    if libc is None:
         return False
     done = libc.mallopt(_M_TOP_PAD, HEAP_PAD_BYTES) == 1
     return libc.mallopt(_M_TRIM_THRESHOLD, 2 * HEAP_PAD_BYTES) == 1 and done
@@ -81,12 +80,19 @@ def release_freed_memory() -> bool:
     bool
         Whether the allocator was asked (it may have had nothing to return).
     """
-    try:
-        libc = ctypes.CDLL("libc.so.6")
-    except OSError:
+    libc = _glibc()
+    if libc is None:
         return False
     libc.malloc_trim(0)
     return True
+
+
+def _glibc() -> ctypes.CDLL | None:
+    """The C library whose allocator the two functions above tune (None off glibc)."""
+    try:
+        return ctypes.CDLL("libc.so.6")
+    except OSError:
+        return None
 
 
 WORKER_ENVIRONMENT = {
