@@ -178,7 +178,8 @@ def tapered(items: Sequence[str], size: int, *, n_workers: int) -> list[list[str
     Polychronopoulos and Kuck 1987, IEEE Trans. Computers 36(12)). No chunk holds a lone
     item unless ``size`` is 1: a one-basin chunk's arrays are typed apart by numba (a column
     is both C- and F-contiguous), which would compile the kernels again on every worker the
-    first time. With one worker: :func:`chunked`."""
+    first time. So with ``size`` 2 and an odd number of items the last chunk holds 3 (the only
+    case a chunk exceeds ``size``). With one worker: :func:`chunked`."""
     if size < 1:
         raise ValueError(f"chunk size must be >= 1: got {size}")
     if n_workers <= 1:

@@ -39,6 +39,11 @@ def test_tapered_chunks_shrink_towards_the_end_and_keep_the_order():
         left -= size
     assert [len(c) for c in tapered(items[:7], 10, n_workers=2)] == [2, 2, 3]
     assert [len(c) for c in tapered(items[:3], 1, n_workers=2)] == [1, 1, 1]
+    assert [len(c) for c in tapered(items[:5], 2, n_workers=2)] == [2, 3]  # no lone last item
+    for n in range(2, 60):  # only size 2 lets a chunk exceed the size, and only by one
+        for size in (2, 3, 5, 10):
+            longest = max(len(c) for c in tapered(items[:n], size, n_workers=2))
+            assert longest <= (size + 1 if size == 2 else size)
     assert tapered(items, 10, n_workers=1) == chunked(items, 10)
     assert tapered([], 10, n_workers=2) == []
 
