@@ -16,7 +16,9 @@ its wall time and resident memory before, at the peak of, and after each stage. 
 
 Run:  python benchmarks/large_region.py [--sizes 500 2000 10000] [--years 20] [--dask-size 500]
 (one size, e.g. ``--sizes 500 --dask-size 500``, skips the scaling ratios.)
-(``--dask-size 0`` skips the cluster run.)
+(``--dask-size 0`` skips the cluster run; ``--cluster-only N`` runs only the cluster at N
+basins and prints its client's and workers' memory, for sizes where the in-process run beside
+it would take too long.)
 Every value of the synthetic region is invented.
 """
 
@@ -310,6 +312,18 @@ def _print_cluster(size: int, local: dict, clustered: dict) -> None:
     )
 
 
+def _cluster_alone(size: int, years: int) -> None:
+    """The 2-worker cluster run alone at ``size`` basins: its memory, not a speed-up."""
+    run = measure(size, years, workers=2)
+    workers = ", ".join(f"{mb:.0f} MB" for mb in run["worker_peak_mb"])
+    print(
+        f"2-worker local Dask cluster alone, N = {size}, {years} years: {run['seconds']:.1f} s; "
+        f"peak memory: client {run['peak_mb']:.0f} MB (the scheduler runs in it too; target "
+        f"<= 1024 MB at 10,000 basins), workers {workers}"
+    )
+    _print_stages([run])  # the client's
+
+
 def _print_stages(rows: list[dict]) -> None:
     """Resident memory before, at the peak of and after each stage at every size; with two or
     more sizes, the marginal peak per extra basin between the first two (the target's sizes)
@@ -353,6 +367,7 @@ def main() -> None:
     parser.add_argument("--sizes", type=int, nargs="+", default=[500, 2000])
     parser.add_argument("--years", type=int, default=20)
     parser.add_argument("--dask-size", type=int, default=500)
+    parser.add_argument("--cluster-only", type=int, default=0, metavar="N")
     parser.add_argument("--child", type=int, nargs=3, help=argparse.SUPPRESS)
     parser.add_argument("--build", nargs=3, help=argparse.SUPPRESS)
     args = parser.parse_args()
@@ -361,6 +376,9 @@ def main() -> None:
         return
     if args.child:
         child(*args.child)
+        return
+    if args.cluster_only:
+        _cluster_alone(args.cluster_only, args.years)
         return
     rows = [measure(n, args.years) for n in args.sizes]
     clustered = measure(args.dask_size, args.years, workers=2) if args.dask_size else None
