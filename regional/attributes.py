@@ -88,6 +88,7 @@ def compute_attributes(
     overlays: Sequence[io.Overlay] = (),
     dem: io.Raster | None = None,
     area_crs: pyproj.CRS | str | None = None,
+    climate: pd.DataFrame | None = None,
 ) -> Attributes:
     """Compute the attribute table of a region's basins.
 
@@ -116,6 +117,11 @@ def compute_attributes(
         Equal-area CRS of the centroids and overlay intersections; default
         :func:`equal_area_crs` of ``basins``. New sites of a fitted region are given the
         region's, so that their attributes are computed exactly as the region's were.
+    climate : DataFrame, optional
+        The attributes of the series computed beforehand, a block of basins at a time
+        (:func:`climate_table` of each block, stacked in basin order); the series arguments
+        are then not read. The table is the one computed from the whole series (each basin
+        is summed on its own).
 
     Returns
     -------
@@ -133,7 +139,10 @@ def compute_attributes(
     ids = list(basins.index)
     user = pd.DataFrame(basins.drop(columns=basins.geometry.name))
     notes: list[str] = []
-    series = _align_series(ids, precip_mm=precip_mm, pet_mm=pet_mm, temp_c=temp_c, flow_mm=flow_mm)
+    if climate is None:
+        climate = climate_table(
+            ids, precip_mm=precip_mm, pet_mm=pet_mm, temp_c=temp_c, flow_mm=flow_mm
+        )
     _check_overlay_fields(overlays)
     area_crs = equal_area_crs(basins) if area_crs is None else pyproj.CRS(area_crs)
     parts = [_centroids(basins, kind, area_crs)]
@@ -144,9 +153,7 @@ def compute_attributes(
         notes.append(
             "basins are points: perimeter_km, compactness, overlays and raster attributes skipped"
         )
-    parts.append(_aridity(series["precip"], series["pet"], ids, notes))
-    parts.append(_runoff_ratio(series["precip"], series["flow"], ids, notes))
-    parts.append(_snow_fraction(series["precip"], series["temp"], ids, notes))
+    parts.extend(_climate_parts(climate.reindex(ids), ids, notes))
     if kind == "polygon":
         for overlay in overlays:
             parts.append(_overlay_means(basins, overlay, area_crs, notes))
@@ -337,6 +344,14 @@ def _centroids(basins: gpd.GeoDataFrame, kind: str, area_crs: pyproj.CRS) -> pd.
     )
 
 
+def basin_area_km2(basins: gpd.GeoDataFrame) -> pd.Series:
+    """Area of each basin in km2: the layer's ``area_km2`` when it has one, else the geodesic
+    area of the polygons (as :func:`compute_attributes` computes it)."""
+    if "area_km2" in basins.columns:
+        return pd.to_numeric(basins["area_km2"]).astype(float)
+    return _area_perimeter_compactness(basins)["area_km2"]
+
+
 def _area_perimeter_compactness(basins: gpd.GeoDataFrame) -> pd.DataFrame:
     """Geodesic area and exterior perimeter on the WGS84 ellipsoid, and Gravelius' coefficient.
 
@@ -382,9 +397,94 @@ def _area_from_column(basins: gpd.GeoDataFrame) -> pd.DataFrame:
 # ----------------------------------------------------------------------------- climate
 
 
-def _aridity(
-    precip: np.ndarray, pet: np.ndarray, ids: list[str], notes: list[str]
+def climate_table(
+    ids: list[str],
+    *,
+    precip_mm: pd.DataFrame,
+    pet_mm: pd.DataFrame,
+    temp_c: pd.DataFrame | None = None,
+    flow_mm: pd.DataFrame | None = None,
 ) -> pd.DataFrame:
+    """The attributes of some basins' daily series, each basin summed on its own.
+
+    Parameters
+    ----------
+    ids : list of str
+        The basins, in the order of the rows returned.
+    precip_mm, pet_mm, temp_c, flow_mm
+        As for :func:`compute_attributes`.
+
+    Returns
+    -------
+    DataFrame
+        Indexed by ``ids``: ``aridity``, ``aridity_class``, ``runoff_ratio`` (when flow is
+        given), ``snow_fraction`` (when temperature is given), and per attribute a flag of
+        the basins without a day to compute it (``_no_climate``, ``_no_flow``,
+        ``_no_temp``). A basin's values do not depend on the other basins given with it, so
+        a region's table may be computed a block of basins at a time and stacked.
+    """
+    series = _align_series(ids, precip_mm=precip_mm, pet_mm=pet_mm, temp_c=temp_c, flow_mm=flow_mm)
+    parts = [_aridity(series["precip"], series["pet"])]
+    if series["flow"] is not None:
+        parts.append(_runoff_ratio(series["precip"], series["flow"]))
+    if series["temp"] is not None:
+        parts.append(_snow_fraction(series["precip"], series["temp"]))
+    return pd.concat(parts, axis=1).set_axis(pd.Index(ids))
+
+
+def _climate_parts(table: pd.DataFrame, ids: list[str], notes: list[str]) -> list[pd.DataFrame]:
+    """The attribute columns of a :func:`climate_table` and the notes on what is missing."""
+    table = table.set_axis(pd.Index(ids))
+    shown = np.asarray(ids)
+    empty = table["_no_climate"].to_numpy(dtype=bool)
+    if empty.any():
+        notes.append(
+            f"aridity NaN for {int(empty.sum())} basin(s) without a day of both precipitation "
+            f"and PET: {_shortlist(shown[empty])}"
+        )
+    notes.append(f"aridity_class: thresholds on P/PET from {UNEP_REFERENCE}")
+    parts = [table[["aridity", "aridity_class"]]]
+    parts.append(
+        _optional(
+            table,
+            "runoff_ratio",
+            "_no_flow",
+            skipped="runoff_ratio skipped: no observed flow given",
+            lacking=lambda m: (
+                f"runoff_ratio NaN for {int(m.sum())} basin(s) without observed flow"
+            ),
+            notes=notes,
+        )
+    )
+    parts.append(
+        _optional(
+            table,
+            "snow_fraction",
+            "_no_temp",
+            skipped="snow_fraction skipped: no temperature series given",
+            lacking=lambda m: (
+                f"snow_fraction NaN for {int(m.sum())} basin(s) without temperature: "
+                f"{_shortlist(shown[m])}"
+            ),
+            notes=notes,
+        )
+    )
+    return parts
+
+
+def _optional(table, name: str, flag: str, *, skipped: str, lacking, notes: list[str]):
+    """An attribute that needs an optional series: its column, or none and a note saying it
+    was skipped; a note on the basins without a day to compute it (``lacking(mask)``)."""
+    if name not in table.columns:
+        notes.append(skipped)
+        return pd.DataFrame(index=table.index)
+    without = table[flag].to_numpy(dtype=bool)
+    if without.any():
+        notes.append(lacking(without))
+    return table[[name]]
+
+
+def _aridity(precip: np.ndarray, pet: np.ndarray) -> pd.DataFrame:
     """Aridity PET/P (Budyko's dryness index) over the whole record and its UNEP (1992) class."""
     valid = np.isfinite(precip) & np.isfinite(pet)
     mean_p = _masked_mean(precip, valid)
@@ -392,53 +492,31 @@ def _aridity(
     with np.errstate(divide="ignore", invalid="ignore"):
         aridity = mean_pet / mean_p
         humidity = mean_p / mean_pet
-    empty = ~valid.any(axis=0)
-    if empty.any():
-        notes.append(
-            f"aridity NaN for {int(empty.sum())} basin(s) without a day of both precipitation "
-            f"and PET: {_shortlist(np.asarray(ids)[empty])}"
-        )
-    notes.append(f"aridity_class: thresholds on P/PET from {UNEP_REFERENCE}")
     return pd.DataFrame(
-        {"aridity": aridity, "aridity_class": aridity_class(humidity)}, index=pd.Index(ids)
+        {
+            "aridity": aridity,
+            "aridity_class": aridity_class(humidity),
+            "_no_climate": ~valid.any(axis=0),
+        }
     )
 
 
-def _runoff_ratio(
-    precip: np.ndarray, flow: np.ndarray | None, ids: list[str], notes: list[str]
-) -> pd.DataFrame:
+def _runoff_ratio(precip: np.ndarray, flow: np.ndarray) -> pd.DataFrame:
     """Mean observed flow over mean precipitation on the days with observed flow."""
-    if flow is None:
-        notes.append("runoff_ratio skipped: no observed flow given")
-        return pd.DataFrame(index=pd.Index(ids))
     valid = np.isfinite(flow) & np.isfinite(precip)
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = _masked_mean(flow, valid) / _masked_mean(precip, valid)
-    ungauged = ~valid.any(axis=0)
-    if ungauged.any():
-        notes.append(f"runoff_ratio NaN for {int(ungauged.sum())} basin(s) without observed flow")
-    return pd.DataFrame({"runoff_ratio": ratio}, index=pd.Index(ids))
+    return pd.DataFrame({"runoff_ratio": ratio, "_no_flow": ~valid.any(axis=0)})
 
 
-def _snow_fraction(
-    precip: np.ndarray, temp: np.ndarray | None, ids: list[str], notes: list[str]
-) -> pd.DataFrame:
+def _snow_fraction(precip: np.ndarray, temp: np.ndarray) -> pd.DataFrame:
     """Share of precipitation falling on days with mean temperature below 0 deg C."""
-    if temp is None:
-        notes.append("snow_fraction skipped: no temperature series given")
-        return pd.DataFrame(index=pd.Index(ids))
     valid = np.isfinite(precip) & np.isfinite(temp)
     total = _column_sums(np.where(valid, precip, 0.0))
     cold = _column_sums(np.where(valid & (temp < SNOW_THRESHOLD_C), precip, 0.0))
     with np.errstate(divide="ignore", invalid="ignore"):
         fraction = np.where(total > 0, cold / total, np.nan)
-    missing = ~valid.any(axis=0)
-    if missing.any():
-        notes.append(
-            f"snow_fraction NaN for {int(missing.sum())} basin(s) without temperature: "
-            f"{_shortlist(np.asarray(ids)[missing])}"
-        )
-    return pd.DataFrame({"snow_fraction": fraction}, index=pd.Index(ids))
+    return pd.DataFrame({"snow_fraction": fraction, "_no_temp": ~valid.any(axis=0)})
 
 
 def _masked_mean(values: np.ndarray, valid: np.ndarray) -> np.ndarray:

@@ -566,16 +566,21 @@ def warn_flow_gaps(flow: pd.DataFrame, *, source: str) -> pd.Series:
         :func:`flow_gap_days` of ``flow``.
     """
     gaps = flow_gap_days(flow)
+    warn_gap_days(gaps, n_observed=int(flow.notna().any(axis=0).sum()), source=source)
+    return gaps
+
+
+def warn_gap_days(gaps: pd.Series, *, n_observed: int, source: str) -> None:
+    """The warning of :func:`warn_flow_gaps` from the gap days already counted (e.g. a block
+    of basins at a time) and the number of basins with any observed flow."""
     with_gaps = gaps[gaps > 0].sort_values(ascending=False)
     if len(with_gaps):
-        n_observed = int(flow.notna().any(axis=0).sum())
         listing = _listing([f"'{basin}' ({days} days)" for basin, days in with_gaps.items()])
         found = (
             f"{len(with_gaps)} of {n_observed} basins with observed flow, "
             f"{int(with_gaps.sum())} missing days in all: {listing}"
         )
         _warn("flow_gap", source, found)
-    return gaps
 
 
 def check_parameter_table(

@@ -317,8 +317,10 @@ def _one_fold(target: str, context: FoldContext, donations: Mapping[str, FoldDon
     transforms = context.transforms
     names = list(transforms)
     forcing = _target_forcing(target, context)
-    obs = context.flow_mm[target].to_numpy(dtype=float)[context.evaluation]
-    fold = {"basin_id": target, "methods": {}, "warnings": []}
+    observed = context.flow_mm[target].to_numpy()[context.evaluation]
+    obs = observed.astype(float)
+    # the observed flow travels back with the fold: the client never reads it from the grids
+    fold = {"basin_id": target, "methods": {}, "warnings": [], "observed": observed}
     raised: set[str] = set()
     simulation = context.simulation
     with warnings.catch_warnings(record=True) as caught:
@@ -386,7 +388,7 @@ def _assemble(folds: list[dict], context: FoldContext) -> LeaveOneOut:
     scores["n_days"] = scores["n_days"].astype(int)
     dates = context.flow_mm.index[context.evaluation]
     ids = [fold["basin_id"] for fold in folds]
-    observed = context.flow_mm.loc[dates, ids]
+    observed = _observed(folds, dates, ids)
     simulated = {
         method: pd.DataFrame(
             _flow_columns(folds, method, len(dates)),
@@ -413,6 +415,15 @@ def _assemble(folds: list[dict], context: FoldContext) -> LeaveOneOut:
         warnings=notes,
         methods=methods,
     )
+
+
+def _observed(folds: list[dict], dates: pd.DatetimeIndex, ids: list[str]) -> pd.DataFrame:
+    """The folds' observed flows as (days, folds), each fold's copy dropped once placed."""
+    dtype = folds[0]["observed"].dtype if folds else np.float32
+    values = np.empty((len(folds), len(dates)), dtype=dtype)
+    for column, fold in enumerate(folds):
+        values[column] = fold.pop("observed")
+    return pd.DataFrame(values.T, index=dates, columns=pd.Index(ids, name="basin_id"), copy=False)
 
 
 def _flow_columns(folds: list[dict], method: str, n_days: int) -> np.ndarray:

@@ -251,7 +251,7 @@ def statistics_frame(
     *,
     precip_mm_day: pd.DataFrame | None = None,
     year_start_month: int = 1,
-    block_basins: int = BLOCK_BASINS,
+    block_basins: int | None = None,
 ) -> pd.DataFrame:
     """:func:`flow_statistics` of a DataFrame, one row per basin.
 
@@ -262,7 +262,8 @@ def statistics_frame(
         basins; NaN = missing.
     precip_mm_day : DataFrame, optional
         Daily precipitation, mm/day, with at least the dates and columns of ``flow_mm_day``
-        (for ``runoff_ratio``; only those are read).
+        (for ``runoff_ratio``; only those are read, a block of basins at a time: a
+        :class:`regional.series.StoreTable` reads each block's basins from the store).
     year_start_month : int, default 1
         First month of the year of the annual statistics.
     block_basins : int, default :data:`BLOCK_BASINS`
@@ -285,7 +286,7 @@ def statistics_frame(
         raise ValueError("flow statistics: the dates must be increasing with no repeats")
     parts = [
         _frame_block(flow_mm_day.iloc[:, part], precip_mm_day, year_start_month)
-        for part in column_blocks(flow_mm_day.shape[1], block_basins)
+        for part in column_blocks(flow_mm_day.shape[1], block_basins or BLOCK_BASINS)
     ]
     values = {name: np.concatenate([part[name] for part in parts]) for name in STATISTIC_NAMES}
     index = pd.Index(flow_mm_day.columns.astype(str), name="basin_id")

@@ -460,6 +460,46 @@ def series_store_basins(path: str | Path) -> tuple[str, ...] | None:
     return tuple(json.loads(meta[STORE_KEY])["basins"])
 
 
+def iter_store_blocks(
+    path: str | Path, columns: Sequence[str], *, block_groups: int
+) -> Iterator[tuple[range, pd.DataFrame]]:
+    """Read a series store a few row groups (basins) at a time, only ``columns``.
+
+    Each block is what :func:`iter_series` yields for a Parquet file (ids as text, empty rows
+    dropped, the index the place of each row in the file, named ``"row"``), cut at row groups
+    instead of at a number of rows, so messages name the same row.
+
+    Yields
+    ------
+    (range, ndarray of int, DataFrame)
+        The row groups of the block, the row (as in the index) where each of them starts,
+        and their rows.
+    """
+    import pyarrow
+    import pyarrow.parquet
+
+    path = _existing_file(path, "series file")
+    first_row = 1
+    try:
+        with pyarrow.parquet.ParquetFile(path) as source:
+            _require_columns(source.schema_arrow.names, columns, source=str(path), key="[series]")
+            n_groups = source.metadata.num_row_groups
+            for first in range(0, n_groups, max(1, int(block_groups))):
+                groups = range(first, min(n_groups, first + max(1, int(block_groups))))
+                rows = [source.metadata.row_group(g).num_rows for g in groups]
+                starts = first_row + np.concatenate([[0], np.cumsum(rows)[:-1]]).astype(int)
+                frame = source.read_row_groups(list(groups), columns=list(columns)).to_pandas()
+                frame = frame[list(columns)]
+                frame.index = pd.RangeIndex(first_row, first_row + len(frame), name=ROW)
+                first_row += len(frame)
+                frame[columns[0]] = _as_text(frame[columns[0]])
+                yield groups, starts, frame.loc[~frame.isna().all(axis=1)]
+    except (pyarrow.ArrowException, OSError) as error:
+        raise InputError(f"cannot read {path} as Parquet ({error}).") from None
+    finally:
+        pyarrow.default_memory_pool().release_unused()
+
+
 def read_store_groups(
     path: str | Path, groups: Sequence[int], columns: Sequence[str]
 ) -> tuple[pd.DataFrame, np.ndarray]:

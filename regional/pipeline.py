@@ -128,7 +128,8 @@ def run(
         executor = open_executor(settings, scheduler=scheduler, workers=workers)
     try:
         with _timed(timings, "region"):
-            region = load_region(settings)
+            # on a cluster the daily tables stay in a series store: the tasks read their own
+            region = load_region(settings, series_in_store=executor.name == "dask")
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", InputWarning)
             stages = _chain(settings, region, executor, progress, timings)

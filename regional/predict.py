@@ -43,7 +43,7 @@ from regional.crossval import FoldContext
 from regional.errors import InputError
 from regional.fitted import FittedRegion, fit_result
 from regional.predicted import DailyFlows, Prediction
-from regional.series import StoreReader, shipped
+from regional.series import StoreReader, basins_of, shipped
 from regional.transfer import Donation
 from regional.transfer.step import fit_methods
 
@@ -105,9 +105,9 @@ def predict_region(
     return predict_sites(
         fitted,
         region.attributes.loc[targets],
-        precip_mm=region.precip_mm[targets],
-        pet_mm=region.pet_mm[targets],
-        temp_c=None if region.temp_c is None else region.temp_c[targets],
+        precip_mm=basins_of(region.precip_mm, targets),
+        pet_mm=basins_of(region.pet_mm, targets),
+        temp_c=None if region.temp_c is None else basins_of(region.temp_c, targets),
         executor=executor,
         reader=reader,
         chunk_basins=chunk_basins,

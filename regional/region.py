@@ -19,12 +19,19 @@ import numpy as np
 import pandas as pd
 
 from regional import checks, io
-from regional.attributes import compute_attributes
+from regional.attributes import basin_area_km2, climate_table, compute_attributes
 from regional.config import Settings, load_settings
 from regional.errors import InputError, InputWarning
 from regional.flowstats import MM_DAY_PER_M3S_KM2
 from regional.models import get_model
-from regional.series import read_grids, write_store
+from regional.series import (
+    check_store,
+    read_grids,
+    store_blocks,
+    store_reader,
+    store_tables,
+    write_store,
+)
 from regional.series import tables as series_tables
 
 #: mm/day of runoff from 1 m3/s over 1 km2: 86 400 s/day * 1 m3/s / 1e6 m2 * 1000 mm/m.
@@ -40,7 +47,9 @@ class Region:
 
     Daily tables are DataFrames shaped (days, basins): index ``dates`` (named ``date``), columns
     ``basin_id`` in the order of ``basins``, values of :data:`regional.series.SERIES_DTYPE`
-    (float32), each basin's column contiguous in memory (:mod:`regional.series`).
+    (float32), each basin's column contiguous in memory (:mod:`regional.series`); or, loaded
+    with ``series_in_store``, :class:`regional.series.StoreTable` of the same layout whose
+    values stay in the series store until some basins' are asked for.
 
     Attributes
     ----------
@@ -169,13 +178,19 @@ class RegionSummary:
     n_donor_only: int = 0
 
 
-def load_region(path: str | Path | Settings) -> Region:
+def load_region(path: str | Path | Settings, *, series_in_store: bool = False) -> Region:
     """Read, check and assemble a region.
 
     Parameters
     ----------
     path : str, Path or Settings
         The region folder (holding ``region.toml``), the TOML file, or settings already loaded.
+    series_in_store : bool, default False
+        When the series file is a series store, leave the daily tables in it
+        (:class:`regional.series.StoreTable`: values read a block of basins at a time, where
+        asked for) instead of holding them as grids: the store is checked, and the attributes
+        of the series computed, a block of basins at a time. For the client of a run on a
+        cluster, whose tasks read their own basins. Everything else is the same.
 
     Returns
     -------
@@ -197,7 +212,7 @@ def load_region(path: str | Path | Settings) -> Region:
     settings = path if isinstance(path, Settings) else load_settings(path)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        region = _build(settings)
+        region = _build(settings, in_store=series_in_store)
     messages = []
     for record in caught:
         if issubclass(record.category, InputWarning):
@@ -250,32 +265,29 @@ def describe_region(region: Region) -> RegionSummary:
 # --------------------------------------------------------------------------------------------
 
 
-def _build(settings: Settings) -> Region:
+def _build(settings: Settings, *, in_store: bool = False) -> Region:
     notes: list[str] = []
     basins, is_point = _basins(settings)
     overlays, dem = region_overlays(settings), region_raster(settings)
-    grids, series_source = read_grids(settings, basins.index)
-    dates = _common_dates(grids.first, grids.last, series_source, notes)
-    tables = series_tables(grids, dates, basins.index)
-    del grids
-    flow_mm = _flow_mm(tables.pop("flow"), basins, tables, settings)
-    calibration = _check_periods(settings, dates, notes)
-    flow_source = f"{series_source}, column '{settings.series.flow_column}'"
-    periods = {"calibration": calibration, "validation": settings.model.validation}
-    constant = _constant_flow(flow_mm, periods, flow_source)
-    gauged = _gauged(flow_mm, calibration, flow_source, constant=constant)
+    daily = _daily(settings, basins, notes, in_store=in_store)
+    tables, summary = daily.tables, daily.summary
+    calibration = daily.calibration
+    flow_source = f"{daily.source}, column '{settings.series.flow_column}'"
+    constant = _warn_constant(summary.constant, flow_source)
+    gauged = _gauged(summary.observed, calibration, flow_source, constant=constant)
     checks.check_gauged_for_methods(
         len(gauged), methods=settings.transfer.methods, source=str(settings.path)
     )
-    checks.warn_flow_gaps(flow_mm, source=flow_source)
+    checks.warn_gap_days(summary.gaps, n_observed=summary.n_observed, source=flow_source)
     attributes = compute_attributes(
         basins,
         precip_mm=tables["precip"],
         pet_mm=tables["pet"],
         temp_c=tables.get("temp"),
-        flow_mm=flow_mm,
+        flow_mm=tables["flow"],
         overlays=overlays,
         dem=dem,
+        climate=summary.climate,
     )
     _check_attribute_choice(settings, attributes.table)
     _check_transfer_attributes(settings, attributes.table, basins, tables["precip"])
@@ -287,11 +299,11 @@ def _build(settings: Settings) -> Region:
         settings=settings,
         basins=basins,
         attributes=attributes.table,
-        dates=dates,
+        dates=daily.dates,
         precip_mm=tables["precip"],
         pet_mm=tables["pet"],
         temp_c=tables.get("temp"),
-        flow_mm=flow_mm,
+        flow_mm=tables["flow"],
         gauged=gauged,
         ungauged=ungauged,
         is_point=is_point,
@@ -299,6 +311,100 @@ def _build(settings: Settings) -> Region:
         warnings=(),
         constant_flow=tuple(basin for basin in basins.index if basin in constant),
         parameters=parameters,
+    )
+
+
+@dataclass(frozen=True, eq=False)
+class _Summary:
+    """What loading needs of the daily series, per basin: the constant-flow findings of each
+    block (period -> basin -> why), the observed days in the calibration period, the gap
+    days of the flow record, how many basins have observed flow, and the attributes of the
+    series (:func:`regional.attributes.climate_table`)."""
+
+    constant: list[dict[str, dict[str, str]]]
+    observed: pd.Series
+    gaps: pd.Series
+    n_observed: int
+    climate: pd.DataFrame
+
+
+@dataclass(frozen=True, eq=False)
+class _Daily:
+    dates: pd.DatetimeIndex
+    tables: dict
+    source: str
+    calibration: tuple[pd.Timestamp, pd.Timestamp]
+    summary: _Summary
+
+
+def _daily(settings: Settings, basins: gpd.GeoDataFrame, notes: list[str], *, in_store: bool):
+    """The daily tables and their per-basin summary: held as grids, or (``in_store`` and the
+    series file is a series store) left in the store and summarised a block of basins at a
+    time, so that no grid of the whole region is held."""
+    if in_store and io.series_store_basins(settings.series.path) is not None:
+        first, last, source = check_store(settings, basins.index)
+        dates = _common_dates(first, last, source, notes)
+        calibration = _check_periods(settings, dates, notes)
+        area = basin_area_km2(basins) if settings.series.flow_m3s is not None else None
+        temp = bool(settings.series.temp)
+        reader = store_reader(settings, dates, with_temp=temp, area_km2=area)
+        tables = {
+            name.split("_")[0]: table for name, table in store_tables(reader, basins.index).items()
+        }
+        blocks = (
+            _summary_of(
+                block,
+                part["precip_mm"],
+                part["pet_mm"],
+                part.get("temp_c"),
+                part["flow_mm"],
+                settings,
+                calibration,
+            )
+            for block, part in store_blocks(reader, basins.index)
+        )
+        return _Daily(dates, tables, source, calibration, _stacked(list(blocks)))
+    grids, source = read_grids(settings, basins.index)
+    dates = _common_dates(grids.first, grids.last, source, notes)
+    tables = series_tables(grids, dates, basins.index)
+    del grids
+    tables["flow"] = _flow_mm(tables["flow"], basins, settings)
+    calibration = _check_periods(settings, dates, notes)
+    ids = list(basins.index)
+    summary = _summary_of(
+        ids,
+        tables["precip"],
+        tables["pet"],
+        tables.get("temp"),
+        tables["flow"],
+        settings,
+        calibration,
+    )
+    return _Daily(dates, tables, source, calibration, _stacked([summary]))
+
+
+def _summary_of(ids, precip, pet, temp, flow, settings: Settings, calibration) -> _Summary:
+    """The :class:`_Summary` of some basins' tables (a block, or the whole region)."""
+    periods = {"calibration": calibration, "validation": settings.model.validation}
+    return _Summary(
+        constant=[_constant_in(flow, periods)],
+        observed=flow.loc[calibration[0] : calibration[1]].notna().sum(axis=0),
+        gaps=checks.flow_gap_days(flow),
+        n_observed=int(flow.notna().any(axis=0).sum()),
+        climate=climate_table(ids, precip_mm=precip, pet_mm=pet, temp_c=temp, flow_mm=flow),
+    )
+
+
+def _stacked(parts: list[_Summary]) -> _Summary:
+    """The summaries of consecutive blocks of basins as one."""
+    if len(parts) == 1:
+        return parts[0]
+    return _Summary(
+        constant=[found for part in parts for found in part.constant],
+        observed=pd.concat([part.observed for part in parts]),
+        gaps=pd.concat([part.gaps for part in parts]),
+        n_observed=sum(part.n_observed for part in parts),
+        climate=pd.concat([part.climate for part in parts]),
     )
 
 
@@ -391,22 +497,11 @@ def _common_dates(
     return pd.date_range(start, end, freq="D", name="date")
 
 
-def _flow_mm(
-    flow: pd.DataFrame,
-    basins: gpd.GeoDataFrame,
-    tables: dict[str, pd.DataFrame],
-    settings: Settings,
-) -> pd.DataFrame:
+def _flow_mm(flow: pd.DataFrame, basins: gpd.GeoDataFrame, settings: Settings) -> pd.DataFrame:
     """Observed flow in mm/day: as given, or from m3/s with the basin area (86.4 / area_km2)."""
     if settings.series.flow_m3s is None:
         return flow
-    if "area_km2" in basins.columns:
-        area_km2 = basins["area_km2"]
-    else:
-        area_km2 = compute_attributes(
-            basins, precip_mm=tables["precip"], pet_mm=tables["pet"]
-        ).table["area_km2"]
-    return flow_m3s_to_mm(flow, area_km2)
+    return flow_m3s_to_mm(flow, basin_area_km2(basins))
 
 
 def flow_m3s_to_mm(flow_m3s: pd.DataFrame, area_km2: pd.Series) -> pd.DataFrame:
@@ -481,17 +576,11 @@ def _check_warmup(
         )
 
 
-def _constant_flow(
-    flow_mm: pd.DataFrame,
-    periods: dict[str, tuple[pd.Timestamp, pd.Timestamp] | None],
-    source: str,
-) -> dict[str, str]:
-    """Basins whose observed flow is one repeated value over a period -> why (warned).
-
-    Such a record can be neither calibrated (no variance to fit) nor scored (NSE and KGE
-    divide by its variance): the basin is treated as ungauged and never serves as a donor.
-    """
-    found: dict[str, str] = {}
+def _constant_in(
+    flow_mm: pd.DataFrame, periods: dict[str, tuple[pd.Timestamp, pd.Timestamp] | None]
+) -> dict[str, dict[str, str]]:
+    """Period -> basins whose observed flow is one repeated value over it -> why."""
+    found: dict[str, dict[str, str]] = {}
     for name, period in periods.items():
         if period is None:
             continue
@@ -499,12 +588,27 @@ def _constant_flow(
         days = part.notna().sum(axis=0)
         low, high = part.min(axis=0), part.max(axis=0)
         constant = (days > 0) & (low == high)
-        for basin in constant.index[constant.to_numpy()]:
-            found.setdefault(
-                basin,
-                f"'{basin}' ({name} {period[0]:%Y-%m-%d}..{period[1]:%Y-%m-%d}: "
-                f"{int(days[basin])} observed days, all {low[basin]:g} mm/day)",
-            )
+        found[name] = {
+            basin: f"'{basin}' ({name} {period[0]:%Y-%m-%d}..{period[1]:%Y-%m-%d}: "
+            f"{int(days[basin])} observed days, all {low[basin]:g} mm/day)"
+            for basin in constant.index[constant.to_numpy()]
+        }
+    return found
+
+
+def _warn_constant(blocks: list[dict[str, dict[str, str]]], source: str) -> dict[str, str]:
+    """Basins whose observed flow is constant over a scoring period -> why (warned), from the
+    findings of :func:`_constant_in` of consecutive blocks of basins.
+
+    Such a record can be neither calibrated (no variance to fit) nor scored (NSE and KGE
+    divide by its variance): the basin is treated as ungauged and never serves as a donor.
+    """
+    found: dict[str, str] = {}
+    names = dict.fromkeys(name for block in blocks for name in block)
+    for name in names:
+        for block in blocks:
+            for basin, why in block.get(name, {}).items():
+                found.setdefault(basin, why)
     if found:
         warnings.warn(
             f"{source}: observed flow is constant over a scoring period at "
@@ -519,13 +623,14 @@ def _constant_flow(
 
 
 def _gauged(
-    flow_mm: pd.DataFrame,
+    observed: pd.Series,
     calibration: tuple[pd.Timestamp, pd.Timestamp],
     source: str,
     *,
     constant: dict[str, str],
 ) -> tuple[str, ...]:
-    observed = flow_mm.loc[calibration[0] : calibration[1]].notna().sum(axis=0)
+    """Basins with observed flow in the calibration period (``observed``: days per basin)."""
+    observed = observed.copy()
     observed[observed.index.isin(list(constant))] = 0
     checks.check_gauged(observed, source=source, period=calibration)
     return tuple(observed.index[observed.to_numpy() > 0])
@@ -602,7 +707,7 @@ def _attribute_origin(
                 "cover these basins"
             )
     if name == "aridity":
-        mean_p = precip[list(where)].mean(axis=0)
+        mean_p = precip.loc[:, list(where)].mean(axis=0)
         dry = [f"'{b}'" for b in mean_p.index[mean_p.to_numpy() == 0]]
         if dry:
             return (

@@ -346,7 +346,7 @@ class StoreReader:
             name: pd.DataFrame(grid.T, index=self.dates, columns=ids, copy=False)
             for name, grid in grids.items()
         }
-        if self.mm_per_m3s is not None:
+        if self.mm_per_m3s is not None and "flow_mm" in out:
             factor = self.mm_per_m3s.reindex(ids).to_numpy().astype(SERIES_DTYPE)
             out["flow_mm"] = out["flow_mm"] * factor
         return out
@@ -401,3 +401,205 @@ class _Shipped:
 def _from_store(function, chunk: Sequence[str], shipped_context: _Shipped):
     tables = shipped_context.reader.read(chunk).tables
     return function(chunk, replace(shipped_context.context, **tables))
+
+
+# --------------------------------------------------------------------------------------------
+# A region whose series stay in the store (a run on a cluster): checked a block at a time
+# --------------------------------------------------------------------------------------------
+
+STORE_BLOCK = 256
+"""Basins of a series store read at a time by the client of a cluster run (checking the store,
+the attributes of the series, the flow statistics): a block's four tables over 20 years are
+about 30 MB as float32."""
+
+
+def check_store(settings: Settings, basin_ids: pd.Index) -> tuple[pd.Series, pd.Series, str]:
+    """Check a series store a block of basins at a time, without holding its grids.
+
+    The rows are checked as :func:`read_grids` checks them, and so are the checks that need
+    the whole table (basins without records, a date given twice, gaps in the forcing), per
+    basin; when one fails the file is read whole and checked, so the message is the one it
+    gets when read by :func:`read_grids`.
+
+    Returns
+    -------
+    (Series, Series, str)
+        First and last record date of each basin (indexed by ``basin_id``), and the
+        description of the file used in messages.
+
+    Raises
+    ------
+    InputError
+        As :func:`read_grids`; and when a row group of the store holds another basin's rows
+        than the store lists for it.
+    """
+    spec = settings.series
+    source = f"series {spec.path}" + (f" (table '{spec.layer}')" if spec.layer else "")
+    try:
+        first, last = _store_spans(settings, basin_ids, source)
+    except (InputError, _WholeCheckNeeded) as error:
+        _check_whole(settings, basin_ids, source)
+        if isinstance(error, InputError):
+            raise
+        raise InputError(f"{source}: {error}") from None
+    return first, last, source
+
+
+def _store_spans(
+    settings: Settings, basin_ids: pd.Index, source: str
+) -> tuple[pd.Series, pd.Series]:
+    spec = settings.series
+    listed = io.series_store_basins(spec.path)
+    forcing = [spec.precip, spec.pet] + ([spec.temp] if spec.temp else [])
+    columns = [spec.id, spec.date, *forcing, spec.flow_column]
+    n = len(basin_ids)
+    first, last = np.full(n, np.iinfo(np.int64).max), np.full(n, np.iinfo(np.int64).min)
+    count = np.zeros(n, dtype=np.int64)
+    for groups, starts, raw in io.iter_store_blocks(spec.path, columns, block_groups=STORE_BLOCK):
+        long = _checked(raw, settings, basin_ids, source, whole=False)
+        _check_groups(long, groups, starts, listed, source)
+        row = basin_ids.get_indexer(long["basin_id"])
+        day = (long["date"].to_numpy() - np.datetime64(0, "D")) // np.timedelta64(1, "D")
+        if pd.MultiIndex.from_arrays([row, day]).has_duplicates:
+            raise _WholeCheckNeeded("a basin has two records of one date")
+        spans = pd.Series(day).groupby(row).agg(["min", "max", "size"])
+        at = spans.index.to_numpy()
+        first[at], last[at] = spans["min"].to_numpy(), spans["max"].to_numpy()
+        count[at] += spans["size"].to_numpy()
+    if (count == 0).any():
+        raise _WholeCheckNeeded("a basin has no records")
+    if (count < last - first + 1).any():
+        raise _WholeCheckNeeded("a basin's forcing has a gap")
+    index = pd.Index(basin_ids, name="basin_id")
+    epoch = pd.Timestamp(0)
+    return (
+        pd.Series(epoch + pd.to_timedelta(first, unit="D"), index=index),
+        pd.Series(epoch + pd.to_timedelta(last, unit="D"), index=index),
+    )
+
+
+def _check_groups(
+    long: pd.DataFrame, groups: range, starts: np.ndarray, listed: Sequence[str], source: str
+) -> None:
+    """Every row of a store's row group is a record of the basin the store lists for it (the
+    workers place a group's rows by that list)."""
+    group = groups.start + np.searchsorted(starts, long.index.to_numpy(), side="right") - 1
+    expected = np.asarray(listed, dtype=object)[group]
+    wrong = np.flatnonzero(long["basin_id"].to_numpy(dtype=object) != expected)
+    if len(wrong):
+        at = wrong[0]
+        raise InputError(
+            f"{source}: {long.index.name} {long.index[at]}: row group {group[at]} of the "
+            f"series store holds a record of basin '{long['basin_id'].iloc[at]}', but the "
+            f"store lists basin '{expected[at]}' for it. Fix: write the store again with "
+            "`regional convert`."
+        )
+
+
+@dataclass(frozen=True, eq=False)
+class StoreTable:
+    """One daily table of a region (days x basins) whose values stay in the series store.
+
+    It answers like the region's DataFrame where the client of a cluster run uses it:
+    :attr:`index` (its days) and :attr:`columns` (its basins) read nothing, nor does
+    ``loc``/``iloc`` with days only (the table over those days); values are read when asked
+    for, those of the basins asked only: ``table[basins]``, ``table.loc[days, basins]`` and
+    ``table.reindex(columns=basins)`` return a DataFrame (days, basins) of
+    :data:`SERIES_DTYPE`, flow in mm/day.
+
+    Attributes
+    ----------
+    reader : StoreReader
+        Reads this table's one column over its days.
+    columns : Index
+        The basins (``basin_id``).
+    """
+
+    reader: StoreReader
+    columns: pd.Index
+
+    @property
+    def index(self) -> pd.DatetimeIndex:
+        return self.reader.dates
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return len(self.index), len(self.columns)
+
+    def __len__(self) -> int:
+        return len(self.index)
+
+    @property
+    def loc(self) -> _Days:
+        return _Days(self, by_label=True)
+
+    @property
+    def iloc(self) -> _Days:
+        return _Days(self, by_label=False)
+
+    def __getitem__(self, basins):
+        if isinstance(basins, str):
+            return self.read([basins])[basins]
+        return self.read(list(basins))
+
+    def reindex(self, columns) -> pd.DataFrame:
+        return self.read(list(columns))
+
+    def over(self, positions: np.ndarray) -> StoreTable:
+        """The table over some of its days (positions in :attr:`index`); reads nothing."""
+        positions = np.asarray(positions, dtype=int)
+        run = len(positions) and (np.diff(positions) == 1).all()
+        where = slice(positions[0], positions[-1] + 1) if run else positions  # a run keeps freq
+        return replace(self, reader=replace(self.reader, dates=self.index[where]))
+
+    def read(self, basins: Sequence[str]) -> pd.DataFrame:
+        """The values of ``basins`` (DataFrame days x basins), read from their row groups."""
+        grids, _ = self.reader.read_grids(basins)
+        (name,) = self.reader.columns
+        return self.reader.frames(grids, basins)[name]
+
+
+class _Days:
+    """``StoreTable.loc`` / ``.iloc``: days select a table, days and basins read values."""
+
+    def __init__(self, table: StoreTable, *, by_label: bool) -> None:
+        self.table, self.by_label = table, by_label
+
+    def __getitem__(self, key):
+        days, basins = key if isinstance(key, tuple) else (key, None)
+        place = pd.Series(np.arange(len(self.table.index)), index=self.table.index)
+        picked = place.loc[days] if self.by_label else place.iloc[days]
+        table = self.table.over(np.atleast_1d(np.asarray(picked)))
+        if basins is None:
+            return table
+        if isinstance(basins, slice) and basins == slice(None):
+            basins = table.columns
+        return table.read(list(basins))
+
+
+def store_tables(reader: StoreReader, basin_ids: pd.Index) -> dict[str, StoreTable]:
+    """The reader's tables (``precip_mm``, ``pet_mm``, ``flow_mm``, ``temp_c``) left in the
+    store, one :class:`StoreTable` each."""
+    columns = pd.Index([str(b) for b in basin_ids], name="basin_id")
+    return {
+        name: StoreTable(replace(reader, columns={name: column}), columns)
+        for name, column in reader.columns.items()
+    }
+
+
+def store_blocks(reader: StoreReader, basin_ids: Sequence[str], *, block: int | None = None):
+    """The reader's tables of ``block`` basins at a time (default :data:`STORE_BLOCK`):
+    (basins, tables) pairs."""
+    ids = [str(b) for b in basin_ids]
+    block = block or STORE_BLOCK
+    for first in range(0, len(ids), block):
+        basins = ids[first : first + block]
+        yield basins, reader.read(basins).tables
+
+
+def basins_of(table, basins: Sequence[str]):
+    """Some basins' columns of a daily table: a DataFrame's columns, or a :class:`StoreTable`
+    of those basins (nothing read: on a cluster the tasks read their own)."""
+    if isinstance(table, StoreTable):
+        return replace(table, columns=pd.Index([str(b) for b in basins], name="basin_id"))
+    return table[list(basins)]

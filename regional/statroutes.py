@@ -292,9 +292,6 @@ class _GaugedData:
         }
         return cls(context, gauged, dates, observed, model, table, columns, donors)
 
-    def precip(self, basins: Sequence[str]) -> pd.DataFrame:
-        return self.context.precip_mm.loc[self.dates, list(basins)]
-
     def dropped(self, target: str) -> set[str]:
         """The basins a fold of ``target`` leaves out: itself and those sharing its area."""
         return {target, *self.context.excluded.get(target, ())}
@@ -1047,7 +1044,9 @@ def _model_statistics(data: _GaugedData, draw, training, held) -> tuple:
     """Flow statistics of the repeat's training and held-out flows (kept in a summary)."""
     if isinstance(draw, HeldOutSummary) and draw.training_statistics is not None:
         return draw.training_statistics.loc[training], draw.held_out_statistics.loc[held]
-    precip_train, precip_held = data.precip(training), data.precip(held)
+    # the flow statistics read each block's precipitation from the whole table (a series store
+    # on a cluster: a block of basins at a time, never every basin at once)
+    precip_train = precip_held = data.context.precip_mm
     return (
         flowstats.statistics_frame(draw.training_flow[training], precip_mm_day=precip_train),
         flowstats.statistics_frame(draw.held_out_flow[held], precip_mm_day=precip_held),

@@ -217,24 +217,32 @@ def test_an_address_that_answers_in_another_protocol_is_named_not_a_scheduler():
     server.close()
 
 
+def _region_and_its_store(tmp_path, region_parts):
+    """The tiny region, and a copy of it reading its series store (`regional convert`)."""
+    from tiny_region import write_region
+
+    from regional.cli import main
+
+    folder = write_region(tmp_path / "region", region_parts)
+    store = tmp_path / "store.parquet"
+    assert main(["convert", str(folder), "--out", str(store)]) == 0
+    region_parts.config["series"]["path"] = str(store)
+    return folder, write_region(tmp_path / "from_store", region_parts)
+
+
 def test_cluster_reading_a_series_store_gives_the_in_process_tables(tmp_path, region_parts):
     # `regional convert` writes the series store; a 2-worker local cluster whose tasks read
     # their own basins from it (calibration, leave-one-out, the held-out check's repeats and
     # the prediction's chunks of ungauged basins) must give the tables of the in-process run
     # from the CSV file.
     pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
-    from tiny_region import write_region
 
     from regional.cli import main
     from regional.config import load_settings
     from regional.pipeline import _store_reader
     from regional.region import load_region
 
-    folder = write_region(tmp_path / "region", region_parts)
-    store = tmp_path / "store.parquet"
-    assert main(["convert", str(folder), "--out", str(store)]) == 0
-    region_parts.config["series"]["path"] = str(store)
-    from_store = write_region(tmp_path / "from_store", region_parts)
+    folder, from_store = _region_and_its_store(tmp_path, region_parts)
     settings = load_settings(from_store)
 
     class Cluster:
@@ -281,3 +289,53 @@ def test_release_freed_memory_asks_glibc_on_linux_and_is_a_no_op_without_it(monk
 
     monkeypatch.setattr(ctypes, "CDLL", no_libc)
     assert compute.release_freed_memory() is False
+
+
+def test_the_client_of_a_cluster_run_on_a_store_reads_no_whole_region_grid(
+    tmp_path, region_parts, monkeypatch
+):
+    # Count what the client reads of the series store during a 2-worker run, blocks of 2
+    # basins: every read holds a block of basins (never the whole region's, 6 basins; the
+    # statistics' blocks of 2 gauged basins may take a third rather than leave one alone),
+    # the file is never streamed whole, and the outputs equal the run whose client holds
+    # the grids (the run of test_cluster_reading_a_series_store_gives_the_in_process_tables
+    # from the CSV file, in process).
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+
+    from regional import flowstats, io, series
+    from regional.cli import main
+
+    folder, from_store = _region_and_its_store(tmp_path, region_parts)
+    here, there = tmp_path / "in_process", tmp_path / "cluster"
+    assert main(["run", str(folder), "--out", str(here), "--quiet"]) == 0
+
+    reads, read_groups, blocks = [], io.read_store_groups, io.iter_store_blocks
+
+    def counted_groups(path, groups, columns):
+        frame, rows = read_groups(path, groups, columns)
+        reads.append((len(groups), len(frame)))
+        return frame, rows
+
+    def counted_blocks(path, columns, *, block_groups):
+        for groups, starts, frame in blocks(path, columns, block_groups=block_groups):
+            reads.append((len(groups), len(frame)))
+            yield groups, starts, frame
+
+    def whole(*args, **kwargs):
+        raise AssertionError("the client streamed the whole series file")
+
+    monkeypatch.setattr(series, "STORE_BLOCK", 2)
+    monkeypatch.setattr(flowstats, "BLOCK_BASINS", 2)
+    monkeypatch.setattr(io, "read_store_groups", counted_groups)
+    monkeypatch.setattr(io, "iter_store_blocks", counted_blocks)
+    monkeypatch.setattr(series, "read_grids", whole)
+    monkeypatch.setattr(io, "iter_series", whole)
+    assert main(["run", str(from_store), "--out", str(there), "--quiet", "--workers", "2"]) == 0
+    per_basin = 1095  # days of each basin's records in the tiny region
+    assert reads and max(basins for basins, _ in reads) <= 3
+    assert max(rows for _, rows in reads) <= 3 * per_basin
+    assert sum(rows for _, rows in reads) >= len(region_parts.series)  # the store was checked
+    for name in ["loo_scores.csv", "calibration.csv", "coverage.csv", "flows_ungauged.csv"]:
+        assert (here / name).read_text() == (there / name).read_text(), name
+    for name in ["statistics_summary.csv", "statistics_ungauged.csv", "parameters_ungauged.csv"]:
+        assert (here / name).read_text() == (there / name).read_text(), name

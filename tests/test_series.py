@@ -165,3 +165,96 @@ def test_a_store_of_flow_in_m3s_gives_flow_in_mm_on_the_worker(tmp_path, region_
     flow = reader.read(["B01", "B03"]).tables["flow_mm"]
     assert "temp_c" not in reader.read(["B01"]).tables
     np.testing.assert_allclose(flow, region.flow_mm[["B01", "B03"]], rtol=1e-6)
+
+
+@pytest.mark.parametrize("unit", ["mm", "m3s"])
+def test_a_region_left_in_its_store_gives_the_region_held_as_grids(tmp_path, region_parts, unit):
+    # Two routes to one region: the series read into grids, and left in the store (checked and
+    # summarised a block of basins at a time, blocks of 4 so that the 6 basins span two);
+    # the attributes, basins, notes and warnings agree, and every table read back equals
+    # the grid's.
+    if unit == "m3s":
+        keys = region_parts.config["series"]
+        keys["flow_m3s"] = keys.pop("flow")
+    _, from_store, _ = _converted(tmp_path, region_parts)
+    held = load_region(from_store)
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(series, "STORE_BLOCK", 4)
+        left = load_region(from_store, series_in_store=True)
+    assert isinstance(left.precip_mm, series.StoreTable)
+    pd.testing.assert_frame_equal(left.attributes, held.attributes)
+    assert (left.gauged, left.ungauged, left.constant_flow) == (
+        held.gauged,
+        held.ungauged,
+        held.constant_flow,
+    )
+    assert (left.notes, left.warnings) == (held.notes, held.warnings)
+    assert left.dates.equals(held.dates)
+    for name in ("precip_mm", "pet_mm", "temp_c", "flow_mm"):
+        table, grid = getattr(left, name), getattr(held, name)
+        assert table.index.equals(grid.index) and table.columns.equals(grid.columns)
+        pd.testing.assert_frame_equal(table[list(grid.columns)], grid)
+        part = grid.index[30:40]
+        pd.testing.assert_frame_equal(
+            table.loc[part, ["B03", "B01"]], grid.loc[part, ["B03", "B01"]]
+        )
+        pd.testing.assert_frame_equal(
+            table.iloc[5:9].reindex(columns=["B02"]), grid.iloc[5:9][["B02"]]
+        )
+
+
+def _store_of(tmp_path, region_parts, table: pd.DataFrame):
+    """The tiny region reading a series store written from ``table`` as given (one row group
+    per basin of the layer, in the layer's order; not checked, unlike `regional convert`)."""
+    from regional import io
+
+    basins = sorted(region_parts.series["basin_id"].unique())
+    table = table.assign(date=pd.to_datetime(table["date"]))
+    parts = (table[table["basin_id"] == basin] for basin in basins)
+    store = io.write_series_store(tmp_path / "bad.parquet", parts, basins=basins)
+    region_parts.config["series"]["path"] = str(store)
+    return write_region(tmp_path / "from_bad_store", region_parts)
+
+
+@pytest.mark.parametrize(
+    ("break_it", "words"),
+    [("negative", "B03"), ("duplicate", "B02"), ("gap", "B04"), ("absent", "B05")],
+)
+def test_a_bad_store_left_in_place_gives_the_message_of_the_grids(
+    tmp_path, region_parts, monkeypatch, break_it, words
+):
+    # Two routes to the message: the store read into grids (streamed, as any Parquet file)
+    # and checked a block of 2 basins at a time when the series stay in it.
+    table = region_parts.series.copy()
+    if break_it == "negative":
+        table.loc[table.index[table["basin_id"] == "B03"][40], "precip_mm"] = -3.0
+    elif break_it == "duplicate":
+        row = table[(table["basin_id"] == "B02") & (table["date"] == "2001-03-02")]
+        table = pd.concat([table, row]).sort_values(["basin_id", "date"], kind="stable")
+    elif break_it == "gap":
+        table = table.drop(table.index[table["basin_id"] == "B04"][100:103])
+    else:
+        table = table[table["basin_id"] != "B05"]
+    folder = _store_of(tmp_path, region_parts, table.reset_index(drop=True))
+    held = _message(folder)
+    monkeypatch.setattr(series, "STORE_BLOCK", 2)
+    with pytest.raises(InputError) as caught:
+        load_region(folder, series_in_store=True)
+    assert str(caught.value) == held
+    assert words in held
+
+
+def test_a_store_whose_row_group_holds_another_basin_is_refused(tmp_path, region_parts):
+    # The workers place a row group's records by the basin the store lists for it: a group
+    # holding another basin's records would put them in the wrong column, so it is refused.
+    from regional import io
+
+    basins = sorted(region_parts.series["basin_id"].unique())
+    table = region_parts.series.assign(date=pd.to_datetime(region_parts.series["date"]))
+    listed = [basins[1], basins[0], *basins[2:]]  # the first two groups swapped in the list
+    parts = (table[table["basin_id"] == basin] for basin in basins)
+    store = io.write_series_store(tmp_path / "swapped.parquet", parts, basins=listed)
+    region_parts.config["series"]["path"] = str(store)
+    folder = write_region(tmp_path / "r", region_parts)
+    with pytest.raises(InputError, match="row 1: row group 0 of the series store holds a record"):
+        load_region(folder, series_in_store=True)
