@@ -461,13 +461,14 @@ def series_store_basins(path: str | Path) -> tuple[str, ...] | None:
 
 
 def iter_store_blocks(
-    path: str | Path, columns: Sequence[str], *, block_groups: int
-) -> Iterator[tuple[range, pd.DataFrame]]:
+    path: str | Path, columns: Sequence[str], *, batch_rows: int = SERIES_BATCH_ROWS
+) -> Iterator[tuple[range, np.ndarray, pd.DataFrame]]:
     """Read a series store a few row groups (basins) at a time, only ``columns``.
 
     Each block is what :func:`iter_series` yields for a Parquet file (ids as text, empty rows
     dropped, the index the place of each row in the file, named ``"row"``), cut at row groups
-    instead of at a number of rows, so messages name the same row.
+    instead of inside them: consecutive groups of at most ``batch_rows`` rows in all (or one
+    larger group alone), so messages name the same row.
 
     Yields
     ------
@@ -483,21 +484,32 @@ def iter_store_blocks(
     try:
         with pyarrow.parquet.ParquetFile(path) as source:
             _require_columns(source.schema_arrow.names, columns, source=str(path), key="[series]")
-            n_groups = source.metadata.num_row_groups
-            for first in range(0, n_groups, max(1, int(block_groups))):
-                groups = range(first, min(n_groups, first + max(1, int(block_groups))))
-                rows = [source.metadata.row_group(g).num_rows for g in groups]
-                starts = first_row + np.concatenate([[0], np.cumsum(rows)[:-1]]).astype(int)
+            meta = source.metadata
+            rows = np.array([meta.row_group(g).num_rows for g in range(meta.num_row_groups)])
+            for groups in _group_runs(rows, batch_rows):
+                starts = first_row + np.concatenate([[0], np.cumsum(rows[groups])[:-1]])
                 frame = source.read_row_groups(list(groups), columns=list(columns)).to_pandas()
                 frame = frame[list(columns)]
                 frame.index = pd.RangeIndex(first_row, first_row + len(frame), name=ROW)
                 first_row += len(frame)
                 frame[columns[0]] = _as_text(frame[columns[0]])
-                yield groups, starts, frame.loc[~frame.isna().all(axis=1)]
+                yield groups, starts.astype(int), frame.loc[~frame.isna().all(axis=1)]
+                del frame
+                pyarrow.default_memory_pool().release_unused()
     except (pyarrow.ArrowException, OSError) as error:
         raise InputError(f"cannot read {path} as Parquet ({error}).") from None
-    finally:
-        pyarrow.default_memory_pool().release_unused()
+
+
+def _group_runs(rows: np.ndarray, batch_rows: int) -> Iterator[range]:
+    """Consecutive row groups of at most ``batch_rows`` rows in all (a larger group alone)."""
+    first, total = 0, 0
+    for group, count in enumerate(rows):
+        if group > first and total + count > batch_rows:
+            yield range(first, group)
+            first, total = group, 0
+        total += int(count)
+    if len(rows):
+        yield range(first, len(rows))
 
 
 def read_store_groups(

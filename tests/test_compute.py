@@ -316,22 +316,23 @@ def test_the_client_of_a_cluster_run_on_a_store_reads_no_whole_region_grid(
         reads.append((len(groups), len(frame)))
         return frame, rows
 
-    def counted_blocks(path, columns, *, block_groups):
-        for groups, starts, frame in blocks(path, columns, block_groups=block_groups):
+    def counted_blocks(path, columns, *, batch_rows):
+        for groups, starts, frame in blocks(path, columns, batch_rows=batch_rows):
             reads.append((len(groups), len(frame)))
             yield groups, starts, frame
 
     def whole(*args, **kwargs):
         raise AssertionError("the client streamed the whole series file")
 
+    per_basin = 1095  # days of each basin's records in the tiny region
     monkeypatch.setattr(series, "STORE_BLOCK", 2)
+    monkeypatch.setattr(series, "BATCH_ROWS", 2 * per_basin)
     monkeypatch.setattr(flowstats, "BLOCK_BASINS", 2)
     monkeypatch.setattr(io, "read_store_groups", counted_groups)
     monkeypatch.setattr(io, "iter_store_blocks", counted_blocks)
     monkeypatch.setattr(series, "read_grids", whole)
     monkeypatch.setattr(io, "iter_series", whole)
     assert main(["run", str(from_store), "--out", str(there), "--quiet", "--workers", "2"]) == 0
-    per_basin = 1095  # days of each basin's records in the tiny region
     assert reads and max(basins for basins, _ in reads) <= 3
     assert max(rows for _, rows in reads) <= 3 * per_basin
     assert sum(rows for _, rows in reads) >= len(region_parts.series)  # the store was checked

@@ -503,3 +503,12 @@ def test_figures_written_as_they_come_and_read_back_for_the_report(tmp_path):
     assert (folder / "figures" / "a.png").read_bytes() == b"png a"
     assert seen == {"names": ["b", "a"], "a": b"png a", "drawn": ["b", "a"]}
     assert (folder / "report.html").read_text() == "<p>png b</p>"
+
+
+def test_store_blocks_are_whole_row_groups_of_at_most_the_batch_rows():
+    # Counted by hand: groups of 3, 3, 3, 10 and 1 rows in batches of 6 rows.
+    from regional.io import _group_runs
+
+    runs = list(_group_runs(np.array([3, 3, 3, 10, 1]), 6))
+    assert runs == [range(0, 2), range(2, 3), range(3, 4), range(4, 5)]
+    assert list(_group_runs(np.array([], dtype=int), 6)) == []

@@ -180,6 +180,7 @@ def test_a_region_left_in_its_store_gives_the_region_held_as_grids(tmp_path, reg
     held = load_region(from_store)
     with pytest.MonkeyPatch.context() as patch:
         patch.setattr(series, "STORE_BLOCK", 4)
+        patch.setattr(series, "BATCH_ROWS", 4 * 1095)  # 4 basins' records of 1,095 days
         left = load_region(from_store, series_in_store=True)
     assert isinstance(left.precip_mm, series.StoreTable)
     pd.testing.assert_frame_equal(left.attributes, held.attributes)
@@ -238,6 +239,7 @@ def test_a_bad_store_left_in_place_gives_the_message_of_the_grids(
     folder = _store_of(tmp_path, region_parts, table.reset_index(drop=True))
     held = _message(folder)
     monkeypatch.setattr(series, "STORE_BLOCK", 2)
+    monkeypatch.setattr(series, "BATCH_ROWS", 2 * 1095)  # 2 basins' records of 1,095 days
     with pytest.raises(InputError) as caught:
         load_region(folder, series_in_store=True)
     assert str(caught.value) == held
