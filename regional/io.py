@@ -495,7 +495,7 @@ def iter_store_blocks(
                 frame[columns[0]] = _as_text(frame[columns[0]])
                 yield groups, starts.astype(int), frame.loc[~frame.isna().all(axis=1)]
                 del frame
-                pyarrow.default_memory_pool().release_unused()
+                release_arrow_memory()
     except (pyarrow.ArrowException, OSError) as error:
         raise InputError(f"cannot read {path} as Parquet ({error}).") from None
 
@@ -510,6 +510,13 @@ def _group_runs(rows: np.ndarray, batch_rows: int) -> Iterator[range]:
         total += int(count)
     if len(rows):
         yield range(first, len(rows))
+
+
+def release_arrow_memory() -> None:
+    """Give the memory Arrow keeps for reuse (decoded row groups) back to the system."""
+    import pyarrow
+
+    pyarrow.default_memory_pool().release_unused()
 
 
 def read_store_groups(

@@ -554,10 +554,18 @@ class StoreTable:
         return replace(self, reader=replace(self.reader, dates=self.index[where]))
 
     def read(self, basins: Sequence[str]) -> pd.DataFrame:
-        """The values of ``basins`` (DataFrame days x basins), read from their row groups."""
-        grids, _ = self.reader.read_grids(basins)
+        """The values of ``basins`` (DataFrame days x basins), read from their row groups
+        :data:`STORE_BLOCK` basins at a time (the rows as read, with their dates, take about
+        five times the values placed)."""
         (name,) = self.reader.columns
-        return self.reader.frames(grids, basins)[name]
+        basins = [str(b) for b in basins]
+        grid = np.empty((len(basins), len(self.index)), SERIES_DTYPE)
+        for first in range(0, len(basins), STORE_BLOCK):
+            part, _ = self.reader.read_grids(basins[first : first + STORE_BLOCK])
+            grid[first : first + STORE_BLOCK] = part[name]
+            del part
+            io.release_arrow_memory()
+        return self.reader.frames({name: grid}, basins)[name]
 
 
 class _Days:
@@ -596,6 +604,7 @@ def store_blocks(reader: StoreReader, basin_ids: Sequence[str], *, block: int | 
     for first in range(0, len(ids), block):
         basins = ids[first : first + block]
         yield basins, reader.read(basins).tables
+        io.release_arrow_memory()
 
 
 def basins_of(table, basins: Sequence[str]):
