@@ -310,10 +310,8 @@ def _print_cluster(size: int, local: dict, clustered: dict) -> None:
         f"  peak memory on the cluster: client {clustered['peak_mb']:.0f} MB (the scheduler "
         f"runs in it too; target <= 1024 MB at 10,000 basins), workers {workers}"
     )
-    print("  the client's resident memory per stage, MB (before -> peak during -> after):")
-    for name, stage in clustered["stages"].items():
-        cells = f"{stage['before']:6.0f} -> {stage['peak']:6.0f} -> {stage['after']:6.0f}"
-        print(f"    {name:20s} {cells}")
+    print("  the cluster client's:", end=" ")
+    _print_stages([clustered])
 
 
 def _cluster_alone(size: int, years: int) -> None:
