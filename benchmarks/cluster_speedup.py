@@ -59,12 +59,18 @@ def _measure_shipping(record: list) -> None:
         record.append(_shipping(chunks, context, results))
         return results
 
-    def counted_batches(self, items, *, ahead=compute.BATCHES_AHEAD):
+    def counted_batches(self, items, *, ahead=compute.BATCHES_AHEAD, shared=None):
         items = list(items)
-        for (_, chunks, context), results in zip(
-            items, batches(self, items, ahead=ahead), strict=True
+        shared_bytes = len(pickle.dumps(shared)) if shared is not None else 0  # once
+        for (_, chunks, context, *finish), results in zip(
+            items, batches(self, items, ahead=ahead, shared=shared), strict=True
         ):
-            record.append(_shipping(chunks, context, results))
+            # a batch finished on the workers sends back only what its finishing task gives
+            shipped = _shipping(chunks, context, [results] if finish else results)
+            if finish:
+                shipped["finished"] = True
+                shipped["shared_bytes"] = shared_bytes
+            record.append(shipped)
             yield results
 
     started = compute.DaskExecutor.start_map
@@ -298,6 +304,14 @@ def main() -> None:
     for stage in cluster["shipping"]:
         scattered = stage["scattered_bytes"] / 1e3
         sent = stage["sent_bytes"] / stage["chunks"] / 1e3
+        if stage.get("finished"):
+            print(
+                f"  stage of {stage['chunks']} chunks finished on the workers: scattered once "
+                f"{scattered:.0f} kB (and {stage['shared_bytes'] / 1e3:.0f} kB once for all "
+                f"such stages); sent {sent:.0f} kB per chunk; gathered "
+                f"{stage['gathered_bytes'] / 1e3:.0f} kB in all"
+            )
+            continue
         per_chunk = stage["gathered_bytes"] / stage["chunks"] / 1e3
         print(
             f"  stage of {stage['chunks']} chunks: scattered once {scattered:.0f} kB; "

@@ -28,8 +28,10 @@ CONNECT_TIMEOUT_S = 10.0
 
 ChunkFn = Callable[[Sequence[str], Any], Any]
 Progress = Callable[[int, int], None] | None
-Batch = tuple[ChunkFn, Sequence[Sequence[str]], Any]
-"""One round of work: the function, its chunks and the context they share."""
+Batch = tuple[ChunkFn, Sequence[Sequence[str]], Any] | tuple[ChunkFn, Sequence, Any, Callable]
+"""One round of work: the function, its chunks and the context they share; optionally a
+fourth item, ``finish(results, shared)``, which turns the batch's results (in chunk order) into
+what the round gives, where the chunks ran (:meth:`DaskExecutor.map_batches`)."""
 
 BATCHES_AHEAD = 3
 """Batches :meth:`DaskExecutor.map_batches` keeps submitted beyond the one being gathered."""
@@ -222,13 +224,14 @@ class InProcessExecutor:
         return results
 
     def map_batches(
-        self, batches: Iterable[Batch], *, ahead: int = BATCHES_AHEAD
-    ) -> Iterator[list[Any]]:
+        self, batches: Iterable[Batch], *, ahead: int = BATCHES_AHEAD, shared: Any = None
+    ) -> Iterator[Any]:
         """:meth:`map` of each ``(function, chunks, context)`` batch, batch after batch,
         lazily: a batch runs only when the one before it has been taken (``ahead`` is for the
-        cluster)."""
-        for function, chunks, context in batches:
-            yield self.map(function, chunks, context)
+        cluster). A batch with a fourth item ``finish`` gives ``finish(results, shared)``."""
+        for function, chunks, context, *finish in batches:
+            results = self.map(function, chunks, context)
+            yield finish[0](results, shared) if finish else results
 
     def start_map(
         self, function: ChunkFn, chunks: Sequence[Sequence[Any]], context: Any
@@ -339,8 +342,8 @@ class DaskExecutor:
         return self.client.gather(futures)
 
     def map_batches(
-        self, batches: Iterable[Batch], *, ahead: int = BATCHES_AHEAD
-    ) -> Iterator[list[Any]]:
+        self, batches: Iterable[Batch], *, ahead: int = BATCHES_AHEAD, shared: Any = None
+    ) -> Iterator[Any]:
         """:meth:`map` of each ``(function, chunks, context)`` batch without a barrier between
         batches.
 
@@ -351,29 +354,42 @@ class DaskExecutor:
         the results. Memory stays bounded: the results of at most ``ahead + 1`` batches wait
         on the workers, and the client holds one batch's results at a time (plus what the
         caller keeps).
+
+        A batch with a fourth item ``finish`` is finished on the cluster: one more task,
+        ``finish(results, shared)``, takes its chunks' results on a worker (they never reach
+        this process) and only what it returns is gathered and yielded. ``shared`` is
+        scattered to the workers once for all the batches.
         """
         if ahead < 0:
             raise ValueError(f"ahead must be >= 0: got {ahead}")
         pending: deque = deque()
         remaining = iter(batches)
+        everywhere: list = []  # ``shared`` as scattered, once, when a batch first needs it
 
         def submit_next() -> None:
             batch = next(remaining, None)
-            if batch is not None:
-                function, chunks, context = batch
-                shared = self.client.scatter(context, broadcast=True, hash=False)
-                futures = [
-                    self.client.submit(function, list(c), shared, pure=False) for c in chunks
-                ]
-                pending.append((shared, futures))
+            if batch is None:
+                return
+            function, chunks, context, *finish = batch
+            scattered = self.client.scatter(context, broadcast=True, hash=False)
+            futures = [
+                self.client.submit(function, list(c), scattered, pure=False) for c in chunks
+            ]
+            if finish:
+                if not everywhere:
+                    everywhere.append(self.client.scatter(shared, broadcast=True, hash=False))
+                # the chunks' results stay on the workers until the finishing task has used them
+                futures = [self.client.submit(finish[0], futures, everywhere[0], pure=False)]
+            pending.append((scattered, futures, bool(finish)))
 
-        def gathered() -> Iterator[list[Any]]:
+        def gathered() -> Iterator[Any]:
             while pending:
-                shared, futures = pending.popleft()
+                scattered, futures, finished = pending.popleft()
                 results = self.client.gather(futures)
-                del shared, futures  # released on the workers once gathered
+                del scattered, futures  # released on the workers once gathered
                 submit_next()
-                yield results
+                yield results[0] if finished else results
+            everywhere.clear()
 
         for _ in range(ahead + 1):
             submit_next()

@@ -9,7 +9,7 @@ short. See ``docs/prediction.md``.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -29,6 +29,7 @@ from regional.bounds import (
     flow_classes,
     pooled_bounds,
 )
+from regional.compute import InProcessExecutor
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.result import ModelRun
@@ -211,17 +212,51 @@ def loo_coverage(runs: Mapping[str, ModelRun], *, level: float) -> pd.DataFrame:
         ``coverage_decile_10`` (the same on the days in the lowest and highest tenth of each
         basin's simulated flow), ``n_days``, ``n_basins``.
     """
+    return start_loo_coverage(runs, level=level)()
+
+
+def start_loo_coverage(
+    runs: Mapping[str, ModelRun], *, level: float, executor=None
+) -> Callable[[], pd.DataFrame]:
+    """:func:`loo_coverage` started now, its table given by the returned call.
+
+    With a Dask executor (:mod:`regional.compute`) every (model, method) is a task, submitted
+    by this call, which receives that method's leave-one-out flows (the observed flows are
+    scattered once), so the workers measure while the caller goes on; in process (default)
+    the coverage is measured when the returned call is made. The same table either way.
+    ``runs`` and ``level`` as in :func:`loo_coverage`; ``executor`` where the coverage is
+    measured (default in this process).
+    """
     level = check_level(level)
-    rows = []
-    for model, run in runs.items():
-        loo = run.loo
-        for method in loo.methods:
-            measured = _held_out_coverage(loo.observed, loo.simulated[method], level)
-            rows.append({"model": model, "method": method, "level": level, **measured})
+    executor = executor if executor is not None else InProcessExecutor()
+    pairs = [(model, method) for model, run in runs.items() for method in run.loo.methods]
+    chunks = [[(model, method, runs[model].loo.simulated[method])] for model, method in pairs]
+    job = _CoverageJob({model: run.loo.observed for model, run in runs.items()}, level)
+    wait = executor.start_map(_coverage_rows, chunks, job)
     deciles = [f"coverage_decile_{d}" for d in REPORTED_DECILES]
-    return pd.DataFrame(
-        rows, columns=["model", "method", "level", "coverage", *deciles, "n_days", "n_basins"]
-    )
+    columns = ["model", "method", "level", "coverage", *deciles, "n_days", "n_basins"]
+    return lambda: pd.DataFrame([row for rows in wait() for row in rows], columns=columns)
+
+
+@dataclass(frozen=True)
+class _CoverageJob:
+    """What every coverage task shares: each model's observed flows and the level."""
+
+    observed: dict[str, pd.DataFrame]
+    level: float
+
+
+def _coverage_rows(chunk, job: _CoverageJob) -> list[dict]:
+    """Rows of :func:`loo_coverage` for ``(model, method, simulated flow)`` items (a task)."""
+    return [
+        {
+            "model": model,
+            "method": method,
+            "level": job.level,
+            **_held_out_coverage(job.observed[model], simulated, job.level),
+        }
+        for model, method, simulated in chunk
+    ]
 
 
 @dataclass(frozen=True)

@@ -23,7 +23,7 @@ from regional.attributes import equal_area_crs
 from regional.bounds import ConformalErrorModel, check_level, conformal_bounds
 from regional.calibrate import Window
 from regional.config import Settings
-from regional.coverage import loo_coverage
+from regional.coverage import start_loo_coverage
 from regional.crossval import FoldContext
 from regional.errors import InputError, InputWarning
 from regional.heldout import start_held_out_check, with_held_out
@@ -197,7 +197,8 @@ def fit_region(
     (:func:`regional.bounds.conformal_bounds`), checked on basins held out of the whole fit and
     widened where they fall short (:func:`regional.heldout.held_out_check`, whose repeats start
     first, :func:`regional.heldout.start_held_out_check`); the coverage of
-    every (model, method) is measured (:func:`regional.coverage.loo_coverage`).
+    every (model, method) is measured (:func:`regional.coverage.loo_coverage`; on a cluster
+    as tasks, :func:`regional.coverage.start_loo_coverage`).
 
     Parameters
     ----------
@@ -218,7 +219,8 @@ def fit_region(
         Input file -> SHA-256, stored to tell later whether the inputs changed.
     executor, reader : optional
         A Dask executor and series store reader for the held-out check's repeats
-        (:func:`regional.heldout.held_out_check`); default in this process.
+        (:func:`regional.heldout.held_out_check`) and the leave-one-out coverage; default in
+        this process.
 
     Returns
     -------
@@ -227,8 +229,9 @@ def fit_region(
     level = check_level(settings.prediction.level if level is None else level)
     run = runs[model]
     context, loo = run.context, run.loo
-    # the check's first repeats start first: on a cluster the workers simulate them while
-    # this process builds the error model and the leave-one-out coverage
+    # the check's first repeats start first, then the leave-one-out coverage of every
+    # method: on a cluster the workers simulate, summarise and measure them while this
+    # process builds the error model
     finish_check = start_held_out_check(
         run,
         method,
@@ -238,10 +241,10 @@ def fit_region(
         executor=executor,
         reader=reader,
     )
+    measured = start_loo_coverage(runs, level=level, executor=executor)
     error_model = conformal_bounds(loo.observed, loo.simulated[method], level=level)
-    coverage = loo_coverage(runs, level=level)
     held_out, error_model, notes, draws = finish_check(error_model)
-    coverage = with_held_out(coverage, held_out, model=model, method=method)
+    coverage = with_held_out(measured(), held_out, model=model, method=method)
     dates = context.precip_mm.index
     return FittedRegion(
         model=model,

@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from regional import flowstats
-from regional.bounds import ConformalErrorModel, conformal_bounds
+from regional.bounds import ConformalErrorModel, conformal_bounds, default_n_classes
 from regional.compute import BATCHES_AHEAD, TASKS_PER_WORKER, chunked
 from regional.coverage import (
     REPORTED_DECILES,
@@ -114,6 +114,14 @@ def _repeats(
     basins run as tasks of ``chunk_basins``, reading their series with ``reader`` when given,
     and the first repeats' tasks are submitted by this call (the caller may work before it
     takes them); the flows are the same."""
+    draws = _checked_draws(run, repeats, fraction, seed)
+    if executor is not None:
+        return _repeats_as_tasks(run, method, level, draws, executor, chunk_basins, reader)
+    return _repeats_here(run, method, level, draws)
+
+
+def _checked_draws(run: ModelRun, repeats, fraction, seed) -> list[tuple]:
+    """The held-out basins of every repeat (:func:`_held_out_draws`), the arguments checked."""
     if int(repeats) != repeats or repeats < 1:
         raise ValueError(f"repeats must be a whole number >= 1: got {repeats!r}")
     if not 0.0 < fraction < 1.0:
@@ -125,10 +133,39 @@ def _repeats(
             f"the held-out check needs at least {size + 3} gauged basins to hold out {size}; "
             f"found {len(gauged)}"
         )
-    draws = _held_out_draws(gauged, size, int(repeats), seed)
-    if executor is not None:
-        return _repeats_as_tasks(run, method, level, draws, executor, chunk_basins, reader)
-    return _repeats_here(run, method, level, draws)
+    return _held_out_draws(gauged, size, int(repeats), seed)
+
+
+def _summaries(
+    run: ModelRun,
+    method: str,
+    *,
+    repeats: int,
+    fit_level: float,
+    job: _SummaryJob,
+    executor=None,
+    chunk_basins: int = HELD_OUT_CHUNK,
+    reader: StoreReader | None = None,
+) -> Iterator[HeldOutSummary]:
+    """The summaries of the repeats of :func:`held_out_flows` (:func:`summarise_repeat`), in
+    draw order. In process each repeat is simulated and summarised when it is taken; with an
+    ``executor`` each repeat's tasks are followed by one more that summarises it where they
+    ran (:meth:`regional.compute.DaskExecutor.map_batches`), so only the summaries reach the
+    caller, and the first repeats are submitted by this call. The same numbers either way."""
+    draws = _checked_draws(run, repeats, HELD_OUT_FRACTION, HELD_OUT_SEED)
+    if executor is None:
+        return (job.summarise(r) for r in _repeats_here(run, method, fit_level, draws))
+    gauged = [str(b) for b in run.loo.observed.columns]
+    basins = [_Draw.of(held, gauged, run.context.donor_only) for held in draws]
+    check = uuid.uuid4().hex  # the key of this check's leave-one-out donations on a worker
+    batches = (
+        (
+            *_repeat_batch(run.context, method, fit_level, draw, chunk_basins, reader, check),
+            partial(_summarised, draw),
+        )
+        for draw in basins
+    )
+    return executor.map_batches(batches, shared=job)
 
 
 def _repeats_here(run: ModelRun, method: str, level: float, draws) -> Iterator[HeldOutRepeat]:
@@ -219,6 +256,38 @@ def _assembled(held, training, flows: dict, loo_flow: pd.DataFrame) -> HeldOutRe
         n_simulated=len(training) + len(held) - reused,
         n_reused=reused,
     )
+
+
+@dataclass(frozen=True)
+class _SummaryJob:
+    """What summarising a repeat needs besides its flows (scattered once per check on a
+    cluster): the observed flow and the checked method's leave-one-out flow (evaluation days x
+    gauged basins, mm/day; the latter for the basins whose flow is reused), the
+    precipitation of the flow statistics (the fold context's), the level and the flow
+    classes of the error model."""
+
+    observed: pd.DataFrame
+    loo_flow: pd.DataFrame
+    precip_mm: pd.DataFrame
+    level: float
+    n_classes: int
+
+    def summarise(self, repeat: HeldOutRepeat) -> HeldOutSummary:
+        """:func:`summarise_repeat` of ``repeat`` with its flow statistics."""
+        return summarise_repeat(
+            self.observed,
+            repeat,
+            level=self.level,
+            n_classes=self.n_classes,
+            statistics=_statistics_of(self.precip_mm),
+        )
+
+
+def _summarised(draw: _Draw, parts: list[dict], job: _SummaryJob) -> HeldOutSummary:
+    """A repeat's summary from the results of its tasks (the task that finishes a repeat on a
+    cluster)."""
+    flows = {k: v for part in parts for k, v in part.items()}
+    return job.summarise(_assembled(draw.held, draw.training, flows, job.loo_flow))
 
 
 @dataclass(frozen=True)
@@ -453,6 +522,7 @@ def held_out_check(
         level=level,
         repeats=repeats,
         fit_level=fit_level,
+        n_classes=error_model.n_classes,
         executor=executor,
         reader=reader,
     )
@@ -466,6 +536,7 @@ def start_held_out_check(
     level: float,
     repeats: int,
     fit_level: float,
+    n_classes: int | None = None,
     executor=None,
     reader: StoreReader | None = None,
 ) -> Callable[[ConformalErrorModel], CheckResult]:
@@ -473,9 +544,12 @@ def start_held_out_check(
     the first repeats are submitted by this call), then finish with the error model.
 
     The caller builds the error model, and may do other work, while the workers simulate
-    the first repeats; the returned call takes the error model, summarises the repeats as
-    they come back and gives what :func:`held_out_check` gives (the same numbers: the
-    repeats do not depend on the error model). Parameters as :func:`held_out_check`.
+    and summarise the first repeats; the returned call takes the error model, gathers the
+    repeats' summaries as they come back and gives what :func:`held_out_check` gives (the
+    same numbers: the repeats do not depend on the error model). ``n_classes`` is the flow
+    classes of that error model (default: :func:`regional.bounds.default_n_classes` of the
+    observed flow, as :func:`regional.bounds.conformal_bounds` chooses them); the other
+    parameters as :func:`held_out_check`.
     """
     n_gauged = run.loo.observed.shape[1]
     if repeats == 0:
@@ -488,18 +562,26 @@ def start_held_out_check(
             f"no held-out check of the bounds: {n_gauged} gauged basins, fewer than "
             f"{MIN_HELD_OUT_BASINS}",
         )
-    started = _repeats(
+    if n_classes is None:
+        n_classes = default_n_classes(run.loo.observed.to_numpy())
+    job = _SummaryJob(
+        observed=run.loo.observed,
+        loo_flow=run.loo.simulated[method],
+        precip_mm=run.context.precip_mm,
+        level=level,
+        n_classes=int(n_classes),
+    )
+    started = _summaries(
         run,
         method,
         repeats=repeats,
-        level=fit_level,
-        fraction=HELD_OUT_FRACTION,
-        seed=HELD_OUT_SEED,
+        fit_level=fit_level,
+        job=job,
         executor=executor,
         chunk_basins=held_out_chunk(n_gauged, n_workers=_workers(executor)),
         reader=reader,
     )
-    return partial(_finished_check, run, method, started, level=level)
+    return partial(_finished_check, run, method, started, level=level, n_classes=job.n_classes)
 
 
 def _unchecked(note: str, error_model: ConformalErrorModel) -> CheckResult:
@@ -509,20 +591,23 @@ def _unchecked(note: str, error_model: ConformalErrorModel) -> CheckResult:
 def _finished_check(
     run: ModelRun,
     method: str,
-    started: Iterator[HeldOutRepeat],
+    started: Iterator[HeldOutSummary],
     error_model: ConformalErrorModel,
     *,
     level: float,
+    n_classes: int,
 ) -> CheckResult:
-    """The coverage of the repeats ``started``, and the error model widened where short."""
+    """The coverage of the repeats ``started`` (their summaries), and the error model
+    widened where short."""
     n_gauged = run.loo.observed.shape[1]
     observed, simulated = run.loo.observed, run.loo.simulated[method]
     k = error_model.n_classes
-    statistics = _statistics_of(run.context.precip_mm)
-    draws = [
-        summarise_repeat(observed, draw, level=level, n_classes=k, statistics=statistics)
-        for draw in started
-    ]
+    if k != n_classes:
+        raise ValueError(
+            f"the repeats were summarised with {n_classes} flow classes, the error model has "
+            f"{k}: start the check with n_classes={k}"
+        )
+    draws = list(started)
     table = held_out_coverage(observed, draws, level=level, n_classes=k)
     table = table.rename(columns={"coverage": "held_out_coverage"})
     measured = [table.loc[f"class {c + 1}", "held_out_coverage"] for c in range(k)]

@@ -116,6 +116,33 @@ def test_dask_map_batches_submits_ahead_and_keeps_batch_order():
         executor.close()
 
 
+def _total_plus(results: list, shared: int) -> int:
+    return sum(sum(part) for part in results) + shared
+
+
+def _finished_batches(count: int):
+    # each batch finished by _total_plus: its chunks' results summed, plus the shared number
+    for i in range(count):
+        yield _shifted_squares, [[str(i)], [str(i + 1), str(i + 2)]], 100 * i, _total_plus
+
+
+def test_batches_with_a_finishing_call_give_its_result_in_process_and_on_a_cluster():
+    # A batch's fourth item finishes it where its chunks ran (on a cluster: one more task,
+    # whose inputs stay on the workers); both executors give finish(results, shared), in
+    # batch order.
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    from regional.compute import DaskExecutor
+
+    expected = [sum(sum(part) for part in _expected(i)) + 7 for i in range(4)]
+    here = list(InProcessExecutor().map_batches(_finished_batches(4), shared=7))
+    assert here == expected
+    executor = DaskExecutor(workers=2)
+    try:
+        assert list(executor.map_batches(_finished_batches(4), ahead=1, shared=7)) == expected
+    finally:
+        executor.close()
+
+
 def test_local_workers_are_forked_on_linux_when_dask_is_left_at_spawn():
     assert worker_start_method("spawn", platform="linux") == "fork"
     assert worker_start_method("spawn", platform="darwin") == "spawn"

@@ -152,3 +152,25 @@ def test_leave_one_out_coverage_does_not_depend_on_the_block_of_basins():
     whole = coverage._held_out_coverage(obs[sim.columns], sim, 0.9, block=23)
     for block in (1, 5):
         assert coverage._held_out_coverage(obs[sim.columns], sim, 0.9, block=block) == whole
+
+
+def test_leave_one_out_coverage_started_as_tasks_gives_the_same_table(demo_result):
+    # start_loo_coverage hands every (model, method) to the executor as a task carrying that
+    # method's flows (on a cluster the workers measure while the caller builds the error
+    # model); the table it gives equals loo_coverage's.
+    from regional.compute import InProcessExecutor
+    from regional.coverage import start_loo_coverage
+
+    started: list[list] = []
+
+    class Recording(InProcessExecutor):
+        def start_map(self, function, chunks, context):
+            started.append([(model, method) for [(model, method, _)] in chunks])
+            return super().start_map(function, chunks, context)
+
+    wait = start_loo_coverage(demo_result.runs, level=0.9, executor=Recording())
+    pairs = [(m, method) for m, run in demo_result.runs.items() for method in run.loo.methods]
+    assert started == [pairs]  # one task per (model, method), handed over by the call
+    pd.testing.assert_frame_equal(
+        wait(), loo_coverage(demo_result.runs, level=0.9), check_exact=True
+    )
