@@ -75,8 +75,8 @@ def _measure_shipping(record: list) -> None:
 
     started = compute.DaskExecutor.start_map
 
-    def counted_start(self, function, chunks, context):
-        wait = started(self, function, chunks, context)
+    def counted_start(self, function, chunks, context, *, priority=0):
+        wait = started(self, function, chunks, context, priority=priority)
 
         def gather():
             results = wait()

@@ -234,10 +234,15 @@ class InProcessExecutor:
             yield finish[0](results, shared) if finish else results
 
     def start_map(
-        self, function: ChunkFn, chunks: Sequence[Sequence[Any]], context: Any
+        self,
+        function: ChunkFn,
+        chunks: Sequence[Sequence[Any]],
+        context: Any,
+        *,
+        priority: int = 0,
     ) -> Callable[[], list[Any]]:
         """:meth:`map` to be waited for later: here the chunks run when the returned call is
-        made (on a cluster they run meanwhile)."""
+        made (on a cluster they run meanwhile; ``priority`` is for the cluster)."""
         return partial(self.map, function, chunks, context)
 
     def close(self) -> None:
@@ -396,12 +401,26 @@ class DaskExecutor:
         return gathered()
 
     def start_map(
-        self, function: ChunkFn, chunks: Sequence[Sequence[Any]], context: Any
+        self,
+        function: ChunkFn,
+        chunks: Sequence[Sequence[Any]],
+        context: Any,
+        *,
+        priority: int = 0,
     ) -> Callable[[], list[Any]]:
         """Scatter ``context`` once and submit one task per chunk now; the returned call waits
-        for the results and gives them in chunk order (the caller works meanwhile)."""
+        for the results and gives them in chunk order (the caller works meanwhile).
+
+        A worker takes a task of a lower ``priority`` (default 0) only when no task of a
+        higher one is ready: small independent tasks given ``priority=-1`` fill the gaps
+        other work leaves and the end of a stage, where one worker would otherwise wait for
+        the other's last task.
+        """
         shared = self.client.scatter(context, broadcast=True, hash=False)
-        futures = [self.client.submit(function, list(c), shared, pure=False) for c in chunks]
+        futures = [
+            self.client.submit(function, list(c), shared, pure=False, priority=priority)
+            for c in chunks
+        ]
         held = [shared, futures]
 
         def gather() -> list[Any]:

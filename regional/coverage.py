@@ -222,7 +222,9 @@ def start_loo_coverage(
 
     With a Dask executor (:mod:`regional.compute`) every (model, method) is a task, submitted
     by this call, which receives that method's leave-one-out flows (the observed flows are
-    scattered once), so the workers measure while the caller goes on; in process (default)
+    scattered once), so the workers measure while the caller goes on (at a lower priority
+    than the tasks submitted before and after them: they fill the workers' gaps and the end
+    of the stage); in process (default)
     the coverage is measured when the returned call is made. The same table either way.
     ``runs`` and ``level`` as in :func:`loo_coverage`; ``executor`` where the coverage is
     measured (default in this process).
@@ -232,7 +234,8 @@ def start_loo_coverage(
     pairs = [(model, method) for model, run in runs.items() for method in run.loo.methods]
     chunks = [[(model, method, runs[model].loo.simulated[method])] for model, method in pairs]
     job = _CoverageJob({model: run.loo.observed for model, run in runs.items()}, level)
-    wait = executor.start_map(_coverage_rows, chunks, job)
+    # behind the other work of the stage: they fill the gaps and the end of the held-out check
+    wait = executor.start_map(_coverage_rows, chunks, job, priority=-1)
     deciles = [f"coverage_decile_{d}" for d in REPORTED_DECILES]
     columns = ["model", "method", "level", "coverage", *deciles, "n_days", "n_basins"]
     return lambda: pd.DataFrame([row for rows in wait() for row in rows], columns=columns)

@@ -112,6 +112,9 @@ def test_dask_map_batches_submits_ahead_and_keeps_batch_order():
         chunks = [["3"], ["1", "2"], ["4"]]
         wait = executor.start_map(_shifted_squares, chunks, 5)
         assert wait() == InProcessExecutor().map(_shifted_squares, chunks, 5)
+        # at a lower priority (behind other work): the same results, in chunk order
+        wait = executor.start_map(_shifted_squares, chunks, 5, priority=-1)
+        assert wait() == InProcessExecutor().map(_shifted_squares, chunks, 5)
     finally:
         executor.close()
 

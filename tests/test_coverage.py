@@ -164,9 +164,10 @@ def test_leave_one_out_coverage_started_as_tasks_gives_the_same_table(demo_resul
     started: list[list] = []
 
     class Recording(InProcessExecutor):
-        def start_map(self, function, chunks, context):
+        def start_map(self, function, chunks, context, *, priority=0):
             started.append([(model, method) for [(model, method, _)] in chunks])
-            return super().start_map(function, chunks, context)
+            assert priority < 0  # behind the held-out check's tasks on a cluster
+            return super().start_map(function, chunks, context, priority=priority)
 
     wait = start_loo_coverage(demo_result.runs, level=0.9, executor=Recording())
     pairs = [(m, method) for m, run in demo_result.runs.items() for method in run.loo.methods]
