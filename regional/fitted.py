@@ -11,7 +11,7 @@ alone; :mod:`regional.fittedfiles` turns it into open files and back.
 from __future__ import annotations
 
 import warnings
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
@@ -190,6 +190,7 @@ def fit_region(
     inputs: dict[str, str] | None = None,
     executor=None,
     reader=None,
+    meanwhile: Callable[[], Callable | None] | None = None,
 ) -> FittedRegion:
     """Gather the fitted region from the per-model calibration and leave-one-out runs.
 
@@ -221,6 +222,11 @@ def fit_region(
         A Dask executor and series store reader for the held-out check's repeats
         (:func:`regional.heldout.held_out_check`) and the leave-one-out coverage; default in
         this process.
+    meanwhile : callable, optional
+        The caller's own work, called once the held-out check and the coverage are started
+        (on a cluster it runs while the workers simulate); it may return a call that is then
+        given each repeat's summary (:class:`~regional.coverage.HeldOutSummary`) as it comes
+        back (the flow statistics' held-out check, :class:`regional.statroutes.GaugedStatistics`).
 
     Returns
     -------
@@ -242,8 +248,9 @@ def fit_region(
         reader=reader,
     )
     measured = start_loo_coverage(runs, level=level, executor=executor)
+    on_repeat = None if meanwhile is None else meanwhile()
     error_model = conformal_bounds(loo.observed, loo.simulated[method], level=level)
-    held_out, error_model, notes, draws = finish_check(error_model)
+    held_out, error_model, notes, draws = finish_check(error_model, on_repeat=on_repeat)
     coverage = with_held_out(measured(), held_out, model=model, method=method)
     dates = context.precip_mm.index
     return FittedRegion(

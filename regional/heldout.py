@@ -545,8 +545,9 @@ def start_held_out_check(
 
     The caller builds the error model, and may do other work, while the workers simulate
     and summarise the first repeats; the returned call takes the error model, gathers the
-    repeats' summaries as they come back and gives what :func:`held_out_check` gives (the
-    same numbers: the repeats do not depend on the error model). ``n_classes`` is the flow
+    repeats' summaries as they come back (handing each to its optional ``on_repeat`` call)
+    and gives what :func:`held_out_check` gives (the same numbers: the repeats do not depend
+    on the error model). ``n_classes`` is the flow
     classes of that error model (default: :func:`regional.bounds.default_n_classes` of the
     observed flow, as :func:`regional.bounds.conformal_bounds` chooses them); the other
     parameters as :func:`held_out_check`.
@@ -584,7 +585,7 @@ def start_held_out_check(
     return partial(_finished_check, run, method, started, level=level, n_classes=job.n_classes)
 
 
-def _unchecked(note: str, error_model: ConformalErrorModel) -> CheckResult:
+def _unchecked(note: str, error_model: ConformalErrorModel, *, on_repeat=None) -> CheckResult:
     return None, error_model, [note], ()
 
 
@@ -596,9 +597,10 @@ def _finished_check(
     *,
     level: float,
     n_classes: int,
+    on_repeat: Callable[[HeldOutSummary], None] | None = None,
 ) -> CheckResult:
     """The coverage of the repeats ``started`` (their summaries), and the error model
-    widened where short."""
+    widened where short; ``on_repeat`` is called with each summary as it comes back."""
     n_gauged = run.loo.observed.shape[1]
     observed, simulated = run.loo.observed, run.loo.simulated[method]
     k = error_model.n_classes
@@ -607,7 +609,11 @@ def _finished_check(
             f"the repeats were summarised with {n_classes} flow classes, the error model has "
             f"{k}: start the check with n_classes={k}"
         )
-    draws = list(started)
+    draws = []
+    for draw in started:
+        if on_repeat is not None:
+            on_repeat(draw)
+        draws.append(draw)
     table = held_out_coverage(observed, draws, level=level, n_classes=k)
     table = table.rename(columns={"coverage": "held_out_coverage"})
     measured = [table.loc[f"class {c + 1}", "held_out_coverage"] for c in range(k)]

@@ -46,7 +46,7 @@ from regional.region import Region, load_region, transfer_attribute_names
 from regional.result import ModelRun, RunResult
 from regional.screen import screen_region
 from regional.series import StoreReader, shipped, store_reader
-from regional.statroutes import estimate_statistics
+from regional.statroutes import GaugedStatistics, estimate_statistics
 from regional.transfer import RegressionTransfer, fit_transfer
 
 logger = logging.getLogger(__name__)
@@ -201,6 +201,8 @@ def _chain(settings, region, executor, progress, timings) -> dict:
     ]
     summary = summarise(scores)
     model, method = _choose(summary, settings)
+    # the flow statistics' gauged part is built while the held-out check runs
+    early = _EarlyStatistics(runs[model], method, region, tuple(attributes))
     with _timed(timings, "fitted_region"):
         fitted = fit_region(
             runs,
@@ -210,6 +212,7 @@ def _chain(settings, region, executor, progress, timings) -> dict:
             settings=settings,
             basins=region.basins,
             inputs=io.file_checksums(settings.input_paths()),
+            meanwhile=early,
             **_held_out_compute(runs[model], region, settings, executor),
         )
     prediction = screening = None
@@ -225,7 +228,7 @@ def _chain(settings, region, executor, progress, timings) -> dict:
                 ),
             )
     with _timed(timings, "statistics"):
-        statistics = _statistics(runs[model], method, region, attributes, prediction)
+        statistics = _statistics(runs[model], method, region, attributes, prediction, early)
     fitted, prediction = _without_draws(fitted), _without_draws(prediction)
     if region.ungauged:
         with _timed(timings, "screening"):
@@ -331,14 +334,42 @@ def _chunk_basins(
     return chunk_size(n_basins, default, n_workers=workers, tasks_per_worker=tasks_per_worker)
 
 
-def _statistics(run: ModelRun, method: str, region: Region, attributes, prediction):
-    """Flow statistics by every route in leave-one-out, bounded at the ungauged basins."""
+@dataclass
+class _EarlyStatistics:
+    """The flow statistics' routes at the gauged basins (:class:`GaugedStatistics`), built
+    when :func:`fit_region` calls it (``meanwhile``: while a cluster's workers run the
+    held-out check) and given the check's repeats as they come back when the region has
+    ungauged basins (without, the statistics have no held-out check, as before)."""
+
+    run: ModelRun
+    method: str
+    region: Region
+    attributes: tuple[str, ...]
+    gauged: GaugedStatistics | None = None
+
+    def __call__(self):
+        settings = self.region.settings.prediction
+        self.gauged = GaugedStatistics(
+            self.run,
+            self.method,
+            self.region,
+            attributes=self.attributes,
+            level=settings.level,
+            route=settings.statistics_route,
+        )
+        return self.gauged.add_held_out if self.region.ungauged else None
+
+
+def _statistics(
+    run: ModelRun, method: str, region: Region, attributes, prediction, early: _EarlyStatistics
+):
+    """Flow statistics by every route in leave-one-out, bounded at the ungauged basins (the
+    gauged part built early, ``early``)."""
     settings = region.settings.prediction
-    model, applicable, held_out = None, None, ()
+    model, applicable = None, None
     if prediction is not None:
         model = prediction.model_statistics
         applicable = prediction.table["applicable"]
-        held_out = prediction.held_out_draws
     return estimate_statistics(
         run,
         method,
@@ -349,7 +380,7 @@ def _statistics(run: ModelRun, method: str, region: Region, attributes, predicti
         level=settings.level,
         route=settings.statistics_route,
         applicable=applicable,
-        held_out=held_out,
+        gauged=early.gauged,
     )
 
 

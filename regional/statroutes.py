@@ -177,6 +177,7 @@ def estimate_statistics(
     applicable: pd.Series | None = None,
     held_out: Sequence | None = None,
     ungauged_model: pd.DataFrame | None = None,
+    gauged: GaugedStatistics | None = None,
 ) -> FlowStatistics:
     """Statistics by every route in leave-one-out, the chosen route and its bounds.
 
@@ -208,25 +209,26 @@ def estimate_statistics(
         The model route's statistics at the ungauged basins when already computed beside
         their flows (:attr:`regional.predicted.Prediction.model_statistics`: basins x
         statistics over the evaluation days); then ``ungauged_flow`` is not needed.
+    gauged : GaugedStatistics, optional
+        The routes at the gauged basins already computed (and given the held-out repeats)
+        from the same ``run``, ``method``, ``region``, ``attributes``, ``level`` and
+        ``route``: then only the bounds and the ungauged basins' estimates are computed here
+        (``held_out`` must be None).
 
     Returns
     -------
     FlowStatistics
     """
-    if route not in ROUTE_CHOICES:
-        raise InputError(
-            f"[prediction] statistics_route must be one of {', '.join(ROUTE_CHOICES)}; "
-            f"got {route!r}"
+    if gauged is None:
+        gauged = GaugedStatistics(
+            run, method, region, attributes=attributes, level=level, route=route
         )
-    data = _GaugedData.of(run.context, run.loo, method, attributes, region.attributes)
-    estimates = {MODEL: data.model_loo}
-    estimates.update(_direct_loo(data))
-    errors = {name: _log_error(data.observed, est) for name, est in estimates.items()}
-    coverage = {name: _loo_coverage(err, level) for name, err in errors.items()}
-    summary = _summary(data.observed, estimates, errors, coverage)
-    summary = _choose(summary, route)
-    if held_out:
-        summary = _with_held_out(summary, data, held_out, level)
+        for draw in held_out or ():
+            gauged.add_held_out(draw)
+    elif held_out:
+        raise ValueError("give the held-out repeats to the GaugedStatistics, not twice")
+    data, estimates, errors = gauged.data, gauged.estimates, gauged.errors
+    summary, level, route = gauged.summary, gauged.level, gauged.route
     bounds = _bounds(summary, errors, level)
     loo_table = _loo_table(data.observed, estimates)
     notes = _notes(summary, bounds, level, len(data.gauged))
@@ -998,34 +1000,95 @@ def _loo_table(observed: pd.DataFrame, estimates: Mapping[str, pd.DataFrame]) ->
     return pd.concat(frames, ignore_index=True)[list(LOO_COLUMNS)]
 
 
+class GaugedStatistics:
+    """The statistics' routes in leave-one-out at the gauged basins, the chosen route and its
+    held-out check: the part of :func:`estimate_statistics` that needs no ungauged basin.
+
+    It is computed when made and given the held-out repeats one at a time
+    (:meth:`add_held_out`), so a run can build it while a cluster's workers run the held-out
+    check of the bounds and hand it each repeat's summary as it comes back
+    (:func:`regional.fitted.fit_region`); :func:`estimate_statistics` then finishes with the
+    bounds and the ungauged basins. The same numbers as :func:`estimate_statistics` given
+    the repeats at once.
+
+    Parameters
+    ----------
+    run, method, region, attributes, level, route
+        As in :func:`estimate_statistics`.
+    """
+
+    def __init__(
+        self,
+        run: ModelRun,
+        method: str,
+        region: Region,
+        *,
+        attributes: Sequence[str],
+        level: float,
+        route: str = "auto",
+    ) -> None:
+        if route not in ROUTE_CHOICES:
+            raise InputError(
+                f"[prediction] statistics_route must be one of {', '.join(ROUTE_CHOICES)}; "
+                f"got {route!r}"
+            )
+        self.level, self.route = level, route
+        data = _GaugedData.of(run.context, run.loo, method, attributes, region.attributes)
+        estimates = {MODEL: data.model_loo}
+        estimates.update(_direct_loo(data))
+        errors = {name: _log_error(data.observed, est) for name, est in estimates.items()}
+        coverage = {name: _loo_coverage(err, level) for name, err in errors.items()}
+        summary = _summary(data.observed, estimates, errors, coverage)
+        self.data, self.estimates, self.errors = data, estimates, errors
+        self._chosen = _choose(summary, route)
+        self._hits: dict[tuple[str, str], list[float]] | None = None
+
+    def add_held_out(self, draw) -> None:
+        """Check the chosen routes on one repeat of the held-out check
+        (:class:`~regional.coverage.HeldOutRepeat` or its summary)."""
+        if self._hits is None:
+            self._hits = {}
+        _held_out_hits(self._chosen, self.data, draw, self.level, self._hits)
+
+    @property
+    def summary(self) -> pd.DataFrame:
+        """The summary table with the chosen routes and, once repeats were given, their
+        held-out coverage."""
+        if self._hits is None:
+            return self._chosen
+        return _with_hits(self._chosen, self._hits)
+
+
 # --------------------------------------------------------------------------------------------
 # Held-out check: bounds built without the held-out basins, applied to them
 
 
-def _with_held_out(summary, data: _GaugedData, repeats, level) -> pd.DataFrame:
-    """Held-out coverage of each statistic's chosen route, from the repeats of the daily
-    held-out check.
+def _held_out_hits(summary, data: _GaugedData, draw, level, hits: dict) -> None:
+    """Add one repeat of the daily held-out check to ``hits``: per (statistic, chosen route),
+    whether each held-out basin's observed statistic lies inside the route's bounds.
 
-    In each repeat the route is fit on the training basins only, its leave-one-out errors over
+    In the repeat the route is fit on the training basins only, its leave-one-out errors over
     the training basins give the bounds, and the held-out basins' observed statistics are
     checked against them; each (repeat, basin) pair weighs the same.
     """
     chosen = summary[summary["chosen"]]
     needed = {r: list(rows["statistic"]) for r, rows in chosen.groupby("route", sort=False)}
-    hits: dict[tuple[str, str], list[float]] = {}
-    for draw in repeats:
-        held = [str(b) for b in draw.held_out]
-        training = _training_basins(draw)
-        routes = _held_out_routes(data, draw, training, held, needed)
-        for route, (train_est, held_est) in routes.items():
-            train_err = _log_error(data.observed.loc[training, needed[route]], train_est)
-            held_err = _log_error(data.observed.loc[held, needed[route]], held_est)
-            for name in needed[route]:
-                lower, upper = conformal_quantiles(train_err[name], level)
-                values = held_err[name].to_numpy(dtype=float)
-                values = values[np.isfinite(values)]
-                inside = (values >= lower) & (values <= upper)
-                hits.setdefault((name, route), []).extend(inside.astype(float).tolist())
+    held = [str(b) for b in draw.held_out]
+    training = _training_basins(draw)
+    routes = _held_out_routes(data, draw, training, held, needed)
+    for route, (train_est, held_est) in routes.items():
+        train_err = _log_error(data.observed.loc[training, needed[route]], train_est)
+        held_err = _log_error(data.observed.loc[held, needed[route]], held_est)
+        for name in needed[route]:
+            lower, upper = conformal_quantiles(train_err[name], level)
+            values = held_err[name].to_numpy(dtype=float)
+            values = values[np.isfinite(values)]
+            inside = (values >= lower) & (values <= upper)
+            hits.setdefault((name, route), []).extend(inside.astype(float).tolist())
+
+
+def _with_hits(summary, hits: dict) -> pd.DataFrame:
+    """The summary with the held-out coverage of each (statistic, chosen route) of ``hits``."""
     summary = summary.copy()
     for (name, route), values in hits.items():
         rows = (summary["statistic"] == name) & (summary["route"] == route)

@@ -344,3 +344,37 @@ def test_donor_routes_do_not_depend_on_the_block_of_targets(method, monkeypatch)
         pd.testing.assert_frame_equal(runs[rows][0], runs[15][0], check_exact=True)
         pd.testing.assert_frame_equal(runs[rows][1], runs[15][1], check_exact=True)
     assert np.isfinite(runs[15][0].to_numpy()).all()
+
+
+def test_gauged_part_given_the_repeats_one_by_one_equals_the_statistics_given_them_at_once(
+    demo_result,
+):
+    # The run builds the gauged part while the held-out check runs and hands it each repeat's
+    # summary as it comes back (GaugedStatistics.add_held_out); estimate_statistics finished
+    # from it gives the tables of estimate_statistics given all the repeats at once.
+    from regional.heldout import held_out_flows
+
+    run = demo_result.runs[demo_result.chosen_model]
+    method = demo_result.chosen_method
+    repeats = held_out_flows(run, method=method, repeats=3, level=0.9)
+    options = {"attributes": demo_result.attributes, "level": 0.9}
+    at_once = sr.estimate_statistics(
+        run, method, demo_result.region, None, held_out=repeats, **options
+    )
+    gauged = sr.GaugedStatistics(run, method, demo_result.region, **options)
+    assert gauged.summary["held_out_coverage"].isna().all()  # no repeat given yet
+    for repeat in repeats:
+        gauged.add_held_out(repeat)
+    one_by_one = sr.estimate_statistics(
+        run, method, demo_result.region, None, gauged=gauged, **options
+    )
+    assert one_by_one.summary["held_out_coverage"].notna().any()
+    for name in ("summary", "bounds", "loo", "observed"):
+        pd.testing.assert_frame_equal(
+            getattr(one_by_one, name), getattr(at_once, name), check_exact=True
+        )
+    assert one_by_one.notes == at_once.notes
+    with pytest.raises(ValueError, match="not twice"):
+        sr.estimate_statistics(
+            run, method, demo_result.region, None, held_out=repeats, gauged=gauged, **options
+        )
