@@ -330,6 +330,9 @@ class _Summary:
 
 @dataclass(frozen=True, eq=False)
 class _Daily:
+    """The daily tables of a region (grids, or :class:`regional.series.StoreTable`), their
+    common dates, the description of the file, the calibration period and the summary."""
+
     dates: pd.DatetimeIndex
     tables: dict
     source: str
