@@ -1,5 +1,6 @@
 """Executors give the same results in the same order."""
 
+import gc
 import sys
 
 import pytest
@@ -154,10 +155,14 @@ def test_local_workers_are_forked_on_linux_when_dask_is_left_at_spawn():
 
 
 def _client_mark() -> tuple:
+    import gc
+
     import dask
 
-    return getattr(compute, "CLIENT_MARK", None), dask.config.get(
-        "distributed.worker.profile.enabled"
+    return (
+        getattr(compute, "CLIENT_MARK", None),
+        dask.config.get("distributed.worker.profile.enabled"),
+        gc.get_freeze_count() > 0,
     )
 
 
@@ -174,8 +179,13 @@ def test_local_workers_start_as_copies_of_the_client_with_its_modules_unprofiled
         executor = compute.DaskExecutor(workers=1, worker_modules=("regional.pipeline",))
     try:
         assert "regional.pipeline" in sys.modules
-        # and no statistical profile is sampled on a local worker (no dashboard shows it)
-        assert list(executor.client.run(_client_mark).values()) == [("set in the client", False)]
+        # no statistical profile is sampled on a local worker (no dashboard shows it), and
+        # the objects it inherited are frozen (its collections skip them); this process's are
+        # not
+        assert list(executor.client.run(_client_mark).values()) == [
+            ("set in the client", False, True)
+        ]
+        assert gc.get_freeze_count() == 0
     finally:
         executor.close()
 
