@@ -340,33 +340,45 @@ class _Daily:
     summary: _Summary
 
 
-def _daily(settings: Settings, basins: gpd.GeoDataFrame, notes: list[str], *, in_store: bool):
+def _daily(
+    settings: Settings, basins: gpd.GeoDataFrame, notes: list[str], *, in_store: bool
+) -> _Daily:
     """The daily tables and their per-basin summary: held as grids, or (``in_store`` and the
     series file is a series store) left in the store and summarised a block of basins at a
     time, so that no grid of the whole region is held."""
     if in_store and io.series_store_basins(settings.series.path) is not None:
-        first, last, source = check_store(settings, basins.index)
-        dates = _common_dates(first, last, source, notes)
-        calibration = _check_periods(settings, dates, notes)
-        area = basin_area_km2(basins) if settings.series.flow_m3s is not None else None
-        temp = bool(settings.series.temp)
-        reader = store_reader(settings, dates, with_temp=temp, area_km2=area)
-        tables = {
-            name.split("_")[0]: table for name, table in store_tables(reader, basins.index).items()
-        }
-        blocks = (
-            _summary_of(
-                block,
-                part["precip_mm"],
-                part["pet_mm"],
-                part.get("temp_c"),
-                part["flow_mm"],
-                settings,
-                calibration,
-            )
-            for block, part in store_blocks(reader, basins.index)
+        return _daily_in_store(settings, basins, notes)
+    return _daily_as_grids(settings, basins, notes)
+
+
+def _daily_in_store(settings: Settings, basins: gpd.GeoDataFrame, notes: list[str]) -> _Daily:
+    """The daily tables left in the series store, checked and summarised a block at a time."""
+    first, last, source = check_store(settings, basins.index)
+    dates = _common_dates(first, last, source, notes)
+    calibration = _check_periods(settings, dates, notes)
+    area = basin_area_km2(basins) if settings.series.flow_m3s is not None else None
+    temp = bool(settings.series.temp)
+    reader = store_reader(settings, dates, with_temp=temp, area_km2=area)
+    tables = {
+        name.split("_")[0]: table for name, table in store_tables(reader, basins.index).items()
+    }
+    blocks = (
+        _summary_of(
+            block,
+            part["precip_mm"],
+            part["pet_mm"],
+            part.get("temp_c"),
+            part["flow_mm"],
+            settings,
+            calibration,
         )
-        return _Daily(dates, tables, source, calibration, _stacked(list(blocks)))
+        for block, part in store_blocks(reader, basins.index)
+    )
+    return _Daily(dates, tables, source, calibration, _stacked(list(blocks)))
+
+
+def _daily_as_grids(settings: Settings, basins: gpd.GeoDataFrame, notes: list[str]) -> _Daily:
+    """The daily tables read whole into grids, summarised at once."""
     grids, source = read_grids(settings, basins.index)
     dates = _common_dates(grids.first, grids.last, source, notes)
     tables = series_tables(grids, dates, basins.index)
