@@ -247,8 +247,9 @@ def child(n_basins: int, years: int, workers: int) -> None:
     import warnings
 
     from regional.compute import keep_freed_memory
+    from regional.config import load_settings
     from regional.outputs import write_outputs
-    from regional.pipeline import run
+    from regional.pipeline import open_executor, run
 
     warnings.simplefilter("ignore")
     keep_freed_memory()  # as the command line does
@@ -264,8 +265,15 @@ def child(n_basins: int, years: int, workers: int) -> None:
         _reset_peak()
         start = time.perf_counter()
         address = cluster.scheduler_address if cluster else None
-        result = run(folder, scheduler=address)
-        _watched(write_outputs, "write_outputs", stages)(result, folder / "results")
+        # as the command line: one executor for the chain and the outputs, left open
+        # between them (on a cluster the leave-one-out flows stay on its workers)
+        executor = open_executor(load_settings(folder), scheduler=address)
+        try:
+            result = run(folder, executor=executor)
+            write = _watched(write_outputs, "write_outputs", stages)
+            write(result, folder / "results", executor=executor)
+        finally:
+            executor.close()
         seconds = time.perf_counter() - start
         if cluster is not None:
             worker_mb = list(client.run(_peak_mb).values())

@@ -353,21 +353,32 @@ class DaskExecutor:
         progress: Progress = None,
     ) -> list[Any]:
         """Scatter ``context`` once, run one task per chunk, gather results in chunk order."""
-        from distributed import as_completed
+        shared, futures = self._tasks(function, chunks, context)
+        self._wait(futures, chunks, progress)
+        return self.client.gather(futures)
 
+    def _tasks(self, function: ChunkFn, chunks: Sequence[Sequence[str]], context: Any) -> tuple:
+        """``context`` scattered once and one task per chunk submitted: the scattered
+        context's future (the caller holds it while the tasks run) and the tasks'."""
         # hash=False: a fresh key per stage, so releasing one stage's copy never races with
         # the next stage scattering an equal object
         shared = self.client.scatter(context, broadcast=True, hash=False)
         futures = [
             self.client.submit(function, list(chunk), shared, pure=False) for chunk in chunks
         ]
+        return shared, futures
+
+    @staticmethod
+    def _wait(futures: Sequence, chunks: Sequence[Sequence[str]], progress: Progress) -> None:
+        """Wait for every task, calling ``progress(done, total)`` in basins as they finish."""
+        from distributed import as_completed
+
         sizes = {future.key: len(chunk) for future, chunk in zip(futures, chunks, strict=True)}
         total, done = sum(sizes.values()), 0
         for future in as_completed(futures):
             done += sizes[future.key]
             if progress is not None:
                 progress(done, total)
-        return self.client.gather(futures)
 
     def map_batches(
         self, batches: Iterable[Batch], *, ahead: int = BATCHES_AHEAD, shared: Any = None
@@ -386,7 +397,8 @@ class DaskExecutor:
         A batch with a fourth item ``finish`` is finished on the cluster: one more task,
         ``finish(results, shared)``, takes its chunks' results on a worker (they never reach
         this process) and only what it returns is gathered and yielded. ``shared`` is
-        scattered to the workers once for all the batches.
+        scattered to the workers once for all the batches (or, when it is a future of a
+        result left on a worker, given as that result).
         """
         if ahead < 0:
             raise ValueError(f"ahead must be >= 0: got {ahead}")
@@ -405,7 +417,7 @@ class DaskExecutor:
             ]
             if finish:
                 if not everywhere:
-                    everywhere.append(self.client.scatter(shared, broadcast=True, hash=False))
+                    everywhere.append(self._placed(shared))
                 # the chunks' results stay on the workers until the finishing task has used them
                 futures = [self.client.submit(finish[0], futures, everywhere[0], pure=False)]
             pending.append((scattered, futures, bool(finish)))
@@ -422,6 +434,33 @@ class DaskExecutor:
         for _ in range(ahead + 1):
             submit_next()
         return gathered()
+
+    def map_keeping(
+        self,
+        function: ChunkFn,
+        chunks: Sequence[Sequence[str]],
+        context: Any,
+        *,
+        progress: Progress = None,
+    ) -> tuple[list[Any], list[Any]]:
+        """:meth:`map` of a ``function`` that returns a pair ``(small, kept)`` per chunk: the
+        small parts are gathered (in chunk order), the kept parts stay on the workers, one
+        future per chunk (in chunk order), until the caller drops them."""
+        shared, futures = self._tasks(function, chunks, context)
+        small = [self.client.submit(_item, f, 0, pure=False) for f in futures]
+        kept = [self.client.submit(_item, f, 1, pure=False) for f in futures]
+        self._wait(futures, chunks, progress)
+        del futures, shared  # each pair is released once split
+        return self.client.gather(small), kept
+
+    def submit(self, function: Callable, *args: Any, priority: int = 0):
+        """One task ``function(*args)`` now; futures among ``args`` (also inside lists) reach
+        it as their results, fetched by the worker that runs it. Returns its future."""
+        return self.client.submit(function, *args, pure=False, priority=priority)
+
+    def gather(self, futures: Sequence[Any]) -> list[Any]:
+        """The results of ``futures`` (:meth:`submit`, :meth:`map_keeping`) in this process."""
+        return self.client.gather(list(futures))
 
     def start_map(
         self,
@@ -453,6 +492,15 @@ class DaskExecutor:
 
         return gather
 
+    def _placed(self, value: Any):
+        """``value`` scattered to every worker, or as it is when already a future (a result
+        left on a worker: the workers that need it fetch it)."""
+        from distributed import Future
+
+        if isinstance(value, Future):
+            return value
+        return self.client.scatter(value, broadcast=True, hash=False)
+
     @property
     def n_workers(self) -> int:
         """Workers connected to the scheduler now (at least 1)."""
@@ -463,6 +511,11 @@ class DaskExecutor:
         self.client.close()
         if self._cluster is not None:
             self._cluster.close()
+
+
+def _item(pair: Sequence[Any], position: int) -> Any:
+    """One item of a task's result (a task of :meth:`DaskExecutor.map_keeping`)."""
+    return pair[position]
 
 
 def _connect(client_class, address: str, timeout_s: float):

@@ -30,6 +30,7 @@ from regional.bounds import (
     pooled_bounds,
 )
 from regional.compute import InProcessExecutor
+from regional.kept import is_kept, start_near
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.result import ModelRun
@@ -232,13 +233,32 @@ def start_loo_coverage(
     level = check_level(level)
     executor = executor if executor is not None else InProcessExecutor()
     pairs = [(model, method) for model, run in runs.items() for method in run.loo.methods]
+    deciles = [f"coverage_decile_{d}" for d in REPORTED_DECILES]
+    columns = ["model", "method", "level", "coverage", *deciles, "n_days", "n_basins"]
+    if any(is_kept(run.loo.observed) for run in runs.values()):
+        waits = _coverage_near(runs, pairs, level)
+        return lambda: pd.DataFrame([wait() for wait in waits], columns=columns)
     chunks = [[(model, method, runs[model].loo.simulated[method])] for model, method in pairs]
     job = _CoverageJob({model: run.loo.observed for model, run in runs.items()}, level)
     # behind the other work of the stage: they fill the gaps and the end of the held-out check
     wait = executor.start_map(_coverage_rows, chunks, job, priority=-1)
-    deciles = [f"coverage_decile_{d}" for d in REPORTED_DECILES]
-    columns = ["model", "method", "level", "coverage", *deciles, "n_days", "n_basins"]
     return lambda: pd.DataFrame([row for rows in wait() for row in rows], columns=columns)
+
+
+def _coverage_near(runs: Mapping[str, ModelRun], pairs, level: float) -> list[Callable]:
+    """Each (model, method)'s row as a task next to its leave-one-out flows, where they were
+    left on the workers (:mod:`regional.kept`), behind the other work of the stage."""
+    return [
+        start_near(
+            _coverage_row,
+            (runs[model].loo.observed, runs[model].loo.simulated[method]),
+            model,
+            method,
+            level,
+            priority=-1,
+        )
+        for model, method in pairs
+    ]
 
 
 @dataclass(frozen=True)
@@ -252,14 +272,19 @@ class _CoverageJob:
 def _coverage_rows(chunk, job: _CoverageJob) -> list[dict]:
     """Rows of :func:`loo_coverage` for ``(model, method, simulated flow)`` items (a task)."""
     return [
-        {
-            "model": model,
-            "method": method,
-            "level": job.level,
-            **_held_out_coverage(job.observed[model], simulated, job.level),
-        }
+        _coverage_row(job.observed[model], simulated, model, method, job.level)
         for model, method, simulated in chunk
     ]
+
+
+def _coverage_row(observed, simulated, model: str, method: str, level: float) -> dict:
+    """One (model, method)'s row of :func:`loo_coverage`."""
+    return {
+        "model": model,
+        "method": method,
+        "level": level,
+        **_held_out_coverage(observed, simulated, level),
+    }
 
 
 @dataclass(frozen=True)

@@ -34,6 +34,7 @@ from regional import metrics
 from regional.calibrate import Window
 from regional.compute import InProcessExecutor, chunked
 from regional.errors import InputError
+from regional.kept import KeptBlocks, KeptTable
 from regional.models import parameter_transforms, simulate
 from regional.models.base import forward, inverse
 from regional.series import StoreReader, shipped
@@ -134,11 +135,13 @@ class LeaveOneOut:
     params : DataFrame
         Long: ``basin_id``, ``method``, one column per parameter (the transferred estimate in
         parameter units; ``calibrated`` rows hold the basin's own parameters).
-    observed : DataFrame
-        Evaluation days x basin_id, observed flow, mm/day (NaN = missing).
+    observed : DataFrame or KeptTable
+        Evaluation days x basin_id, observed flow, mm/day (NaN = missing). On a cluster with
+        ``keep`` a :class:`regional.kept.KeptTable`: the values stay on the workers.
     simulated : dict
         Method -> DataFrame (evaluation days x basin_id) of the flow each method gave, mm/day,
-        held as :data:`LOO_FLOW_DTYPE` (float32; the scores come from the float64 flow).
+        held as :data:`LOO_FLOW_DTYPE` (float32; the scores come from the float64 flow); on a
+        cluster with ``keep`` a :class:`regional.kept.KeptTable` each.
     excluded : dict
         Target -> donors left out of its folds for sharing area with it.
     warnings : tuple of str
@@ -163,6 +166,7 @@ def leave_one_out(
     progress: Callable[[int, int], None] | None = None,
     chunk_basins: int = CHUNK_BASINS,
     reader: StoreReader | None = None,
+    keep: bool = False,
 ) -> LeaveOneOut:
     """Treat every gauged basin as ungauged in turn and score each transfer method.
 
@@ -180,6 +184,12 @@ def leave_one_out(
     reader : StoreReader, optional
         Each task reads its targets' daily tables from the series store
         (:mod:`regional.series`) instead of receiving the context's tables; same results.
+    keep : bool, default False
+        With a Dask executor, leave the daily flows (:attr:`LeaveOneOut.observed` and
+        :attr:`LeaveOneOut.simulated`) on the workers, one block per task, as
+        :class:`regional.kept.KeptTable` objects: the client gathers the scores, parameters
+        and warnings only (the executor must stay open while the result is used). Ignored in
+        process.
 
     Returns
     -------
@@ -188,10 +198,35 @@ def leave_one_out(
     _check_context(context)
     executor = executor or InProcessExecutor()
     chunks = chunked(context.targets, chunk_basins)
+    if keep and executor.name == "dask":
+        return _kept_leave_one_out(context, executor, chunks, progress, reader)
     task, shared = shipped(run_folds, context, reader)
     results = executor.map(task, chunks, shared, progress=progress)
     folds = [fold for chunk in results for fold in chunk]
-    return _assemble(folds, context)
+    return _assemble(folds, context, _grids(folds, context))
+
+
+def _kept_leave_one_out(context, executor, chunks, progress, reader) -> LeaveOneOut:
+    """:func:`leave_one_out` whose daily flows stay on the workers (``keep``)."""
+    task, shared = shipped(run_kept_folds, context, reader)
+    results, futures = executor.map_keeping(task, chunks, shared, progress=progress)
+    folds = [fold for chunk in results for fold in chunk]
+    blocks = KeptBlocks.of(executor, futures, chunks)
+    dates = context.flow_mm.index[context.evaluation]
+    names = ["observed", *method_order(context.options.methods)]
+    observed, *flows = (KeptTable(blocks, name, dates) for name in names)
+    return _assemble(folds, context, (observed, dict(zip(names[1:], flows, strict=True))))
+
+
+def run_kept_folds(targets: Sequence[str], context: FoldContext) -> tuple[list[dict], dict]:
+    """:func:`run_folds` split into the folds without their daily flows (for the client) and
+    the flows as one block (left on the worker: :class:`regional.kept.KeptBlocks`)."""
+    folds = run_folds(targets, context)
+    n_days = int(np.count_nonzero(context.evaluation))
+    block = {"basins": list(targets), "observed": _observed_rows(folds, n_days)}
+    for method in method_order(context.options.methods):
+        block[method] = _flow_rows(folds, method, n_days)
+    return folds, block
 
 
 def _check_context(context: FoldContext) -> None:
@@ -376,7 +411,9 @@ def _outcome(obs: np.ndarray, flow: np.ndarray, params: Mapping[str, float]) -> 
     }
 
 
-def _assemble(folds: list[dict], context: FoldContext) -> LeaveOneOut:
+def _assemble(folds: list[dict], context: FoldContext, grids: tuple) -> LeaveOneOut:
+    """The folds' scores and parameters beside their flows ``grids`` (observed, method ->
+    simulated)."""
     methods = method_order(context.options.methods)
     rows, params = [], []
     for fold in folds:
@@ -386,18 +423,8 @@ def _assemble(folds: list[dict], context: FoldContext) -> LeaveOneOut:
             params.append({"basin_id": fold["basin_id"], "method": method, **outcome["params"]})
     scores = pd.DataFrame(rows, columns=["basin_id", "method", *SCORE_COLUMNS])
     scores["n_days"] = scores["n_days"].astype(int)
-    dates = context.flow_mm.index[context.evaluation]
     ids = [fold["basin_id"] for fold in folds]
-    observed = _observed(folds, dates, ids)
-    simulated = {
-        method: pd.DataFrame(
-            _flow_columns(folds, method, len(dates)),
-            index=dates,
-            columns=pd.Index(ids, name="basin_id"),
-            copy=False,
-        )
-        for method in methods
-    }
+    observed, simulated = grids
     counts = Counter(message for fold in folds for message in fold["warnings"])
     notes = tuple(
         f"{message} (in {count} of {len(folds)} folds)"
@@ -417,22 +444,36 @@ def _assemble(folds: list[dict], context: FoldContext) -> LeaveOneOut:
     )
 
 
-def _observed(folds: list[dict], dates: pd.DatetimeIndex, ids: list[str]) -> pd.DataFrame:
-    """The folds' observed flows as (days, folds), each fold's copy dropped once placed."""
+def _grids(folds: list[dict], context: FoldContext) -> tuple[pd.DataFrame, dict]:
+    """The folds' observed flow and each method's flow as DataFrames (evaluation days x
+    basins), each fold's copy dropped once placed (the folds' flows are never held twice)."""
+    dates = context.flow_mm.index[context.evaluation]
+    columns = pd.Index([fold["basin_id"] for fold in folds], name="basin_id")
+
+    def frame(values: np.ndarray) -> pd.DataFrame:
+        return pd.DataFrame(values.T, index=dates, columns=columns, copy=False)
+
+    observed = frame(_observed_rows(folds, len(dates)))
+    methods = method_order(context.options.methods)
+    return observed, {m: frame(_flow_rows(folds, m, len(dates))) for m in methods}
+
+
+def _observed_rows(folds: list[dict], n_days: int) -> np.ndarray:
+    """The folds' observed flows as (folds, days), each fold's copy dropped once placed."""
     dtype = folds[0]["observed"].dtype if folds else np.float32
-    values = np.empty((len(folds), len(dates)), dtype=dtype)
-    for column, fold in enumerate(folds):
-        values[column] = fold.pop("observed")
-    return pd.DataFrame(values.T, index=dates, columns=pd.Index(ids, name="basin_id"), copy=False)
+    values = np.empty((len(folds), n_days), dtype=dtype)
+    for row, fold in enumerate(folds):
+        values[row] = fold.pop("observed")
+    return values
 
 
-def _flow_columns(folds: list[dict], method: str, n_days: int) -> np.ndarray:
-    """One method's flows of every fold as (days, folds) of :data:`LOO_FLOW_DTYPE`, each fold's
-    copy dropped once placed (the folds' flows are never held twice)."""
+def _flow_rows(folds: list[dict], method: str, n_days: int) -> np.ndarray:
+    """One method's flows of every fold as (folds, days) of :data:`LOO_FLOW_DTYPE`, each
+    fold's copy dropped once placed."""
     values = np.empty((len(folds), n_days), dtype=LOO_FLOW_DTYPE)
-    for column, fold in enumerate(folds):
-        values[column] = fold["methods"][method].pop("flow")
-    return values.T
+    for row, fold in enumerate(folds):
+        values[row] = fold["methods"][method].pop("flow")
+    return values
 
 
 def summarise(scores: pd.DataFrame) -> pd.DataFrame:

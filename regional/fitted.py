@@ -13,6 +13,7 @@ from __future__ import annotations
 import warnings
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
+from functools import partial
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -27,6 +28,7 @@ from regional.coverage import start_loo_coverage
 from regional.crossval import FoldContext
 from regional.errors import InputError, InputWarning
 from regional.heldout import start_held_out_check, with_held_out
+from regional.kept import near
 from regional.models import parameter_transforms
 from regional.transfer import RegressionTransfer, fit_transfer
 from regional.transfer.step import TransferOptions
@@ -249,7 +251,9 @@ def fit_region(
     )
     measured = start_loo_coverage(runs, level=level, executor=executor)
     on_repeat = None if meanwhile is None else meanwhile()
-    error_model = conformal_bounds(loo.observed, loo.simulated[method], level=level)
+    # next to the flows where they stayed on the workers (regional.kept), else here
+    flows = (loo.observed, loo.simulated[method])
+    error_model = near(partial(conformal_bounds, level=level), flows, priority=1)
     held_out, error_model, notes, draws = finish_check(error_model, on_repeat=on_repeat)
     coverage = with_held_out(measured(), held_out, model=model, method=method)
     dates = context.precip_mm.index

@@ -16,6 +16,7 @@ import pandas as pd
 from regional.bounds import ConformalErrorModel
 from regional.config import Settings
 from regional.fitted import FittedRegion, fit_settings, plain
+from regional.kept import whole
 from regional.transfer.step import TransferOptions
 
 FORMAT = 1
@@ -76,8 +77,8 @@ def fitted_files(fitted: FittedRegion) -> tuple[bytes, dict[str, pd.DataFrame]]:
     }
     tables = {
         TRAINING: fitted.training,
-        LOO_OBSERVED: fitted.loo_observed,
-        LOO_SIMULATED: fitted.loo_simulated,
+        LOO_OBSERVED: whole(fitted.loo_observed),  # fetched here where kept on the workers
+        LOO_SIMULATED: whole(fitted.loo_simulated),
         LOO_NSE: fitted.loo_nse.to_frame("nse"),
         COVERAGE: fitted.coverage,
     }

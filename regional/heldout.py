@@ -31,6 +31,7 @@ from regional.coverage import (
 )
 from regional.crossval import FoldContext, prepared_pool
 from regional.errors import InputError
+from regional.kept import is_kept, near, submit_near
 from regional.series import StoreChunk, StoreReader, shipped
 from regional.transfer import Donation
 
@@ -563,15 +564,12 @@ def start_held_out_check(
             f"no held-out check of the bounds: {n_gauged} gauged basins, fewer than "
             f"{MIN_HELD_OUT_BASINS}",
         )
+    flows = (run.loo.observed, run.loo.simulated[method])
+    if executor is None and is_kept(flows[0]):
+        executor = flows[0].blocks.executor  # the repeats run where the flows stayed
     if n_classes is None:
-        n_classes = default_n_classes(run.loo.observed.to_numpy())
-    job = _SummaryJob(
-        observed=run.loo.observed,
-        loo_flow=run.loo.simulated[method],
-        precip_mm=run.context.precip_mm,
-        level=level,
-        n_classes=int(n_classes),
-    )
+        n_classes = near(_default_n_classes, flows[:1])
+    job = _summary_job(flows, run.context.precip_mm, level=level, n_classes=int(n_classes))
     started = _summaries(
         run,
         method,
@@ -582,7 +580,21 @@ def start_held_out_check(
         chunk_basins=held_out_chunk(n_gauged, n_workers=_workers(executor)),
         reader=reader,
     )
-    return partial(_finished_check, run, method, started, level=level, n_classes=job.n_classes)
+    return partial(_finished_check, run, method, started, level=level, n_classes=int(n_classes))
+
+
+def _default_n_classes(observed: pd.DataFrame) -> int:
+    """:func:`regional.bounds.default_n_classes` of an observed-flow frame."""
+    return default_n_classes(observed.to_numpy())
+
+
+def _summary_job(flows: tuple, precip_mm, *, level: float, n_classes: int):
+    """The :class:`_SummaryJob` of ``flows`` (observed, the method's leave-one-out flow): here,
+    or, where the flows stayed on the workers (:mod:`regional.kept`), built on a worker next to
+    them (its future: the summarising tasks get it from there)."""
+    if not is_kept(flows[0]):
+        return _SummaryJob(*flows, precip_mm, level, n_classes)
+    return submit_near(_SummaryJob, flows, precip_mm, level, n_classes, priority=1)
 
 
 def _unchecked(note: str, error_model: ConformalErrorModel, *, on_repeat=None) -> CheckResult:
@@ -623,9 +635,8 @@ def _finished_check(
     for c in range(k):
         table.loc[f"class {c + 1}", "level_used"] = levels[c]
     if widen.any():
-        error_model = conformal_bounds(
-            observed, simulated, level=level, n_classes=k, class_levels=levels
-        )
+        widened = partial(conformal_bounds, level=level, n_classes=k, class_levels=levels)
+        error_model = near(widened, (observed, simulated))
         after = held_out_coverage(observed, draws, level=level, n_classes=k, class_levels=levels)
         table["held_out_coverage_widened"] = after["coverage"]
     else:

@@ -115,7 +115,9 @@ def run(
     executor : optional
         An executor opened by the caller (:func:`open_executor`), used instead of
         ``scheduler`` and ``workers`` and left open (e.g. to draw the figures on the same
-        cluster with :func:`regional.outputs.write_outputs`); the caller closes it.
+        cluster with :func:`regional.outputs.write_outputs`); the caller closes it. A Dask
+        executor given so keeps the leave-one-out flows on its workers
+        (:mod:`regional.kept`): keep it open while the result is used.
 
     Returns
     -------
@@ -132,7 +134,7 @@ def run(
             region = load_region(settings, series_in_store=executor.name == "dask")
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", InputWarning)
-            stages = _chain(settings, region, executor, progress, timings)
+            stages = _chain(settings, region, executor, progress, timings, keep=not own)
     finally:
         if own:
             executor.close()
@@ -192,10 +194,12 @@ def _shown(basins: tuple[str, ...]) -> str:
     return ", ".join(basins[:10]) + more
 
 
-def _chain(settings, region, executor, progress, timings) -> dict:
-    """Every stage after loading the region: the fields of the :class:`RunResult`."""
+def _chain(settings, region, executor, progress, timings, *, keep: bool) -> dict:
+    """Every stage after loading the region: the fields of the :class:`RunResult`. ``keep``:
+    the executor outlives the run, so a cluster's leave-one-out flows may stay on its
+    workers (:mod:`regional.kept`)."""
     attributes = transfer_attributes(region, settings)
-    runs = _model_runs(settings, region, attributes, executor, progress, timings)
+    runs = _model_runs(settings, region, attributes, executor, progress, timings, keep=keep)
     scores = pd.concat([r.loo.scores.assign(model=m) for m, r in runs.items()], ignore_index=True)[
         ["basin_id", "model", *runs[settings.model.names[0]].loo.scores.columns[1:]]
     ]
@@ -254,7 +258,7 @@ def _without_draws(stage):
     return stage if stage is None else replace(stage, held_out_draws=())
 
 
-def _model_runs(settings, region, attributes, executor, progress, timings) -> dict:
+def _model_runs(settings, region, attributes, executor, progress, timings, *, keep) -> dict:
     """Calibration and leave-one-out of every storage model of ``[model] name``."""
     window = scoring_window(
         region.dates,
@@ -283,7 +287,12 @@ def _model_runs(settings, region, attributes, executor, progress, timings) -> di
             context = with_donor_counts(context, counts.chosen)
         stage = _stage(progress, f"leave-one-out {model}")
         loo = leave_one_out(
-            context, executor=executor, progress=stage, chunk_basins=chunk, reader=reader
+            context,
+            executor=executor,
+            progress=stage,
+            chunk_basins=chunk,
+            reader=reader,
+            keep=keep,
         )
         regression = _regression_on_all(context, attributes)
         timings[f"leave_one_out_{model}"] = time.perf_counter() - clock

@@ -15,6 +15,7 @@ reading and one byte per basin-day for the gap check (docs/scale.md).
 
 from __future__ import annotations
 
+from abc import ABC, abstractmethod
 from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass, replace
 from functools import partial
@@ -497,8 +498,49 @@ def _check_groups(
         )
 
 
+class LazyTable(ABC):
+    """The DataFrame-like answers of a daily table (days x basins) whose values are read only
+    when asked for: :attr:`shape`, ``len``, ``loc`` / ``iloc`` (:class:`DaysView`),
+    ``table[basins]`` and ``reindex(columns=basins)``. A subclass gives ``index`` (days),
+    ``columns`` (basins), :meth:`over` and :meth:`read`."""
+
+    index: pd.DatetimeIndex
+    columns: pd.Index
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return len(self.index), len(self.columns)
+
+    def __len__(self) -> int:
+        return len(self.index)
+
+    @property
+    def loc(self) -> DaysView:
+        return DaysView(self, by_label=True)
+
+    @property
+    def iloc(self) -> DaysView:
+        return DaysView(self, by_label=False)
+
+    def __getitem__(self, basins):
+        if isinstance(basins, str):
+            return self.read([basins])[basins]
+        return self.read(list(basins))
+
+    def reindex(self, columns) -> pd.DataFrame:
+        return self.read(list(columns))
+
+    @abstractmethod
+    def over(self, positions: np.ndarray) -> LazyTable:
+        """The table over some of its days (positions in ``index``); reads nothing."""
+
+    @abstractmethod
+    def read(self, basins: Sequence[str]) -> pd.DataFrame:
+        """The values of ``basins`` (DataFrame days x basins)."""
+
+
 @dataclass(frozen=True, eq=False)
-class StoreTable:
+class StoreTable(LazyTable):
     """One daily table of a region (days x basins) whose values stay in the series store.
 
     It answers like the region's DataFrame where the client of a cluster run uses it:
@@ -523,29 +565,6 @@ class StoreTable:
     def index(self) -> pd.DatetimeIndex:
         return self.reader.dates
 
-    @property
-    def shape(self) -> tuple[int, int]:
-        return len(self.index), len(self.columns)
-
-    def __len__(self) -> int:
-        return len(self.index)
-
-    @property
-    def loc(self) -> _Days:
-        return _Days(self, by_label=True)
-
-    @property
-    def iloc(self) -> _Days:
-        return _Days(self, by_label=False)
-
-    def __getitem__(self, basins):
-        if isinstance(basins, str):
-            return self.read([basins])[basins]
-        return self.read(list(basins))
-
-    def reindex(self, columns) -> pd.DataFrame:
-        return self.read(list(columns))
-
     def over(self, positions: np.ndarray) -> StoreTable:
         """The table over some of its days (positions in :attr:`index`); reads nothing."""
         positions = np.asarray(positions, dtype=int)
@@ -568,8 +587,10 @@ class StoreTable:
         return self.reader.frames({name: grid}, basins)[name]
 
 
-class _Days:
-    """``StoreTable.loc`` / ``.iloc``: days select a table, days and basins read values."""
+class DaysView:
+    """``.loc`` / ``.iloc`` of a table whose values are read when asked for (a
+    :class:`StoreTable`, a :class:`regional.kept.KeptTable`): days select a table (its
+    ``over``), days and basins read values (its ``read``; one basin gives a Series)."""
 
     def __init__(self, table: StoreTable, *, by_label: bool) -> None:
         self.table, self.by_label = table, by_label
@@ -581,6 +602,8 @@ class _Days:
         table = self.table.over(np.atleast_1d(np.asarray(picked)))
         if basins is None:
             return table
+        if isinstance(basins, str):
+            return table.read([basins])[basins]
         if isinstance(basins, slice) and basins == slice(None):
             basins = table.columns
         return table.read(list(basins))

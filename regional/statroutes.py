@@ -39,6 +39,7 @@ from __future__ import annotations
 import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from functools import partial
 from typing import TYPE_CHECKING
 
 import numba
@@ -51,6 +52,7 @@ from regional.config import STATISTICS_ROUTES
 from regional.coverage import HeldOutSummary
 from regional.crossval import FoldContext
 from regional.errors import InputError
+from regional.kept import start_near
 from regional.transfer import great_circle_km, inverse_distance_weights, make_transfer
 from regional.transfer.folds import k_nearest, row_blocks
 
@@ -283,8 +285,10 @@ class _GaugedData:
         gauged = [str(b) for b in loo.observed.columns]
         dates = loo.observed.index
         precip = context.precip_mm  # each block of basins reads its own columns and days
-        observed = flowstats.statistics_frame(loo.observed, precip_mm_day=precip)
-        model = flowstats.statistics_frame(loo.simulated[method], precip_mm_day=precip)
+        # next to the flows where they stayed on the workers (regional.kept), else here
+        frame = partial(flowstats.statistics_frame, precip_mm_day=precip)
+        waits = [start_near(frame, (flows,)) for flows in (loo.observed, loo.simulated[method])]
+        observed, model = (wait() for wait in waits)
         table = context.attributes.loc[gauged]
         columns = _varying([a for a in attributes if a in table.columns], table)
         donors = {

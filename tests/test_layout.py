@@ -27,6 +27,7 @@ ORDER = (
     "region",
     "sites",
     "compute",
+    "kept",
     "calibrate",
     "crossval",
     "result",

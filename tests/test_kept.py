@@ -1,0 +1,78 @@
+"""Leave-one-out flows left on a cluster's workers (regional.kept): the client holds no grid."""
+
+from __future__ import annotations
+
+import pickle
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from regional.errors import InputWarning
+
+
+def _run(folder, executor=None):
+    from regional.pipeline import run
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", InputWarning)
+        return run(folder, executor=executor)
+
+
+def test_cluster_keeps_the_leave_one_out_flows_on_the_workers(region_folder):
+    # After leave-one-out on a 2-worker cluster the client holds a table per flow, not a
+    # whole-region grid; a fetch asks only the blocks of the asked basins and returns those
+    # basins only, with the in-process run's values; the error model, the coverage and the
+    # gauged flow statistics (built next to the flows, on a worker) equal the in-process ones.
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    from regional.compute import DaskExecutor
+    from regional.kept import KeptTable, whole
+
+    here = _run(region_folder)
+    executor = DaskExecutor(workers=2)
+    try:
+        there = _run(region_folder, executor=executor)
+        loo, expected = there.runs[there.chosen_model].loo, here.runs[here.chosen_model].loo
+        tables = [loo.observed, *loo.simulated.values()]
+        assert all(isinstance(table, KeptTable) for table in tables)
+        held = [v for table in tables for v in vars(table).values()]
+        held += list(vars(loo.observed.blocks).values())
+        assert not any(isinstance(v, np.ndarray) and v.ndim == 2 for v in held)
+        assert loo.observed.columns.equals(expected.observed.columns)
+        assert loo.observed.index.equals(expected.observed.index)
+
+        asked = [str(b) for b in expected.observed.columns[[0, -1]]]
+        submitted = []
+        submit = executor.submit
+        executor.submit = lambda *a, **k: submitted.append(a) or submit(*a, **k)
+        method = there.chosen_method
+        part = loo.simulated[method][asked]
+        executor.submit = submit
+        blocks = loo.observed.blocks
+        assert len(submitted) == len({blocks.block_of[blocks.basins.get_loc(b)] for b in asked})
+        assert list(part.columns) == asked
+        pd.testing.assert_frame_equal(part, expected.simulated[method][asked])
+        days = expected.observed.index[5:40]
+        pd.testing.assert_series_equal(
+            loo.observed.loc[days, asked[0]], expected.observed.loc[days, asked[0]]
+        )
+        pd.testing.assert_frame_equal(whole(loo.observed), expected.observed)
+
+        assert there.fitted.error_model.table.equals(here.fitted.error_model.table)
+        pd.testing.assert_frame_equal(there.fitted.coverage, here.fitted.coverage)
+        pd.testing.assert_frame_equal(there.statistics.summary, here.statistics.summary)
+        with pytest.raises(TypeError, match="cannot be shipped"):
+            pickle.dumps(loo.observed)
+    finally:
+        executor.close()
+    with pytest.raises(RuntimeError, match="client is closed"):
+        loo.observed[asked]
+
+
+def test_in_process_runs_keep_plain_frames(region_folder):
+    # In process (and on a cluster the run opens and closes itself) nothing is kept elsewhere.
+    result = _run(region_folder)
+    loo = result.runs[result.chosen_model].loo
+    assert isinstance(loo.observed, pd.DataFrame)
+    assert all(isinstance(flows, pd.DataFrame) for flows in loo.simulated.values())
