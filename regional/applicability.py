@@ -13,7 +13,7 @@ India 2(1), 49-55.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -321,7 +321,9 @@ def local_bounds(
     The error model is rebuilt from the leave-one-out residuals of the target's nearest gauged
     basins only (same classes and class levels as the regional one) and the target's bounds
     become the wider of the two on every day, so a target in a climate where transfer failed
-    carries the errors transfer made there.
+    carries the errors transfer made there. The two steps, :func:`local_error_models` and
+    :func:`widened_bounds`, may run apart (on a cluster the second runs in the prediction's
+    tasks).
 
     Parameters
     ----------
@@ -331,7 +333,7 @@ def local_bounds(
         From :func:`transfer_skill` (targets where ``skill_applicable`` is False are widened).
     observed, simulated : DataFrame
         Evaluation days x gauged basins: observed flow and the chosen method's leave-one-out
-        flow, mm/day.
+        flow, mm/day (only the nearest gauged basins' columns are read).
     error_model : ConformalErrorModel
         The regional error model (its classes and class levels are kept).
 
@@ -340,20 +342,50 @@ def local_bounds(
     (low, high) : tuple of DataFrame
         The bounds, mm/day, never narrower than those given.
     """
-    failing = skill.index[~skill["skill_applicable"]]
-    if not len(failing):
-        return low, high
-    low, high = low.copy(), high.copy()
-    for target in failing:
+    local = local_error_models(
+        skill, observed=observed, simulated=simulated, error_model=error_model
+    )
+    return widened_bounds(flow_mm, low, high, local)
+
+
+def local_error_models(
+    skill: pd.DataFrame,
+    *,
+    observed: pd.DataFrame,
+    simulated: pd.DataFrame,
+    error_model: ConformalErrorModel,
+) -> dict[str, ConformalErrorModel]:
+    """The error model of each target where transfer is known to fail (``skill_applicable``
+    False), from its nearest gauged basins' leave-one-out residuals only (see
+    :func:`local_bounds`); arguments as there."""
+    local = {}
+    for target in skill.index[~skill["skill_applicable"]]:
         nearest = skill.loc[target, "nearest_gauged"].split(", ")
-        local = conformal_bounds(
+        local[str(target)] = conformal_bounds(
             observed[nearest],
             simulated[nearest],
             level=error_model.level,
             n_classes=error_model.n_classes,
             class_levels=error_model.levels,
         )
-        local_low, local_high = local.bounds(flow_mm[[target]])
+    return local
+
+
+def widened_bounds(
+    flow_mm: pd.DataFrame,
+    low: pd.DataFrame,
+    high: pd.DataFrame,
+    local: Mapping[str, ConformalErrorModel],
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The bounds of the targets of ``flow_mm`` with a ``local`` error model
+    (:func:`local_error_models`) made the wider of the regional and the local ones on every
+    day (mm/day); the others as given."""
+    targets = [t for t in flow_mm.columns if t in local]
+    if not targets:
+        return low, high
+    low, high = low.copy(), high.copy()
+    for target in targets:
+        local_low, local_high = local[target].bounds(flow_mm[[target]])
         low[target] = np.minimum(low[target], local_low[target])
         high[target] = np.maximum(high[target], local_high[target])
     return low, high

@@ -1,9 +1,10 @@
 """Daily results left where they were computed: on the workers of a cluster, one block per task.
 
-On a Dask cluster (:mod:`regional.compute`) the leave-one-out folds run as tasks over chunks of
-basins. Their daily flows (every method's, and the observed flow over the evaluation days) are
-the largest thing the chain produces per gauged basin: on a cluster they stay on the workers,
-one block per task, and the client holds a :class:`KeptTable` per flow instead of a grid. A
+On a Dask cluster (:mod:`regional.compute`) the leave-one-out folds and the prediction run as
+tasks over chunks of basins. Their daily flows (every method's leave-one-out flow and the
+observed flow over the evaluation days; the prediction's flow and bounds) are the largest
+things the chain produces per basin: on a cluster they stay on the workers, one block per
+task, and the client holds a :class:`KeptTable` per flow instead of a grid. A
 :class:`KeptTable` answers like the DataFrame it stands for where the client uses it (as a
 :class:`regional.series.StoreTable` does for the series): :attr:`~KeptTable.index` and
 :attr:`~KeptTable.columns` fetch nothing, nor does ``loc``/``iloc`` with days only;
@@ -138,6 +139,10 @@ class KeptTable(LazyTable):
     def read(self, basins: Sequence[str]) -> pd.DataFrame:
         """The values of ``basins`` (DataFrame days x basins) fetched from the workers."""
         basins = [str(b) for b in basins]
+        if not basins:
+            return pd.DataFrame(
+                index=self.index, columns=pd.Index([], name="basin_id"), dtype=float
+            )
         values = self.blocks.fetch(self.name, basins, self.days)
         columns = pd.Index(basins, name="basin_id")
         return pd.DataFrame(values.T, index=self.index, columns=columns, copy=False)

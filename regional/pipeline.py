@@ -230,6 +230,7 @@ def _chain(settings, region, executor, progress, timings, *, keep: bool) -> dict
                 chunk_basins=_chunk_basins(
                     settings, PREDICTION_CHUNK, n_basins=len(region.ungauged), executor=executor
                 ),
+                keep=keep,
             )
     with _timed(timings, "statistics"):
         statistics = _statistics(runs[model], method, region, attributes, prediction, early)

@@ -34,14 +34,16 @@ from regional.applicability import (
     FAILED_NSE,
     applicability,
     join_skill,
-    local_bounds,
+    local_error_models,
     transfer_skill,
+    widened_bounds,
 )
 from regional.bounds import ConformalErrorModel
 from regional.compute import InProcessExecutor, chunk_size, chunked
 from regional.crossval import FoldContext
 from regional.errors import InputError
 from regional.fitted import FittedRegion, fit_result
+from regional.kept import KeptBlocks, KeptTable
 from regional.predicted import DailyFlows, Prediction
 from regional.series import StoreReader, basins_of, shipped
 from regional.transfer import Donation
@@ -86,10 +88,11 @@ def predict_region(
     executor=None,
     reader: StoreReader | None = None,
     chunk_basins: int | None = None,
+    keep: bool = False,
 ) -> Prediction:
     """Estimates at the region's ungauged basins from a fitted region (no calibration).
 
-    ``executor``, ``reader`` and ``chunk_basins`` are as in :func:`predict_sites`.
+    ``executor``, ``reader``, ``chunk_basins`` and ``keep`` are as in :func:`predict_sites`.
 
     Raises
     ------
@@ -111,6 +114,7 @@ def predict_region(
         executor=executor,
         reader=reader,
         chunk_basins=chunk_basins,
+        keep=keep,
     )
 
 
@@ -124,6 +128,7 @@ def predict_sites(
     executor=None,
     reader: StoreReader | None = None,
     chunk_basins: int | None = None,
+    keep: bool = False,
 ) -> Prediction:
     """Estimates at target sites from a fitted region alone (no calibration, no refit of it).
 
@@ -150,6 +155,11 @@ def predict_sites(
     chunk_basins : int, optional
         Targets per chunk; default :data:`PREDICTION_CHUNK`, fewer on a cluster so that every
         worker gets several tasks.
+    keep : bool, default False
+        With a Dask executor, leave the daily flows and bounds on the workers, one block per
+        task (:attr:`Prediction.daily` then holds :class:`regional.kept.KeptTable` objects,
+        fetched a few basins at a time where read): the executor must stay open while the
+        prediction is used. Ignored in process.
 
     Returns
     -------
@@ -166,27 +176,10 @@ def predict_sites(
         )
     error_model = fitted.error_model
     area = attributes["area_km2"].astype(float)
-    job = _SitesJob.of(context, donations[fitted.method], error_model, area, fitted)
+    usable, local = _usable(fitted, context, attributes)
+    job = _SitesJob.of(context, donations[fitted.method], error_model, area, fitted, local)
     flow_mm, low, high, statistics, model_statistics = _sites(
-        job, targets, executor=executor, reader=reader, chunk_basins=chunk_basins
-    )
-    usable = applicability(context.attributes, attributes, fitted.attributes)
-    skill = transfer_skill(
-        context.attributes,
-        attributes,
-        fitted.loo_nse,
-        columns=fitted.attributes,
-        n_nearest=context.options.n_donors,
-    )
-    usable = join_skill(usable, skill)
-    low, high = local_bounds(
-        flow_mm,
-        low,
-        high,
-        skill=skill,
-        observed=fitted.loo_observed,
-        simulated=fitted.loo_simulated,
-        error_model=error_model,
+        job, targets, executor=executor, reader=reader, chunk_basins=chunk_basins, keep=keep
     )
     coverage = fitted.coverage
     table = _table(fitted, attributes, parameters, statistics, usable)
@@ -205,6 +198,27 @@ def predict_sites(
     )
 
 
+def _usable(fitted: FittedRegion, context: FoldContext, attributes: pd.DataFrame):
+    """The targets' applicability with the transfer skill near them, and the local error
+    model of each target where transfer is known to fail (:func:`local_error_models`: its
+    bounds are widened by the prediction's tasks)."""
+    usable = applicability(context.attributes, attributes, fitted.attributes)
+    skill = transfer_skill(
+        context.attributes,
+        attributes,
+        fitted.loo_nse,
+        columns=fitted.attributes,
+        n_nearest=context.options.n_donors,
+    )
+    local = local_error_models(
+        skill,
+        observed=fitted.loo_observed,
+        simulated=fitted.loo_simulated,
+        error_model=fitted.error_model,
+    )
+    return join_skill(usable, skill), local
+
+
 def _of(frame: pd.DataFrame, targets: list[str]) -> pd.DataFrame:
     """The targets' columns of a days x sites table, not copied when it holds just those."""
     return frame if list(frame.columns) == targets else frame[targets]
@@ -214,8 +228,9 @@ def _of(frame: pd.DataFrame, targets: list[str]) -> pd.DataFrame:
 class _SitesJob:
     """What a prediction task needs: the fold context of the fitted window (its daily tables
     travel in the four table fields: whole in process, or the task's targets read from the
-    store), the chosen donation, the error model, the targets' areas and the evaluation days
-    of the model route's statistics."""
+    store), the chosen donation, the error model, the targets' areas, the evaluation days
+    of the model route's statistics and the local error models of the targets where
+    transfer is known to fail."""
 
     context: FoldContext
     donation: Donation
@@ -226,9 +241,10 @@ class _SitesJob:
     pet_mm: pd.DataFrame | None
     flow_mm: pd.DataFrame | None
     temp_c: pd.DataFrame | None
+    local: Mapping[str, ConformalErrorModel]
 
     @classmethod
-    def of(cls, context, donation, error_model, area_km2, fitted: FittedRegion) -> _SitesJob:
+    def of(cls, context, donation, error_model, area_km2, fitted, local) -> _SitesJob:
         bare = replace(context, precip_mm=None, pet_mm=None, temp_c=None)
         return cls(
             bare,
@@ -240,6 +256,7 @@ class _SitesJob:
             context.pet_mm,
             None,
             context.temp_c,
+            local,
         )
 
 
@@ -260,7 +277,7 @@ def _sites_chunk(targets, job: _SitesJob) -> _SitesPart:
     targets = list(targets)
     context = replace(job.context, precip_mm=job.precip_mm, pet_mm=job.pet_mm, temp_c=job.temp_c)
     flow = _chosen_flow(context, job.donation, targets)
-    low, high = job.error_model.bounds(flow)
+    low, high = widened_bounds(flow, *job.error_model.bounds(flow), job.local)
     statistics = flowstats.headline_statistics(flow, area_km2=job.area_km2[targets])
     part = flow.loc[flow.index.isin(job.evaluation)]
     model = pd.DataFrame(index=pd.Index(targets, name="basin_id"))  # no evaluation day
@@ -270,13 +287,17 @@ def _sites_chunk(targets, job: _SitesJob) -> _SitesPart:
     return _SitesPart(flow, low, high, statistics, model)
 
 
-def _sites(job: _SitesJob, targets, *, executor, reader, chunk_basins: int | None):
+def _sites(job: _SitesJob, targets, *, executor, reader, chunk_basins: int | None, keep: bool):
     """Every target's flow, bounds and statistics, a chunk at a time (a task each on a
-    cluster): the grids and tables joined in target order."""
+    cluster): the grids and tables joined in target order (with ``keep`` on a cluster, the
+    grids left on the workers: :func:`_kept_sites`)."""
     executor = executor or InProcessExecutor()
     size = chunk_basins or chunk_size(len(targets), PREDICTION_CHUNK, n_workers=executor.n_workers)
+    chunks = _no_lone_basin(chunked(targets, max(2, size)))
+    if keep and executor.name == "dask":
+        return _kept_sites(job, chunks, executor, reader)
     task, shared = shipped(_sites_chunk, job, reader)
-    parts = executor.map(task, _no_lone_basin(chunked(targets, max(2, size))), shared)
+    parts = executor.map(task, chunks, shared)
     statistics = pd.concat([p.statistics for p in parts])
     model = pd.concat([p.model_statistics for p in parts]).sort_index()
     names = ("flow_mm", "low_mm", "high_mm")
@@ -284,6 +305,29 @@ def _sites(job: _SitesJob, targets, *, executor, reader, chunk_basins: int | Non
     del parts  # each grid's chunks are dropped once joined: one grid is held twice, not three
     grids = [_joined(pieces.pop(name)) for name in names]
     return (*grids, statistics, model)
+
+
+_DAILY = ("flow_mm", "low_mm", "high_mm")
+
+
+def _kept_sites(job: _SitesJob, chunks, executor, reader):
+    """:func:`_sites` whose daily grids stay on the workers, one block per task; the client
+    gathers the statistics and holds a :class:`regional.kept.KeptTable` per grid."""
+    task, shared = shipped(_kept_sites_chunk, job, reader)
+    tables, futures = executor.map_keeping(task, chunks, shared)
+    blocks = KeptBlocks.of(executor, futures, chunks)
+    dates = job.precip_mm.index[job.context.window.warmup_days :]
+    grids = [KeptTable(blocks, name, dates) for name in _DAILY]
+    statistics = pd.concat([t[0] for t in tables])
+    return (*grids, statistics, pd.concat([t[1] for t in tables]).sort_index())
+
+
+def _kept_sites_chunk(targets, job: _SitesJob) -> tuple[tuple, dict]:
+    """:func:`_sites_chunk` split into its statistics (for the client) and its daily grids as
+    one block (basins x days, left on the worker: :class:`regional.kept.KeptBlocks`)."""
+    part = _sites_chunk(targets, job)
+    block = {name: getattr(part, name).to_numpy(dtype=float).T for name in _DAILY}
+    return (part.statistics, part.model_statistics), {"basins": list(targets), **block}
 
 
 def _no_lone_basin(chunks: list[list[str]]) -> list[list[str]]:

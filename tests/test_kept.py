@@ -20,11 +20,12 @@ def _run(folder, executor=None):
         return run(folder, executor=executor)
 
 
-def test_cluster_keeps_the_leave_one_out_flows_on_the_workers(region_folder):
+def test_cluster_keeps_the_daily_flows_on_the_workers(region_folder):
     # After leave-one-out on a 2-worker cluster the client holds a table per flow, not a
     # whole-region grid; a fetch asks only the blocks of the asked basins and returns those
     # basins only, with the in-process run's values; the error model, the coverage and the
     # gauged flow statistics (built next to the flows, on a worker) equal the in-process ones.
+    # The prediction's daily flows and bounds stay on the workers too.
     pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
     from regional.compute import DaskExecutor
     from regional.kept import KeptTable, whole
@@ -59,6 +60,10 @@ def test_cluster_keeps_the_leave_one_out_flows_on_the_workers(region_folder):
         )
         pd.testing.assert_frame_equal(whole(loo.observed), expected.observed)
 
+        daily = there.prediction.daily
+        assert all(isinstance(getattr(daily, n), KeptTable) for n in ("flow_mm", "low_mm"))
+        pd.testing.assert_frame_equal(there.prediction.flows, here.prediction.flows)
+        pd.testing.assert_frame_equal(there.prediction.table, here.prediction.table)
         assert there.fitted.error_model.table.equals(here.fitted.error_model.table)
         pd.testing.assert_frame_equal(there.fitted.coverage, here.fitted.coverage)
         pd.testing.assert_frame_equal(there.statistics.summary, here.statistics.summary)
@@ -76,3 +81,4 @@ def test_in_process_runs_keep_plain_frames(region_folder):
     loo = result.runs[result.chosen_model].loo
     assert isinstance(loo.observed, pd.DataFrame)
     assert all(isinstance(flows, pd.DataFrame) for flows in loo.simulated.values())
+    assert isinstance(result.prediction.daily.flow_mm, pd.DataFrame)
