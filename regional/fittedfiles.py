@@ -9,6 +9,7 @@ reads the files. The format is described in ``docs/outputs.md``.
 from __future__ import annotations
 
 import json
+from functools import partial
 
 import numpy as np
 import pandas as pd
@@ -16,7 +17,7 @@ import pandas as pd
 from regional.bounds import ConformalErrorModel
 from regional.config import Settings
 from regional.fitted import FittedRegion, fit_settings, plain
-from regional.kept import whole
+from regional.kept import is_kept, whole
 from regional.transfer.step import TransferOptions
 
 FORMAT = 1
@@ -40,7 +41,8 @@ def fitted_files(fitted: FittedRegion) -> tuple[bytes, dict[str, pd.DataFrame]]:
     (meta, tables)
         UTF-8 JSON bytes (floats written exactly: Python's shortest round-trip repr, with
         ``Infinity`` for an unbounded class) and file name -> DataFrame (written as Parquet,
-        index kept).
+        index kept); the leave-one-out flows, where they stayed on a cluster's workers
+        (:mod:`regional.kept`), as a call that fetches the DataFrame when it is written.
     """
     model = fitted.error_model
     meta = {
@@ -77,8 +79,8 @@ def fitted_files(fitted: FittedRegion) -> tuple[bytes, dict[str, pd.DataFrame]]:
     }
     tables = {
         TRAINING: fitted.training,
-        LOO_OBSERVED: whole(fitted.loo_observed),  # fetched here where kept on the workers
-        LOO_SIMULATED: whole(fitted.loo_simulated),
+        LOO_OBSERVED: _when_written(fitted.loo_observed),
+        LOO_SIMULATED: _when_written(fitted.loo_simulated),
         LOO_NSE: fitted.loo_nse.to_frame("nse"),
         COVERAGE: fitted.coverage,
     }
@@ -88,6 +90,12 @@ def fitted_files(fitted: FittedRegion) -> tuple[bytes, dict[str, pd.DataFrame]]:
         tables[HELD_OUT] = held_out
     text = json.dumps(meta, indent=1, allow_nan=True)
     return (text + "\n").encode("utf-8"), tables
+
+
+def _when_written(table):
+    """A DataFrame as it is; a flow left on the workers (:mod:`regional.kept`) as a call that
+    fetches it when its file is written (:func:`regional.io.write_run_folder`)."""
+    return partial(whole, table) if is_kept(table) else table
 
 
 def from_files(meta: bytes, tables: dict[str, pd.DataFrame]) -> FittedRegion:

@@ -1005,7 +1005,8 @@ def write_run_folder(
         Written as ``run.json``, with ``tool`` and ``format`` added (the ownership marker).
     files : mapping, optional
         Further files by relative name (one sub-folder deep, e.g. ``fitted/region.json``):
-        bytes written as they are, DataFrames as Parquet (index kept).
+        bytes written as they are, DataFrames as Parquet (index kept); a call is made when
+        its file is written and gives the DataFrame (held only while it is written).
 
     Returns
     -------
@@ -1427,8 +1428,10 @@ def _update_files(target, tables, layers, crs, figures, report) -> None:
         _write_bytes_atomically(target / "report.html", report.encode("utf-8"))
 
 
-def _write_file(folder: Path, name: str, content: bytes | pd.DataFrame) -> None:
-    """Write one further file (bytes, or a DataFrame as Parquet) into a new folder."""
+def _write_file(folder: Path, name: str, content: bytes | pd.DataFrame | Callable) -> None:
+    """Write one further file (bytes, or a DataFrame as Parquet, or a call giving one) into a
+    new folder."""
+    content = content() if callable(content) else content
     path = folder / name
     path.parent.mkdir(mode=_dir_mode(), exist_ok=True)
     if isinstance(content, pd.DataFrame):
@@ -1443,6 +1446,7 @@ def _update_extra_files(target: Path, files: Mapping[str, bytes | pd.DataFrame])
     for name, content in files.items():
         path = target / name
         path.parent.mkdir(mode=_dir_mode(), exist_ok=True)
+        content = content() if callable(content) else content
         if isinstance(content, pd.DataFrame):
             _write_atomically(path, lambda stream, t=content: t.to_parquet(stream), text=False)
         else:

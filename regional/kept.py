@@ -62,6 +62,16 @@ class KeptBlocks:
     def fetch(self, name: str, basins: Sequence[str], days) -> np.ndarray:
         """Flow ``name`` of ``basins`` over ``days`` (positions), basins x days, fetched from
         the blocks that hold them (each cut on its worker)."""
+        wanted, rows, masks = self.where(basins)
+        futures = [
+            self.executor.submit(_cut, self.futures[b], name, r, days)
+            for b, r in zip(wanted, rows, strict=True)
+        ]
+        return _placed(self.executor.gather(futures), masks)
+
+    def where(self, basins: Sequence[str]) -> tuple[np.ndarray, list, list]:
+        """The blocks holding ``basins``, the rows of each block to take, and where those rows
+        go among ``basins`` (a mask each)."""
         self._check_open()
         places = self.basins.get_indexer(list(basins))
         if (places < 0).any():
@@ -69,17 +79,8 @@ class KeptBlocks:
             raise KeyError(f"basin(s) {missing[:5]} are not among the kept flows")
         blocks = self.block_of[places]
         wanted = np.unique(blocks)
-        futures = [
-            self.executor.submit(
-                _cut, self.futures[b], name, self.row_of[places[blocks == b]], days
-            )
-            for b in wanted
-        ]
-        parts = self.executor.gather(futures)
-        values = np.empty((len(places), parts[0].shape[1]), dtype=parts[0].dtype)
-        for b, part in zip(wanted, parts, strict=True):
-            values[blocks == b] = part
-        return values
+        masks = [blocks == b for b in wanted]
+        return wanted, [self.row_of[places[mask]] for mask in masks], masks
 
     def __reduce__(self):
         raise TypeError(
@@ -100,6 +101,20 @@ def _cut(block: Mapping[str, Any], name: str, rows: np.ndarray, days) -> np.ndar
     """Some rows and days of one flow of a block (on the worker that holds it)."""
     values = block[name][rows]
     return values if days is None else values[:, days]
+
+
+def _placed(parts: Sequence[np.ndarray], masks: Sequence[np.ndarray]) -> np.ndarray:
+    """The blocks' cut rows placed in the asked basins' order (basins x days)."""
+    values = np.empty((len(masks[0]), parts[0].shape[1]), dtype=parts[0].dtype)
+    for mask, part in zip(masks, parts, strict=True):
+        values[mask] = part
+    return values
+
+
+def _frame_of(blocks, rows, masks, name: str, days, index, columns) -> pd.DataFrame:
+    """Some basins of a kept flow as a DataFrame, built on a worker (:func:`part_of`)."""
+    parts = [_cut(b, name, r, days) for b, r in zip(blocks, rows, strict=True)]
+    return pd.DataFrame(_placed(parts, masks).T, index=index, columns=columns, copy=False)
 
 
 @dataclass(frozen=True, eq=False)
@@ -221,6 +236,22 @@ def _near(function: Callable, specs: Sequence, parts: Sequence[Mapping], args: t
     """A task next to the blocks: the kept frames rebuilt, then ``function`` on them."""
     frames = [spec.frame(parts) if isinstance(spec, _Spec) else spec for spec in specs]
     return function(*frames, *args)
+
+
+def part_of(table, basins: Sequence[str]):
+    """Some basins' columns of a table, where a task will use them: a DataFrame's columns
+    here, or for a :class:`KeptTable` the future of that DataFrame, built on a worker from
+    the blocks that hold those basins (a task given the future gets the DataFrame)."""
+    basins = [str(b) for b in basins]
+    if not is_kept(table):
+        return table[basins]
+    blocks = table.blocks
+    wanted, rows, masks = blocks.where(basins)
+    futures = [blocks.futures[b] for b in wanted]
+    columns = pd.Index(basins, name="basin_id")
+    return blocks.executor.submit(
+        _frame_of, futures, rows, masks, table.name, table.days, table.index, columns
+    )
 
 
 def whole(table) -> pd.DataFrame:

@@ -26,7 +26,7 @@ from regional.region import Region
 from regional.report import figure_jobs, render_report
 from regional.report import figures as plots
 from regional.report.html import report_pieces
-from regional.report.jobs import draw_jobs, job_series, without_series
+from regional.report.jobs import draw_jobs, series_parts, without_series
 from regional.result import RunResult, software_versions
 from regional.reuse import with_basin_columns, with_geometry, with_level
 from regional.screen import Screening
@@ -97,7 +97,8 @@ def start_figures(result: RunResult, executor=None) -> Callable[[], Iterator[tup
         return partial(_drawn_here, jobs, result)
     names = [job.name for job in jobs]
     jobs = sorted(jobs, key=lambda job: -job.panels)  # the costliest first (stable)
-    chunks = [[(job, job_series(job, result))] for job in jobs]
+    # each job's series as built on the workers where they stayed there (regional.kept)
+    chunks = [[(job, series_parts(job, result))] for job in jobs]
     wait = executor.start_map(draw_jobs, chunks, without_series(result))
 
     def images() -> Iterator[tuple[str, bytes]]:

@@ -20,7 +20,7 @@ def _run(folder, executor=None):
         return run(folder, executor=executor)
 
 
-def test_cluster_keeps_the_daily_flows_on_the_workers(region_folder):
+def test_cluster_keeps_the_daily_flows_on_the_workers(region_folder, tmp_path):
     # After leave-one-out on a 2-worker cluster the client holds a table per flow, not a
     # whole-region grid; a fetch asks only the blocks of the asked basins and returns those
     # basins only, with the in-process run's values; the error model, the coverage and the
@@ -67,6 +67,14 @@ def test_cluster_keeps_the_daily_flows_on_the_workers(region_folder):
         assert there.fitted.error_model.table.equals(here.fitted.error_model.table)
         pd.testing.assert_frame_equal(there.fitted.coverage, here.fitted.coverage)
         pd.testing.assert_frame_equal(there.statistics.summary, here.statistics.summary)
+        # written a table at a time, the fitted region's flows are the in-process files
+        from regional.outputs import write_outputs
+
+        write_outputs(here, tmp_path / "here", figures=False)
+        write_outputs(there, tmp_path / "there", figures=False, executor=executor)
+        for name in ("loo_observed.parquet", "loo_simulated.parquet"):
+            first, second = (tmp_path / run / "fitted" / name for run in ("here", "there"))
+            assert first.read_bytes() == second.read_bytes(), name
         with pytest.raises(TypeError, match="cannot be shipped"):
             pickle.dumps(loo.observed)
     finally:

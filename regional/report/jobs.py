@@ -28,6 +28,7 @@ import pandas as pd
 from matplotlib.figure import Figure
 
 from regional import io
+from regional.kept import part_of
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.result import RunResult
@@ -105,16 +106,45 @@ def without_series(result: RunResult) -> RunResult:
 
 def job_series(job: FigureJob, result: RunResult) -> JobSeries:
     """The daily series ``job`` reads, cut from the whole run ``result``."""
+    return series_of(series_parts(job, result, cut=_columns), result)
+
+
+def series_parts(job: FigureJob, result: RunResult, *, cut: Callable = part_of) -> tuple:
+    """The daily series ``job`` reads in plain containers, each frame ``cut(table, basins)``:
+    ``(loo, daily)``, ``loo`` model -> (observed, method -> flows), ``daily`` (flow, low,
+    high) or None. By default a flow left on the workers (:mod:`regional.kept`) is given as
+    the future of its frame, built on a worker: a task given the parts gets the frames, and
+    the client never holds them (:func:`series_of` puts them together in the task)."""
     loo = {}
     if job.loo_basins:
         basins = list(job.loo_basins)
         for model, run in result.runs.items():
-            simulated = {m: flows[basins] for m, flows in run.loo.simulated.items()}
-            loo[model] = (run.loo.observed[basins], simulated)
+            simulated = {m: cut(flows, basins) for m, flows in run.loo.simulated.items()}
+            loo[model] = (cut(run.loo.observed, basins), simulated)
     daily = None
     if job.site_basins:
-        daily = _daily_of(result.prediction.daily, list(job.site_basins))
+        basins, grids = list(job.site_basins), result.prediction.daily
+        daily = tuple(cut(getattr(grids, name), basins) for name in _DAILY_GRIDS)
+    return loo, daily
+
+
+def series_of(parts: tuple, result: RunResult) -> JobSeries:
+    """:func:`series_parts`' frames as a :class:`JobSeries` (``result``: the run, or the
+    run without its series, whose daily flows give the class and areas)."""
+    loo, daily = parts
+    if daily is not None:
+        grids = result.prediction.daily
+        basins = list(daily[0].columns)
+        frames = dict(zip(_DAILY_GRIDS, daily, strict=True))
+        daily = replace(grids, **frames, area_km2=grids.area_km2.reindex(basins))
     return JobSeries(loo=loo, daily=daily)
+
+
+_DAILY_GRIDS = ("flow_mm", "low_mm", "high_mm")
+
+
+def _columns(table, basins: list[str]) -> pd.DataFrame:
+    return table[basins]
 
 
 def with_series(shared: RunResult, series: JobSeries) -> RunResult:
@@ -130,18 +160,20 @@ def with_series(shared: RunResult, series: JobSeries) -> RunResult:
 
 
 def draw_jobs(
-    chunk: Sequence[tuple[FigureJob, JobSeries | None]], shared: RunResult
+    chunk: Sequence[tuple[FigureJob, JobSeries | tuple | None]], shared: RunResult
 ) -> list[bytes]:
     """The executor's task: each job's figure drawn and rendered to PNG bytes, in order.
 
     ``shared`` is the whole run when a job comes without its series (in this process), else
     the run without its daily series (:func:`without_series`), to which each job's own
-    series are put back.
+    series (a :class:`JobSeries`, or its :func:`series_parts`) are put back.
     """
     return [io.figure_png(job.draw(_for_job(shared, series))) for job, series in chunk]
 
 
-def _for_job(shared: RunResult, series: JobSeries | None) -> RunResult:
+def _for_job(shared: RunResult, series: JobSeries | tuple | None) -> RunResult:
+    if isinstance(series, tuple):  # series_parts, their frames built on the workers
+        series = series_of(series, shared)
     return shared if series is None else with_series(shared, series)
 
 
