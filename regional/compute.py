@@ -247,11 +247,17 @@ class InProcessExecutor:
         return results
 
     def map_batches(
-        self, batches: Iterable[Batch], *, ahead: int = BATCHES_AHEAD, shared: Any = None
+        self,
+        batches: Iterable[Batch],
+        *,
+        ahead: int = BATCHES_AHEAD,
+        shared: Any = None,
+        keep: bool = False,
     ) -> Iterator[Any]:
         """:meth:`map` of each ``(function, chunks, context)`` batch, batch after batch,
         lazily: a batch runs only when the one before it has been taken (``ahead`` is for the
-        cluster). A batch with a fourth item ``finish`` gives ``finish(results, shared)``."""
+        cluster). A batch with a fourth item ``finish`` gives ``finish(results, shared)`` (with
+        ``keep``, the pair it returns, as it is: nothing is kept elsewhere here)."""
         for function, chunks, context, *finish in batches:
             results = self.map(function, chunks, context)
             yield finish[0](results, shared) if finish else results
@@ -381,7 +387,12 @@ class DaskExecutor:
                 progress(done, total)
 
     def map_batches(
-        self, batches: Iterable[Batch], *, ahead: int = BATCHES_AHEAD, shared: Any = None
+        self,
+        batches: Iterable[Batch],
+        *,
+        ahead: int = BATCHES_AHEAD,
+        shared: Any = None,
+        keep: bool = False,
     ) -> Iterator[Any]:
         """:meth:`map` of each ``(function, chunks, context)`` batch without a barrier between
         batches.
@@ -398,7 +409,9 @@ class DaskExecutor:
         ``finish(results, shared)``, takes its chunks' results on a worker (they never reach
         this process) and only what it returns is gathered and yielded. ``shared`` is
         scattered to the workers once for all the batches (or, when it is a future of a
-        result left on a worker, given as that result).
+        result left on a worker, given as that result). With ``keep``, ``finish`` returns a
+        pair ``(small, kept)``: only ``small`` is gathered, and ``(small, future of kept)``
+        is yielded (``kept`` stays on the worker until the caller drops the future).
         """
         if ahead < 0:
             raise ValueError(f"ahead must be >= 0: got {ahead}")
@@ -420,15 +433,21 @@ class DaskExecutor:
                     everywhere.append(self._placed(shared))
                 # the chunks' results stay on the workers until the finishing task has used them
                 futures = [self.client.submit(finish[0], futures, everywhere[0], pure=False)]
+                if keep:
+                    futures = [self.client.submit(_item, futures[0], i) for i in (0, 1)]
             pending.append((scattered, futures, bool(finish)))
 
         def gathered() -> Iterator[Any]:
             while pending:
                 scattered, futures, finished = pending.popleft()
-                results = self.client.gather(futures)
+                results = self.client.gather(futures[:1] if finished and keep else futures)
+                kept = futures[-1]
                 del scattered, futures  # released on the workers once gathered
                 submit_next()
-                yield results[0] if finished else results
+                if finished and keep:
+                    yield results[0], kept
+                else:
+                    yield results[0] if finished else results
             everywhere.clear()
 
         for _ in range(ahead + 1):

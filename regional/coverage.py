@@ -323,11 +323,13 @@ class HeldOutSummary:
         The gauged basins treated as ungauged in this repeat.
     training : tuple of str
         The other gauged basins.
-    tails : ResidualTails
+    tails : ResidualTails or None
         The tails of the repeat's error model (built from the training basins' flows), enough
         to rebuild it exactly at the nominal or any widened level.
-    held_out_flow : DataFrame
+    held_out_flow : DataFrame or None
         Evaluation days x held-out basins: flow transferred from the training basins, mm/day.
+        Both None in the client of a cluster run whose leave-one-out flows stayed on the
+        workers (:mod:`regional.kept`): the whole summary stays there too.
     training_statistics, held_out_statistics : DataFrame or None
         Flow statistics (:func:`regional.flowstats.statistics_frame`) of the training and
         held-out basins' flows, for the statistics' own held-out check; None when not kept.
@@ -337,8 +339,8 @@ class HeldOutSummary:
 
     held_out: tuple[str, ...]
     training: tuple[str, ...]
-    tails: ResidualTails
-    held_out_flow: pd.DataFrame
+    tails: ResidualTails | None
+    held_out_flow: pd.DataFrame | None
     training_statistics: pd.DataFrame | None
     held_out_statistics: pd.DataFrame | None
     n_simulated: int
@@ -422,16 +424,31 @@ def held_out_coverage(
         ``coverage``, ``n_pairs`` ((repeat, basin) pairs with observed days in the class).
     """
     level = check_level(level)
+    return coverage_table(
+        [repeat_shares(observed, draw, level, n_classes, class_levels) for draw in repeats]
+    )
+
+
+def repeat_shares(observed, draw, level: float, n_classes, class_levels) -> dict[str, list]:
+    """One repeat's part of :func:`held_out_coverage` (arguments as there; for a summary
+    ``observed`` needs only the repeat's held-out basins): flow class or decile -> each
+    held-out basin's share of observed days inside its bounds (basins without a day in the
+    group left out)."""
+    model = _repeat_model(observed, draw, level, n_classes, class_levels)
+    low, high = model.bounds(draw.held_out_flow)
+    held = list(draw.held_out_flow.columns)
+    obs = observed[held].to_numpy(dtype=float)
+    sim = draw.held_out_flow.to_numpy(dtype=float)
+    per_group = _coverage_shares(obs, sim, low.to_numpy(), high.to_numpy(), model.n_classes)
+    return {name: values[np.isfinite(values)].tolist() for name, values in per_group.items()}
+
+
+def coverage_table(repeats: Sequence[Mapping[str, list]]) -> pd.DataFrame:
+    """:func:`held_out_coverage`'s table from the repeats' :func:`repeat_shares`."""
     shares: dict[str, list[float]] = {}
-    for draw in repeats:
-        model = _repeat_model(observed, draw, level, n_classes, class_levels)
-        low, high = model.bounds(draw.held_out_flow)
-        held = list(draw.held_out_flow.columns)
-        obs = observed[held].to_numpy(dtype=float)
-        sim = draw.held_out_flow.to_numpy(dtype=float)
-        per_group = _coverage_shares(obs, sim, low.to_numpy(), high.to_numpy(), model.n_classes)
+    for per_group in repeats:
         for name, values in per_group.items():
-            shares.setdefault(name, []).extend(values[np.isfinite(values)].tolist())
+            shares.setdefault(name, []).extend(values)
     rows = [
         {
             "flow_class": name,

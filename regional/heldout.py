@@ -25,13 +25,14 @@ from regional.coverage import (
     WIDEN_TOLERANCE,
     HeldOutRepeat,
     HeldOutSummary,
-    held_out_coverage,
+    coverage_table,
+    repeat_shares,
     summarise_repeat,
     widened_levels,
 )
 from regional.crossval import FoldContext, prepared_pool
 from regional.errors import InputError
-from regional.kept import is_kept, near, submit_near
+from regional.kept import is_kept, near, part_of, submit_near
 from regional.series import StoreChunk, StoreReader, shipped
 from regional.transfer import Donation
 
@@ -152,21 +153,27 @@ def _summaries(
     draw order. In process each repeat is simulated and summarised when it is taken; with an
     ``executor`` each repeat's tasks are followed by one more that summarises it where they
     ran (:meth:`regional.compute.DaskExecutor.map_batches`), so only the summaries reach the
-    caller, and the first repeats are submitted by this call. The same numbers either way."""
+    caller, and the first repeats are submitted by this call. The same numbers either way.
+
+    Where the leave-one-out flows stayed on the workers (:mod:`regional.kept`) the summaries
+    stay there too: each repeat is given as a pair (its summary without the tails and the
+    held-out flows, the future of the whole summary)."""
     draws = _checked_draws(run, repeats, HELD_OUT_FRACTION, HELD_OUT_SEED)
     if executor is None:
         return (job.summarise(r) for r in _repeats_here(run, method, fit_level, draws))
     gauged = [str(b) for b in run.loo.observed.columns]
     basins = [_Draw.of(held, gauged, run.context.donor_only) for held in draws]
     check = uuid.uuid4().hex  # the key of this check's leave-one-out donations on a worker
+    keep = is_kept(run.loo.observed)
+    finish = _summarised_apart if keep else _summarised
     batches = (
         (
             *_repeat_batch(run.context, method, fit_level, draw, chunk_basins, reader, check),
-            partial(_summarised, draw),
+            partial(finish, draw),
         )
         for draw in basins
     )
-    return executor.map_batches(batches, shared=job)
+    return executor.map_batches(batches, shared=job, keep=keep)
 
 
 def _repeats_here(run: ModelRun, method: str, level: float, draws) -> Iterator[HeldOutRepeat]:
@@ -289,6 +296,13 @@ def _summarised(draw: _Draw, parts: list[dict], job: _SummaryJob) -> HeldOutSumm
     cluster)."""
     flows = {k: v for part in parts for k, v in part.items()}
     return job.summarise(_assembled(draw.held, draw.training, flows, job.loo_flow))
+
+
+def _summarised_apart(draw: _Draw, parts: list[dict], job: _SummaryJob) -> tuple:
+    """:func:`_summarised` as a pair: the summary without its tails and held-out flows (for
+    the client), and the whole summary (left on the worker)."""
+    summary = _summarised(draw, parts, job)
+    return replace(summary, tails=None, held_out_flow=None), summary
 
 
 @dataclass(frozen=True)
@@ -621,12 +635,14 @@ def _finished_check(
             f"the repeats were summarised with {n_classes} flow classes, the error model has "
             f"{k}: start the check with n_classes={k}"
         )
-    draws = []
-    for draw in started:
+    draws, kept = [], []
+    for item in started:
+        draw, whole_summary = item if isinstance(item, tuple) else (item, None)
         if on_repeat is not None:
             on_repeat(draw)
         draws.append(draw)
-    table = held_out_coverage(observed, draws, level=level, n_classes=k)
+        kept.append(whole_summary)
+    table = coverage_table(_shares(observed, draws, kept, level, k, None))
     table = table.rename(columns={"coverage": "held_out_coverage"})
     measured = [table.loc[f"class {c + 1}", "held_out_coverage"] for c in range(k)]
     levels = widened_levels(measured, level=level)
@@ -637,7 +653,7 @@ def _finished_check(
     if widen.any():
         widened = partial(conformal_bounds, level=level, n_classes=k, class_levels=levels)
         error_model = near(widened, (observed, simulated))
-        after = held_out_coverage(observed, draws, level=level, n_classes=k, class_levels=levels)
+        after = coverage_table(_shares(observed, draws, kept, level, k, levels))
         table["held_out_coverage_widened"] = after["coverage"]
     else:
         table["held_out_coverage_widened"] = table["held_out_coverage"]
@@ -650,6 +666,22 @@ def _finished_check(
         widened={c + 1: (level, float(levels[c])) for c in np.flatnonzero(widen)},
     )
     return table, error_model, _held_out_notes(table, level, n_gauged), tuple(draws)
+
+
+def _shares(observed, draws, kept, level: float, n_classes: int, class_levels) -> list[dict]:
+    """Each repeat's :func:`regional.coverage.repeat_shares`: here, or where the summaries
+    stayed on the workers (``kept``: their futures), as a task next to each, given the
+    repeat's held-out basins' observed flow only."""
+    if kept[0] is None:
+        return [repeat_shares(observed, d, level, n_classes, class_levels) for d in draws]
+    executor = observed.blocks.executor
+    futures = [
+        executor.submit(
+            repeat_shares, part_of(observed, d.held_out), s, level, n_classes, class_levels
+        )
+        for d, s in zip(draws, kept, strict=True)
+    ]
+    return executor.gather(futures)
 
 
 def held_out_chunk(n_gauged: int, *, n_workers: int) -> int:

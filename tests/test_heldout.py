@@ -256,9 +256,9 @@ def test_the_check_starts_its_repeats_before_it_is_given_the_error_model(demo_re
     calls: list[str] = []
 
     class Recording(InProcessExecutor):
-        def map_batches(self, batches, *, ahead=3, shared=None):
+        def map_batches(self, batches, *, ahead=3, shared=None, keep=False):
             calls.append("repeats handed over")
-            return super().map_batches(batches, ahead=ahead, shared=shared)
+            return super().map_batches(batches, ahead=ahead, shared=shared, keep=keep)
 
     run = demo_result.runs[demo_result.chosen_model]
     method = demo_result.chosen_method

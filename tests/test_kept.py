@@ -65,6 +65,7 @@ def test_cluster_keeps_the_daily_flows_on_the_workers(region_folder, tmp_path):
         pd.testing.assert_frame_equal(there.prediction.flows, here.prediction.flows)
         pd.testing.assert_frame_equal(there.prediction.table, here.prediction.table)
         assert there.fitted.error_model.table.equals(here.fitted.error_model.table)
+
         pd.testing.assert_frame_equal(there.fitted.coverage, here.fitted.coverage)
         pd.testing.assert_frame_equal(there.statistics.summary, here.statistics.summary)
         # written a table at a time, the fitted region's flows are the in-process files
@@ -90,3 +91,33 @@ def test_in_process_runs_keep_plain_frames(region_folder):
     assert isinstance(loo.observed, pd.DataFrame)
     assert all(isinstance(flows, pd.DataFrame) for flows in loo.simulated.values())
     assert isinstance(result.prediction.daily.flow_mm, pd.DataFrame)
+
+
+def test_held_out_summaries_stay_on_the_workers_with_the_same_check(demo_result):
+    # The demo region has enough gauged basins for the held-out check of the bounds: on a
+    # cluster whose leave-one-out flows stay on the workers, the repeats' summaries stay
+    # there too (the client gets them without residual tails and held-out flows), and the
+    # check's table, its widened error model and the coverage equal the in-process run's.
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    from conftest import DEMO_REGION
+
+    from regional.compute import DaskExecutor
+    from regional.heldout import start_held_out_check
+
+    here = demo_result
+    assert here.fitted.held_out is not None
+    executor = DaskExecutor(workers=2)
+    try:
+        there = _run(DEMO_REGION, executor=executor)
+        pd.testing.assert_frame_equal(there.fitted.held_out, here.fitted.held_out)
+        assert there.fitted.held_out.attrs == here.fitted.held_out.attrs
+        assert there.fitted.error_model.table.equals(here.fitted.error_model.table)
+        pd.testing.assert_frame_equal(there.fitted.coverage, here.fitted.coverage)
+        run, method = there.runs[there.chosen_model], there.chosen_method
+        options = {"level": 0.9, "repeats": 2, "fit_level": 0.9}
+        finish = start_held_out_check(run, method, executor=executor, **options)
+        *_, draws = finish(there.fitted.error_model)
+        assert len(draws) == 2
+        assert all(d.tails is None and d.held_out_flow is None for d in draws)
+    finally:
+        executor.close()
