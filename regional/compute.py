@@ -472,6 +472,15 @@ class DaskExecutor:
         del futures, shared  # each pair is released once split
         return self.client.gather(small), kept
 
+    def start_each(
+        self, function: ChunkFn, chunks: Sequence[Sequence[Any]], context: Any
+    ) -> list[Callable[[], Any]]:
+        """:meth:`start_map` whose results are taken one at a time: one call per chunk (in
+        chunk order), each waiting for its chunk's result and handing it over (its copy on
+        the workers released), so the caller holds one result at a time."""
+        shared, futures = self._tasks(function, chunks, context)
+        return [partial(_taken, [shared, future], self.client) for future in futures]
+
     def submit(self, function: Callable, *args: Any, priority: int = 0):
         """One task ``function(*args)`` now; futures among ``args`` (also inside lists) reach
         it as their results, fetched by the worker that runs it. Returns its future."""
@@ -530,6 +539,13 @@ class DaskExecutor:
         self.client.close()
         if self._cluster is not None:
             self._cluster.close()
+
+
+def _taken(held: list, client) -> Any:
+    """The result of ``held``'s future (its second item), the futures then dropped."""
+    result = client.gather(held[1])
+    held.clear()
+    return result
 
 
 def _item(pair: Sequence[Any], position: int) -> Any:

@@ -89,7 +89,8 @@ def start_figures(result: RunResult, executor=None) -> Callable[[], Iterator[tup
     taken, from the run itself (drawn, rendered, handed on: one figure in memory). On a
     cluster every figure is a task: the run without its daily series is scattered once and
     each task receives the daily series its figure reads (:mod:`regional.report.jobs`), so
-    the workers draw while the caller goes on; the call waits for them.
+    the workers draw while the caller goes on; the call gives each image when it is taken
+    (the client holds one at a time).
     """
     executor = executor if executor is not None else InProcessExecutor()
     jobs = figure_jobs(result)
@@ -99,11 +100,12 @@ def start_figures(result: RunResult, executor=None) -> Callable[[], Iterator[tup
     jobs = sorted(jobs, key=lambda job: -job.panels)  # the costliest first (stable)
     # each job's series as built on the workers where they stayed there (regional.kept)
     chunks = [[(job, series_parts(job, result))] for job in jobs]
-    wait = executor.start_map(draw_jobs, chunks, without_series(result))
+    takers = executor.start_each(draw_jobs, chunks, without_series(result))
+    taken = {job.name: take for job, take in zip(jobs, takers, strict=True)}
 
     def images() -> Iterator[tuple[str, bytes]]:
-        drawn = {job.name: png for job, [png] in zip(jobs, wait(), strict=True)}
-        return ((name, drawn.pop(name)) for name in names)
+        # each image fetched as it is written: the client holds one at a time
+        return ((name, taken.pop(name)()[0]) for name in names)
 
     return images
 

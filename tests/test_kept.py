@@ -4,12 +4,15 @@ from __future__ import annotations
 
 import pickle
 import warnings
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
 
 from regional.errors import InputWarning
+
+DEMO_REGION = Path(__file__).resolve().parents[1] / "demo_region"
 
 
 def _run(folder, executor=None):
@@ -99,8 +102,6 @@ def test_held_out_summaries_stay_on_the_workers_with_the_same_check(demo_result)
     # there too (the client gets them without residual tails and held-out flows), and the
     # check's table, its widened error model and the coverage equal the in-process run's.
     pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
-    from conftest import DEMO_REGION
-
     from regional.compute import DaskExecutor
     from regional.heldout import start_held_out_check
 
