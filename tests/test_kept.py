@@ -100,7 +100,8 @@ def test_held_out_summaries_stay_on_the_workers_with_the_same_check(demo_result)
     # The demo region has enough gauged basins for the held-out check of the bounds: on a
     # cluster whose leave-one-out flows stay on the workers, the repeats' summaries stay
     # there too (the client gets them without residual tails and held-out flows), and the
-    # check's table, its widened error model and the coverage equal the in-process run's.
+    # check's table, its widened error model and the coverage equal the in-process run's, and
+    # so does a prediction at another level (the region fitted again from the kept flows).
     pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
     from regional.compute import DaskExecutor
     from regional.heldout import start_held_out_check
@@ -114,6 +115,13 @@ def test_held_out_summaries_stay_on_the_workers_with_the_same_check(demo_result)
         assert there.fitted.held_out.attrs == here.fitted.held_out.attrs
         assert there.fitted.error_model.table.equals(here.fitted.error_model.table)
         pd.testing.assert_frame_equal(there.fitted.coverage, here.fitted.coverage)
+        # a prediction at another level fits the region again from the kept flows
+        from regional.predict import predict_ungauged
+
+        other, kept = predict_ungauged(here, level=0.8), predict_ungauged(there, level=0.8)
+        pd.testing.assert_frame_equal(kept.coverage, other.coverage)
+        pd.testing.assert_frame_equal(kept.table, other.table)
+        pd.testing.assert_frame_equal(kept.flows, other.flows)
         run, method = there.runs[there.chosen_model], there.chosen_method
         options = {"level": 0.9, "repeats": 2, "fit_level": 0.9}
         finish = start_held_out_check(run, method, executor=executor, **options)
