@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special
 
 from regional.bounds import ConformalErrorModel, conformal_bounds
 from regional.errors import InputError
@@ -158,7 +158,17 @@ def _mahalanobis(z_donors, z_targets) -> tuple[np.ndarray, float]:
     eigenvalues = np.maximum(eigenvalues, floor)
     projected = (z_targets - z_donors.mean(axis=0)) @ vectors
     d2 = np.sum(projected**2 / eigenvalues, axis=1)
-    return d2, float(stats.chi2.ppf(APPLICABILITY_LEVEL, p))
+    return d2, chi2_quantile(APPLICABILITY_LEVEL, p)
+
+
+def chi2_quantile(probability: float, dof: int) -> float:
+    """Quantile of the chi-squared distribution with ``dof`` degrees of freedom.
+
+    2 P^-1(dof / 2, probability), P the regularised lower incomplete gamma function (the
+    formula ``scipy.stats.chi2.ppf`` evaluates; computed here with ``scipy.special`` so that
+    estimates at new sites need not import ``scipy.stats``).
+    """
+    return float(2.0 * special.gammaincinv(dof / 2.0, probability))
 
 
 def _distances(a: np.ndarray, b: np.ndarray) -> np.ndarray:

@@ -23,7 +23,6 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
-from scipy import stats
 
 from regional.errors import InputError
 
@@ -243,9 +242,31 @@ def default_n_classes(obs: np.ndarray) -> int:
 
 def flow_classes(sim: np.ndarray, n_classes: int) -> np.ndarray:
     """Class 0..n_classes-1 of each day: the within-basin quantile (rank - 0.5) / T of its flow."""
-    ranks = stats.rankdata(sim, method="average", axis=0)
+    ranks = average_ranks(sim)
     share = (ranks - 0.5) / sim.shape[0]
     return np.minimum((share * n_classes).astype(int), n_classes - 1)
+
+
+def average_ranks(values: np.ndarray) -> np.ndarray:
+    """Ranks 1..T down each column, ties given their mean rank; a column with NaN all NaN.
+
+    The ranks of ``scipy.stats.rankdata(values, method="average", axis=0)`` (exact half
+    integers, so equal to the last bit), computed with numpy alone.
+    """
+    values = np.asarray(values, dtype=float)
+    n = values.shape[0]
+    order = np.argsort(values, axis=0, kind="stable")
+    ordered = np.take_along_axis(values, order, axis=0)
+    position = np.broadcast_to(np.arange(n).reshape((n,) + (1,) * (values.ndim - 1)), values.shape)
+    first = np.ones(values.shape, dtype=bool)
+    first[1:] = ordered[1:] != ordered[:-1]
+    last = np.ones(values.shape, dtype=bool)
+    last[:-1] = first[1:]
+    start = np.maximum.accumulate(np.where(first, position, 0), axis=0)
+    end = np.flip(np.minimum.accumulate(np.flip(np.where(last, position, n - 1), 0), axis=0), 0)
+    ranks = np.empty(values.shape, dtype=float)
+    np.put_along_axis(ranks, order, (start + end) / 2.0 + 1.0, axis=0)
+    return np.where(np.isnan(values).any(axis=0), np.nan, ranks)
 
 
 def class_residuals(

@@ -29,7 +29,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy.optimize import minimize_scalar
 
 from regional import metrics
 from regional.compiled_search import FAILED_SCORE, ColumnProblem, column_problem
@@ -425,6 +424,8 @@ def _search_one(problem: _Problem, column: int, lower, upper, start, search) -> 
 
 def _scalar_search(energy, lower: float, upper: float) -> SearchResult:
     """Grid bracket then Brent's bounded method in the transformed space."""
+    from scipy.optimize import minimize_scalar  # here: prediction imports no optimiser
+
     grid = np.linspace(lower, upper, GRID_SIZE)
     energies = energy(grid[None, :])
     i = int(np.argmin(energies))

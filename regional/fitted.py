@@ -30,7 +30,7 @@ from regional.errors import InputError, InputWarning
 from regional.heldout import start_held_out_check, with_held_out
 from regional.kept import near
 from regional.models import parameter_transforms
-from regional.transfer import RegressionTransfer, fit_transfer
+from regional.transfer import RegressionFit, fit_transfer
 from regional.transfer.step import TransferOptions
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
@@ -166,7 +166,7 @@ class FittedRegion:
         """The attribute (and coordinate) columns of ``training``."""
         return [c for c in self.training.columns if c not in self.parameters]
 
-    def regression(self) -> RegressionTransfer:
+    def regression(self) -> RegressionFit:
         """The regression of the chosen model's parameters fit on every gauged basin."""
         transforms = self.transforms
         with warnings.catch_warnings():
@@ -177,6 +177,7 @@ class FittedRegion:
                 self.training[list(self.parameters)],
                 transforms=transforms,
                 attributes=list(self.attributes),
+                plain=True,
             )
 
 

@@ -59,7 +59,7 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 import pandas as pd
-from scipy import special, stats
+from scipy import special
 
 from regional.errors import InputError
 
@@ -511,10 +511,36 @@ def low_flow_quantile(annual_minima, probability: float) -> np.ndarray:
     mean, sd, skew = _log_moments(logs, positive, n_pos)
     with np.errstate(invalid="ignore", divide="ignore"):
         conditional = np.clip((probability - p_zero) / (1.0 - p_zero), 1e-12, 1.0 - 1e-12)
-    frequency = np.where(sd > 0, stats.pearson3.ppf(conditional, np.nan_to_num(skew)), 0.0)
+    frequency = np.where(sd > 0, pearson3_frequency(conditional, np.nan_to_num(skew)), 0.0)
     quantile = 10.0 ** (mean + sd * frequency)
     quantile = np.where(p_zero >= probability, 0.0, np.where(n_pos >= 3, quantile, np.nan))
     return np.where(n >= MIN_YEARS, quantile, np.nan)
+
+
+PEARSON3_NORMAL_SKEW = 1.6e-5
+"""Below this absolute skew the Pearson type III quantile is the normal one (the switch of
+``scipy.stats.pearson3``)."""
+
+
+def pearson3_frequency(probability, skew) -> np.ndarray:
+    """Standardised Pearson type III quantile (the frequency factor K of mean + K sd).
+
+    With beta = 2 / skew, alpha = beta^2: P^-1(alpha, p) / beta - alpha / beta (p replaced by
+    1 - p for negative skew), P the regularised lower incomplete gamma function; the normal
+    quantile where |skew| < :data:`PEARSON3_NORMAL_SKEW`. The steps of
+    ``scipy.stats.pearson3.ppf`` with unit scale, written with ``scipy.special`` so that
+    estimates at new sites need not import ``scipy.stats``.
+    """
+    probability, skew = np.broadcast_arrays(
+        np.asarray(probability, float), np.asarray(skew, float)
+    )
+    normal = np.abs(skew) < PEARSON3_NORMAL_SKEW
+    beta = 2.0 / np.where(normal, 1.0, skew)
+    alpha = beta**2
+    p = np.where(beta < 0, 1.0 - probability, probability)
+    with np.errstate(invalid="ignore"):
+        gamma = special.gammaincinv(alpha, p) / beta + (0.0 - alpha / beta)
+    return np.where(normal, special.ndtri(probability), gamma)
 
 
 def _log_moments(logs, mask, n):

@@ -17,7 +17,7 @@ from regional import __version__
 from regional.config import Settings
 from regional.crossval import FoldContext, LeaveOneOut
 from regional.region import Region
-from regional.transfer import RegressionTransfer
+from regional.transfer import RegressionFit
 
 
 @dataclass(frozen=True)
@@ -32,7 +32,7 @@ class ModelRun:
         Per gauged basin: parameters and scores (see :func:`regional.calibrate`).
     loo : LeaveOneOut
         Leave-one-out scores, transferred parameters and flows.
-    regression : RegressionTransfer
+    regression : RegressionFit
         The regression fit on every gauged basin (coefficient table for the report).
     context : FoldContext
         What the folds saw (forcing window, attributes, options with the donor counts chosen),
@@ -45,7 +45,7 @@ class ModelRun:
     model: str
     calibration: pd.DataFrame
     loo: LeaveOneOut
-    regression: RegressionTransfer
+    regression: RegressionFit
     context: FoldContext
     donor_counts: pd.DataFrame | None = None
 

@@ -36,7 +36,7 @@ import pandas as pd
 from regional.applicability import applicability
 from regional.errors import InputError
 from regional.fitted import FittedRegion, fit_result
-from regional.transfer import RegressionTransfer
+from regional.transfer import RegressionFit
 from regional.transfer.step import fit_methods
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
@@ -108,7 +108,7 @@ def rank_one_update(xtx_inv: np.ndarray, x_new: np.ndarray) -> np.ndarray:
 
 
 def variance_reduction(
-    regression: RegressionTransfer, candidates: pd.DataFrame, targets: pd.DataFrame
+    regression: RegressionFit, candidates: pd.DataFrame, targets: pd.DataFrame
 ) -> pd.DataFrame:
     """Share of the average prediction variance over ``targets`` removed by gauging each candidate.
 
@@ -118,7 +118,7 @@ def variance_reduction(
 
     Parameters
     ----------
-    regression : RegressionTransfer
+    regression : RegressionFit
         Fitted on the gauged basins.
     candidates, targets : DataFrame
         Attributes of the candidate sites and of the basins predicted, indexed by basin id.
@@ -337,7 +337,7 @@ def _where(check: pd.Series) -> str:
     return "inside the gauged basins' attribute cloud"
 
 
-def _notes(regression: RegressionTransfer, spread: pd.DataFrame, n_targets: int) -> tuple:
+def _notes(regression: RegressionFit, spread: pd.DataFrame, n_targets: int) -> tuple:
     selected = {name: terms for name, terms in regression.selected_.items()}
     listed = "; ".join(f"{p}: {', '.join(t) or 'intercept only'}" for p, t in selected.items())
     return (

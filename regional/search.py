@@ -40,8 +40,6 @@ from dataclasses import dataclass
 
 import numba
 import numpy as np
-from scipy.optimize import differential_evolution
-from scipy.stats import qmc
 
 Energy = Callable[[np.ndarray], np.ndarray]
 ManyEnergy = Callable[[np.ndarray, np.ndarray], np.ndarray]
@@ -252,6 +250,8 @@ def _distinct(points: np.ndarray, energies: np.ndarray, n: int):
 
 def _sobol_points(n_dims: int, seed: int) -> np.ndarray:
     """Scrambled Sobol points in the unit cube: 16 per dimension, rounded up to a power of 2."""
+    from scipy.stats import qmc  # here, not at the top: prediction imports no scipy.stats
+
     m = int(np.ceil(np.log2(SCREEN_POINTS_PER_DIMENSION * n_dims)))
     return qmc.Sobol(n_dims, scramble=True, seed=seed).random_base2(m)
 
@@ -474,6 +474,8 @@ def evolve_and_polish(
     start : ndarray, optional
         A member of the first population (e.g. the model's default values).
     """
+    from scipy.optimize import differential_evolution  # here: prediction needs no optimiser
+
     lower, upper = _check_box(lower, upper)
     counted = _Counted(lambda points, _owner: energy(points), len(lower), 1)
     found = differential_evolution(

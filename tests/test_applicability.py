@@ -191,3 +191,14 @@ def test_distance_searches_do_not_depend_on_the_block_of_rows(cloud, rows):
     assert limit == among.min(axis=1).max()
     order = applicability_module._nearest_order(targets, z, 5, cells=cells)
     np.testing.assert_array_equal(order, np.argsort(whole, axis=1, kind="stable")[:, :5])
+
+
+def test_chi2_quantile_is_scipys_chi2_quantile():
+    # source: scipy.stats.chi2.ppf, written with scipy.special.gammaincinv here
+    from scipy import stats
+
+    from regional.applicability import chi2_quantile
+
+    for dof in range(1, 25):
+        for probability in (0.5, 0.9, 0.99):
+            assert chi2_quantile(probability, dof) == stats.chi2.ppf(probability, dof)

@@ -117,3 +117,17 @@ def test_residuals_block_by_block_are_those_of_the_whole_grid():
         for ours, theirs in zip(got.values + got.basins, whole.values + whole.basins, strict=True):
             np.testing.assert_array_equal(ours, theirs)
         assert observed_basins(obs, block=block) == 10
+
+
+def test_average_ranks_are_scipys_rankdata_average_ranks():
+    # source: scipy.stats.rankdata(method="average", axis=0), ties and a NaN column included
+    from scipy import stats
+
+    from regional.bounds import average_ranks
+
+    rng = np.random.default_rng(3)
+    tied = rng.integers(0, 20, (400, 30)).astype(float)
+    tied[5, 4] = np.nan
+    for values in (tied, rng.normal(size=(250, 7)), np.ones((3, 2))):
+        expected = stats.rankdata(values, method="average", axis=0)
+        np.testing.assert_array_equal(average_ranks(values), expected)

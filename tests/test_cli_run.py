@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import shutil
 import signal
 import subprocess
@@ -19,7 +20,8 @@ import pytest
 from regional import io
 from regional.cli import main
 
-DEMO = Path(__file__).resolve().parents[1] / "demo_region"
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "demo_region"
 SCORE_COLUMNS = [
     "basin_id",
     "method",
@@ -461,18 +463,49 @@ def test_predict_refits_and_says_why_when_an_input_changed(tmp_path, region_part
     assert "reusing the fitted region" in capsys.readouterr().out
 
 
+def _cut_sites(folder: Path, sites: list[str]) -> Path:
+    """Demo basins cut out as new sites: ``intakes.gpkg`` and their forcing beside it."""
+    import geopandas as gpd
+
+    basins = gpd.read_file(DEMO / "region.gpkg", layer="basins")
+    basins[basins["basin_id"].isin(sites)].to_file(folder / "intakes.gpkg", driver="GPKG")
+    series = pd.read_csv(DEMO / "series.csv.gz", dtype={"basin_id": str})
+    forcing = series[series["basin_id"].isin(sites)].drop(columns="flow_mm")
+    forcing.to_csv(folder / "intakes.csv", index=False)
+    return folder / "intakes.gpkg"
+
+
+NOT_FOR_SITES = ("sklearn", "scipy.stats", "scipy.optimize", "matplotlib", "distributed")
+"""Libraries estimates at new sites do without (each costs a fresh process its import)."""
+
+
+def test_new_sites_import_no_scikit_learn_nor_scipy_stats(run_folder, tmp_path):
+    # A fresh interpreter, as a user runs 'regional predict REGION --sites SITES': the stored
+    # fitted region is applied with numpy and scipy.special alone.
+    sites = _cut_sites(tmp_path, ["DR09", "DR24"])
+    args = ["predict", str(DEMO), "--out", str(run_folder), "--quiet", "--sites", str(sites)]
+    args += ["--sites-out", str(tmp_path / "estimates")]
+    code = (
+        "import sys\n"
+        "from regional.cli import main\n"
+        f"assert main({args!r}) == 0\n"
+        f"print(sorted(m for m in sys.modules if m.startswith({NOT_FOR_SITES!r})))\n"
+    )
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "MPLBACKEND": "Agg"}
+    done = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, env=env, check=False
+    )
+    assert done.returncode == 0, done.stderr
+    assert (tmp_path / "estimates" / "flows_sites.csv").is_file()
+    assert done.stdout.strip().splitlines()[-1] == "[]"
+
+
 def test_new_sites_get_the_estimates_they_had_inside_the_region(run_folder, tmp_path, capsys):
     # Two ungauged demo basins cut out as new sites (their polygons and forcing): the estimates
     # equal those the run gave them as basins of the region (attributes bit for bit; the
     # numbers to rounding, as linear algebra on 2 rows may round otherwise than on 14).
-    import geopandas as gpd
-
     sites = ["DR09", "DR24"]
-    basins = gpd.read_file(DEMO / "region.gpkg", layer="basins")
-    basins[basins["basin_id"].isin(sites)].to_file(tmp_path / "intakes.gpkg", driver="GPKG")
-    series = pd.read_csv(DEMO / "series.csv.gz", dtype={"basin_id": str})
-    forcing = series[series["basin_id"].isin(sites)].drop(columns="flow_mm")
-    forcing.to_csv(tmp_path / "intakes.csv", index=False)
+    _cut_sites(tmp_path, sites)
     out = tmp_path / "estimates"
     args = ["predict", str(DEMO), "--out", str(run_folder), "--quiet"]
     assert main([*args, "--sites", str(tmp_path / "intakes.gpkg"), "--sites-out", str(out)]) == 0

@@ -381,3 +381,19 @@ def test_monthly_means_and_area_conversion():
 def test_headline_statistics_reject_a_table_without_dates():
     with pytest.raises(InputError, match="indexed by date"):
         fs.headline_statistics(pd.DataFrame({"A": [1.0, 2.0]}))
+
+
+def test_pearson3_frequency_is_scipys_pearson3_quantile_to_the_last_bit():
+    # source: scipy.stats.pearson3.ppf (unit scale), which the function writes out with
+    # scipy.special so that predictions need not import scipy.stats
+    from scipy import stats
+
+    from regional.flowstats import pearson3_frequency
+
+    rng = np.random.default_rng(7)
+    probability = rng.uniform(1e-12, 1.0 - 1e-12, 4000)
+    skew = rng.normal(0.0, 2.0, 4000)
+    skew[:6] = [0.0, 1e-6, -1e-6, 1.7e-5, -3.0, 4.0]  # both sides of the normal switch
+    probability[6] = np.nan
+    expected = stats.pearson3.ppf(probability, skew)
+    np.testing.assert_array_equal(pearson3_frequency(probability, skew), expected)

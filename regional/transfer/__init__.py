@@ -10,41 +10,75 @@ donation into flow by output or parameter averaging.
 from __future__ import annotations
 
 import difflib
+import importlib
 import inspect
 from collections.abc import Mapping, Sequence
 from typing import TYPE_CHECKING
 
 from regional.errors import InputError
 from regional.transfer.base import COMBINE_OPTIONS, Donation
-from regional.transfer.blended import BlendedTransfer
+from regional.transfer.blended import BlendedFit
 from regional.transfer.combine import (
     DonorFlows,
     average_parameters,
     simulate_donors,
 )
 from regional.transfer.donors import (
-    ProximityTransfer,
-    SimilarityTransfer,
+    ProximityFit,
+    SimilarityFit,
     great_circle_km,
     inverse_distance_weights,
 )
-from regional.transfer.median import MedianTransfer
-from regional.transfer.regression import RegressionTransfer, press
+from regional.transfer.median import MedianFit
+from regional.transfer.regression import RegressionFit, press
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     import pandas as pd
 
 TRANSFER_METHODS = {
-    "regression": RegressionTransfer,
-    "similarity": SimilarityTransfer,
-    "proximity": ProximityTransfer,
-    "blended": BlendedTransfer,
-    "median": MedianTransfer,
+    "regression": RegressionFit,
+    "similarity": SimilarityFit,
+    "proximity": ProximityFit,
+    "blended": BlendedFit,
+    "median": MedianFit,
 }
-"""The registry: method name -> estimator class. A new method is one module (an estimator
-following the contract above, its options in ``__init__``) and one line here; the config reads
-the allowed names from this registry, and :func:`make_transfer` passes each method the shared
-settings its ``__init__`` takes."""
+"""The registry: method name -> its plain class (fit, donate and predict with numpy and pandas,
+no scikit-learn; :class:`regional.transfer.base.PlainFit`). A new method is one module (its
+plain class following the contract above, its options in ``__init__``), one line here and its
+scikit-learn estimator in :mod:`regional.transfer.estimators` (loaded on first use, so that
+reading the config or predicting from a stored fitted region imports no scikit-learn); the
+config reads the allowed names from this registry, and :func:`make_transfer` passes each method
+the shared settings its ``__init__`` takes."""
+
+ESTIMATORS = {
+    "RegressionTransfer",
+    "SimilarityTransfer",
+    "ProximityTransfer",
+    "BlendedTransfer",
+    "MedianTransfer",
+}
+"""Names of the scikit-learn estimators, importable from this package (loaded on first use)."""
+
+
+def estimator_class(name: str) -> type:
+    """The scikit-learn estimator of method ``name`` (its plain class, ``Fit`` -> ``Transfer``).
+
+    Raises
+    ------
+    InputError
+        For an unknown method name (with the closest known name).
+    """
+    plain = _registered(name).__name__
+    estimators = importlib.import_module("regional.transfer.estimators")
+    return getattr(estimators, plain.removesuffix("Fit") + "Transfer")
+
+
+def __getattr__(name: str):
+    """The estimators (:data:`ESTIMATORS`), imported with scikit-learn only when asked for."""
+    if name in ESTIMATORS:
+        return getattr(importlib.import_module("regional.transfer.estimators"), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
 
 SHARED_SETTINGS = ("attributes", "n_donors", "power", "combine", "level")
 """Settings of ``[transfer]`` and ``[prediction]`` a method receives when its ``__init__`` has
@@ -80,6 +114,7 @@ def make_transfer(
     power: float = 1.0,
     combine: str = "output",
     level: float = 0.9,
+    plain: bool = False,
 ):
     """Build an unfitted transfer estimator by method name from shared settings.
 
@@ -101,6 +136,9 @@ def make_transfer(
         Donor combination.
     level : float, default 0.9
         Interval coverage of regression and median.
+    plain : bool, default False
+        Build the method's plain class (no scikit-learn, :data:`TRANSFER_METHODS`) instead of
+        its scikit-learn estimator; both give the same numbers.
 
     Raises
     ------
@@ -114,7 +152,7 @@ def make_transfer(
         "combine": combine,
         "level": level,
     }
-    estimator = _registered(name)
+    estimator = _registered(name) if plain else estimator_class(name)
     return estimator(**{setting: given[setting] for setting in method_settings(name)})
 
 
@@ -129,6 +167,7 @@ def fit_transfer(
     power: float = 1.0,
     combine: str = "output",
     level: float = 0.9,
+    plain: bool = False,
 ):
     """Fit method ``name`` on these basins (the shared step of leave-one-out, the held-out
     check, prediction and screening, :mod:`regional.transfer.step`, fits each method with it).
@@ -144,6 +183,9 @@ def fit_transfer(
     attributes, n_donors, power, combine, level
         The shared settings (see :func:`make_transfer`); ``n_donors`` is capped at the number
         of training basins.
+    plain : bool, default False
+        Fit the method's plain class instead of its scikit-learn estimator (see
+        :func:`make_transfer`).
 
     Returns
     -------
@@ -156,6 +198,7 @@ def fit_transfer(
         power=power,
         combine=combine,
         level=level,
+        plain=plain,
     )
     return estimator.fit(X, y, transforms=transforms)
 
@@ -165,14 +208,21 @@ __all__ = [
     "DONOR_METHODS",
     "SHARED_SETTINGS",
     "TRANSFER_METHODS",
+    "BlendedFit",
     "BlendedTransfer",
     "Donation",
     "DonorFlows",
+    "ESTIMATORS",
+    "MedianFit",
     "MedianTransfer",
+    "ProximityFit",
     "ProximityTransfer",
+    "RegressionFit",
     "RegressionTransfer",
+    "SimilarityFit",
     "SimilarityTransfer",
     "average_parameters",
+    "estimator_class",
     "fit_transfer",
     "great_circle_km",
     "inverse_distance_weights",

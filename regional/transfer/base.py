@@ -99,6 +99,25 @@ class Donation:
         return rows.reset_index(drop=True)
 
 
+class PlainFit:
+    """Base of a transfer method's fit without scikit-learn (numpy and pandas only).
+
+    A method's module holds its fit, donation and prediction as a plain class deriving from
+    this one; :mod:`regional.transfer.estimators` makes the scikit-learn estimator of it
+    (``BaseEstimator``: parameters, ``clone``, ``NotFittedError``). Prediction from a fitted
+    region fits the plain class, so estimates at new sites need no scikit-learn import; both
+    run the same code, so their numbers are the same.
+    """
+
+    def _check_fitted(self) -> None:
+        """Raise when :meth:`fit` has not run (the estimators raise ``NotFittedError``)."""
+        if not hasattr(self, "parameters_"):
+            raise InputError(
+                f"this {type(self).__name__} is not fitted yet; call fit with the training "
+                "basins first."
+            )
+
+
 # --------------------------------------------------------------------------------------------
 # Transforms
 

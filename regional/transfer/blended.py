@@ -33,7 +33,7 @@ import pandas as pd
 from regional.errors import InputError
 from regional.transfer.donors import (
     EARTH_RADIUS_KM,
-    _DonorTransfer,
+    DonorFit,
     attribute_scaling,
     check_attributes_present,
     euclidean_distance,
@@ -74,7 +74,7 @@ def geographic_spread_km(lon_lat_deg: np.ndarray) -> float:
     return EARTH_RADIUS_KM * float(np.sqrt(mean_square))
 
 
-class BlendedTransfer(_DonorTransfer):
+class BlendedFit(DonorFit):
     """Donors nearest by a blend of standardised attribute distance and great-circle distance.
 
     Parameters

@@ -18,12 +18,11 @@ from collections.abc import Mapping, Sequence
 
 import numpy as np
 import pandas as pd
-from sklearn.base import BaseEstimator
-from sklearn.utils.validation import check_is_fitted
 
 from regional.errors import InputError
 from regional.transfer.base import (
     Donation,
+    PlainFit,
     check_combine,
     check_complete,
     check_n_donors,
@@ -83,7 +82,7 @@ def inverse_distance_weights(distance: np.ndarray, power: float) -> np.ndarray:
     return raw / raw.sum(axis=-1, keepdims=True)
 
 
-class _DonorTransfer(BaseEstimator):
+class DonorFit(PlainFit):
     """Shared fit/donate/predict of the nearest-donor methods (subclasses give coordinates)."""
 
     _method = "donor"
@@ -104,7 +103,7 @@ class _DonorTransfer(BaseEstimator):
         y: pd.DataFrame,
         *,
         transforms: Mapping[str, str] | None = None,
-    ) -> _DonorTransfer:
+    ) -> DonorFit:
         """Store the training donors (cheap: no search happens until :meth:`donate`).
 
         Parameters
@@ -154,7 +153,7 @@ class _DonorTransfer(BaseEstimator):
             the donor's parameters); ``intervals`` the min and max over the donors with
             positive weight.
         """
-        check_is_fitted(self)
+        self._check_fitted()
         X = check_table(X, method=self._method, role="the target attributes X")
         coordinates = self._target_coordinates(X)
         order, distance = self._nearest(coordinates)
@@ -227,7 +226,7 @@ def _target_index(X: pd.DataFrame) -> pd.Index:
     return pd.Index(X.index, name="target_id")
 
 
-class SimilarityTransfer(_DonorTransfer):
+class SimilarityFit(DonorFit):
     """Physical similarity: the k nearest gauged basins in standardised attribute space.
 
     Parameters
@@ -298,7 +297,7 @@ class SimilarityTransfer(_DonorTransfer):
         return euclidean_distance(targets, donors)
 
 
-class ProximityTransfer(_DonorTransfer):
+class ProximityFit(DonorFit):
     """Spatial proximity: the k nearest gauged basins by great-circle distance.
 
     Parameters

@@ -37,7 +37,7 @@ import pandas as pd
 from regional.errors import InputError, InputWarning
 from regional.transfer import fit_transfer
 from regional.transfer.base import Donation, forward, inverse
-from regional.transfer.blended import BlendedTransfer
+from regional.transfer.blended import BlendedFit
 from regional.transfer.donors import (
     EARTH_RADIUS_KM,
     great_circle_km,
@@ -54,7 +54,7 @@ from regional.transfer.foldpool import (
     target_values,
 )
 from regional.transfer.median import DONOR_LABEL as MEDIAN_LABEL
-from regional.transfer.median import MedianTransfer
+from regional.transfer.median import MedianFit
 from regional.transfer.regression_folds import RegressionFolds
 
 BLOCK_CELLS = 2_000_000
@@ -269,7 +269,7 @@ class _DonorFolds:
 
     @property
     def _blended(self) -> bool:
-        return isinstance(self.fit, BlendedTransfer)
+        return isinstance(self.fit, BlendedFit)
 
     def donations(self, targets: list[str], rows: np.ndarray, target_X: pd.DataFrame):
         out: dict[str, Donation] = {}
@@ -413,7 +413,7 @@ class _MedianFolds:
 
     def __init__(self, pool: FoldPool, settings: FoldSettings) -> None:
         self.pool = pool
-        self.fit = MedianTransfer(level=settings.level).fit(
+        self.fit = MedianFit(level=settings.level).fit(
             pool.X, pool.y, transforms=settings.transforms
         )
         self.sorted, self.ranks = {}, {}

@@ -14,11 +14,10 @@ from collections.abc import Mapping
 
 import numpy as np
 import pandas as pd
-from sklearn.base import BaseEstimator
-from sklearn.utils.validation import check_is_fitted
 
 from regional.transfer.base import (
     Donation,
+    PlainFit,
     check_level,
     check_parameters,
     check_table,
@@ -31,7 +30,7 @@ METHOD = "median"
 DONOR_LABEL = "<median>"
 
 
-class MedianTransfer(BaseEstimator):
+class MedianFit(PlainFit):
     """Give every target the median of the training basins' parameters.
 
     Parameters
@@ -70,7 +69,7 @@ class MedianTransfer(BaseEstimator):
         y: pd.DataFrame,
         *,
         transforms: Mapping[str, str] | None = None,
-    ) -> MedianTransfer:
+    ) -> MedianFit:
         """Compute the regional median parameters.
 
         Parameters
@@ -107,7 +106,7 @@ class MedianTransfer(BaseEstimator):
 
     def predict(self, X: pd.DataFrame) -> pd.DataFrame:
         """The median parameters for every target (a DataFrame indexed by ``target_id``)."""
-        check_is_fitted(self)
+        self._check_fitted()
         X = check_table(X, method=METHOD, role="the target attributes X")
         index = pd.Index(X.index, name="target_id")
         return pd.DataFrame(

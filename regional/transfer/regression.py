@@ -17,13 +17,12 @@ from collections.abc import Mapping, Sequence
 
 import numpy as np
 import pandas as pd
-from scipy import stats
-from sklearn.base import BaseEstimator
-from sklearn.utils.validation import check_is_fitted
+from scipy import special
 
 from regional.errors import InputError, InputWarning
 from regional.transfer.base import (
     Donation,
+    PlainFit,
     check_complete,
     check_level,
     check_parameters,
@@ -44,7 +43,7 @@ MIN_RESIDUAL_DOF = 2
 """Training basins must number at least the terms (intercept included) + this."""
 
 
-class RegressionTransfer(BaseEstimator):
+class RegressionFit(PlainFit):
     """Transfer parameters by OLS regression of transformed parameters on attributes.
 
     Parameters
@@ -129,7 +128,7 @@ class RegressionTransfer(BaseEstimator):
         y: pd.DataFrame,
         *,
         transforms: Mapping[str, str] | None = None,
-    ) -> RegressionTransfer:
+    ) -> RegressionFit:
         """Fit one regression per parameter on the gauged basins.
 
         Parameters
@@ -281,7 +280,7 @@ class RegressionTransfer(BaseEstimator):
 
     def _checked_targets(self, X: pd.DataFrame) -> tuple[pd.DataFrame, list[str]]:
         """Target attributes checked, and the attributes any selected regression needs."""
-        check_is_fitted(self)
+        self._check_fitted()
         X = check_table(X, method=METHOD, role="the target attributes X")
         needed = sorted({a for terms in self.selected_.values() for a in terms})
         if needed:
@@ -361,7 +360,8 @@ class RegressionTransfer(BaseEstimator):
         )
         for name in self.parameters_:
             transform = self.transforms_[name]
-            quantile = stats.t.ppf(0.5 + level / 2.0, self.dof_resid_[name])
+            # the Student-t quantile (scipy.stats.t.ppf computes it with the same function)
+            quantile = special.stdtrit(self.dof_resid_[name], 0.5 + level / 2.0)
             centre, half = mean[name].to_numpy(), quantile * std[name].to_numpy()
             sets[name] = inverse(centre, transform)
             intervals[f"{name}_low"] = inverse(centre - half, transform)
@@ -496,7 +496,7 @@ def _ols(design: np.ndarray, target: np.ndarray) -> dict:
         "cov": cov,
         "se": se,
         "t": t,
-        "p": 2.0 * stats.t.sf(np.abs(t), dof),
+        "p": 2.0 * special.stdtr(dof, -np.abs(t)),  # two-sided Student-t
         "sigma2": sigma2,
         "dof": dof,
         "r2": r2,

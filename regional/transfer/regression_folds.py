@@ -34,7 +34,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special
 
 from regional.transfer.base import (
     check_complete,
@@ -109,7 +109,7 @@ class RegressionFolds:
             ok &= fine
             mean, std, dof, vif_ok = _predict(fits, rows, chosen, target_W, tss, ok)
             ok &= vif_ok
-            half = stats.t.ppf(0.5 + self.level / 2.0, dof) * std
+            half = special.stdtrit(dof, 0.5 + self.level / 2.0) * std  # Student-t quantile
             transform = self.transforms[name]
             results[name] = tuple(inverse(v, transform) for v in (mean, mean - half, mean + half))
         return {

@@ -2,7 +2,8 @@
 configured transfer methods on training basins, and simulate a donation at target basins.
 
 :func:`fit_methods` fits every configured method (and the median benchmark) on the training
-basins' attributes and parameters with :func:`regional.transfer.fit_transfer`;
+basins' attributes and parameters with :func:`regional.transfer.fit_transfer` (their plain
+classes: prediction from a stored fitted region imports no scikit-learn);
 :class:`DonationSimulation` turns a donation into each target's daily flow from the targets'
 forcing arrays (the model, the fixed snow parameters, the warm-up and the initial storage of
 the fitted window; donors combined by :func:`regional.transfer.simulate_donors`). Only plain
@@ -123,6 +124,7 @@ def fit_methods(
                 power=options.power,
                 combine=options.combine,
                 level=level,
+                plain=True,
             )
     notes = sorted({f"prediction: {w.message}" for w in caught})
     return estimators, notes

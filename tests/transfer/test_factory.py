@@ -1,4 +1,4 @@
-"""make_transfer and TRANSFER_METHODS: build estimators by method name."""
+"""make_transfer and TRANSFER_METHODS: build estimators (or their plain classes) by method name."""
 
 from __future__ import annotations
 
@@ -8,23 +8,38 @@ from regional import config
 from regional.errors import InputError
 from regional.transfer import (
     TRANSFER_METHODS,
+    BlendedFit,
     BlendedTransfer,
+    MedianFit,
     MedianTransfer,
+    ProximityFit,
     ProximityTransfer,
+    RegressionFit,
     RegressionTransfer,
+    SimilarityFit,
     SimilarityTransfer,
+    estimator_class,
     make_transfer,
 )
 
 
-def test_registry_names_the_five_methods():
+def test_registry_names_the_five_methods_and_their_estimators():
     assert TRANSFER_METHODS == {
+        "regression": RegressionFit,
+        "similarity": SimilarityFit,
+        "proximity": ProximityFit,
+        "blended": BlendedFit,
+        "median": MedianFit,
+    }
+    estimators = {name: estimator_class(name) for name in TRANSFER_METHODS}
+    assert estimators == {
         "regression": RegressionTransfer,
         "similarity": SimilarityTransfer,
         "proximity": ProximityTransfer,
         "blended": BlendedTransfer,
         "median": MedianTransfer,
     }
+    assert all(issubclass(estimators[name], TRANSFER_METHODS[name]) for name in estimators)
 
 
 def test_config_allows_every_registered_method():

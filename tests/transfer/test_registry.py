@@ -14,9 +14,10 @@ import inspect
 import numpy as np
 import pandas as pd
 import pytest
-from sklearn.base import clone
+from sklearn.base import BaseEstimator, clone
 from sklearn.exceptions import NotFittedError
 
+from regional.errors import InputError
 from regional.transfer import (
     DONOR_METHODS,
     SHARED_SETTINGS,
@@ -92,6 +93,35 @@ def test_fit_transfer_donates_weighted_sets_holding_the_estimate(name, region):
     high = donation.intervals["k_per_day_high"]
     assert ((low <= estimate["k_per_day"]) & (estimate["k_per_day"] <= high)).all()
     assert (donation.sets["k_per_day"] > 0).all()
+
+
+def test_plain_class_donates_what_the_estimator_donates(name, region):
+    """Prediction fits the plain class (no scikit-learn): its numbers are the estimator's."""
+    X, y = region
+    fits = [
+        fit_transfer(
+            name,
+            X.iloc[:18],
+            y.iloc[:18],
+            transforms={"k_per_day": "log"},
+            plain=plain,
+            **SETTINGS,
+        )
+        for plain in (False, True)
+    ]
+    assert isinstance(fits[0], BaseEstimator) and not isinstance(fits[1], BaseEstimator)
+    donations = [fit.donate(X.iloc[18:]) for fit in fits]
+    pd.testing.assert_frame_equal(donations[0].sets, donations[1].sets, check_exact=True)
+    pd.testing.assert_frame_equal(donations[0].intervals, donations[1].intervals, check_exact=True)
+    pd.testing.assert_frame_equal(
+        fits[0].predict(X.iloc[18:]), fits[1].predict(X.iloc[18:]), check_exact=True
+    )
+
+
+def test_unfitted_plain_class_refuses_to_donate(name, region):
+    X, _ = region
+    with pytest.raises(InputError, match="not fitted yet"):
+        make_transfer(name, plain=True).donate(X)
 
 
 @pytest.mark.parametrize("method", DONOR_METHODS)
