@@ -12,8 +12,9 @@ already imported, as in a notebook or a service):
   (e) the 5 sites: the stored fitted region read and checked, the sites loaded and given
       attributes, the estimates made and written,
 and (e) / (d). The target of issue 15 is a ratio below 0.1. Beside them, (f): a process that
-only imports the libraries ``predict --sites`` needs (numpy, pandas, scipy.stats, scikit-learn,
-numba, geopandas, pyarrow, rasterio), the floor of (c) that no change inside ``regional`` can
+only imports the libraries ``predict --sites`` needs (numpy, pandas, scipy.special, numba,
+geopandas, pyarrow, rasterio; no scikit-learn, scipy.stats or scipy.optimize: the stored fitted
+region is applied without them), the floor of (c) that no change inside ``regional`` can
 lower; (c) - (f) is what ``regional`` itself spends (numba's first-call start, reading the fitted
 region, attributes of the sites, simulation, writing the files).
 
@@ -109,9 +110,10 @@ def _cut_sites(region: Path, folder: Path) -> Path:
     return folder / "intakes.gpkg"
 
 
-LIBRARIES = "numpy, pandas, scipy.stats, sklearn.base, numba, geopandas, pyarrow.parquet, rasterio"
-"""What ``regional predict --sites`` imports (scikit-learn for the transfer estimators, numba for
-the storage kernels, geopandas/rasterio for the sites' attributes)."""
+LIBRARIES = "numpy, pandas, scipy.special, numba, geopandas, pyarrow.parquet, rasterio"
+"""What ``regional predict --sites`` imports (scipy.special for the Student-t, chi-squared and
+Pearson III quantiles, numba for the storage kernels, geopandas/rasterio for the sites'
+attributes; tests/test_cli_run.py checks that scikit-learn and scipy.stats are not imported)."""
 
 
 def _timed_imports() -> float:

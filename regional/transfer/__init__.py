@@ -44,33 +44,33 @@ TRANSFER_METHODS = {
 }
 """The registry: method name -> its plain class (fit, donate and predict with numpy and pandas,
 no scikit-learn; :class:`regional.transfer.base.PlainFit`). A new method is one module (its
-plain class following the contract above, its options in ``__init__``), one line here and its
-scikit-learn estimator in :mod:`regional.transfer.estimators` (loaded on first use, so that
-reading the config or predicting from a stored fitted region imports no scikit-learn); the
+plain class following the contract above, its options in ``__init__``) and one line here;
+:mod:`regional.transfer.estimators` makes its scikit-learn estimator (loaded on first use, so
+that reading the config or predicting from a stored fitted region imports no scikit-learn); the
 config reads the allowed names from this registry, and :func:`make_transfer` passes each method
 the shared settings its ``__init__`` takes."""
 
-ESTIMATORS = {
-    "RegressionTransfer",
-    "SimilarityTransfer",
-    "ProximityTransfer",
-    "BlendedTransfer",
-    "MedianTransfer",
-}
+
+def estimator_name(plain: type) -> str:
+    """Name of the scikit-learn estimator of a plain class (``RegressionFit`` ->
+    ``RegressionTransfer``), made by :mod:`regional.transfer.estimators`."""
+    return plain.__name__.removesuffix("Fit") + "Transfer"
+
+
+ESTIMATORS = tuple(estimator_name(plain) for plain in TRANSFER_METHODS.values())
 """Names of the scikit-learn estimators, importable from this package (loaded on first use)."""
 
 
 def estimator_class(name: str) -> type:
-    """The scikit-learn estimator of method ``name`` (its plain class, ``Fit`` -> ``Transfer``).
+    """The scikit-learn estimator of method ``name`` (loaded, with scikit-learn, on first use).
 
     Raises
     ------
     InputError
         For an unknown method name (with the closest known name).
     """
-    plain = _registered(name).__name__
     estimators = importlib.import_module("regional.transfer.estimators")
-    return getattr(estimators, plain.removesuffix("Fit") + "Transfer")
+    return estimators.BY_NAME[estimator_name(_registered(name))]
 
 
 def __getattr__(name: str):
@@ -223,6 +223,7 @@ __all__ = [
     "SimilarityTransfer",
     "average_parameters",
     "estimator_class",
+    "estimator_name",
     "fit_transfer",
     "great_circle_km",
     "inverse_distance_weights",

@@ -1,12 +1,13 @@
-"""The transfer methods as scikit-learn estimators (``BaseEstimator``).
+"""The transfer methods as scikit-learn estimators (``BaseEstimator``), one per registry entry.
 
 Each method's module holds its fit, donation and prediction as a plain class without
-scikit-learn (:class:`regional.transfer.base.PlainFit`); here each becomes an estimator with
-scikit-learn's parameter handling (``get_params``, ``set_params``, ``clone``) and its
-``NotFittedError``. Leave-one-out, the held-out check and the user's own code fit these;
+scikit-learn (:class:`regional.transfer.base.PlainFit`); here each registered plain class
+becomes an estimator with scikit-learn's parameter handling (``get_params``, ``set_params``,
+``clone``) and its ``NotFittedError``, named after it (``RegressionFit`` ->
+``RegressionTransfer``). Leave-one-out, the held-out check and the user's own code fit these;
 prediction from a stored fitted region fits the plain classes, so that it imports no
-scikit-learn. The estimator of a method is named after its plain class, ``Fit`` replaced by
-``Transfer`` (:func:`regional.transfer.estimator_class` finds it).
+scikit-learn. Nothing here is written per method: a new method is its module and its line in
+:data:`regional.transfer.TRANSFER_METHODS`.
 """
 
 from __future__ import annotations
@@ -14,10 +15,7 @@ from __future__ import annotations
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
-from regional.transfer.blended import BlendedFit
-from regional.transfer.donors import ProximityFit, SimilarityFit
-from regional.transfer.median import MedianFit
-from regional.transfer.regression import RegressionFit
+from regional.transfer import TRANSFER_METHODS, estimator_name
 
 
 class _Estimator(BaseEstimator):
@@ -27,21 +25,12 @@ class _Estimator(BaseEstimator):
         check_is_fitted(self)
 
 
-class RegressionTransfer(_Estimator, RegressionFit):
-    __doc__ = RegressionFit.__doc__
+def _estimator(plain: type) -> type:
+    """The estimator class of a plain class: importable here by its name (pickles by name)."""
+    name = estimator_name(plain)
+    return type(name, (_Estimator, plain), {"__module__": __name__, "__doc__": plain.__doc__})
 
 
-class SimilarityTransfer(_Estimator, SimilarityFit):
-    __doc__ = SimilarityFit.__doc__
-
-
-class ProximityTransfer(_Estimator, ProximityFit):
-    __doc__ = ProximityFit.__doc__
-
-
-class BlendedTransfer(_Estimator, BlendedFit):
-    __doc__ = BlendedFit.__doc__
-
-
-class MedianTransfer(_Estimator, MedianFit):
-    __doc__ = MedianFit.__doc__
+BY_NAME = {estimator_name(plain): _estimator(plain) for plain in TRANSFER_METHODS.values()}
+"""Estimator name -> class, for every registered method."""
+globals().update(BY_NAME)
