@@ -1228,11 +1228,19 @@ def _float_text(table: pd.DataFrame) -> pd.DataFrame:
         return table
     table = table.copy(deep=False)
     for i in floats:
-        values = table.iloc[:, i].to_numpy()
-        text = np.array(list(map(repr, values.tolist())), dtype=object)
-        text[np.isnan(values)] = ""
-        table.isetitem(i, text)
+        table.isetitem(i, _column_text(table.iloc[:, i].to_numpy()))
     return table
+
+
+def _column_text(values: np.ndarray) -> np.ndarray:
+    """The text of a float64 column (see :func:`_float_text`); a column of one value (the same
+    bits in every row, e.g. the bounds' ``level``) is turned into text once."""
+    if len(values) and (values.view(np.int64) == values.view(np.int64)[0]).all():
+        first = values[0]
+        return np.full(len(values), "" if np.isnan(first) else repr(float(first)), dtype=object)
+    text = np.array(list(map(repr, values.tolist())), dtype=object)
+    text[np.isnan(values)] = ""
+    return text
 
 
 def _fill_run_folder(staging, tables, layers, crs, figures, report, manifest) -> None:

@@ -326,6 +326,9 @@ def test_tables_written_a_few_rows_at_a_time_are_the_same_bytes():
             "date": pd.date_range("2001-01-01", periods=n, freq="D"),
             "flow_mm": np.where(np.arange(n) % 9 == 0, np.nan, rng.lognormal(0.0, 3.0, n)),
             "count": np.arange(n),
+            "level": 0.9,  # columns of one value are turned into text once
+            "zero": -0.0,
+            "missing": np.nan,
         }
     )
     indexed = table.set_index("basin_id")
