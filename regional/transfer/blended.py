@@ -20,6 +20,9 @@ by the spread makes the two terms unitless and comparable whatever the size of t
 The k donors with the smallest D are weighted by inverse distance, as in the other donor methods
 (Shepard 1968). With a = 1 the ranking and the weights are those of similarity, with a = 0 those
 of proximity (a constant scale changes neither). See ``docs/transfer-blended.md``.
+
+:class:`BlendedFit` holds the method without scikit-learn; its estimator
+``BlendedTransfer`` is made in :mod:`regional.transfer.estimators`.
 """
 
 from __future__ import annotations

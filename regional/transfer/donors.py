@@ -1,9 +1,12 @@
 """Donor transfers: the k nearest gauged basins give their parameter sets, weighted by distance.
 
-- :class:`SimilarityTransfer` (physical similarity): nearest in attribute space, each attribute
+- :class:`SimilarityFit` (physical similarity): nearest in attribute space, each attribute
   standardised with the mean and standard deviation of the training donors only.
-- :class:`ProximityTransfer` (spatial proximity): nearest by great-circle distance between
+- :class:`ProximityFit` (spatial proximity): nearest by great-circle distance between
   centroids (or outlets), haversine formula on a sphere of the mean Earth radius.
+
+Both are plain classes without scikit-learn; their estimators ``SimilarityTransfer`` and
+``ProximityTransfer`` are made in :mod:`regional.transfer.estimators`.
 
 Both weight donor i by w_i = d_i^-power / sum_j d_j^-power (inverse distance weighting, Shepard
 1968, Proc. 23rd ACM National Conference, 517-524). Donors at distance 0 share all the weight

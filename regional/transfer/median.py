@@ -6,6 +6,9 @@ count and a log parameter it is the geometric mean of the two middle values). Th
 central ``level`` range of the training parameters (sample quantiles, linear interpolation:
 Hyndman and Fan 1996, The American Statistician 50(4), 361-365, definition 7). See
 ``docs/transfer-median.md``.
+
+:class:`MedianFit` holds the method without scikit-learn; its estimator
+``MedianTransfer`` is made in :mod:`regional.transfer.estimators`.
 """
 
 from __future__ import annotations

@@ -8,6 +8,9 @@ intervals at a target use the OLS observation prediction variance
 sigma^2 (1 + x0' (X'X)^-1 x0) with Student-t quantiles (e.g. Kutner et al. 2005, Applied Linear
 Statistical Models, 5th ed., McGraw-Hill), back-transformed to parameter units. See
 ``docs/transfer-regression.md``.
+
+:class:`RegressionFit` holds the method without scikit-learn; its estimator
+``RegressionTransfer`` is made in :mod:`regional.transfer.estimators`.
 """
 
 from __future__ import annotations
