@@ -105,8 +105,8 @@ def fit_methods(
     Returns
     -------
     (estimators, notes)
-        Method -> fitted estimator; the distinct warnings raised while fitting, each prefixed
-        ``"prediction: "``.
+        Method -> the method's fitted plain class (no scikit-learn; the same numbers as its
+        estimator); the distinct warnings raised while fitting, each prefixed ``"prediction: "``.
     """
     attributes = list(options.attributes) if options.attributes else None
     chosen = method_order(options.methods)[1:] if methods is None else tuple(methods)
