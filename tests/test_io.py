@@ -345,6 +345,45 @@ def test_tables_written_a_few_rows_at_a_time_are_the_same_bytes():
     assert stream.getvalue() == table.iloc[:0].to_csv(index=False)  # the header alone
 
 
+@pytest.mark.parametrize(
+    "column",
+    [
+        ["a,b", "c", "d"],  # text to quote
+        ['say "x"', "c", "d"],
+        ["line\nbreak", "c", "d"],
+        ["", "c", "d"],  # empty text
+        [None, "c", "d"],  # missing text
+        pd.array(["a", None, "c"], dtype="string"),
+        pd.to_datetime(
+            ["2001-01-01 06:00", "2001-01-02 00:00", "2001-01-03 00:00"]
+        ),  # a time of day
+        pd.to_datetime(["2001-01-01", None, "2001-01-03"]),  # a missing date
+        [True, False, True],
+        pd.array([1, None, 3], dtype="Int64"),
+        np.array([1.5, np.inf, -np.inf], dtype=np.float32),
+        np.array([-0.0, np.inf, -np.inf]),
+        np.array([7, 8, 9], dtype=np.uint16),
+    ],
+    ids=repr,
+)
+def test_tables_of_any_column_are_written_as_pandas_writes_them(column):
+    # the writer joins the text of plain columns itself and leaves the others to pandas:
+    # either way the bytes are those pandas' to_csv writes for each block of rows
+    import io as stdio
+
+    table = pd.DataFrame(
+        {"basin_id": ["b1", "b2", "b3"], "column": column, "flow_mm": [0.5, np.nan, 2.0]}
+    )
+    for rows in (1, 2, 3):
+        stream = stdio.StringIO()
+        io._table_to_csv(table, stream, rows_at_a_time=rows)
+        blocks = range(0, len(table), rows)
+        expected = "".join(
+            table.iloc[i : i + rows].to_csv(index=False, header=i == 0) for i in blocks
+        )
+        assert stream.getvalue() == expected, rows
+
+
 def _dead_pid() -> int:
     import subprocess
     import sys
