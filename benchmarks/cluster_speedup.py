@@ -48,8 +48,8 @@ def _shipping(chunks, context, results) -> dict:
 
 
 def _measure_shipping(record: list) -> None:
-    """Wrap DaskExecutor.map and map_batches to count the pickled bytes scattered and
-    gathered per stage (per batch: a repeat of the held-out check)."""
+    """Wrap DaskExecutor.map, map_batches, map_keeping and start_map to count the pickled
+    bytes scattered and gathered per stage (per batch: a repeat of the held-out check)."""
     from regional import compute
 
     original, batches = compute.DaskExecutor.map, compute.DaskExecutor.map_batches
@@ -59,19 +59,29 @@ def _measure_shipping(record: list) -> None:
         record.append(_shipping(chunks, context, results))
         return results
 
-    def counted_batches(self, items, *, ahead=compute.BATCHES_AHEAD, shared=None):
+    def counted_batches(self, items, *, ahead=compute.BATCHES_AHEAD, shared=None, keep=False):
         items = list(items)
         shared_bytes = len(pickle.dumps(shared)) if shared is not None else 0  # once
         for (_, chunks, context, *finish), results in zip(
-            items, batches(self, items, ahead=ahead, shared=shared), strict=True
+            items, batches(self, items, ahead=ahead, shared=shared, keep=keep), strict=True
         ):
             # a batch finished on the workers sends back only what its finishing task gives
-            shipped = _shipping(chunks, context, [results] if finish else results)
+            # (with ``keep``: the small part; the kept part stays on a worker)
+            gathered = results[0] if finish and keep else results
+            shipped = _shipping(chunks, context, [gathered] if finish else gathered)
             if finish:
                 shipped["finished"] = True
                 shipped["shared_bytes"] = shared_bytes
             record.append(shipped)
             yield results
+
+    keeping = compute.DaskExecutor.map_keeping
+
+    def counted_keeping(self, function, chunks, context, *, progress=None):
+        # the daily blocks stay on the workers: only the small parts are gathered
+        small, kept = keeping(self, function, chunks, context, progress=progress)
+        record.append(_shipping(chunks, context, small) | {"kept": True})
+        return small, kept
 
     started = compute.DaskExecutor.start_map
 
@@ -87,6 +97,7 @@ def _measure_shipping(record: list) -> None:
 
     compute.DaskExecutor.map = counted
     compute.DaskExecutor.map_batches = counted_batches
+    compute.DaskExecutor.map_keeping = counted_keeping
     compute.DaskExecutor.start_map = counted_start
 
 
@@ -313,8 +324,9 @@ def main() -> None:
             )
             continue
         per_chunk = stage["gathered_bytes"] / stage["chunks"] / 1e3
+        kept = " (its daily blocks kept on the workers)" if stage.get("kept") else ""
         print(
-            f"  stage of {stage['chunks']} chunks: scattered once {scattered:.0f} kB; "
+            f"  stage of {stage['chunks']} chunks{kept}: scattered once {scattered:.0f} kB; "
             f"sent {sent:.0f} kB and gathered {per_chunk:.0f} kB per chunk"
         )
 
