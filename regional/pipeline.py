@@ -59,6 +59,13 @@ basin), and while one worker runs the stage's last task the other may idle, so t
 twice as fine as other stages' (10 basins per task for 150 basins on 2 workers, not 16)."""
 LOO_CHUNK = 8
 """Target basins per leave-one-out task (``[compute] chunk_basins`` overrides)."""
+KEEP_ON_WORKERS_FROM = 1000
+"""Basins (gauged and ungauged) from which a cluster's daily results (leave-one-out flows,
+held-out summaries, the prediction's grids) stay on its workers when the caller keeps the
+executor open (:mod:`regional.kept`). Below it the client gathers them: about 0.2 MB per basin
+over 20 years, 200 MB at this size, while keeping them costs the workers extra work (the
+tasks that need a whole grid gather its blocks) and cost the 200-basin GR4J chain of
+``benchmarks/cluster_speedup.py`` about a tenth of its speed-up (docs/scale.md)."""
 
 Progress = Callable[[str, int, int], None] | None
 
@@ -116,8 +123,9 @@ def run(
         An executor opened by the caller (:func:`open_executor`), used instead of
         ``scheduler`` and ``workers`` and left open (e.g. to draw the figures on the same
         cluster with :func:`regional.outputs.write_outputs`); the caller closes it. A Dask
-        executor given so keeps the leave-one-out flows on its workers
-        (:mod:`regional.kept`): keep it open while the result is used.
+        executor given so keeps the daily results of a region of
+        :data:`KEEP_ON_WORKERS_FROM` basins or more on its workers (:mod:`regional.kept`):
+        keep it open while the result is used.
 
     Returns
     -------
@@ -134,7 +142,8 @@ def run(
             region = load_region(settings, series_in_store=executor.name == "dask")
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", InputWarning)
-            stages = _chain(settings, region, executor, progress, timings, keep=not own)
+            keep = not own and len(region.basins) >= KEEP_ON_WORKERS_FROM
+            stages = _chain(settings, region, executor, progress, timings, keep=keep)
     finally:
         if own:
             executor.close()

@@ -15,6 +15,12 @@ from regional.errors import InputWarning
 DEMO_REGION = Path(__file__).resolve().parents[1] / "demo_region"
 
 
+@pytest.fixture(autouse=True)
+def _kept_at_any_size(monkeypatch):
+    # these tests' regions are small: keep their daily results on the workers all the same
+    monkeypatch.setattr("regional.pipeline.KEEP_ON_WORKERS_FROM", 0)
+
+
 def _run(folder, executor=None):
     from regional.pipeline import run
 
@@ -94,6 +100,30 @@ def test_in_process_runs_keep_plain_frames(region_folder):
     assert isinstance(loo.observed, pd.DataFrame)
     assert all(isinstance(flows, pd.DataFrame) for flows in loo.simulated.values())
     assert isinstance(result.prediction.daily.flow_mm, pd.DataFrame)
+
+
+def test_a_small_region_on_an_open_cluster_is_gathered(region_folder, monkeypatch):
+    # Below KEEP_ON_WORKERS_FROM basins the client gathers the daily results even when the
+    # caller keeps the executor open: plain frames, equal to the in-process run's.
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    from regional.compute import DaskExecutor
+    from regional.pipeline import run
+
+    monkeypatch.setattr("regional.pipeline.KEEP_ON_WORKERS_FROM", 10_000)
+    here = _run(region_folder)
+    executor = DaskExecutor(workers=2)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", InputWarning)
+            there = run(region_folder, executor=executor)
+    finally:
+        executor.close()
+    loo, expected = there.runs[there.chosen_model].loo, here.runs[here.chosen_model].loo
+    assert isinstance(loo.observed, pd.DataFrame)
+    pd.testing.assert_frame_equal(loo.observed, expected.observed)
+    for method, flows in expected.simulated.items():
+        pd.testing.assert_frame_equal(loo.simulated[method], flows)
+    assert isinstance(there.prediction.daily.flow_mm, pd.DataFrame)
 
 
 def test_held_out_summaries_stay_on_the_workers_with_the_same_check(demo_result):
