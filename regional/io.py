@@ -1494,7 +1494,9 @@ def _write_file(folder: Path, name: str, content: bytes | pd.DataFrame | Callabl
         path.write_bytes(content)
 
 
-def _update_extra_files(target: Path, files: Mapping[str, bytes | pd.DataFrame]) -> None:
+def _update_extra_files(
+    target: Path, files: Mapping[str, bytes | pd.DataFrame | Callable]
+) -> None:
     """Replace further files atomically; stale files of the sub-folders named are removed."""
     for name, content in files.items():
         path = target / name

@@ -91,7 +91,8 @@ class KeptBlocks:
     def _check_open(self) -> None:
         if getattr(self.executor.client, "status", "running") != "running":
             raise RuntimeError(
-                "the leave-one-out flows stayed on the cluster's workers, and that cluster's "
+                "the run's daily results (leave-one-out flows, held-out summaries, the "
+                "prediction's flows) stayed on the cluster's workers, and that cluster's "
                 "client is closed: keep the executor open while the result is used "
                 "(regional.pipeline.run(..., executor=...)), or run without one"
             )

@@ -86,7 +86,8 @@ the parameter of that name."""
 
 
 def method_settings(name: str) -> tuple[str, ...]:
-    """The shared settings method ``name`` takes (read from its estimator's ``__init__``)."""
+    """The shared settings method ``name`` takes (read from its plain
+    class's ``__init__``, which its estimator inherits)."""
     parameters = inspect.signature(_registered(name).__init__).parameters
     return tuple(setting for setting in SHARED_SETTINGS if setting in parameters)
 
