@@ -163,6 +163,7 @@ def _client_mark() -> tuple:
         getattr(compute, "CLIENT_MARK", None),
         dask.config.get("distributed.worker.profile.enabled"),
         gc.get_freeze_count() > 0,
+        {name: dask.config.get(name) for name in compute.QUIET_CLUSTER},
     )
 
 
@@ -181,9 +182,9 @@ def test_local_workers_start_as_copies_of_the_client_with_its_modules_unprofiled
         assert "regional.pipeline" in sys.modules
         # no statistical profile is sampled on a local worker (no dashboard shows it), and
         # the objects it inherited are frozen (its collections skip them); this process's are
-        # not
+        # not; its event loop and system monitor run at the quieter intervals
         assert list(executor.client.run(_client_mark).values()) == [
-            ("set in the client", False, True)
+            ("set in the client", False, True, compute.QUIET_CLUSTER)
         ]
         assert gc.get_freeze_count() == 0
     finally:

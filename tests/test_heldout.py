@@ -305,3 +305,62 @@ def test_a_worker_keeps_the_tables_it_read_for_the_next_repeats(
     none_kept = heldout._KeptReader(reader, check="a third")
     none_kept.read(first)
     assert none_kept.read(first).rows_read > 0  # nothing kept within a budget of 0 bytes
+
+
+def test_a_repeat_summary_reads_the_precipitation_its_tasks_kept(
+    tmp_path, demo_result, monkeypatch
+):
+    # Where the region's series stay in the store (a cluster run), a repeat's summary reads
+    # the precipitation of its flow statistics through the tables its tasks kept on the
+    # worker (no row read again); the summaries equal those of the in-process check exactly.
+    from dataclasses import replace
+
+    from regional import heldout
+    from regional.compute import InProcessExecutor
+    from regional.region import convert_series
+    from regional.series import StoreReader, store_reader, store_tables
+
+    settings = demo_result.settings
+    convert_series(settings, tmp_path / "store.parquet")
+    settings = replace(settings, series=replace(settings.series, path=tmp_path / "store.parquet"))
+    run = demo_result.runs[demo_result.chosen_model]
+    method = demo_result.chosen_method
+    days = run.context.precip_mm.index
+    reader = store_reader(settings, days, with_temp=run.context.temp_c is not None)
+    basins = [str(b) for b in run.context.precip_mm.columns]
+    stored = store_tables(reader, pd.Index(basins))["precip_mm"]
+    column = heldout._KeptColumn.of(stored, reader, "a check")
+    heldout._KeptReader(reader, "a check").read(basins)  # as the repeat's tasks did
+    reads = []
+    original = StoreReader.read_grids
+    monkeypatch.setattr(StoreReader, "read_grids", lambda s, b: reads.append(b) or original(s, b))
+    pd.testing.assert_frame_equal(
+        column.reindex(columns=basins[::-1]),
+        stored.reindex(columns=basins[::-1]),
+        check_exact=True,
+    )
+    assert reads == [basins[::-1][i : i + 64] for i in range(0, len(basins), 64)]  # the store's
+    # over other days, or where no store reader is given: the store's table as it is
+    assert heldout._KeptColumn.of(stored.over(np.arange(5)), reader, "a check").shape[0] == 5
+    assert not isinstance(heldout._KeptColumn.of(stored, None, "a check"), heldout._KeptColumn)
+
+    job = heldout._SummaryJob(run.loo.observed, run.loo.simulated[method], stored, 0.8, 3)
+    stored_run = replace(run, context=replace(run.context, precip_mm=stored))
+    options = {"repeats": 3, "fit_level": 0.9, "job": job, "reader": reader}
+
+    def summaries() -> tuple[list, int]:
+        del reads[:]
+        found = heldout._summaries(stored_run, method, executor=InProcessExecutor(), **options)
+        return list(found), len(reads)
+
+    kept, kept_reads = summaries()
+    monkeypatch.setattr(heldout._KeptColumn, "of", lambda table, reader, check: table)
+    read_again, reads_again = summaries()
+    assert kept_reads == 1 < reads_again  # the tasks read the basins once, the summaries never
+    for one, two in zip(kept, read_again, strict=True):
+        pd.testing.assert_frame_equal(
+            one.training_statistics, two.training_statistics, check_exact=True
+        )
+        pd.testing.assert_frame_equal(
+            one.held_out_statistics, two.held_out_statistics, check_exact=True
+        )
