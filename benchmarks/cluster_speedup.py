@@ -26,7 +26,7 @@ each run, the load average and how much more work two processes did than one in 
 (about 2 on an idle 2-core machine, about 1 when other work keeps the cores busy): no cluster
 can gain more than that, so read the ratios with it.
 
-Run:  python benchmarks/cluster_speedup.py [--basins 60] [--years 10] [--pairs 1]
+Run:  python benchmarks/cluster_speedup.py [--basins 60] [--years 10] [--pairs 1] [--save F]
 Every value of the synthetic region is invented.
 """
 
@@ -397,6 +397,7 @@ def main() -> None:
     parser.add_argument(
         "--pairs", type=int, default=1, help="in-process / cluster pairs run alternately"
     )
+    parser.add_argument("--save", type=Path, help="write every pair's measurements (JSON)")
     parser.add_argument("--child", nargs=2, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
@@ -410,6 +411,8 @@ def main() -> None:
         folder.mkdir()
         build(folder, args.basins, args.years)
         pairs = _pairs(folder, args.pairs)
+    if args.save:
+        args.save.write_text(json.dumps(pairs))
     print(
         f"GR4J chain, {args.basins} basins x {args.years} years (invented), {os.cpu_count()} cores"
     )

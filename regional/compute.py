@@ -114,9 +114,8 @@ QUIET_CLUSTER = {
 """Dask settings of a local cluster's scheduler, nannies and workers: their event loops check
 they are not blocked every 200 ms (Dask's default 20 ms) and they sample their own CPU and
 memory every 2 s (default 0.5 s; no dashboard shows them). With the defaults an idle 2-worker
-cluster cost 1.1-1.3 s of CPU per 20 s (the client, where the scheduler and the nannies run,
-and the two workers; development machine, three runs), 0.5 s with these settings; a busy
-worker's task thread also shared the interpreter lock with those callbacks. The memory
+cluster cost 1.0-1.3 s of CPU per 20 s (the client, where the scheduler and the nannies run,
+and the two workers; development machine, three runs), 0.5 s with these settings. The memory
 monitor that restarts a worker over its limit keeps Dask's interval."""
 
 
