@@ -416,7 +416,8 @@ class _KeptColumn(LazyTable):
     flow statistics of a repeat's summary read the precipitation of basins the repeat's
     tasks have just read, on a worker that mostly kept them (read from the store again: 0.9 s
     of the workers' CPU in 10 repeats of 150 basins on the development machine). The values
-    of the table's own :meth:`StoreTable.read`."""
+    of the table's own :meth:`StoreTable.read`; once the kept tables are full, basins not
+    kept are read as that does (one column, not kept)."""
 
     kept: _KeptReader
     table: StoreTable
@@ -434,8 +435,14 @@ class _KeptColumn(LazyTable):
         return self.table.over(positions)
 
     def read(self, basins: Sequence[str]) -> pd.DataFrame:
+        """The basins' values: through the kept tables while they have room or hold them
+        all, else this table's one column from the store (as :meth:`StoreTable.read`)."""
         (name,) = self.table.reader.columns
-        return self.kept.read([str(b) for b in basins], names=[name]).tables[name]
+        basins = [str(b) for b in basins]
+        state = _worker_state(self.kept.check)
+        if state.nbytes < KEPT_TABLE_BYTES or all(b in state.rows for b in basins):
+            return self.kept.read(basins, names=[name]).tables[name]
+        return self.table.read(basins)
 
     @classmethod
     def of(cls, table, reader: StoreReader | None, check: str):

@@ -340,6 +340,14 @@ def test_a_repeat_summary_reads_the_precipitation_its_tasks_kept(
         check_exact=True,
     )
     assert reads == [basins[::-1][i : i + 64] for i in range(0, len(basins), 64)]  # the store's
+    # with the kept tables full, basins not kept are read as the store's table reads them
+    monkeypatch.setattr(heldout, "KEPT_TABLE_BYTES", 0)
+    full = heldout._KeptColumn.of(stored, reader, "a full check")
+    del reads[:]
+    pd.testing.assert_frame_equal(full.reindex(columns=basins), stored[basins], check_exact=True)
+    assert len(reads) == 2 * len(range(0, len(basins), 64))  # each read once by each table
+    monkeypatch.undo()
+    monkeypatch.setattr(StoreReader, "read_grids", lambda s, b: reads.append(b) or original(s, b))
     # over other days, or where no store reader is given: the store's table as it is
     assert heldout._KeptColumn.of(stored.over(np.arange(5)), reader, "a check").shape[0] == 5
     assert not isinstance(heldout._KeptColumn.of(stored, None, "a check"), heldout._KeptColumn)
