@@ -17,7 +17,8 @@ import pandas as pd
 from regional.bounds import ConformalErrorModel
 from regional.config import Settings
 from regional.fitted import FittedRegion, fit_settings, plain
-from regional.kept import is_kept, whole
+from regional.io import TableParts
+from regional.kept import day_parts
 from regional.transfer.step import TransferOptions
 
 FORMAT = 1
@@ -33,7 +34,7 @@ COVERAGE = f"{FOLDER}/coverage.parquet"
 HELD_OUT = f"{FOLDER}/held_out.parquet"
 
 
-def fitted_files(fitted: FittedRegion) -> tuple[bytes, dict[str, pd.DataFrame]]:
+def fitted_files(fitted: FittedRegion) -> tuple[bytes, dict[str, pd.DataFrame | TableParts]]:
     """The fitted region as the JSON text of ``fitted/region.json`` and Parquet tables.
 
     Returns
@@ -41,8 +42,9 @@ def fitted_files(fitted: FittedRegion) -> tuple[bytes, dict[str, pd.DataFrame]]:
     (meta, tables)
         UTF-8 JSON bytes (floats written exactly: Python's shortest round-trip repr, with
         ``Infinity`` for an unbounded class) and file name -> DataFrame (written as Parquet,
-        index kept); the leave-one-out flows, where they stayed on a cluster's workers
-        (:mod:`regional.kept`), as a call that fetches the DataFrame when it is written.
+        index kept); the two leave-one-out flows as :class:`regional.io.TableParts`, written
+        a row group per run of days (fetched part by part where they stayed on a cluster's
+        workers, :mod:`regional.kept`).
     """
     model = fitted.error_model
     meta = {
@@ -92,15 +94,20 @@ def fitted_files(fitted: FittedRegion) -> tuple[bytes, dict[str, pd.DataFrame]]:
     return (text + "\n").encode("utf-8"), tables
 
 
-def _when_written(table):
-    """A DataFrame as it is; a flow left on the workers (:mod:`regional.kept`) as a call that
-    fetches it when its file is written (:func:`regional.io.write_run_folder`)."""
-    return partial(whole, table) if is_kept(table) else table
+def _when_written(table) -> TableParts:
+    """A leave-one-out flow (days x gauged basins) written a run of days at a time, one
+    Parquet row group each (:func:`regional.kept.day_parts`): a flow left on the workers
+    (:mod:`regional.kept`) is fetched part by part as its file is written, never whole (at
+    7,500 gauged basins over 9 years of evaluation days a flow takes 99 MB as float32). A
+    DataFrame is cut into the same parts, so the file has the same bytes either way."""
+    return TableParts(partial(day_parts, table))
 
 
-def from_files(meta: bytes, tables: dict[str, pd.DataFrame]) -> FittedRegion:
-    """Rebuild a :class:`FittedRegion` from :func:`fitted_files`' output."""
+def from_files(meta: bytes, tables: dict[str, pd.DataFrame | TableParts]) -> FittedRegion:
+    """Rebuild a :class:`FittedRegion` from :func:`fitted_files`' output, or from its files
+    read back (:func:`regional.io.read_folder_files`)."""
     info = json.loads(meta.decode("utf-8"))
+    tables = {name: _whole(table) for name, table in tables.items()}
     model = info["error_model"]
     window = info["window"]
     options = info["options"]
@@ -152,6 +159,14 @@ def from_files(meta: bytes, tables: dict[str, pd.DataFrame]) -> FittedRegion:
         inputs=dict(info["inputs"]),
         settings=info["settings"],
     )
+
+
+def _whole(table: pd.DataFrame | TableParts) -> pd.DataFrame:
+    """A table as one DataFrame (the parts of :class:`TableParts` put together)."""
+    if not isinstance(table, TableParts):
+        return table
+    parts = list(table.parts())
+    return pd.concat(parts) if len(parts) > 1 else parts[0]
 
 
 def _held_out_attrs(attrs: dict) -> dict:

@@ -20,6 +20,7 @@ import threading
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
+from functools import partial
 from io import BytesIO
 from pathlib import Path
 
@@ -970,7 +971,7 @@ def write_run_folder(
     figures: Mapping[str, bytes] | Callable[[], Mapping[str, bytes]],
     report: str | None | Callable[[], str | None],
     manifest: Mapping[str, object],
-    files: Mapping[str, bytes | pd.DataFrame] | None = None,
+    files: Mapping[str, ExtraFile] | None = None,
 ) -> Path:
     """Write a complete results folder, then move it into place.
 
@@ -1005,8 +1006,9 @@ def write_run_folder(
         Written as ``run.json``, with ``tool`` and ``format`` added (the ownership marker).
     files : mapping, optional
         Further files by relative name (one sub-folder deep, e.g. ``fitted/region.json``):
-        bytes written as they are, DataFrames as Parquet (index kept); a call is made when
-        its file is written and gives the DataFrame (held only while it is written).
+        bytes written as they are, DataFrames as Parquet (index kept), :class:`TableParts` as
+        Parquet a row group per part (one part held at a time); a call is made when its file
+        is written and gives the DataFrame (held only while it is written).
 
     Returns
     -------
@@ -1184,11 +1186,13 @@ def _write_failure(target: Path, error: OSError) -> RunError:
 
 @dataclass(frozen=True)
 class TableParts:
-    """A table written as one CSV part by part, so that its rows are never all in memory.
+    """A table written as one file part by part, so that its rows are never all in memory.
 
-    ``parts()`` yields DataFrames with the same columns and a RangeIndex (at least one, maybe
-    empty); the file is their concatenation: the header once, then every part's rows, the
-    same bytes as the whole table written at once.
+    ``parts()`` yields DataFrames with the same columns (at least one, maybe empty). As CSV
+    (a RangeIndex each) the file is their concatenation: the header once, then every part's
+    rows, the same bytes as the whole table written at once. As Parquet (a further file of
+    :func:`write_run_folder`, index kept) each part is one row group: read back, the file
+    gives the whole table.
     """
 
     parts: Callable[[], Iterator[pd.DataFrame]]
@@ -1404,7 +1408,7 @@ def update_run_folder(
     figures: Mapping[str, bytes],
     report: str | None = None,
     manifest: Mapping[str, object] | None = None,
-    files: Mapping[str, bytes | pd.DataFrame] | None = None,
+    files: Mapping[str, ExtraFile] | None = None,
 ) -> Path:
     """Add or replace some files of an earlier results folder of this tool, each atomically.
 
@@ -1481,29 +1485,53 @@ def _update_files(target, tables, layers, crs, figures, report) -> None:
         _write_bytes_atomically(target / "report.html", report.encode("utf-8"))
 
 
-def _write_file(folder: Path, name: str, content: bytes | pd.DataFrame | Callable) -> None:
-    """Write one further file (bytes, or a DataFrame as Parquet, or a call giving one) into a
-    new folder."""
+ExtraFile = bytes | pd.DataFrame | TableParts | Callable[[], pd.DataFrame]
+"""A further file of a results folder: bytes as they are, a DataFrame as Parquet (index
+kept), :class:`TableParts` as Parquet a row group per part, or a call giving a DataFrame."""
+
+
+def _write_file(folder: Path, name: str, content: ExtraFile) -> None:
+    """Write one further file (:data:`ExtraFile`) into a new folder."""
     content = content() if callable(content) else content
     path = folder / name
     path.parent.mkdir(mode=_dir_mode(), exist_ok=True)
-    if isinstance(content, pd.DataFrame):
-        content.to_parquet(path)
+    if isinstance(content, pd.DataFrame | TableParts):
+        with open(path, "wb") as stream:
+            _write_parquet(content, stream)
         path.chmod(_file_mode())
     else:
         path.write_bytes(content)
 
 
-def _update_extra_files(
-    target: Path, files: Mapping[str, bytes | pd.DataFrame | Callable]
-) -> None:
+def _write_parquet(content: pd.DataFrame | TableParts, stream) -> None:
+    """A DataFrame as Parquet (index kept), or :class:`TableParts` a row group per part (the
+    file's schema that of the first part)."""
+    if isinstance(content, pd.DataFrame):
+        content.to_parquet(stream)
+        return
+    import pyarrow
+    import pyarrow.parquet
+
+    writer = None
+    try:
+        for part in content.parts():
+            table = pyarrow.Table.from_pandas(part)
+            if writer is None:
+                writer = pyarrow.parquet.ParquetWriter(stream, table.schema)
+            writer.write_table(table)
+    finally:
+        if writer is not None:
+            writer.close()
+
+
+def _update_extra_files(target: Path, files: Mapping[str, ExtraFile]) -> None:
     """Replace further files atomically; stale files of the sub-folders named are removed."""
     for name, content in files.items():
         path = target / name
         path.parent.mkdir(mode=_dir_mode(), exist_ok=True)
         content = content() if callable(content) else content
-        if isinstance(content, pd.DataFrame):
-            _write_atomically(path, lambda stream, t=content: t.to_parquet(stream), text=False)
+        if isinstance(content, pd.DataFrame | TableParts):
+            _write_atomically(path, partial(_write_parquet, content), text=False)
         else:
             _write_bytes_atomically(path, content)
     folders = {(target / name).parent for name in files} - {target}

@@ -20,7 +20,7 @@ DataFrames and :func:`start_near` calls the function on them.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, replace
 from functools import partial
 from typing import Any
@@ -253,6 +253,26 @@ def part_of(table, basins: Sequence[str]):
     return blocks.executor.submit(
         _frame_of, futures, rows, masks, table.name, table.days, table.index, columns
     )
+
+
+PART_VALUES = 4_000_000
+"""Values of a table fetched and written at a time by :func:`day_parts` (16 MB as float32:
+at 7,500 gauged basins a part of 533 days)."""
+
+
+def day_parts(table, *, values: int | None = None) -> Iterator[pd.DataFrame]:
+    """The table (days x basins) a run of days at a time, every basin in each part, each part
+    about ``values`` values: a DataFrame's rows as they are, a :class:`KeptTable`'s fetched
+    from the workers part after part (each block cut to those days on its worker). At least
+    one part, maybe empty. ``values`` defaults to :data:`PART_VALUES`."""
+    n_days = len(table.index)
+    step = max(1, (values or PART_VALUES) // max(1, len(table.columns)))
+    for first in range(0, max(n_days, 1), step):
+        last = min(first + step, n_days)
+        if not is_kept(table):
+            yield table.iloc[first:last]
+        else:
+            yield table.over(np.arange(first, last)).read(list(table.columns))
 
 
 def whole(table) -> pd.DataFrame:

@@ -116,7 +116,7 @@ def _drawn_here(jobs: list, result: RunResult) -> Iterator[tuple[str, bytes]]:
         yield job.name, png
 
 
-def fitted_region_files(result: RunResult) -> dict[str, bytes | pd.DataFrame]:
+def fitted_region_files(result: RunResult) -> dict[str, io.ExtraFile]:
     """The ``fitted/`` files of a run (empty without a fitted region): see docs/outputs.md."""
     if result.fitted is None:
         return {}

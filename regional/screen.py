@@ -37,6 +37,7 @@ from regional.applicability import applicability
 from regional.errors import InputError
 from regional.fitted import FittedRegion, fit_result
 from regional.transfer import RegressionFit
+from regional.transfer.folds import row_blocks
 from regional.transfer.step import fit_methods
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only; pipeline sits below this module
@@ -55,6 +56,8 @@ TABLE_COLUMNS = (
     "applicable",
 )
 """Leading columns of :attr:`Screening.table`; ``donor_ratio_<p>`` per log parameter follow."""
+DROP_BLOCK_CELLS = 1_000_000
+"""Targets x candidates held at once by :func:`variance_reduction` (8 MB of float64)."""
 
 
 @dataclass(frozen=True)
@@ -136,10 +139,9 @@ def variance_reduction(
     for name in regression.parameters_:
         inverse = regression.design_inverse_[name]
         rows_c, rows_t = x_c[name].to_numpy(), x_t[name].to_numpy()
-        cross = rows_t @ inverse @ rows_c.T  # (targets, candidates)
         leverage = np.einsum("ij,jk,ik->i", rows_c, inverse, rows_c)
         before = 1.0 + np.einsum("ij,jk,ik->i", rows_t, inverse, rows_t)
-        drop = (cross**2 / (1.0 + leverage)).mean(axis=0)
+        drop = _mean_drop(rows_t @ inverse, rows_c, leverage)
         shares[name], leverages[name] = drop / before.mean(), leverage
         estimation[name] = drop / (before.mean() - 1.0)
     index = pd.Index(candidates.index.astype(str), name="basin_id")
@@ -154,6 +156,29 @@ def variance_reduction(
     for name, share in shares.items():
         table[f"variance_reduction_{name}"] = share
     return table
+
+
+def _mean_drop(
+    left: np.ndarray, rows_c: np.ndarray, leverage: np.ndarray, *, cells: int = DROP_BLOCK_CELLS
+) -> np.ndarray:
+    """Mean over the targets of (x_t' A^-1 x_c)^2 / (1 + x_c' A^-1 x_c) for each candidate c,
+    ``left`` holding the rows x_t' A^-1 (targets x p): a block of candidates at a time, never
+    all targets x all candidates (2,500 x 2,500 in float64 are 50 MB, and the formula holds
+    three such at once). Every block holds two candidates or more: a single column would
+    be multiplied and averaged by other routines (matrix times vector, pairwise sums), whose
+    last digits differ; from two on each candidate's mean is the same whatever the block."""
+    drop = np.empty(len(rows_c))
+    for part in _pairs_or_more(row_blocks(len(rows_c), len(left), max(cells, 2 * len(left)))):
+        cross = left @ rows_c[part].T  # (targets, candidates of the block)
+        drop[part] = (cross**2 / (1.0 + leverage[part])).mean(axis=0)
+    return drop
+
+
+def _pairs_or_more(blocks: list[slice]) -> list[slice]:
+    """The blocks with a lone last row joined to the block before it."""
+    if len(blocks) > 1 and blocks[-1].stop - blocks[-1].start == 1:
+        return [*blocks[:-2], slice(blocks[-2].start, blocks[-1].stop)]
+    return blocks
 
 
 def screen_candidates(result: RunResult, *, candidates: Sequence[str] | None = None) -> Screening:

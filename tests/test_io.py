@@ -313,6 +313,35 @@ def test_run_folder_tables_are_the_bytes_pandas_writes(tmp_path):
     assert table["flow_mm"].dtype == np.float64  # the table given is not changed
 
 
+def test_parquet_files_written_a_row_group_per_part_read_back_whole(tmp_path):
+    # two routes to one file: a further file given as one part is the bytes pandas writes
+    # (to_parquet); given as three parts it holds three row groups and reads back as the
+    # table, in a new results folder and in a stage update of one
+    import pyarrow.parquet
+
+    days = pd.date_range("2001-01-01", periods=10, freq="D", name="date")
+    columns = pd.Index(["a", "b"], name="basin_id")
+    table = pd.DataFrame(np.linspace(0.0, 1.0, 20, dtype="float32").reshape(10, 2), days, columns)
+    one = io.TableParts(lambda: iter([table]))
+    three = io.TableParts(lambda: iter([table.iloc[:4], table.iloc[4:8], table.iloc[8:]]))
+    files = {
+        "fitted/whole.parquet": table,
+        "fitted/one.parquet": one,
+        "fitted/three.parquet": three,
+    }
+    folder = tmp_path / "results"
+    empty = {"tables": {}, "layers": {}, "crs": "EPSG:4326", "figures": {}}
+    io.write_run_folder(folder, **empty, report=None, manifest={"regional": "t"}, files=files)
+    # a stage update replaces the sub-folder as a whole: every file named again
+    io.update_run_folder(folder, **empty, files=files | {"fitted/again.parquet": three})
+    fitted = folder / "fitted"
+    assert (fitted / "one.parquet").read_bytes() == (fitted / "whole.parquet").read_bytes()
+    for name in ("three", "again"):
+        assert pyarrow.parquet.ParquetFile(fitted / f"{name}.parquet").num_row_groups == 3
+        back = pd.read_parquet(fitted / f"{name}.parquet")
+        pd.testing.assert_frame_equal(back, table, check_freq=False)
+
+
 def test_tables_written_a_few_rows_at_a_time_are_the_same_bytes():
     # the CSV writer turns rows into text a block at a time: blocks of 1, 3 and all rows, of a
     # whole table, of an indexed one and of parts, give the bytes pandas writes at once

@@ -29,7 +29,7 @@ def _run(folder, executor=None):
         return run(folder, executor=executor)
 
 
-def test_cluster_keeps_the_daily_flows_on_the_workers(region_folder, tmp_path):
+def test_cluster_keeps_the_daily_flows_on_the_workers(region_folder, tmp_path, monkeypatch):
     # After leave-one-out on a 2-worker cluster the client holds a table per flow, not a
     # whole-region grid; a fetch asks only the blocks of the asked basins and returns those
     # basins only, with the in-process run's values; the error model, the coverage and the
@@ -77,14 +77,23 @@ def test_cluster_keeps_the_daily_flows_on_the_workers(region_folder, tmp_path):
 
         pd.testing.assert_frame_equal(there.fitted.coverage, here.fitted.coverage)
         pd.testing.assert_frame_equal(there.statistics.summary, here.statistics.summary)
-        # written a table at a time, the fitted region's flows are the in-process files
+        # written a run of days at a time (several row groups: a few days per part here),
+        # the fitted region's flows are the in-process files, and read back the whole tables
+        import pyarrow.parquet
+
         from regional.outputs import write_outputs
 
+        n_basins = len(expected.observed.columns)
+        monkeypatch.setattr("regional.kept.PART_VALUES", 40 * n_basins)
         write_outputs(here, tmp_path / "here", figures=False)
         write_outputs(there, tmp_path / "there", figures=False, executor=executor)
         for name in ("loo_observed.parquet", "loo_simulated.parquet"):
             first, second = (tmp_path / run / "fitted" / name for run in ("here", "there"))
             assert first.read_bytes() == second.read_bytes(), name
+            groups = pyarrow.parquet.ParquetFile(second).num_row_groups
+            assert groups == -(-len(expected.observed.index) // 40), name
+        back = pd.read_parquet(tmp_path / "there" / "fitted" / "loo_observed.parquet")
+        pd.testing.assert_frame_equal(back, here.fitted.loo_observed, check_freq=False)
         with pytest.raises(TypeError, match="cannot be shipped"):
             pickle.dumps(loo.observed)
     finally:
@@ -160,3 +169,18 @@ def test_held_out_summaries_stay_on_the_workers_with_the_same_check(demo_result)
         assert all(d.tails is None and d.held_out_flow is None for d in draws)
     finally:
         executor.close()
+
+
+def test_day_parts_cover_a_frame_in_runs_of_days():
+    # A table cut into runs of days (every basin in each part) puts back together as the
+    # table; an empty table gives one empty part (a Parquet file needs one for its schema).
+    from regional.kept import day_parts
+
+    days = pd.date_range("2001-01-01", periods=10, freq="D", name="date")
+    columns = pd.Index(["a", "b", "c"], name="basin_id")
+    table = pd.DataFrame(np.arange(30, dtype="float32").reshape(10, 3), days, columns)
+    parts = list(day_parts(table, values=12))
+    assert [len(part) for part in parts] == [4, 4, 2]
+    pd.testing.assert_frame_equal(pd.concat(parts), table, check_freq=False)
+    [empty] = list(day_parts(table.iloc[:0], values=12))
+    assert empty.empty and empty.columns.equals(columns)

@@ -121,3 +121,17 @@ def test_unknown_or_gauged_candidates_are_refused(demo_result):
     gauged = demo_result.region.gauged[0]
     with pytest.raises(InputError, match="is already gauged"):
         screen_candidates(demo_result, candidates=[gauged])
+
+
+def test_variance_drop_by_blocks_of_candidates_equals_all_at_once():
+    # two routes to one number: the mean drop over targets computed a few candidates at a
+    # time (the region's way: never a lone candidate in a block, even when asked for one
+    # per block or when one is left at the end) and from the whole matrix at once
+    from regional.screen import _mean_drop
+
+    rng = np.random.default_rng(5)
+    left, rows_c = rng.normal(size=(300, 5)), rng.normal(size=(257, 5))
+    leverage = rng.uniform(0.0, 2.0, 257)
+    whole = ((left @ rows_c.T) ** 2 / (1.0 + leverage)).mean(axis=0)
+    for cells in (300, 300 * 16, 300 * 257):
+        np.testing.assert_array_equal(_mean_drop(left, rows_c, leverage, cells=cells), whole)

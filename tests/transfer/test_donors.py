@@ -296,3 +296,18 @@ def test_weights_do_not_overflow_for_tiny_distances():
     weights = inverse_distance_weights(np.array([[1e-200, 2e-200, 1.0]]), 4.0)
     np.testing.assert_allclose(weights, [[16 / 17, 1 / 17, 0.0]], atol=1e-300)
     assert np.isfinite(weights).all()
+
+
+@pytest.mark.parametrize("make", [SimilarityTransfer, ProximityTransfer])
+def test_donor_search_by_blocks_of_targets_gives_the_same_donors(region, make, monkeypatch):
+    # two routes to one table: the nearest donors of all targets searched in one block, and
+    # one or two targets at a time (a large region's way): the same donors, distances and
+    # weights to the last digit
+    X, y = region
+    train, targets = X.iloc[:15], X.iloc[15:]
+    estimator = make(n_donors=4).fit(train, y.iloc[:15])
+    at_once = estimator.donate(targets).sets
+    for targets_per_block in (1, 2):
+        cells = 4 * len(train) * targets_per_block
+        monkeypatch.setattr("regional.transfer.donors.SEARCH_BLOCK_CELLS", cells)
+        pd.testing.assert_frame_equal(estimator.donate(targets).sets, at_once, check_exact=True)
