@@ -60,11 +60,38 @@ def keep_freed_memory() -> bool:
     bool
         Whether the allocator accepted the settings.
     """
+    _KEEPING[0] = _set_heap_pad(HEAP_PAD_BYTES)
+    return _KEEPING[0]
+
+
+DEFAULT_PAD_BYTES = 128 * 2**10
+"""glibc's own top pad and trim threshold (128 KiB)."""
+_KEEPING = [False]  # whether keep_freed_memory is in force in this process
+
+
+def return_freed_memory() -> bool:
+    """Let glibc's malloc give freed heap memory back to the system at once, as it does by
+    default (top pad and trim threshold of :data:`DEFAULT_PAD_BYTES`; Linux only, else a
+    no-op): the opposite of :func:`keep_freed_memory`, for a process that runs no kernels.
+
+    Returns
+    -------
+    bool
+        Whether the allocator accepted the settings.
+    """
+    _KEEPING[0] = False
+    return _set_heap_pad(DEFAULT_PAD_BYTES)
+
+
+def _set_heap_pad(pad_bytes: int) -> bool:
+    """Top pad ``pad_bytes`` and trim threshold twice that (or ``pad_bytes`` at glibc's
+    default), in bytes."""
     libc = _glibc()
     if libc is None:
         return False
-    done = libc.mallopt(_M_TOP_PAD, HEAP_PAD_BYTES) == 1
-    return libc.mallopt(_M_TRIM_THRESHOLD, 2 * HEAP_PAD_BYTES) == 1 and done
+    trim = pad_bytes if pad_bytes == DEFAULT_PAD_BYTES else 2 * pad_bytes
+    done = libc.mallopt(_M_TOP_PAD, pad_bytes) == 1
+    return libc.mallopt(_M_TRIM_THRESHOLD, trim) == 1 and done
 
 
 def release_freed_memory() -> bool:
@@ -334,6 +361,7 @@ class DaskExecutor:
         import dask
 
         self._cluster = None
+        self._restore_keeping = False
         if scheduler:
             self.client = _connect(Client, scheduler, connect_timeout_s)
         else:
@@ -542,16 +570,33 @@ class DaskExecutor:
             return value
         return self.client.scatter(value, broadcast=True, hash=False)
 
+    def hold_little(self) -> None:
+        """Until :meth:`close`, this process (the cluster's client) gives freed heap memory
+        back to the system at once (:func:`return_freed_memory`); :meth:`close` then sets
+        :func:`keep_freed_memory` again where it was set.
+
+        For a client that runs no kernels and holds a large region's per-basin results
+        while its daily results stay on the workers (:mod:`regional.kept`): what one stage
+        frees then no longer stays resident into the next. The workers keep their own
+        settings (:func:`warm_up`, :data:`WORKER_ENVIRONMENT`).
+        """
+        self._restore_keeping = self._restore_keeping or _KEEPING[0]
+        return_freed_memory()
+
     @property
     def n_workers(self) -> int:
         """Workers connected to the scheduler now (at least 1)."""
         return max(1, len(self.client.scheduler_info().get("workers", {})))
 
     def close(self) -> None:
-        """Close the client, and the local cluster when this executor started it."""
+        """Close the client, and the local cluster when this executor started it (the
+        allocator settings :meth:`hold_little` changed restored)."""
         self.client.close()
         if self._cluster is not None:
             self._cluster.close()
+        if self._restore_keeping:
+            keep_freed_memory()
+            self._restore_keeping = False
 
 
 def _taken(held: list, client) -> Any:

@@ -143,6 +143,8 @@ def run(
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", InputWarning)
             keep = not own and len(region.basins) >= KEEP_ON_WORKERS_FROM
+            if keep and executor.name == "dask":
+                executor.hold_little()  # the client runs no kernels; what it frees goes back
             stages = _chain(settings, region, executor, progress, timings, keep=keep)
     finally:
         if own:

@@ -380,3 +380,24 @@ def test_the_client_of_a_cluster_run_on_a_store_reads_no_whole_region_grid(
         assert (here / name).read_text() == (there / name).read_text(), name
     for name in ["statistics_summary.csv", "statistics_ungauged.csv", "parameters_ungauged.csv"]:
         assert (here / name).read_text() == (there / name).read_text(), name
+
+
+def test_a_client_holding_little_gives_freed_memory_back_until_closed(monkeypatch):
+    # The cluster's client of a large region returns freed heap memory at once while the
+    # executor is open; closing it sets the kept-memory settings again where they were set,
+    # and leaves glibc's defaults where they were not.
+    pytest.importorskip("distributed", reason="Dask 'distributed' is not installed")
+    pads: list[int] = []
+    monkeypatch.setattr(compute, "_set_heap_pad", lambda pad: pads.append(pad) or True)
+    monkeypatch.setattr(compute, "_KEEPING", [False])  # the session's own flag put back after
+    for keeping, expected in ((True, compute.HEAP_PAD_BYTES), (False, None)):
+        pads.clear()
+        compute.keep_freed_memory() if keeping else compute.return_freed_memory()
+        executor = compute.DaskExecutor(workers=1)
+        try:
+            executor.hold_little()
+            assert pads[-1] == compute.DEFAULT_PAD_BYTES
+        finally:
+            executor.close()
+        assert pads[-1] == (expected or compute.DEFAULT_PAD_BYTES)
+        assert len(pads) == (3 if keeping else 2)
