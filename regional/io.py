@@ -965,8 +965,8 @@ def _looks_foreign(target: Path) -> bool:
 def write_run_folder(
     folder: str | Path,
     *,
-    tables: Mapping[str, pd.DataFrame | TableParts],
-    layers: Mapping[str, gpd.GeoDataFrame],
+    tables: Mapping[str, pd.DataFrame | TableParts | Callable[[], pd.DataFrame | TableParts]],
+    layers: Mapping[str, gpd.GeoDataFrame | Callable[[], gpd.GeoDataFrame]],
     crs: object,
     figures: Mapping[str, bytes] | Callable[[], Mapping[str, bytes]],
     report: str | None | Callable[[], str | None],
@@ -989,8 +989,10 @@ def write_run_folder(
         The results folder.
     tables : mapping
         File name (``*.csv``) -> table (or :class:`TableParts`); written without the RangeIndex.
+        A call giving the table is made when its file is written (one table held at a time).
     layers : mapping
-        Layer name -> GeoDataFrame for ``results.gpkg``.
+        Layer name -> GeoDataFrame for ``results.gpkg``, or a call giving it (made when the
+        layer is written).
     crs : pyproj.CRS or str
         CRS given to layers that carry none.
     figures : mapping, iterable or callable
@@ -1293,18 +1295,10 @@ def _column_text(values: np.ndarray) -> np.ndarray:
 
 
 def _fill_run_folder(staging, tables, layers, crs, figures, report, manifest) -> None:
-    for name, table in tables.items():
-        with open(staging / name, "w", newline="", encoding="utf-8") as stream:
-            _table_to_csv(table, stream)
+    for name, table in tables.items():  # a table given as a call is built as it is written
+        _write_table(staging / name, table)
     for name, layer in layers.items():
-        frame = layer if layer.crs is not None else layer.set_crs(crs)
-        frame.to_file(
-            staging / RESULTS_GPKG,
-            layer=name,
-            driver="GPKG",
-            engine="pyogrio",
-            dataset_options=GPKG_OPTIONS,
-        )
+        _write_layer(staging / RESULTS_GPKG, name, layer, crs)
     figures = figures() if callable(figures) else figures
     pairs = figures.items() if isinstance(figures, Mapping) else figures
     written = FigureFiles(staging / "figures")
@@ -1317,6 +1311,20 @@ def _fill_run_folder(staging, tables, layers, crs, figures, report, manifest) ->
         with open(staging / "report.html", "w", encoding="utf-8") as stream:
             stream.writelines([report] if isinstance(report, str) else report)
     (staging / MANIFEST).write_bytes(_manifest_bytes(manifest))
+
+
+def _write_table(path: Path, table: pd.DataFrame | TableParts | Callable) -> None:
+    """One CSV table; a call is made here, so the table is held only while it is written."""
+    table = table() if callable(table) else table
+    with open(path, "w", newline="", encoding="utf-8") as stream:
+        _table_to_csv(table, stream)
+
+
+def _write_layer(path: Path, name: str, layer: gpd.GeoDataFrame | Callable, crs: object) -> None:
+    """One layer of the results GeoPackage; a call is made here (held only while written)."""
+    frame = layer() if callable(layer) else layer
+    frame = frame if frame.crs is not None else frame.set_crs(crs)
+    frame.to_file(path, layer=name, driver="GPKG", engine="pyogrio", dataset_options=GPKG_OPTIONS)
 
 
 class FigureFiles(Mapping):
@@ -1506,22 +1514,27 @@ def _write_file(folder: Path, name: str, content: ExtraFile) -> None:
 def _write_parquet(content: pd.DataFrame | TableParts, stream) -> None:
     """A DataFrame as Parquet (index kept), or :class:`TableParts` a row group per part (the
     file's schema that of the first part)."""
-    if isinstance(content, pd.DataFrame):
-        content.to_parquet(stream)
-        return
     import pyarrow
     import pyarrow.parquet
 
-    writer = None
     try:
-        for part in content.parts():
-            table = pyarrow.Table.from_pandas(part)
-            if writer is None:
-                writer = pyarrow.parquet.ParquetWriter(stream, table.schema)
-            writer.write_table(table)
+        if isinstance(content, pd.DataFrame):
+            content.to_parquet(stream)
+            return
+        writer = None
+        try:
+            for part in content.parts():
+                table = pyarrow.Table.from_pandas(part)
+                if writer is None:
+                    writer = pyarrow.parquet.ParquetWriter(stream, table.schema)
+                writer.write_table(table)
+        finally:
+            if writer is not None:
+                writer.close()
     finally:
-        if writer is not None:
-            writer.close()
+        # Arrow's pool (mimalloc) keeps freed pages for reuse; a large region's client
+        # writes several tables in turn and should not hold them all
+        pyarrow.default_memory_pool().release_unused()
 
 
 def _update_extra_files(target: Path, files: Mapping[str, ExtraFile]) -> None:

@@ -71,8 +71,8 @@ def write_outputs(
         report = partial(report_pieces, result)
     return io.write_run_folder(
         Path(folder),
-        tables=result_tables(result),
-        layers=result_layers(result),
+        tables=table_builders(result),
+        layers=layer_builders(result),
         crs=result.region.basins.crs,
         figures=images or {},
         report=report,
@@ -228,37 +228,56 @@ def _stages_present(result: RunResult) -> list[str]:
 
 def result_tables(result: RunResult) -> dict[str, pd.DataFrame]:
     """CSV tables by file name (index not written unless it is ``basin_id``)."""
-    tables = {
-        "loo_scores.csv": _loo_scores(result),
-        "loo_summary.csv": loo_summary(result),
-        "regression_coefficients.csv": _coefficients(result),
-        "calibration.csv": _calibration(result),
+    return {name: build() for name, build in table_builders(result).items()}
+
+
+def table_builders(result: RunResult) -> dict[str, Callable[[], pd.DataFrame]]:
+    """The calls building each CSV table of :func:`result_tables`, by file name: the results
+    folder is written one table at a time, none built before its turn (a large region's
+    client holds one table, not all of them)."""
+    builders = {
+        "loo_scores.csv": partial(_loo_scores, result),
+        "loo_summary.csv": partial(loo_summary, result),
+        "regression_coefficients.csv": partial(_coefficients, result),
+        "calibration.csv": partial(_calibration, result),
     }
-    counts = donor_counts(result)
-    if counts is not None:
-        tables["donor_counts.csv"] = counts
+    if any(run.donor_counts is not None for run in result.runs.values()):
+        builders["donor_counts.csv"] = partial(donor_counts, result)
     if result.prediction is not None:
-        tables |= prediction_tables(result.prediction, result.region)
-    tables |= statistics_tables(result)
+        builders |= _prediction_builders(result.prediction, result.region)
+    builders |= _statistics_builders(result)
     if result.screening is not None:
-        screening = with_basin_columns(result.screening.table, result.region)
-        tables["screening.csv"] = screening.reset_index()
-    return tables
+        builders["screening.csv"] = partial(_screening_table, result)
+    return builders
+
+
+def _given(table: pd.DataFrame) -> pd.DataFrame:
+    return table
+
+
+def _screening_table(result: RunResult) -> pd.DataFrame:
+    return with_basin_columns(result.screening.table, result.region).reset_index()
 
 
 def statistics_tables(result: RunResult) -> dict[str, pd.DataFrame]:
     """``statistics_loo.csv``, ``statistics_summary.csv`` and, with ungauged basins,
     ``statistics_ungauged.csv`` (see docs/statistics.md); none without statistics."""
+    return {name: build() for name, build in _statistics_builders(result).items()}
+
+
+def _statistics_builders(result: RunResult) -> dict[str, Callable[[], pd.DataFrame]]:
     statistics = result.statistics
     if statistics is None:
         return {}
-    tables = {
-        "statistics_loo.csv": statistics.loo,
-        "statistics_summary.csv": statistics.summary.assign(level=statistics.level),
+    builders = {
+        "statistics_loo.csv": partial(_given, statistics.loo),
+        "statistics_summary.csv": partial(statistics.summary.assign, level=statistics.level),
     }
     if len(statistics.ungauged):
-        tables["statistics_ungauged.csv"] = statistics.ungauged.assign(level=statistics.level)
-    return tables
+        builders["statistics_ungauged.csv"] = partial(
+            statistics.ungauged.assign, level=statistics.level
+        )
+    return builders
 
 
 def donor_counts(result: RunResult) -> pd.DataFrame | None:
@@ -277,13 +296,19 @@ def donor_counts(result: RunResult) -> pd.DataFrame | None:
 
 def prediction_tables(prediction: Prediction, region: Region) -> dict[str, pd.DataFrame]:
     """``flows_ungauged.csv``, ``parameters_ungauged.csv`` and ``coverage.csv``."""
+    return {name: build() for name, build in _prediction_builders(prediction, region).items()}
+
+
+def _prediction_builders(prediction: Prediction, region: Region) -> dict[str, Callable]:
     return {
-        "flows_ungauged.csv": flow_parts(prediction),
-        "parameters_ungauged.csv": with_basin_columns(
-            with_level(prediction.table, prediction.level), region
-        ).reset_index(),
-        "coverage.csv": prediction.coverage,
+        "flows_ungauged.csv": partial(flow_parts, prediction),
+        "parameters_ungauged.csv": partial(_parameters_table, prediction, region),
+        "coverage.csv": partial(_given, prediction.coverage),
     }
+
+
+def _parameters_table(prediction: Prediction, region: Region) -> pd.DataFrame:
+    return with_basin_columns(with_level(prediction.table, prediction.level), region).reset_index()
 
 
 def _loo_scores(result: RunResult) -> pd.DataFrame:
@@ -327,14 +352,24 @@ def _calibration(result: RunResult) -> pd.DataFrame:
 
 def result_layers(result: RunResult) -> dict[str, gpd.GeoDataFrame]:
     """GeoPackage layers: ``gauged``, and ``ungauged`` / ``screening`` when they exist."""
-    basins = result.region.basins
-    layers = {"gauged": _gauged_layer(result)}
+    return {name: build() for name, build in layer_builders(result).items()}
+
+
+def layer_builders(result: RunResult) -> dict[str, Callable[[], gpd.GeoDataFrame]]:
+    """The calls building each layer of :func:`result_layers`, by name (built in turn)."""
+    builders = {"gauged": partial(_gauged_layer, result)}
     if result.prediction is not None:
-        layers["ungauged"] = prediction_layer(result.prediction, result.region, result.statistics)
+        builders["ungauged"] = partial(
+            prediction_layer, result.prediction, result.region, result.statistics
+        )
     if result.screening is not None:
-        screening = with_basin_columns(result.screening.table, result.region)
-        layers["screening"] = with_geometry(screening, basins)
-    return layers
+        builders["screening"] = partial(_screening_layer, result)
+    return builders
+
+
+def _screening_layer(result: RunResult) -> gpd.GeoDataFrame:
+    screening = with_basin_columns(result.screening.table, result.region)
+    return with_geometry(screening, result.region.basins)
 
 
 def prediction_layer(

@@ -313,6 +313,49 @@ def test_run_folder_tables_are_the_bytes_pandas_writes(tmp_path):
     assert table["flow_mm"].dtype == np.float64  # the table given is not changed
 
 
+def test_tables_and_layers_given_as_calls_are_built_in_turn(tmp_path):
+    # each call is made when its file is written: a table's call finds the tables before it
+    # already on disk (the folder holds one table at a time), and the files are those of the
+    # tables given whole
+    import shapely
+
+    staging = []
+
+    def built(name: str, content):
+        def build():
+            staging.append((name, sorted(p.name for p in tmp_path.glob("*.tmp*/*"))))
+            return content
+
+        return build
+
+    table = pd.DataFrame({"basin_id": ["a", "b"], "k_per_day": [0.1, 0.25]})
+    layer = gpd.GeoDataFrame(table, geometry=[shapely.Point(0, 0), shapely.Point(1, 1)])
+    io.write_run_folder(
+        tmp_path / "lazy",
+        tables={"a.csv": built("a.csv", table), "b.csv": built("b.csv", table)},
+        layers={"gauged": built("gauged", layer)},
+        crs="EPSG:4326",
+        figures={},
+        report=None,
+        manifest={"regional": "test"},
+    )
+    assert staging == [("a.csv", []), ("b.csv", ["a.csv"]), ("gauged", ["a.csv", "b.csv"])]
+    io.write_run_folder(
+        tmp_path / "whole",
+        tables={"a.csv": table, "b.csv": table},
+        layers={"gauged": layer},
+        crs="EPSG:4326",
+        figures={},
+        report=None,
+        manifest={"regional": "test"},
+    )
+    for name in ("a.csv", "b.csv"):
+        assert (tmp_path / "lazy" / name).read_bytes() == (tmp_path / "whole" / name).read_bytes()
+    lazy = gpd.read_file(tmp_path / "lazy" / io.RESULTS_GPKG, layer="gauged")
+    whole = gpd.read_file(tmp_path / "whole" / io.RESULTS_GPKG, layer="gauged")
+    pd.testing.assert_frame_equal(lazy, whole)
+
+
 def test_parquet_files_written_a_row_group_per_part_read_back_whole(tmp_path):
     # two routes to one file: a further file given as one part is the bytes pandas writes
     # (to_parquet); given as three parts it holds three row groups and reads back as the
