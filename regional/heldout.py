@@ -19,7 +19,7 @@ import pandas as pd
 
 from regional import flowstats
 from regional.bounds import ConformalErrorModel, conformal_bounds, default_n_classes
-from regional.compute import BATCHES_AHEAD, TASKS_PER_WORKER, chunked
+from regional.compute import BATCHES_AHEAD, TASKS_PER_WORKER, chunked, release_freed_memory
 from regional.coverage import (
     REPORTED_DECILES,
     WIDEN_TOLERANCE,
@@ -694,6 +694,10 @@ def _finished_check(
             on_repeat(draw)
         draws.append(draw)
         kept.append(whole_summary)
+        # what the repeat's simulation and summary freed goes back to the system now, not at
+        # the end of the stage: the repeats' scattered leftovers otherwise pile up under the
+        # summaries kept (docs/scale.md, "side by side again")
+        release_freed_memory()
     table = coverage_table(_shares(observed, draws, kept, level, k, None))
     table = table.rename(columns={"coverage": "held_out_coverage"})
     measured = [table.loc[f"class {c + 1}", "held_out_coverage"] for c in range(k)]

@@ -134,6 +134,34 @@ def test_held_out_check_keeps_summaries_with_the_coverage_of_the_whole_repeats(
         pd.testing.assert_frame_equal(summary.held_out_flow, draw.held_out_flow)
 
 
+def test_the_heap_a_repeat_freed_is_returned_as_each_repeat_comes_back(demo_result, monkeypatch):
+    # each repeat's freed memory goes back to the system before the next repeat is taken
+    # (not at the end of the stage), and the check's table is the same either way
+    from regional import heldout
+
+    run = demo_result.runs[demo_result.chosen_model]
+    method = demo_result.chosen_method
+    error_model = conformal_bounds(run.loo.observed, run.loo.simulated[method], level=0.8)
+    settings = {"level": 0.8, "repeats": 3, "fit_level": demo_result.settings.prediction.level}
+    before, _, _, _ = heldout.held_out_check(run, method, error_model, **settings)
+    taken = []
+    original = heldout._finished_check
+
+    def counting(run, method, started, *args, **kwargs):
+        def repeats():
+            for item in started:
+                taken.append(("repeat", len(taken)))
+                yield item
+
+        return original(run, method, repeats(), *args, **kwargs)
+
+    monkeypatch.setattr(heldout, "_finished_check", counting)
+    monkeypatch.setattr(heldout, "release_freed_memory", lambda: taken.append(("released",)))
+    after, _, _, _ = heldout.held_out_check(run, method, error_model, **settings)
+    assert [entry[0] for entry in taken] == ["repeat", "released"] * 3
+    pd.testing.assert_frame_equal(after, before)
+
+
 def test_repeats_run_as_tasks_give_the_same_flows(demo_result, tmp_path):
     # On a cluster each repeat's basins run as tasks of a few basins (each task fits and
     # simulates its own, reading its basins' series from the series store); run through an
