@@ -7,6 +7,7 @@ from __future__ import annotations
 import pickle
 
 import matplotlib
+import pandas as pd
 
 from regional.report import figure_jobs, make_figures
 from regional.report.jobs import draw_jobs, job_series, with_series, without_series
@@ -39,6 +40,26 @@ def test_the_shared_run_holds_no_daily_series(tiny_run):
     assert shared.prediction.daily.flow_mm.shape[1] == 0
     # what every worker receives once is a small part of the run
     assert len(pickle.dumps(shared)) < len(pickle.dumps(tiny_run)) / 3
+
+
+def test_the_statistics_tables_travel_compact_and_come_back_as_they_were(tiny_run):
+    # the flow statistics' long tables travel with their text columns as categories (their
+    # names repeat on every row) and are given back equal, dtypes included, on the worker
+    from regional.report.jobs import _LONG_STATISTICS, _expanded
+
+    shared = without_series(tiny_run)
+    statistics = tiny_run.statistics
+    sizes = {
+        name: (len(pickle.dumps(getattr(shared.statistics, name))), len(pickle.dumps(table)))
+        for name in _LONG_STATISTICS
+        if len(table := getattr(statistics, name))
+    }
+    assert all(compact < whole for compact, whole in sizes.values())
+    assert sizes["loo"][0] < sizes["loo"][1] / 2  # the longest: a row per basin, statistic, route
+    back = _expanded(pickle.loads(pickle.dumps(shared)))
+    for name in _LONG_STATISTICS:
+        pd.testing.assert_frame_equal(getattr(back.statistics, name), getattr(statistics, name))
+    assert _expanded(tiny_run) is tiny_run  # a run not compacted is used as it is
 
 
 def test_a_job_series_puts_back_only_its_own_basins(tiny_run):
