@@ -12,6 +12,9 @@ import pandas as pd
 import pytest
 import rasterio
 from affine import Affine
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra import numpy as hnp
 from shapely.geometry import Point, box
 
 from regional import io
@@ -454,6 +457,29 @@ def test_tables_of_any_column_are_written_as_pandas_writes_them(column):
             table.iloc[i : i + rows].to_csv(index=False, header=i == 0) for i in blocks
         )
         assert stream.getvalue() == expected, rows
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    values=hnp.arrays(np.float64, st.integers(1, 40), elements=st.floats(allow_subnormal=True)),
+    scale=st.sampled_from([1.0, 1e-6, 1e-4, 1e6, 1e10, 1e16]),
+)
+def test_floats_of_every_magnitude_are_written_as_pandas_writes_them(values, scale):
+    # Arrow turns most floats into text, repr the zeros, tiny and huge values, NaN and the
+    # infinities: the bytes stay those of pandas' to_csv (reference: pandas), with Arrow's
+    # cast and without it
+    import io as stdio
+
+    with np.errstate(over="ignore", invalid="ignore"):
+        scaled = values * scale
+    table = pd.DataFrame({"flow_mm": values, "scaled": scaled, "day": np.arange(len(values))})
+    expected = table.to_csv(index=False)
+    for arrow in (True, False):
+        stream = stdio.StringIO()
+        with pytest.MonkeyPatch.context() as patch:
+            patch.setattr(io, "_arrow_writes_repr", lambda arrow=arrow: arrow)
+            io._table_to_csv(table, stream, rows_at_a_time=7)
+        assert stream.getvalue() == expected
 
 
 def _dead_pid() -> int:
