@@ -243,14 +243,17 @@ def _repeat_batch(context, method, level, draw: _Draw, chunk_basins: int, reader
 
 
 def _assembled(held, training, flows: dict, loo_flow: pd.DataFrame) -> HeldOutRepeat:
-    """A repeat from its basins' flows (None: the leave-one-out flow is reused)."""
+    """A repeat from its basins' flows (None: the leave-one-out flow is reused), taken out of
+    ``flows`` as they are copied into the repeat's frames (each basin's array freed then)."""
 
     def frame(targets: list[str]) -> pd.DataFrame:
-        # filled a basin at a time (never held twice, as a list of columns too), in the layout
-        # the frame had when built from stacked columns: each basin's days contiguous
+        # filled a basin at a time (the repeat's flows never held twice, as arrays and as the
+        # frame), in the layout the frame had when built from stacked columns: each basin's
+        # days contiguous
         by_basin = np.empty((len(targets), len(loo_flow.index)))
         for row, target in enumerate(targets):
-            by_basin[row] = loo_flow[target].to_numpy() if flows[target] is None else flows[target]
+            flow = flows.pop(target)
+            by_basin[row] = loo_flow[target].to_numpy() if flow is None else flow
         return pd.DataFrame(
             by_basin.T,
             index=loo_flow.index,

@@ -38,7 +38,7 @@ from regional.crossval import (
     with_donor_counts,
 )
 from regional.errors import InputError, InputWarning
-from regional.fitted import fit_region
+from regional.fitted import FittedRegion, fit_region
 from regional.models import get_model, parameter_transforms
 from regional.overlap import excluded_donors, overlap_shares
 from regional.predict import PREDICTION_CHUNK, predict_region
@@ -230,6 +230,7 @@ def _chain(settings, region, executor, progress, timings, *, keep: bool) -> dict
             meanwhile=early,
             **_held_out_compute(runs[model], region, settings, executor),
         )
+    fitted = _without_draws(fitted)  # the statistics were given each repeat as it came back
     prediction = screening = None
     if region.ungauged:
         with _timed(timings, "prediction"):
@@ -245,7 +246,6 @@ def _chain(settings, region, executor, progress, timings, *, keep: bool) -> dict
             )
     with _timed(timings, "statistics"):
         statistics = _statistics(runs[model], method, region, attributes, prediction, early)
-    fitted, prediction = _without_draws(fitted), _without_draws(prediction)
     if region.ungauged:
         with _timed(timings, "screening"):
             screening = screen_region(fitted, region)
@@ -263,11 +263,13 @@ def _chain(settings, region, executor, progress, timings, *, keep: bool) -> dict
     }
 
 
-def _without_draws(stage):
-    """The fitted region or prediction without the held-out check's repeats: their flows and
-    error-model tails (about 22 bytes per gauged basin and evaluation day) serve the flow
-    statistics only, so they are dropped once those are computed."""
-    return stage if stage is None else replace(stage, held_out_draws=())
+def _without_draws(fitted: FittedRegion) -> FittedRegion:
+    """The fitted region without the held-out check's repeats: their flows and error-model
+    tails (about 22 bytes per gauged basin and evaluation day) serve the flow statistics
+    only, which the run gives each repeat as it comes back (:class:`_EarlyStatistics`), so
+    they are dropped as soon as the fitted region is made (the prediction, which copies
+    them, then has none either)."""
+    return replace(fitted, held_out_draws=())
 
 
 def _model_runs(settings, region, attributes, executor, progress, timings, *, keep) -> dict:

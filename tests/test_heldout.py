@@ -7,7 +7,7 @@ import pandas as pd
 
 from regional import coverage
 from regional.bounds import conformal_bounds
-from regional.heldout import _held_out_draws, held_out_flows
+from regional.heldout import _assembled, _held_out_draws, held_out_flows
 from regional.predict import predict_ungauged
 from regional.transfer.step import fit_methods
 
@@ -21,6 +21,21 @@ def test_held_out_draws_hold_every_basin_out_evenly():
     counts = pd.Series([b for d in draws for b in d]).value_counts()
     assert set(counts.index) == set(basins)
     assert counts.max() - counts.min() <= 1  # 66 places over 34 basins: each once or twice
+
+
+def test_a_repeat_takes_its_flows_out_of_the_arrays_it_is_assembled_from():
+    # the repeat's frames are filled a basin at a time from the tasks' arrays, each taken out
+    # (and freed) as it is copied: the flows are never held twice; a None reuses the
+    # leave-one-out flow
+    days = pd.date_range("2001-01-01", periods=5, name="date")
+    loo = pd.DataFrame(np.arange(15.0).reshape(5, 3), index=days, columns=["a", "b", "c"])
+    flows = {"a": np.full(5, 1.5), "b": None, "c": np.full(5, 2.5)}
+    repeat = _assembled(("c",), ["a", "b"], flows, loo)
+    assert flows == {}
+    assert repeat.training_flow["a"].tolist() == [1.5] * 5
+    assert repeat.training_flow["b"].tolist() == loo["b"].tolist()
+    assert repeat.held_out_flow["c"].tolist() == [2.5] * 5
+    assert (repeat.n_simulated, repeat.n_reused) == (2, 1)
 
 
 def test_held_out_basins_never_reach_the_fit(demo_result):

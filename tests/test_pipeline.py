@@ -340,7 +340,8 @@ def _fit_on_every_basin(context, *, methods=None) -> dict:
 
 def test_held_out_repeats_serve_the_statistics_then_are_dropped(demo_result):
     # the held-out check's repeats (their flows and error-model tails) are read by the flow
-    # statistics' own held-out check only: the run's result no longer holds them
+    # statistics' own held-out check only, given each repeat as it came back: the run drops
+    # them once the fitted region is made, and its result holds none
     assert demo_result.fitted.held_out is not None  # the check ran
     assert demo_result.fitted.held_out_draws == ()
     assert demo_result.prediction.held_out_draws == ()
