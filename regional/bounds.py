@@ -224,6 +224,37 @@ def aligned(observed: pd.DataFrame, simulated: pd.DataFrame) -> tuple[np.ndarray
     return _floats(observed), _floats(simulated)
 
 
+def _picked(observed: pd.DataFrame, simulated: pd.DataFrame):
+    """:func:`aligned`, or where ``observed`` holds more basins, its columns of ``simulated``'s
+    basins as :class:`ColumnBlocks` (read a block of basins at a time)."""
+    if observed.columns.equals(simulated.columns):
+        return aligned(observed, simulated)
+    positions = observed.columns.get_indexer(simulated.columns)
+    if len(observed) != len(simulated) or (positions < 0).any():
+        raise ValueError(
+            f"observed {observed.shape} flows must hold the days and basins of the simulated "
+            f"{simulated.shape}"
+        )
+    return ColumnBlocks(_floats(observed), positions), _floats(simulated)
+
+
+class ColumnBlocks:
+    """Some columns of a days x basins array, given a block of them at a time: ``blocks[:,
+    a:b]`` is the array's columns ``positions[a:b]`` (a copy of that block only), as the
+    block loops of :func:`class_residuals` and :func:`observed_basins` read a grid."""
+
+    def __init__(self, values: np.ndarray, positions: np.ndarray) -> None:
+        self.values, self.positions = values, positions
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.values.shape[0], len(self.positions)
+
+    def __getitem__(self, key: tuple[slice, slice]) -> np.ndarray:
+        rows, columns = key
+        return self.values[rows, self.positions[columns]]
+
+
 def _floats(frame: pd.DataFrame) -> np.ndarray:
     """The values of a frame as floats, float32 kept as they are (not copied): every use
     widens each value to float64 exactly where it meets a float64, a block of basins at a
@@ -453,9 +484,11 @@ class ResidualTails:
         n_classes: int,
         offset_fraction: float = OFFSET_FRACTION,
     ) -> ResidualTails:
-        """Tails of the error model :func:`conformal_bounds` builds from these flows."""
+        """Tails of the error model :func:`conformal_bounds` builds from these flows
+        (``observed`` may hold more basins than ``simulated``: only the simulated's are read,
+        a block at a time, never all copied at once)."""
         level = check_level(level)
-        obs, sim = aligned(observed, simulated)
+        obs, sim = _picked(observed, simulated)
         data = class_residuals(obs, sim, n_classes, fraction=offset_fraction)
         parts: tuple[list, list, list, list] = ([], [], [], [])
         for values, basins in zip(data.values, data.basins, strict=True):

@@ -372,9 +372,8 @@ def summarise_repeat(
     """
     training = list(repeat.training_flow.columns)
     classes = n_classes or default_n_classes(observed[training].to_numpy(dtype=float))
-    tails = ResidualTails.of(
-        observed[training], repeat.training_flow, level=level, n_classes=classes
-    )
+    # the observed flow of every gauged basin, read a block of training basins at a time
+    tails = ResidualTails.of(observed, repeat.training_flow, level=level, n_classes=classes)
     return HeldOutSummary(
         held_out=tuple(repeat.held_out),
         training=tuple(str(b) for b in training),

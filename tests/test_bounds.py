@@ -93,6 +93,37 @@ def test_residual_tails_rebuild_the_error_model_exactly_at_wider_levels(n_basins
         tails.error_model([0.8] * classes)
 
 
+def test_residual_tails_read_the_simulated_basins_of_a_wider_observed_table():
+    # the held-out check gives the observed flow of every gauged basin and a repeat's training
+    # flows: the tails read the training basins' columns a block at a time (blocks of 2 and 3
+    # cut here) and equal those of the observed table cut to them first
+    from functools import partial
+
+    from regional import bounds
+
+    rng = np.random.default_rng(5)
+    days, n_basins = 300, 12
+    every = [f"B{i:02d}" for i in range(n_basins)]
+    obs = pd.DataFrame(rng.gamma(2.0, 1.0, (days, n_basins)), columns=every).astype("float32")
+    obs = obs.mask(rng.random((days, n_basins)) < 0.2)
+    training = [every[i] for i in (7, 0, 3, 11, 5, 2, 9)]  # not in the observed table's order
+    sim = obs[training].astype(float) * np.exp(rng.normal(0.0, 0.3, (days, len(training))))
+    sim = sim.fillna(1.0)
+    cut = ResidualTails.of(obs[training], sim, level=0.9, n_classes=2)
+    for block in (2, 3):
+        with pytest.MonkeyPatch.context() as patch:
+            for name in ("class_residuals", "observed_basins"):
+                patch.setattr(bounds, name, partial(getattr(bounds, name), block=block))
+            wide = ResidualTails.of(obs, sim, level=0.9, n_classes=2)
+        assert wide.n_basins == cut.n_basins
+        np.testing.assert_array_equal(wide.days, cut.days)
+        for name in ("low_values", "low_weights", "high_values", "high_weights"):
+            for a, b in zip(getattr(wide, name), getattr(cut, name), strict=True):
+                np.testing.assert_array_equal(a, b)
+    with pytest.raises(ValueError, match="must hold the days and basins"):
+        ResidualTails.of(obs[training[:3]], sim, level=0.9, n_classes=2)
+
+
 def test_residuals_block_by_block_are_those_of_the_whole_grid():
     # Two routes: log_residuals on the whole grid with its classes, sorted by class
     # (SortedResiduals.of), and class_residuals a few basins at a time (classes and offsets
