@@ -285,6 +285,12 @@ class InProcessExecutor:
                 progress(done, total)
         return results
 
+    def imap(self, function: ChunkFn, chunks: Sequence[Sequence[str]], context: Any) -> Iterator:
+        """:meth:`map` a chunk at a time: each chunk runs when its result is taken, so the
+        caller can use and drop one chunk's result before the next is made."""
+        for chunk in chunks:
+            yield function(chunk, context)
+
     def map_batches(
         self,
         batches: Iterable[Batch],
@@ -403,6 +409,15 @@ class DaskExecutor:
         shared, futures = self._tasks(function, chunks, context)
         self._wait(futures, chunks, progress)
         return self.client.gather(futures)
+
+    def imap(self, function: ChunkFn, chunks: Sequence[Sequence[str]], context: Any) -> Iterator:
+        """:meth:`map` yielding each chunk's result in chunk order as it is gathered: every
+        task submitted at once, each result released on the cluster once taken."""
+        shared, futures = self._tasks(function, chunks, context)
+        for i in range(len(futures)):
+            future, futures[i] = futures[i], None
+            yield future.result()
+        del shared  # the scattered context, held until the last task was taken
 
     def _tasks(self, function: ChunkFn, chunks: Sequence[Sequence[str]], context: Any) -> tuple:
         """``context`` scattered once and one task per chunk submitted: the scattered

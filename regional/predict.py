@@ -297,14 +297,20 @@ def _sites(job: _SitesJob, targets, *, executor, reader, chunk_basins: int | Non
     if keep and executor.name == "dask":
         return _kept_sites(job, chunks, executor, reader)
     task, shared = shipped(_sites_chunk, job, reader)
-    parts = executor.map(task, chunks, shared)
-    statistics = pd.concat([p.statistics for p in parts])
-    model = pd.concat([p.model_statistics for p in parts]).sort_index()
-    names = ("flow_mm", "low_mm", "high_mm")
-    pieces = {name: [getattr(p, name) for p in parts] for name in names}
-    del parts  # each grid's chunks are dropped once joined: one grid is held twice, not three
-    grids = [_joined(pieces.pop(name)) for name in names]
-    return (*grids, statistics, model)
+    dates = job.precip_mm.index[job.context.window.warmup_days :]
+    grids = {name: np.empty((len(dates), len(targets))) for name in _DAILY}
+    statistics, model, first = [], [], 0
+    for chunk, part in zip(chunks, executor.imap(task, chunks, shared), strict=True):
+        # each chunk's grids copied into the region's as it comes, then dropped: the chunks'
+        # grids are never all held beside the joined ones
+        for name in _DAILY:
+            grids[name][:, first : first + len(chunk)] = getattr(part, name).to_numpy(float)
+        statistics.append(part.statistics)
+        model.append(part.model_statistics)
+        first += len(chunk)
+    columns = pd.Index(targets, name="basin_id")
+    frames = [pd.DataFrame(grids.pop(n), index=dates, columns=columns, copy=False) for n in _DAILY]
+    return (*frames, pd.concat(statistics), pd.concat(model).sort_index())
 
 
 _DAILY = ("flow_mm", "low_mm", "high_mm")
@@ -337,13 +343,6 @@ def _no_lone_basin(chunks: list[list[str]]) -> list[list[str]]:
     if len(chunks) > 1 and len(chunks[-1]) == 1:
         return [*chunks[:-2], chunks[-2] + chunks[-1]]
     return chunks
-
-
-def _joined(frames: list[pd.DataFrame]) -> pd.DataFrame:
-    """Days x basins frames side by side, as one C-ordered grid (the layout of one chunk)."""
-    columns = pd.Index([c for f in frames for c in f.columns], name="basin_id")
-    values = np.hstack([f.to_numpy(dtype=float) for f in frames])
-    return pd.DataFrame(values, index=frames[0].index, columns=columns, copy=False)
 
 
 def _parameters_by_method(context: FoldContext, target_attributes, level):

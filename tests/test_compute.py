@@ -92,6 +92,20 @@ def test_in_process_map_batches_runs_one_batch_at_a_time():
     assert list(results) == [_expected(1), _expected(2)] and drawn == [0, 1, 2]
 
 
+def test_in_process_imap_runs_a_chunk_when_its_result_is_taken():
+    ran: list[list[str]] = []
+
+    def squares(chunk, shift):
+        ran.append(list(chunk))
+        return _shifted_squares(chunk, shift)
+
+    chunks = [["3"], ["1", "2"], ["4"]]
+    results = InProcessExecutor().imap(squares, chunks, 5)
+    assert ran == []  # nothing runs before a result is asked for
+    assert next(results) == _shifted_squares(["3"], 5) and ran == [["3"]]
+    assert list(results) == InProcessExecutor().map(_shifted_squares, chunks, 5)[1:]
+
+
 def test_dask_map_batches_submits_ahead_and_keeps_batch_order():
     # Two worker processes (distributed.LocalCluster): while the first batch is gathered, the
     # next `ahead` batches are already submitted (no barrier between batches); results come
@@ -116,6 +130,9 @@ def test_dask_map_batches_submits_ahead_and_keeps_batch_order():
         # at a lower priority (behind other work): the same results, in chunk order
         wait = executor.start_map(_shifted_squares, chunks, 5, priority=-1)
         assert wait() == InProcessExecutor().map(_shifted_squares, chunks, 5)
+        # taken one at a time as each is gathered: the results in chunk order, as in process
+        taken = list(executor.imap(_shifted_squares, chunks, 5))
+        assert taken == InProcessExecutor().map(_shifted_squares, chunks, 5)
     finally:
         executor.close()
 
