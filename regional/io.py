@@ -1266,18 +1266,19 @@ def _plain_column(column: pd.Series):
     as an Arrow string array (or scalar, for a float64 column of one value); None for any
     other column."""
     import pyarrow
+    import pyarrow.compute as pc
 
     dtype = column.dtype
     if dtype == np.float64:
         return _column_arrow_text(column.to_numpy())
     if pd.api.types.is_integer_dtype(dtype) and not pd.api.types.is_extension_array_dtype(dtype):
-        return pyarrow.compute.cast(pyarrow.array(column.to_numpy()), pyarrow.string())
+        return pc.cast(pyarrow.array(column.to_numpy()), pyarrow.string())
     if pd.api.types.is_datetime64_dtype(dtype):
         values = column.to_numpy()
         days = values.astype("datetime64[D]")
         if np.isnat(values).any() or (days != values).any():
             return None  # pandas writes missing dates and times of day in its own way
-        return pyarrow.compute.cast(pyarrow.array(days), pyarrow.string())
+        return pc.cast(pyarrow.array(days), pyarrow.string())
     if pd.api.types.is_string_dtype(dtype):
         return _plain_text(column)
     return None
@@ -1298,7 +1299,7 @@ def _plain_text(column: pd.Series):
     return text
 
 
-CSV_SPECIAL_OR_EMPTY = r'[,"\r\n]|^$'
+CSV_SPECIAL_OR_EMPTY = CSV_SPECIAL.pattern + "|^$"
 """:data:`CSV_SPECIAL` or an empty value, as an Arrow (RE2) pattern."""
 
 ARROW_PLAIN_RANGE = (1e-4, 1e10)
@@ -1315,7 +1316,7 @@ def _column_arrow_text(values: np.ndarray):
     import pyarrow
     import pyarrow.compute as pc
 
-    if len(values) and (values.view(np.int64) == values.view(np.int64)[0]).all():
+    if _one_value(values):
         return pyarrow.scalar(_float_repr(values[0]))
     if not _arrow_writes_repr():
         return pyarrow.array(_column_text(values), type=pyarrow.string())
@@ -1330,6 +1331,22 @@ def _column_arrow_text(values: np.ndarray):
     return text
 
 
+ARROW_PROBE = (
+    1e-4,
+    1.5e-4,
+    7e-3,
+    0.1,
+    1 / 3,
+    2.5,
+    100.25,
+    123456.789,
+    1.5e9 + 0.25,
+    9_999_999_999.5,
+)
+"""Values at the edges of :data:`ARROW_PLAIN_RANGE` and between (none whole) on which
+:func:`_arrow_writes_repr` compares Arrow's text with ``repr``'s."""
+
+
 @cache
 def _arrow_writes_repr() -> bool:
     """Whether this Arrow's float-to-text cast gives ``repr``'s text within
@@ -1337,19 +1354,8 @@ def _arrow_writes_repr() -> bool:
     import pyarrow
     import pyarrow.compute as pc
 
-    probe = [
-        1e-4,
-        1.5e-4,
-        0.1,
-        1 / 3,
-        2.5,
-        100.25,
-        123456.789,
-        9_999_999_999.5,
-        1.5e9 + 0.25,
-        7e-3,
-    ]
-    return pc.cast(pyarrow.array(probe), pyarrow.string()).to_pylist() == list(map(repr, probe))
+    cast = pc.cast(pyarrow.array(ARROW_PROBE), pyarrow.string()).to_pylist()
+    return cast == list(map(repr, ARROW_PROBE))
 
 
 def _float_text(table: pd.DataFrame) -> pd.DataFrame:
@@ -1371,11 +1377,17 @@ def _float_text(table: pd.DataFrame) -> pd.DataFrame:
 def _column_text(values: np.ndarray) -> np.ndarray:
     """The text of a float64 column (see :func:`_float_text`); a column of one value (the same
     bits in every row, e.g. the bounds' ``level``) is turned into text once."""
-    if len(values) and (values.view(np.int64) == values.view(np.int64)[0]).all():
+    if _one_value(values):
         return np.full(len(values), _float_repr(values[0]), dtype=object)
     text = np.array(list(map(repr, values.tolist())), dtype=object)
     text[np.isnan(values)] = ""
     return text
+
+
+def _one_value(values: np.ndarray) -> bool:
+    """Whether a float64 column holds the same bits in every row (and at least one row)."""
+    bits = values.view(np.int64)
+    return bool(len(values)) and bool((bits == bits[0]).all())
 
 
 def _float_repr(value: float) -> str:
