@@ -6,9 +6,11 @@ and a message naming the file, layer or column and the basin or row (line) at fa
 
 from __future__ import annotations
 
+import gc
 import re
 import subprocess
 import sys
+import weakref
 
 import numpy as np
 import pandas as pd
@@ -16,7 +18,7 @@ import pytest
 from shapely.geometry import Point, Polygon
 from tiny_region import checksums, write_region
 
-from regional import __version__
+from regional import __version__, cli
 from regional.cli import main
 
 
@@ -83,6 +85,59 @@ def test_bad_input_through_the_real_process_has_no_traceback(tmp_path):
     assert result.returncode == 2
     assert "Traceback" not in result.stderr
     assert "region settings not found" in result.stderr and "nowhere" in result.stderr
+
+
+class Node:
+    """An object that can sit in a reference cycle and be watched through a weak reference."""
+
+    def __init__(self):
+        self.itself = self
+
+
+def test_libraries_load_with_the_collector_off_and_their_objects_are_set_aside():
+    assert gc.isenabled() and gc.get_freeze_count() == 0
+    try:
+        with cli._loading_libraries():
+            assert not gc.isenabled()
+            loaded = weakref.ref(Node())  # a cycle made while loading, then dropped
+        assert gc.isenabled()
+        gc.collect()
+        assert loaded() is not None  # set aside: full collections skip it
+        later = weakref.ref(Node())  # made afterwards: collected as usual
+        gc.collect()
+        assert later() is None
+    finally:
+        gc.unfreeze()
+    gc.collect()
+    assert loaded() is None
+
+
+def test_loading_leaves_a_disabled_collector_disabled():
+    gc.disable()
+    try:
+        with cli._loading_libraries():
+            pass
+        assert not gc.isenabled()
+    finally:
+        gc.unfreeze()
+        gc.enable()
+
+
+def test_main_gives_the_collector_back_as_it_found_it(capsys, region_folder):
+    code, _, err = run(capsys, "check", region_folder)  # imports inside _loading_libraries
+    assert code == 0, err
+    assert gc.isenabled() and gc.get_freeze_count() == 0
+
+
+def test_the_program_exits_with_the_code_of_main_and_its_objects_set_aside(monkeypatch):
+    monkeypatch.setattr(cli, "main", lambda: 3)
+    try:
+        with pytest.raises(SystemExit) as stop:
+            cli.command_line()
+        assert stop.value.code == 3
+        assert gc.get_freeze_count() > 0
+    finally:
+        gc.unfreeze()
 
 
 # ----------------------------------------------------------------------------- good region

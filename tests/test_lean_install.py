@@ -68,6 +68,6 @@ def test_distribution_name_is_not_the_unrelated_project_on_the_index():
     # distribution is named "regional-flows"; the import package and the command stay regional.
     project = tomllib.loads((ROOT / "pyproject.toml").read_text())["project"]
     assert project["name"] == "regional-flows"
-    assert project["scripts"] == {"regional": "regional.cli:main"}
+    assert project["scripts"] == {"regional": "regional.cli:command_line"}
     readme = (ROOT / "README.md").read_text()
     assert "`regional-flows`" in readme and "pip install -e ." in readme
