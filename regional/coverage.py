@@ -17,20 +17,22 @@ import numpy as np
 import pandas as pd
 
 from regional.bounds import (
-    BLOCK_BASINS,
     ConformalErrorModel,
     ResidualTails,
-    aligned,
-    basin_offsets,
     check_level,
-    class_residuals,
     conformal_bounds,
     default_n_classes,
-    flow_classes,
-    pooled_bounds,
 )
 from regional.compute import InProcessExecutor
 from regional.kept import is_kept, start_near
+from regional.residuals import (
+    BLOCK_BASINS,
+    aligned,
+    basin_offsets,
+    class_residuals,
+    flow_classes,
+    pooled_bounds,
+)
 
 if TYPE_CHECKING:  # pragma: no cover - annotations only
     from regional.result import ModelRun
@@ -126,7 +128,7 @@ def _held_out_quantiles(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Basin-weighted conformal quantiles of one class with each basin left out in turn.
 
-    Equal to :func:`regional.bounds.pooled_bounds` on the class's residuals without basin j,
+    Equal to :func:`regional.residuals.pooled_bounds` on the class's residuals without basin j,
     for every j at once: with B basins in the class and n_b days of basin b, the cumulative
     weight without j at sorted position i is B / (B - 1) x (C(i) - m_j(i) / (B n_j)), C the
     full cumulative weight and m_j(i) the days of basin j at or before i; a vectorised

@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from regional import bounds, coverage
+from regional import bounds, coverage, residuals
 from regional.bounds import conformal_bounds
 from regional.coverage import (
     MAX_CLASS_LEVEL,
@@ -60,14 +60,14 @@ def test_held_out_coverage_equals_refitting_without_each_basin():
     fast = coverage._held_out_coverage(observed, simulated, 0.8)
 
     k = bounds.default_n_classes(obs)
-    classes = bounds.flow_classes(sim, k)
-    residual, basin, cls = bounds.log_residuals(obs, sim, classes, bounds.OFFSET_FRACTION)
-    offsets = bounds.basin_offsets(sim)
+    classes = residuals.flow_classes(sim, k)
+    residual, basin, cls = residuals.log_residuals(obs, sim, classes, residuals.OFFSET_FRACTION)
+    offsets = residuals.basin_offsets(sim)
     shares = []
     for j in range(n):
         others = basin != j
-        data = bounds.SortedResiduals.of(residual[others], basin[others], cls[others], k)
-        model = bounds._fit(data, levels=np.full(k, 0.8), fraction=bounds.OFFSET_FRACTION)
+        data = residuals.SortedResiduals.of(residual[others], basin[others], cls[others], k)
+        model = bounds._fit(data, levels=np.full(k, 0.8), fraction=residuals.OFFSET_FRACTION)
         low, high = bounds._apply(sim[:, j], classes[:, j], offsets[j], model)
         valid = np.isfinite(obs[:, j])
         shares.append(((obs[:, j] >= low) & (obs[:, j] <= high))[valid].mean())

@@ -31,6 +31,7 @@ ORDER = (
     "calibrate",
     "crossval",
     "result",
+    "residuals",
     "bounds",
     "coverage",
     "heldout",
