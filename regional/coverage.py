@@ -291,7 +291,7 @@ def _coverage_row(observed, simulated, model: str, method: str, level: float) ->
 
 @dataclass(frozen=True)
 class HeldOutRepeat:
-    """One repeat of the held-out check (:func:`regional.heldout.held_out_flows`).
+    """One repeat of the held-out check (:func:`regional.repeats.held_out_flows`).
 
     Attributes
     ----------
@@ -364,7 +364,7 @@ def summarise_repeat(
     observed : DataFrame
         Evaluation days x gauged basins, observed flow, mm/day.
     repeat : HeldOutRepeat
-        From :func:`regional.heldout.held_out_flows`.
+        From :func:`regional.repeats.held_out_flows`.
     level : float
         Nominal level: the tails serve this level and any wider one.
     n_classes : int, optional
@@ -409,7 +409,7 @@ def held_out_coverage(
     observed : DataFrame
         Evaluation days x gauged basins, observed flow, mm/day (NaN = missing).
     repeats : sequence of HeldOutRepeat or HeldOutSummary
-        From :func:`regional.heldout.held_out_flows`, or their summaries
+        From :func:`regional.repeats.held_out_flows`, or their summaries
         (:func:`summarise_repeat`, taken at ``level`` or below it).
     level : float
         Nominal level of the bounds.

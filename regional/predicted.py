@@ -115,14 +115,14 @@ class Prediction:
         What the user should read beside the numbers.
     held_out : DataFrame or None
         The held-out check of the chosen (model, method)
-        (:func:`regional.heldout.held_out_flows`), one row per ``flow_class`` (``all``,
+        (:func:`regional.repeats.held_out_flows`), one row per ``flow_class`` (``all``,
         ``class 1`` .., ``decile 1``, ``decile 10``): ``held_out_coverage`` (bounds as first
         built), ``n_pairs`` ((repeat, basin) pairs), ``level_used`` (the level the class's
         quantiles were finally taken at; NaN for the deciles and ``all``),
         ``held_out_coverage_widened`` (the same repeats with the widened classes; not an
         independent check). None when the check did not run.
     held_out_draws : tuple of HeldOutRepeat
-        The repeats' flows (:func:`regional.heldout.held_out_flows`), reused by the flow
+        The repeats' flows (:func:`regional.repeats.held_out_flows`), reused by the flow
         statistics' held-out check; empty when the check did not run, and in the result of
         :func:`regional.pipeline.run`, which drops them once the statistics are computed.
     model_statistics : DataFrame or None

@@ -205,7 +205,7 @@ def estimate_statistics(
         Ungauged basin -> bool, the prediction's applicability check.
     held_out : sequence of HeldOutRepeat, optional
         Repeats of the held-out check of the chosen (model, method)
-        (:func:`regional.heldout.held_out_flows`); gives the held-out coverage of each
+        (:func:`regional.repeats.held_out_flows`); gives the held-out coverage of each
         statistic's chosen route.
     ungauged_model : DataFrame, optional
         The model route's statistics at the ungauged basins when already computed beside

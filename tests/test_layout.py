@@ -34,6 +34,8 @@ ORDER = (
     "residuals",
     "bounds",
     "coverage",
+    "repeatfolds",
+    "repeats",
     "heldout",
     "applicability",
     "fitted",

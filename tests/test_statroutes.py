@@ -352,7 +352,7 @@ def test_gauged_part_given_the_repeats_one_by_one_equals_the_statistics_given_th
     # The run builds the gauged part while the held-out check runs and hands it each repeat's
     # summary as it comes back (GaugedStatistics.add_held_out); estimate_statistics finished
     # from it gives the tables of estimate_statistics given all the repeats at once.
-    from regional.heldout import held_out_flows
+    from regional.repeats import held_out_flows
 
     run = demo_result.runs[demo_result.chosen_model]
     method = demo_result.chosen_method
