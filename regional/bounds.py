@@ -177,9 +177,9 @@ def conformal_bounds(
         :data:`MIN_DAYS_PER_CLASS` observed days per class; 1 below
         :data:`MIN_BASINS_FOR_CLASSES` basins.
     class_levels : sequence of float, optional
-        A level per flow class (each in (0, 1)), to widen the classes whose coverage on held-out
-        basins falls short (:func:`regional.coverage.held_out_coverage`); default ``level`` in
-        every class.
+        A level per flow class (each in (0, 1)), to widen the classes whose coverage on
+        held-out basins falls short (:func:`regional.repeatcoverage.held_out_coverage`);
+        default ``level`` in every class.
 
     Returns
     -------

@@ -228,7 +228,7 @@ def fit_region(
     meanwhile : callable, optional
         The caller's own work, called once the held-out check and the coverage are started
         (on a cluster it runs while the workers simulate); it may return a call that is then
-        given each repeat's summary (:class:`~regional.coverage.HeldOutSummary`) as it comes
+        given each repeat's summary (:class:`~regional.repeatcoverage.HeldOutSummary`) as it comes
         back (the flow statistics' held-out check, :class:`regional.statroutes.GaugedStatistics`).
 
     Returns

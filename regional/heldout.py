@@ -3,7 +3,7 @@
 The repeats (:mod:`regional.repeats`: random groups of gauged basins held out, the transfer
 refit without them, their flows and each repeat's summary) are started first
 (:func:`start_held_out_check`); :func:`held_out_check` then measures the coverage of the chosen
-bounds at the held-out basins (:func:`regional.coverage.repeat_shares`) and widens the flow
+bounds at the held-out basins (:func:`regional.repeatcoverage.repeat_shares`) and widens the flow
 classes that fall short. See ``docs/prediction.md``.
 """
 
@@ -18,15 +18,15 @@ import pandas as pd
 
 from regional.bounds import ConformalErrorModel, conformal_bounds, default_n_classes
 from regional.compute import release_freed_memory
-from regional.coverage import (
-    REPORTED_DECILES,
+from regional.coverage import REPORTED_DECILES
+from regional.kept import is_kept, near, part_of, submit_near
+from regional.repeatcoverage import (
     WIDEN_TOLERANCE,
     HeldOutSummary,
     coverage_table,
     repeat_shares,
     widened_levels,
 )
-from regional.kept import is_kept, near, part_of, submit_near
 from regional.repeats import HELD_OUT_SEED, SummaryJob, held_out_chunk, repeat_summaries
 from regional.series import StoreReader
 
@@ -229,7 +229,7 @@ def _finished_check(
 
 
 def _shares(observed, draws, kept, level: float, n_classes: int, class_levels) -> list[dict]:
-    """Each repeat's :func:`regional.coverage.repeat_shares`: here, or where the summaries
+    """Each repeat's :func:`regional.repeatcoverage.repeat_shares`: here, or where the summaries
     stayed on the workers (``kept``: their futures), as a task next to each, given the
     repeat's held-out basins' observed flow only."""
     if kept[0] is None:

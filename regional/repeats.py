@@ -2,11 +2,11 @@
 
 :func:`held_out_flows` draws repeated groups of gauged basins, refits the transfer without them
 and gives them (and the remaining training basins) their flows; :func:`repeat_summaries` gives
-each repeat summarised (:func:`regional.coverage.summarise_repeat`) as it comes back, in this
-process or as tasks on a cluster (a repeat's target basins a chunk per task, each worker keeping
-what the repeats share; the folds of a repeat are :mod:`regional.repeatfolds`). The check itself, which measures the
-coverage of the bounds on these repeats and widens the flow classes that fall short, is
-:mod:`regional.heldout`. See ``docs/prediction.md``.
+each repeat summarised (:func:`regional.repeatcoverage.summarise_repeat`) as it comes back, in
+this process or as tasks on a cluster (a repeat's target basins a chunk per task). The folds of
+a repeat, and what a worker keeps across a check's tasks, are :mod:`regional.repeatfolds`; the
+check itself, which measures the coverage of the bounds on these repeats and widens the flow
+classes that fall short, is :mod:`regional.heldout`. See ``docs/prediction.md``.
 """
 
 from __future__ import annotations
@@ -22,10 +22,10 @@ import pandas as pd
 
 from regional import flowstats
 from regional.compute import BATCHES_AHEAD, TASKS_PER_WORKER, chunked
-from regional.coverage import HeldOutRepeat, HeldOutSummary, summarise_repeat
 from regional.crossval import FoldContext
 from regional.errors import InputError
 from regional.kept import is_kept
+from regional.repeatcoverage import HeldOutRepeat, HeldOutSummary, summarise_repeat
 from regional.repeatfolds import HeldOutFolds, KeptColumn, KeptReader, worker_loo_donations
 from regional.series import StoreReader, shipped
 

@@ -49,10 +49,10 @@ from threadpoolctl import threadpool_limits
 
 from regional import flowstats
 from regional.config import STATISTICS_ROUTES
-from regional.coverage import HeldOutSummary
 from regional.crossval import FoldContext
 from regional.errors import InputError
 from regional.kept import start_near
+from regional.repeatcoverage import HeldOutSummary
 from regional.transfer import great_circle_km, inverse_distance_weights, make_transfer
 from regional.transfer.folds import k_nearest, row_blocks
 
@@ -1049,7 +1049,7 @@ class GaugedStatistics:
 
     def add_held_out(self, draw) -> None:
         """Check the chosen routes on one repeat of the held-out check
-        (:class:`~regional.coverage.HeldOutRepeat` or its summary)."""
+        (:class:`~regional.repeatcoverage.HeldOutRepeat` or its summary)."""
         if self._hits is None:
             self._hits = {}
         _held_out_hits(self._chosen, self.data, draw, self.level, self._hits)
@@ -1101,7 +1101,8 @@ def _with_hits(summary, hits: dict) -> pd.DataFrame:
 
 
 def _training_basins(draw) -> list[str]:
-    """Training basins of a repeat (:class:`~regional.coverage.HeldOutRepeat` or its summary)."""
+    """Training basins of a repeat (:class:`~regional.repeatcoverage.HeldOutRepeat` or its
+    summary)."""
     if isinstance(draw, HeldOutSummary):
         return list(draw.training)
     return [str(b) for b in draw.training_flow.columns]

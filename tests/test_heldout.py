@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from regional import coverage
+from regional import repeatcoverage
 from regional.bounds import conformal_bounds
 from regional.predict import predict_ungauged
 from regional.repeats import held_out_flows
@@ -14,7 +14,7 @@ from regional.repeats import held_out_flows
 def test_classes_short_of_the_level_are_widened_in_the_bounds(demo_result, monkeypatch):
     # With no tolerance every flow class whose held-out coverage is below the level is rebuilt
     # at level + shortfall: its quantiles grow, the others stay, and a note says so.
-    monkeypatch.setattr(coverage, "WIDEN_TOLERANCE", 0.0)
+    monkeypatch.setattr(repeatcoverage, "WIDEN_TOLERANCE", 0.0)
     run = demo_result.runs[demo_result.chosen_model]
     plain = conformal_bounds(
         run.loo.observed, run.loo.simulated[demo_result.chosen_method], level=0.8
@@ -42,10 +42,10 @@ def test_held_out_check_keeps_summaries_with_the_coverage_of_the_whole_repeats(
     # statistics, not the training basins' daily flows; its table (widened too) equals the one
     # computed from the whole repeats.
     from regional.bounds import conformal_bounds
-    from regional.coverage import HeldOutSummary, held_out_coverage
     from regional.heldout import held_out_check
+    from regional.repeatcoverage import HeldOutSummary, held_out_coverage
 
-    monkeypatch.setattr(coverage, "WIDEN_TOLERANCE", 0.0)
+    monkeypatch.setattr(repeatcoverage, "WIDEN_TOLERANCE", 0.0)
     run = demo_result.runs[demo_result.chosen_model]
     observed = run.loo.observed
     simulated = run.loo.simulated[demo_result.chosen_method]

@@ -34,6 +34,7 @@ ORDER = (
     "residuals",
     "bounds",
     "coverage",
+    "repeatcoverage",
     "repeatfolds",
     "repeats",
     "heldout",
